@@ -1,0 +1,62 @@
+"""The ``closure`` command line: one typer app; each command group lives in its own module."""
+
+from __future__ import annotations
+
+import sys
+
+import typer
+
+from closure.errors import UserError
+
+app = typer.Typer(
+    name="closure",
+    help="Discover subgrid-scale closures from high-resolution simulation data.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+
+@app.callback()
+def _root() -> None:
+    """Discover subgrid-scale closures from high-resolution simulation data."""
+
+
+@app.command()
+def version() -> None:
+    """Print the closure version."""
+    from closure import __version__
+
+    typer.echo(__version__)
+
+
+# Each module defines ``register(app)``; the order here is the order in --help.
+from closure.cli import synth, coarse, discover, service, les  # noqa: E402,I001
+
+for _module in (synth, coarse, discover, service, les):
+    _module.register(app)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Console entry point: user errors print one line and exit 2, no traceback."""
+    try:
+        app(args=argv, standalone_mode=False)
+    except UserError as exc:
+        typer.echo(f"error: {exc}", err=True)
+        return 2
+    except typer.Exit as exc:
+        return exc.exit_code
+    except typer.Abort:
+        typer.echo("aborted", err=True)
+        return 130
+    except Exception as exc:  # usage errors carry their own exit code and message
+        if hasattr(exc, "show") and hasattr(exc, "exit_code"):
+            exc.show()
+            return exc.exit_code
+        raise
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,122 @@
+"""Derivatives on a uniform grid: spectral, 2nd- and 4th-order central differences.
+
+All functions take a spatial-only array whose axes follow ``grid.dims`` and return an array of
+the same shape. Periodic grids use wrap-around stencils (or FFTs); non-periodic grids use
+one-sided stencils of the same order at the edges. The scheme is chosen to match the coarse
+solver that will run the closure, so a fitted coefficient means the same thing there.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import scipy.fft
+
+from closure.errors import UserError
+from closure.grid import Grid
+
+SCHEMES = ("spectral", "fd2", "fd4")
+
+# Central stencils, offsets -2..2 (Fornberg 1988, Table 1).
+_CENTRAL = {
+    ("fd2", 1): np.array([0.0, -0.5, 0.0, 0.5, 0.0]),
+    ("fd2", 2): np.array([0.0, 1.0, -2.0, 1.0, 0.0]),
+    ("fd4", 1): np.array([1.0, -8.0, 0.0, 8.0, -1.0]) / 12.0,
+    ("fd4", 2): np.array([-1.0, 16.0, -30.0, 16.0, -1.0]) / 12.0,
+}
+# One-sided stencils at the first points of a non-periodic edge, (row for point i) on points
+# 0..4 (Fornberg 1988, Table 3, forward differences of the same order as the interior).
+_EDGE = {
+    ("fd2", 1): [np.array([-1.5, 2.0, -0.5, 0.0, 0.0])],
+    ("fd2", 2): [np.array([2.0, -5.0, 4.0, -1.0, 0.0])],
+    ("fd4", 1): [np.array([-25.0, 48.0, -36.0, 16.0, -3.0]) / 12.0,
+                 np.array([-3.0, -10.0, 18.0, -6.0, 1.0]) / 12.0],
+    ("fd4", 2): [np.array([35.0, -104.0, 114.0, -56.0, 11.0]) / 12.0,
+                 np.array([11.0, -20.0, 6.0, 4.0, -1.0]) / 12.0],
+}
+
+
+def check_scheme(scheme: str, grid: Grid) -> None:
+    """Raise a UserError if ``scheme`` is unknown or cannot run on ``grid``."""
+    if scheme not in SCHEMES:
+        raise UserError(f"unknown derivative scheme {scheme!r}: choose one of {', '.join(SCHEMES)}")
+    if scheme == "spectral" and not grid.periodic:
+        raise UserError("spectral derivatives need periodic data: use --scheme fd2 or fd4")
+
+
+def derivative(f: np.ndarray, grid: Grid, dim: str, order: int = 1,
+               scheme: str = "spectral") -> np.ndarray:
+    """The ``order``-th derivative of ``f`` along direction ``dim``.
+
+    Orders 1 and 2 have their own stencils; higher orders apply those repeatedly.
+    Spectral derivatives of odd order drop the Nyquist mode of even-length axes
+    (its derivative is not representable as a real field).
+    """
+    check_scheme(scheme, grid)
+    if order < 0:
+        raise ValueError("derivative order must be >= 0")
+    if order == 0:
+        return np.array(f, dtype=float, copy=True)
+    axis = grid.axis(dim)
+    h = grid.spacing[axis]
+    if scheme == "spectral":
+        return _spectral(f, grid, dim, order)
+    out = np.asarray(f, dtype=float)
+    remaining = order
+    while remaining:
+        step = 2 if remaining >= 2 else 1
+        out = _stencil(out, axis, h, scheme, step, grid.periodic)
+        remaining -= step
+    return out
+
+
+def _spectral(f, grid, dim, order):
+    axis = grid.axis(dim)
+    n = grid.shape[axis]
+    k = grid.wavenumbers(dim, real=True)
+    mult = (1j * k) ** order
+    if order % 2 == 1 and n % 2 == 0:
+        mult[-1] = 0.0
+    shape = [1] * f.ndim
+    shape[axis] = k.size
+    fh = scipy.fft.rfft(f, axis=axis, workers=-1)
+    return scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=-1)
+
+
+def _stencil(f, axis, h, scheme, order, periodic):
+    weights = _CENTRAL[(scheme, order)]
+    n = f.shape[axis]
+    out = np.zeros_like(f, dtype=float)
+    if periodic:
+        for offset, w in zip(range(-2, 3), weights, strict=True):
+            if w:
+                out += w * np.roll(f, -offset, axis=axis)
+        return out / h**order
+    if n < 5:
+        raise UserError(f"finite differences on a non-periodic axis need at least 5 points, got {n}")
+    fm = np.moveaxis(f, axis, 0)
+    om = np.moveaxis(out, axis, 0)
+    edge = len(_EDGE[(scheme, order)])
+    for offset, w in zip(range(-2, 3), weights, strict=True):
+        if w:
+            om[edge:n - edge] += w * fm[edge + offset:n - edge + offset]
+    for i, row in enumerate(_EDGE[(scheme, order)]):
+        om[i] = np.tensordot(row, fm[:5], axes=(0, 0))
+        # mirrored stencil at the far edge: odd derivatives change sign
+        om[n - 1 - i] = (-1) ** order * np.tensordot(row, fm[::-1][:5], axes=(0, 0))
+    return out / h**order
+
+
+def gradient(f: np.ndarray, grid: Grid, scheme: str = "spectral") -> dict[str, np.ndarray]:
+    """First derivatives along every direction of the grid, keyed by direction."""
+    return {d: derivative(f, grid, d, 1, scheme) for d in grid.dims}
+
+
+def laplacian(f: np.ndarray, grid: Grid, scheme: str = "spectral") -> np.ndarray:
+    """Sum of second derivatives (compact 3- or 5-point stencils for fd2 / fd4)."""
+    return sum(derivative(f, grid, d, 2, scheme) for d in grid.dims)
+
+
+def divergence(components: dict[str, np.ndarray], grid: Grid,
+               scheme: str = "spectral") -> np.ndarray:
+    """d_j F_j for a vector keyed by direction (``{"x": Fx, "y": Fy}``)."""
+    return sum(derivative(components[d], grid, d, 1, scheme) for d in grid.dims)

@@ -1,0 +1,234 @@
+"""Filters and coarse-graining: box, Gaussian and sharp spectral filters, block averaging.
+
+Transfer functions are those of Pope, Turbulent Flows (2000), Table 13.2, with filter width D:
+
+    box (top-hat)   G(k) = sin(k D / 2) / (k D / 2)
+    Gaussian        G(k) = exp(-k^2 D^2 / 24)
+    sharp spectral  G(k) = H(pi / D - |k|)
+
+Multi-dimensional filters are tensor products of the 1-D ones, so the sharp filter cuts each
+wavenumber component separately. On periodic grids they are applied spectrally with exactly these
+transfer functions. On non-periodic grids the box and Gaussian filters are applied in real space
+(``scipy.ndimage``) with mirror-symmetric ('reflect') extension at the edges; the sharp filter
+needs periodic data. Coarsening by ratio r samples every r-th point from index 0. Block
+averaging instead takes the mean of r^d fine cells, with coordinates at the block centres.
+
+All operations act on the trailing ``grid.ndim`` axes, so a stack of fields (leading axes)
+is filtered in one FFT pass.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+import scipy.fft
+import scipy.ndimage
+
+from closure.errors import UserError
+from closure.grid import Grid
+
+FILTER_KINDS = ("box", "gaussian", "spectral", "block")
+WIDTH_UNITS = ("grid", "coordinate")
+
+
+def transfer_function(kind: str, k: np.ndarray, width: float) -> np.ndarray:
+    """1-D transfer function G(k) of a filter of width ``width`` at angular wavenumbers ``k``.
+
+    For the sharp spectral filter the cutoff mode itself (|k| = pi/D) is removed, so a field
+    filtered with D = r dx is exactly representable on the coarse grid.
+    """
+    k = np.asarray(k, dtype=float)
+    if kind == "box":
+        return np.sinc(k * width / (2 * np.pi))  # numpy sinc(x) = sin(pi x)/(pi x)
+    if kind == "gaussian":
+        return np.exp(-(k**2) * width**2 / 24.0)
+    if kind == "spectral":
+        # strict inequality, with a relative tolerance so the coarse Nyquist mode is cut
+        return (np.abs(k) < (np.pi / width) * (1 - 1e-12)).astype(float)
+    if kind == "block":
+        # discrete mean of r points spaced h (width r h), phase ignored: |G| of block averaging
+        raise UserError("block averaging has no continuous transfer function; use the grid form")
+    raise UserError(f"unknown filter {kind!r}: choose one of {', '.join(FILTER_KINDS)}")
+
+
+@dataclass(frozen=True)
+class CoarseGraining:
+    """Filter of a given kind and width followed by coarsening by ``ratio``, on ``fine``.
+
+    ``widths`` are the filter widths D per direction of ``fine.dims``, in coordinate units.
+    """
+
+    kind: str
+    ratio: int
+    widths: tuple[float, ...]
+    fine: Grid
+
+    @cached_property
+    def coarse(self) -> Grid:
+        return self.fine.block(self.ratio) if self.kind == "block" else self.fine.coarsen(self.ratio)
+
+    @property
+    def delta(self) -> float:
+        """One filter width for the library's powers of D: geometric mean over directions."""
+        return float(np.prod(self.widths) ** (1.0 / len(self.widths)))
+
+    def second_moment(self, dim: str) -> float | None:
+        """Second moment of the filter kernel along ``dim`` (coordinate units squared).
+
+        D^2/12 for box and Gaussian; (r^2 - 1) h^2 / 12 for block averaging of r points of
+        spacing h; None for the sharp spectral filter, whose kernel sin(x)/x has no finite
+        second moment.
+        """
+        a = self.fine.axis(dim)
+        if self.kind in ("box", "gaussian"):
+            return self.widths[a] ** 2 / 12.0
+        if self.kind == "block":
+            return (self.ratio**2 - 1) * self.fine.spacing[a] ** 2 / 12.0
+        return None
+
+    def transfer(self, k: np.ndarray, dim: str) -> np.ndarray:
+        """1-D transfer function along ``dim`` (box, Gaussian, sharp spectral)."""
+        return transfer_function(self.kind, k, self.widths[self.fine.axis(dim)])
+
+    @cached_property
+    def _spectral_multiplier(self) -> np.ndarray:
+        g = self.fine
+        factors = []
+        for i, d in enumerate(g.dims):
+            k = g.wavenumbers(d, real=(i == g.ndim - 1))
+            shape = [1] * g.ndim
+            shape[i] = k.size
+            factors.append(self.transfer(k, d).reshape(shape))
+        out = factors[0]
+        for f in factors[1:]:
+            out = out * f
+        return out
+
+    def filter(self, f: np.ndarray) -> np.ndarray:
+        """The filtered field on the fine grid (box, Gaussian, sharp spectral)."""
+        if self.kind == "block":
+            raise UserError("block averaging has no fine-grid filtered field; use coarse_grain")
+        f = np.asarray(f, dtype=float)
+        g = self.fine
+        axes = tuple(range(f.ndim - g.ndim, f.ndim))
+        if g.periodic:
+            fh = scipy.fft.rfftn(f, axes=axes, workers=-1)
+            fh *= self._spectral_multiplier
+            return scipy.fft.irfftn(fh, s=g.shape, axes=axes, workers=-1)
+        if self.kind == "spectral":
+            raise UserError("the sharp spectral filter needs periodic data: use --filter box or "
+                            "gaussian, or declare the data periodic")
+        out = f
+        for a, ax in zip(range(g.ndim), axes, strict=True):
+            h = g.spacing[a]
+            width_cells = self.widths[a] / h
+            if self.kind == "gaussian":
+                out = scipy.ndimage.gaussian_filter1d(out, width_cells / np.sqrt(12.0), axis=ax,
+                                                      mode="reflect", truncate=6.0)
+            else:
+                out = scipy.ndimage.convolve1d(out, box_weights(width_cells), axis=ax,
+                                               mode="reflect")
+        return out
+
+    def sample(self, f: np.ndarray) -> np.ndarray:
+        """Every ``ratio``-th point of a fine-grid field from index 0 (trailing axes)."""
+        r = self.ratio
+        index = (Ellipsis,) + (slice(None, None, r),) * self.fine.ndim
+        return np.ascontiguousarray(np.asarray(f)[index])
+
+    def block_mean(self, f: np.ndarray) -> np.ndarray:
+        """Mean over r^d blocks of fine cells (trailing axes)."""
+        f = np.asarray(f, dtype=float)
+        lead = f.shape[: f.ndim - self.fine.ndim]
+        shape = list(lead)
+        for n in self.fine.shape:
+            shape += [n // self.ratio, self.ratio]
+        blocks = f.reshape(shape)
+        return blocks.mean(axis=tuple(len(lead) + 2 * i + 1 for i in range(self.fine.ndim)))
+
+    def __call__(self, f: np.ndarray) -> np.ndarray:
+        """Coarse-grain: filter then sample, or block-average; returns a coarse-grid array."""
+        if self.kind == "block":
+            return self.block_mean(f)
+        return self.sample(self.filter(f))
+
+    def describe(self) -> dict:
+        """Kind, widths, ratio and second moments, as plain types (for files and attributes)."""
+        g = self.fine
+        moments = {d: self.second_moment(d) for d in g.dims}
+        out = {
+            "kind": self.kind,
+            "ratio": self.ratio,
+            "width": self.delta,
+            "widths": {d: w for d, w in zip(g.dims, self.widths, strict=True)},
+            "width_cells": {d: w / h for d, w, h in zip(g.dims, self.widths, g.spacing,
+                                                         strict=True)},
+            "second_moment": moments,
+        }
+        if self.kind == "spectral":
+            out["second_moment_note"] = ("undefined: the sharp spectral kernel sin(x)/x has no "
+                                         "finite second moment")
+        return out
+
+    def warnings(self) -> list[str]:
+        """Things a modeller should know about this choice (not errors)."""
+        out = []
+        if self.kind in ("box", "gaussian", "spectral"):
+            for d, w, h in zip(self.fine.dims, self.widths, self.coarse.spacing, strict=True):
+                if w < h * (1 - 1e-12):
+                    out.append(f"filter width {w:g} in {d} is narrower than the coarse spacing "
+                               f"{h:g}: the coarse fields alias unfiltered scales")
+        return out
+
+
+def box_weights(width_cells: float) -> np.ndarray:
+    """Discrete top-hat of width ``width_cells`` spacings: the overlap of each cell with
+    [-D/2, D/2], normalised (odd integer widths: uniform; even: half weights at the ends)."""
+    half = width_cells / 2.0
+    m = int(np.ceil(half - 0.5 + 1e-12))
+    j = np.arange(-m, m + 1, dtype=float)
+    w = np.clip(np.minimum(j + 0.5, half) - np.maximum(j - 0.5, -half), 0.0, None)
+    return w / w.sum()
+
+
+def make_coarse_graining(kind: str, grid: Grid, ratio: int, width: float | None = None,
+                         width_units: str = "grid") -> CoarseGraining:
+    """Build and check a coarse-graining.
+
+    ``width`` is D in fine-grid spacings (``width_units="grid"``, per direction) or in
+    coordinate units. It defaults to ``2 * ratio`` spacings for the filters (common practice)
+    and is ``ratio`` spacings for block averaging, which has no other width.
+    """
+    if kind not in FILTER_KINDS:
+        raise UserError(f"unknown filter {kind!r}: choose one of {', '.join(FILTER_KINDS)}")
+    if width_units not in WIDTH_UNITS:
+        raise UserError(f"unknown width units {width_units!r}: choose grid or coordinate")
+    if not isinstance(ratio, int | np.integer) or ratio < 1:
+        raise UserError(f"the coarsening ratio must be a whole number >= 1, got {ratio!r}")
+    ratio = int(ratio)
+    if kind == "block":
+        if width is not None:
+            expect = ratio if width_units == "grid" else None
+            if expect is None or abs(width - expect) > 1e-9:
+                raise UserError("block averaging has width equal to the ratio (in grid "
+                                f"spacings): omit --width or set it to {ratio}")
+        widths = tuple(ratio * h for h in grid.spacing)
+    else:
+        if width is None:
+            width = 2.0 * ratio
+            width_units = "grid"
+        if not np.isfinite(width) or width <= 0:
+            raise UserError(f"the filter width must be a positive number, got {width!r}")
+        if width_units == "grid":
+            widths = tuple(float(width) * h for h in grid.spacing)
+        else:
+            widths = (float(width),) * grid.ndim
+    for d, w, L in zip(grid.dims, widths, grid.lengths, strict=True):
+        if w > L:
+            raise UserError(f"the filter width {w:g} is larger than the domain ({L:g}) in {d}: "
+                            "use a smaller --width")
+    cg = CoarseGraining(kind, ratio, widths, grid)
+    cg.coarse  # noqa: B018  (checks the ratio against the grid now, with a clear message)
+    return cg
