@@ -1,0 +1,239 @@
+"""Report figures as pure functions of arrays: each returns a matplotlib Figure.
+
+Figures are sized in inches and saved at :data:`DPI` by :func:`save_png`, so a figure of
+``FIGSIZE`` (8 x 6 in) becomes an 800 x 600 pixel PNG. The Agg backend is selected here,
+before anything else of matplotlib is loaded here, so nothing ever opens a window; figures
+are built as ``Figure`` objects, outside pyplot's global state.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+
+import matplotlib
+
+matplotlib.use("Agg")
+import numpy as np  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+#: Size of every report figure, inches (width, height), and the resolution it is saved at.
+FIGSIZE = (8.0, 6.0)
+DPI = 100
+
+
+def agreement(exact: np.ndarray, modelled: np.ndarray) -> dict[str, float]:
+    """R^2 (coefficient of determination of ``modelled`` as a prediction of ``exact``) and
+    the Pearson correlation, over all points."""
+    y = np.asarray(exact, dtype=float).ravel()
+    p = np.asarray(modelled, dtype=float).ravel()
+    if y.shape != p.shape:
+        raise ValueError(f"exact has {y.size} points, modelled {p.size}")
+    ss_res = float(np.sum((y - p) ** 2))
+    ss_tot = float(np.sum((y - y.mean()) ** 2))
+    r2 = 1.0 - ss_res / ss_tot if ss_tot > 0 else float("nan")
+    sy, sp = y.std(), p.std()
+    corr = float(np.mean((y - y.mean()) * (p - p.mean())) / (sy * sp)) if sy > 0 and sp > 0 \
+        else float("nan")
+    return {"r2": r2, "correlation": corr}
+
+
+def agreement_title(name: str, stats: Mapping[str, float]) -> str:
+    """The panel title of an a priori scatter: ``"tau_xy: R^2 = 0.812, corr = 0.905"``."""
+    return f"{name}: R^2 = {stats['r2']:.3f}, corr = {stats['correlation']:.3f}"
+
+
+def _grid_of_panels(n: int) -> tuple[int, int]:
+    cols = min(n, 3)
+    return -(-n // cols), cols
+
+
+def apriori_hexbin(exact: Mapping[str, np.ndarray], modelled: Mapping[str, np.ndarray],
+                   gridsize: int = 50, figsize=FIGSIZE) -> Figure:
+    """Exact vs modelled subgrid term, one hexbin panel per component (log counts).
+
+    ``exact`` and ``modelled`` map component names (e.g. ``tau_xx``) to arrays of equal shape
+    (any: pooled over points and snapshots). Each panel has the 1:1 line and the title
+    :func:`agreement_title`.
+    """
+    names = [n for n in exact if n in modelled]
+    if not names:
+        raise ValueError("no component is in both exact and modelled")
+    rows, cols = _grid_of_panels(len(names))
+    fig = Figure(figsize=figsize, layout="constrained")
+    axes = fig.subplots(rows, cols, squeeze=False)
+    for ax in axes.ravel()[len(names):]:
+        ax.set_visible(False)
+    for ax, name in zip(axes.ravel(), names, strict=False):
+        y = np.asarray(exact[name], dtype=float).ravel()
+        p = np.asarray(modelled[name], dtype=float).ravel()
+        lo = float(min(y.min(), p.min()))
+        hi = float(max(y.max(), p.max()))
+        if hi <= lo:
+            hi = lo + 1.0
+        ax.hexbin(y, p, gridsize=gridsize, bins="log", mincnt=1, cmap="viridis",
+                  extent=(lo, hi, lo, hi))
+        ax.plot([lo, hi], [lo, hi], color="crimson", lw=1.0, label="1:1")
+        ax.set_xlim(lo, hi)
+        ax.set_ylim(lo, hi)
+        ax.set_xlabel("exact")
+        ax.set_ylabel("model")
+        ax.set_title(agreement_title(name, agreement(y, p)), fontsize=9)
+    fig.suptitle("A priori: exact vs modelled subgrid term (held-out snapshots)")
+    return fig
+
+
+def transfer_spectra(k: np.ndarray, curves: Mapping[str, np.ndarray], title: str,
+                     ylabel: str, figsize=FIGSIZE) -> Figure:
+    """Transfer spectra T(k) of several sources (e.g. exact, model) against k.
+
+    ``k`` are shell wavenumbers (the k = 0 shell is dropped: it carries no transfer on a
+    periodic domain); log-scaled k, linear T (it changes sign under backscatter).
+    """
+    k = np.asarray(k, dtype=float)
+    keep = k > 0
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    styles = ["-", "--", ":", "-."]
+    for i, (label, t) in enumerate(curves.items()):
+        ax.plot(k[keep], np.asarray(t, dtype=float)[keep], styles[i % 4], marker=".",
+                label=label)
+    ax.axhline(0.0, color="grey", lw=0.6)
+    ax.set_xscale("log")
+    ax.set_xlabel("wavenumber k")
+    ax.set_ylabel(ylabel)
+    ax.set_title(title)
+    ax.legend()
+    return fig
+
+
+def coefficients(names: Sequence[str], scaled: Sequence[float], std_error: Sequence[float],
+                 selection_frequency: Sequence[float] | None = None,
+                 figsize=FIGSIZE) -> Figure:
+    """D-scaled coefficients with +/- one standard error, and (second panel) how often each
+    term was selected across resamples (0..1)."""
+    n = len(names)
+    y = np.arange(n)
+    freq = selection_frequency is not None and any(f is not None for f in selection_frequency)
+    fig = Figure(figsize=figsize, layout="constrained")
+    if freq:
+        ax, ax2 = fig.subplots(1, 2, sharey=True, width_ratios=[3, 1])
+    else:
+        ax, ax2 = fig.subplots(), None
+    err = np.array([np.nan if e is None else e for e in std_error], dtype=float)
+    ax.errorbar(np.asarray(scaled, dtype=float), y, xerr=np.where(np.isfinite(err), err, 0.0),
+                fmt="o", capsize=4, color="tab:blue")
+    ax.axvline(0.0, color="grey", lw=0.6)
+    ax.set_yticks(y, list(names))
+    ax.invert_yaxis()
+    ax.set_xlabel("coefficient scaled by D^p (dimensionless) +/- 1 std error")
+    ax.set_title("Coefficients")
+    if ax2 is not None:
+        f = np.array([0.0 if v is None else v for v in selection_frequency], dtype=float)
+        ax2.barh(y, f, color="tab:orange")
+        ax2.set_xlim(0, 1)
+        ax2.set_xlabel("selection frequency")
+        ax2.set_title("Selected in resamples")
+    return fig
+
+
+def sweep_coefficients(delta: Sequence[float], scaled: Mapping[str, Sequence[float]],
+                       std_error: Mapping[str, Sequence[float]] | None = None,
+                       figsize=FIGSIZE) -> Figure:
+    """D-scaled coefficient of each term against the filter width D (log axis).
+
+    A closure that is scale invariant in its D-scaling gives flat lines. ``scaled[name][i]``
+    is the coefficient at ``delta[i]``; NaN where the term was not selected.
+    """
+    d = np.asarray(delta, dtype=float)
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    for name, c in scaled.items():
+        c = np.asarray(c, dtype=float)
+        e = None
+        if std_error is not None and name in std_error:
+            e = np.asarray(std_error[name], dtype=float)
+            e = np.where(np.isfinite(e), e, 0.0)
+        ax.errorbar(d, c, yerr=e, marker="o", capsize=3, label=name)
+    ax.axhline(0.0, color="grey", lw=0.6)
+    ax.set_xscale("log")
+    ax.set_xlabel("filter width D")
+    ax.set_ylabel("coefficient scaled by D^p")
+    ax.set_title("Coefficients vs filter width (flat: scale invariant)")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def sweep_scores(delta: Sequence[float], scores: Mapping[str, Sequence[float]],
+                 figsize=FIGSIZE) -> Figure:
+    """Held-out scores (e.g. R^2, correlation) against the filter width D."""
+    d = np.asarray(delta, dtype=float)
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    for name, s in scores.items():
+        ax.plot(d, np.asarray(s, dtype=float), marker="o", label=name)
+    ax.set_xscale("log")
+    ax.set_xlabel("filter width D")
+    ax.set_ylabel("held-out score")
+    ax.set_title("A priori scores on held-out snapshots vs filter width")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def aposteriori_spectra(curves: Mapping[str, tuple[np.ndarray, np.ndarray]],
+                        reference: str | None = None, figsize=FIGSIZE) -> Figure:
+    """Energy spectra E(k) of coarse runs (model, baselines) and of the filtered reference,
+    log-log; ``curves[label] = (k, E)``; the reference is drawn black and thick."""
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    for label, (k, e) in curves.items():
+        k = np.asarray(k, dtype=float)
+        e = np.asarray(e, dtype=float)
+        keep = (k > 0) & (e > 0) & np.isfinite(e)
+        if label == reference:
+            ax.loglog(k[keep], e[keep], color="black", lw=2.5, label=label, zorder=3)
+        else:
+            ax.loglog(k[keep], e[keep], lw=1.2, label=label)
+    ax.set_xlabel("wavenumber k")
+    ax.set_ylabel("E(k)")
+    ax.set_title("A posteriori energy spectra")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def time_series(series: Mapping[str, tuple[np.ndarray, np.ndarray]], ylabel: str,
+                blowup: Mapping[str, float | None] | None = None,
+                reference: str | None = None, log: bool = False,
+                figsize=FIGSIZE) -> Figure:
+    """Time series (``series[label] = (t, y)``) with each run's blow-up time marked by a
+    dashed vertical line of the run's colour and an x at the last finite value."""
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    blowup = blowup or {}
+    for label, (t, y) in series.items():
+        t = np.asarray(t, dtype=float)
+        y = np.asarray(y, dtype=float)
+        ok = np.isfinite(y)
+        kw = dict(color="black", lw=2.5, zorder=3) if label == reference else dict(lw=1.2)
+        (line,) = ax.plot(t[ok], y[ok], label=label, **kw)
+        tb = blowup.get(label)
+        if tb is not None and np.isfinite(tb):
+            ax.axvline(tb, color=line.get_color(), ls="--", lw=1.0)
+            if ok.any():
+                ax.plot(t[ok][-1], y[ok][-1], "x", color=line.get_color(), ms=10, mew=2)
+            line.set_label(f"{label} (blow-up t = {tb:.3g})")
+    if log:
+        ax.set_yscale("log")
+    ax.set_xlabel("time")
+    ax.set_ylabel(ylabel)
+    ax.set_title(f"A posteriori {ylabel}")
+    ax.legend(fontsize=8)
+    return fig
+
+
+def save_png(fig: Figure, path: str | os.PathLike, dpi: int = DPI) -> Path:
+    """Write ``fig`` as a PNG of exactly figsize * dpi pixels and release it."""
+    path = Path(path)
+    fig.savefig(path, dpi=dpi, format="png")
+    return path

@@ -1,0 +1,196 @@
+"""Tests for closure.report: spectra (Parseval, closed forms), figures (PNG size, not blank),
+the HTML report folder (links, caution), and gathering the report data from files."""
+
+from __future__ import annotations
+
+import struct
+from pathlib import Path
+
+import matplotlib.image
+import numpy as np
+import pytest
+from sklearn.metrics import r2_score
+
+from closure.derivatives import derivative
+from closure.grid import Grid
+from closure.report import plots, spectra
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
+
+
+def png_size(path: Path) -> tuple[int, int]:
+    """Width and height from the IHDR chunk (PNG specification, W3C 2003, sections 5.2, 11.2.2:
+    8-byte signature, then a chunk of length 13 named IHDR holding width, height big-endian)."""
+    data = Path(path).read_bytes()
+    assert data[:8] == PNG_SIGNATURE, f"{path} is not a PNG"
+    length, name = struct.unpack(">I4s", data[8:16])
+    assert (length, name) == (13, b"IHDR")
+    return struct.unpack(">II", data[16:24])
+
+
+def assert_png(path: Path, width: int = 800, height: int = 600) -> None:
+    assert png_size(path) == (width, height)
+    pixels = matplotlib.image.imread(path)
+    assert pixels.shape[:2] == (height, width)
+    rgb = pixels[..., :3].reshape(-1, 3)
+    assert len(np.unique(rgb, axis=0)) > 10, f"{path} is (nearly) blank"
+    assert float(rgb.var()) > 0
+
+
+def grid2(n=32, m=None, lengths=(2 * np.pi, 2 * np.pi)) -> Grid:
+    return Grid.regular((n, m or n), lengths, dims=("y", "x"))
+
+
+# ---------------------------------------------------------------- spectra
+
+
+def test_cross_spectrum_single_mode_closed_form():
+    # a = A cos(3x + 4y), b = B cos(3x + 4y + phi): mean(a b) = A B cos(phi) / 2, all of it in
+    # the shell |k| = 5 (product-to-sum identity; exact for a mode resolved on the grid).
+    g = grid2(32)
+    y, x = g.mesh()
+    a = 1.5 * np.cos(3 * x + 4 * y)
+    b = 0.7 * np.cos(3 * x + 4 * y + 0.4)
+    k, s = spectra.cross_spectrum(a, b, g)
+    assert k[5] == pytest.approx(5.0)
+    expected = 1.5 * 0.7 * np.cos(0.4) / 2
+    assert s[5] == pytest.approx(expected, rel=1e-12)
+    assert np.abs(np.delete(s, 5)).max() < 1e-14
+    assert s.sum() == pytest.approx(np.mean(a * b), rel=1e-12)
+
+
+@pytest.mark.parametrize("shape,lengths", [((24, 32), (1.0, 2.0)), ((15, 17), (3.0, 3.0)),
+                                           ((16, 16), (2 * np.pi, 2 * np.pi))])
+def test_cross_spectrum_parseval_random_fields(shape, lengths):
+    # Parseval's theorem for the DFT: mean(a b) = sum_k Re(conj(a_hat) b_hat) / N^2
+    # (Oppenheim & Schafer 2010, eq. 8.170), for odd and even axes and unequal sides.
+    rng = np.random.default_rng(1)
+    g = Grid.regular(shape, lengths, dims=("y", "x"))
+    a, b = rng.standard_normal((2, *shape))
+    _, s = spectra.cross_spectrum(a, b, g)
+    assert s.sum() == pytest.approx(np.mean(a * b), rel=1e-12, abs=1e-14)
+
+
+def test_energy_spectrum_parseval_3d():
+    # Parseval (Oppenheim & Schafer 2010, eq. 8.170): sum E(k) = mean(u_i u_i) / 2.
+    rng = np.random.default_rng(2)
+    g = Grid.regular((8, 10, 12), 1.0)
+    vel = {d: rng.standard_normal(g.shape) for d in g.dims}
+    _, e = spectra.energy_spectrum(vel, g)
+    assert e.sum() == pytest.approx(0.5 * sum(np.mean(f**2) for f in vel.values()), rel=1e-12)
+    assert np.all(e >= -1e-15)
+
+
+def test_energy_transfer_spectrum_sums_to_mean_pointwise_transfer():
+    # Integration by parts on a periodic domain: mean(u_i d_j tau_ij) = -mean(tau_ij S_ij)
+    # = mean(pi), pi = -tau_ij S_ij (Pope 2000, eq. 13.123 for the sign of the transfer);
+    # exact for spectral derivatives, whose operator is skew-adjoint.
+    rng = np.random.default_rng(3)
+    g = grid2(24)
+    vel = {d: rng.standard_normal(g.shape) for d in g.dims}
+    tau = {name: rng.standard_normal(g.shape) for name in ("tau_xx", "tau_xy", "tau_yy")}
+    force = spectra.stress_divergence(tau, g)
+    _, t = spectra.energy_transfer_spectrum(vel, force, g)
+    pi = 0.0
+    for i in g.dims:
+        for j in g.dims:
+            s_ij = 0.5 * (derivative(vel[i], g, j) + derivative(vel[j], g, i))
+            pi = pi - tau[spectra.stress_name(i, j)] * s_ij
+    assert t.sum() == pytest.approx(np.mean(pi), rel=1e-10)
+
+
+def test_energy_transfer_single_mode_closed_form():
+    # u = cos(2y), force_x = c cos(2y): T has c/2 in shell 2 (mean of cos^2 is 1/2).
+    g = grid2(16)
+    y, x = g.mesh()
+    vel = {"x": np.cos(2 * y), "y": np.zeros(g.shape)}
+    force = {"x": 0.3 * np.cos(2 * y), "y": np.zeros(g.shape)}
+    k, t = spectra.energy_transfer_spectrum(vel, force, g)
+    assert t[2] == pytest.approx(0.15, rel=1e-12)
+    assert np.abs(np.delete(t, 2)).max() < 1e-15
+
+
+def test_energy_transfer_from_vorticity_single_mode():
+    # omega = cos(3x + 4y) has streamfunction psi = omega / 25 (omega = -lap psi);
+    # with g = omega: mean(psi g) = 1 / 50, all in the shell |k| = 5.
+    g = grid2(32)
+    y, x = g.mesh()
+    w = np.cos(3 * x + 4 * y)
+    _, t = spectra.energy_transfer_from_vorticity(w, w, g)
+    assert t[5] == pytest.approx(1 / 50, rel=1e-12)
+    assert t.sum() == pytest.approx(1 / 50, rel=1e-12)
+    _, z = spectra.enstrophy_transfer_spectrum(w, 2 * w, g)
+    assert z[5] == pytest.approx(1.0, rel=1e-12)
+
+
+def test_curl_of_rotated_gradient_is_laplacian():
+    # f = (-d_y phi, d_x phi) has d_x f_y - d_y f_x = lap phi; phi = sin(2x) cos(3y):
+    # lap phi = -13 phi (vector identity, exact for a resolved mode).
+    g = grid2(32)
+    y, x = g.mesh()
+    phi = np.sin(2 * x) * np.cos(3 * y)
+    f = {"x": 3 * np.sin(2 * x) * np.sin(3 * y), "y": 2 * np.cos(2 * x) * np.cos(3 * y)}
+    np.testing.assert_allclose(spectra.curl_2d(f, g), -13 * phi, atol=1e-12)
+
+
+def test_transfer_spectra_refuse_non_periodic_grid():
+    g = Grid(("y", "x"), (8, 8), (1.0, 1.0), periodic=False)
+    with pytest.raises(Exception, match="periodic"):
+        spectra.cross_spectrum(np.ones(g.shape), np.ones(g.shape), g)
+
+
+# ---------------------------------------------------------------- figures
+
+
+def test_hexbin_titles_match_sklearn(tmp_path):
+    rng = np.random.default_rng(4)
+    exact = {"tau_xx": rng.standard_normal(2000), "tau_xy": rng.standard_normal(2000)}
+    model = {"tau_xx": 0.8 * exact["tau_xx"] + 0.3 * rng.standard_normal(2000),
+             "tau_xy": 0.5 * exact["tau_xy"] + 0.1}
+    fig = plots.apriori_hexbin(exact, model)
+    titles = [ax.get_title() for ax in fig.axes if ax.get_visible() and ax.get_title()]
+    for name in exact:
+        # reference: scikit-learn r2_score and numpy's Pearson correlation
+        r2 = r2_score(exact[name], model[name])
+        corr = np.corrcoef(exact[name], model[name])[0, 1]
+        expected = f"{name}: R^2 = {r2:.3f}, corr = {corr:.3f}"
+        assert expected in titles
+        stats = plots.agreement(exact[name], model[name])
+        assert stats["r2"] == pytest.approx(r2, rel=1e-12)
+        assert stats["correlation"] == pytest.approx(corr, rel=1e-12)
+    assert_png(plots.save_png(fig, tmp_path / "h.png"))
+
+
+def test_every_figure_is_an_800_by_600_png(tmp_path):
+    k = np.arange(17.0)
+    rng = np.random.default_rng(5)
+    figures = {
+        "transfer": plots.transfer_spectra(k, {"exact": np.sin(k), "model": 0.8 * np.sin(k)},
+                                           "Energy transfer", "T(k)"),
+        "coef": plots.coefficients(["a", "b", "c"], [0.1, -0.2, 0.05], [0.01, 0.03, None],
+                                   [1.0, 0.6, 0.2]),
+        "coef_nofreq": plots.coefficients(["a"], [0.1], [0.01]),
+        "sweep_c": plots.sweep_coefficients([4, 8, 16], {"a": [0.1, 0.11, 0.12],
+                                                         "b": [np.nan, 0.2, 0.3]},
+                                            {"a": [0.01, 0.01, 0.02]}),
+        "sweep_s": plots.sweep_scores([4, 8, 16], {"r2": [0.8, 0.7, 0.6]}),
+        "spec": plots.aposteriori_spectra({"filtered DNS": (k, (k + 1.0) ** -3),
+                                           "model": (k, 1.1 * (k + 1.0) ** -3)},
+                                          reference="filtered DNS"),
+        "ts": plots.time_series({"model": (k, np.cumsum(rng.random(17))),
+                                 "none": (k, np.r_[np.ones(10), np.full(7, np.nan)])},
+                                "kinetic energy", blowup={"none": 9.5, "model": None}),
+    }
+    for name, fig in figures.items():
+        assert_png(plots.save_png(fig, tmp_path / f"{name}.png"))
+
+
+def test_time_series_marks_blowup():
+    t = np.arange(10.0)
+    fig = plots.time_series({"a": (t, t), "b": (t, np.r_[t[:5], [np.nan] * 5])}, "energy",
+                            blowup={"b": 4.5})
+    ax = fig.axes[0]
+    labels = [line.get_label() for line in ax.get_lines()]
+    assert any("b (blow-up t = 4.5)" == lab for lab in labels)
+    vertical = [line for line in ax.get_lines() if np.allclose(line.get_xdata(), 4.5)]
+    assert vertical, "no vertical line at the blow-up time"
