@@ -1,8 +1,9 @@
 """Derivatives on a uniform grid: spectral, 2nd- and 4th-order central differences.
 
-All functions take a spatial-only array whose axes follow ``grid.dims`` and return an array of
-the same shape. Periodic grids use wrap-around stencils (or FFTs); non-periodic grids use
-one-sided stencils of the same order at the edges. The scheme is chosen to match the coarse
+All functions take an array whose trailing axes follow ``grid.dims`` (a spatial field, or a
+stack of them along leading axes) and return an array of the same shape. Periodic grids use
+wrap-around stencils (or FFTs); non-periodic grids use one-sided stencils of the same order of
+accuracy at the edges. The scheme is chosen to match the coarse
 solver that will run the closure, so a fitted coefficient means the same thing there.
 """
 
@@ -23,15 +24,16 @@ _CENTRAL = {
     ("fd4", 1): np.array([1.0, -8.0, 0.0, 8.0, -1.0]) / 12.0,
     ("fd4", 2): np.array([-1.0, 16.0, -30.0, 16.0, -1.0]) / 12.0,
 }
-# One-sided stencils at the first points of a non-periodic edge, (row for point i) on points
-# 0..4 (Fornberg 1988, Table 3, forward differences of the same order as the interior).
+# One-sided stencils at the first points of a non-periodic edge: the row for point i acts on
+# points 0..len(row)-1 and has the same order of accuracy as the interior stencil (Fornberg 1988,
+# Table 3). A 4th-order second derivative needs 6 points; 5 would give only 3rd order.
 _EDGE = {
-    ("fd2", 1): [np.array([-1.5, 2.0, -0.5, 0.0, 0.0])],
-    ("fd2", 2): [np.array([2.0, -5.0, 4.0, -1.0, 0.0])],
+    ("fd2", 1): [np.array([-1.5, 2.0, -0.5])],
+    ("fd2", 2): [np.array([2.0, -5.0, 4.0, -1.0])],
     ("fd4", 1): [np.array([-25.0, 48.0, -36.0, 16.0, -3.0]) / 12.0,
                  np.array([-3.0, -10.0, 18.0, -6.0, 1.0]) / 12.0],
-    ("fd4", 2): [np.array([35.0, -104.0, 114.0, -56.0, 11.0]) / 12.0,
-                 np.array([11.0, -20.0, 6.0, 4.0, -1.0]) / 12.0],
+    ("fd4", 2): [np.array([45.0, -154.0, 214.0, -156.0, 61.0, -10.0]) / 12.0,
+                 np.array([10.0, -15.0, -4.0, 14.0, -6.0, 1.0]) / 12.0],
 }
 
 
@@ -54,10 +56,13 @@ def derivative(f: np.ndarray, grid: Grid, dim: str, order: int = 1,
     check_scheme(scheme, grid)
     if order < 0:
         raise ValueError("derivative order must be >= 0")
+    f = np.asarray(f, dtype=float)
+    if f.ndim < grid.ndim or f.shape[f.ndim - grid.ndim:] != grid.shape:
+        raise ValueError(f"array of shape {f.shape} does not end with the grid shape {grid.shape}")
     if order == 0:
         return np.array(f, dtype=float, copy=True)
-    axis = grid.axis(dim)
-    h = grid.spacing[axis]
+    h = grid.spacing[grid.axis(dim)]
+    axis = f.ndim - grid.ndim + grid.axis(dim)
     if scheme == "spectral":
         return _spectral(f, grid, dim, order)
     out = np.asarray(f, dtype=float)
@@ -70,8 +75,8 @@ def derivative(f: np.ndarray, grid: Grid, dim: str, order: int = 1,
 
 
 def _spectral(f, grid, dim, order):
-    axis = grid.axis(dim)
-    n = grid.shape[axis]
+    axis = f.ndim - grid.ndim + grid.axis(dim)
+    n = f.shape[axis]
     k = grid.wavenumbers(dim, real=True)
     mult = (1j * k) ** order
     if order % 2 == 1 and n % 2 == 0:
@@ -91,18 +96,22 @@ def _stencil(f, axis, h, scheme, order, periodic):
             if w:
                 out += w * np.roll(f, -offset, axis=axis)
         return out / h**order
-    if n < 5:
-        raise UserError(f"finite differences on a non-periodic axis need at least 5 points, got {n}")
+    rows = _EDGE[(scheme, order)]
+    need = max(len(r) for r in rows)
+    if n < need:
+        raise UserError(f"{scheme} derivatives on a non-periodic axis need at least {need} points, "
+                        f"got {n}: use a finer grid, a smaller --ratio or fd2")
     fm = np.moveaxis(f, axis, 0)
     om = np.moveaxis(out, axis, 0)
-    edge = len(_EDGE[(scheme, order)])
+    edge = len(rows)
     for offset, w in zip(range(-2, 3), weights, strict=True):
         if w:
             om[edge:n - edge] += w * fm[edge + offset:n - edge + offset]
-    for i, row in enumerate(_EDGE[(scheme, order)]):
-        om[i] = np.tensordot(row, fm[:5], axes=(0, 0))
+    for i, row in enumerate(rows):
+        m = len(row)
+        om[i] = np.tensordot(row, fm[:m], axes=(0, 0))
         # mirrored stencil at the far edge: odd derivatives change sign
-        om[n - 1 - i] = (-1) ** order * np.tensordot(row, fm[::-1][:5], axes=(0, 0))
+        om[n - 1 - i] = (-1) ** order * np.tensordot(row, fm[::-1][:m], axes=(0, 0))
     return out / h**order
 
 

@@ -67,7 +67,9 @@ class CoarseGraining:
 
     @cached_property
     def coarse(self) -> Grid:
-        return self.fine.block(self.ratio) if self.kind == "block" else self.fine.coarsen(self.ratio)
+        if self.kind == "block":
+            return self.fine.block(self.ratio)
+        return self.fine.coarsen(self.ratio)
 
     @property
     def delta(self) -> float:
@@ -225,10 +227,11 @@ def make_coarse_graining(kind: str, grid: Grid, ratio: int, width: float | None 
             widths = tuple(float(width) * h for h in grid.spacing)
         else:
             widths = (float(width),) * grid.ndim
-    for d, w, L in zip(grid.dims, widths, grid.lengths, strict=True):
-        if w > L:
-            raise UserError(f"the filter width {w:g} is larger than the domain ({L:g}) in {d}: "
-                            "use a smaller --width")
+    for d, w, L, h, n in zip(grid.dims, widths, grid.lengths, grid.spacing, grid.shape,
+                             strict=True):
+        if w > L * (1 + 1e-12):
+            raise UserError(f"the filter width {w:g} ({w / h:g} grid spacings) is larger than "
+                            f"the domain in {d} ({L:g}, {n} points): use a smaller --width")
     cg = CoarseGraining(kind, ratio, widths, grid)
     cg.coarse  # noqa: B018  (checks the ratio against the grid now, with a clear message)
     return cg

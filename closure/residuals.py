@@ -1,0 +1,265 @@
+"""Exact subgrid terms: coarse-grain a fine-grid snapshot and compute what a closure must model.
+
+With ``bar`` the filter of a CoarseGraining (see closure.filters) and fine-grid fields
+``u_i`` (and scalars ``c``, and in 2-D the vorticity ``omega = d_x v - d_y u``):
+
+    tau_ij   = bar(u_i u_j) - bar(u_i) bar(u_j)           subgrid stress (i <= j)
+    force_i  = d_j tau_ij                                  subgrid force
+    flux_c_j = bar(u_j c) - bar(u_j) bar(c)                subgrid scalar flux
+    sigma_j  = bar(u_j omega) - bar(u_j) bar(omega)        (2-D) subgrid vorticity flux
+    vorticity_forcing  = d_j sigma_j
+    pi                 = -tau_ij bar(S)_ij                 energy transfer (sum over all i, j)
+    enstrophy_transfer = -sigma_j d_j bar(omega)           (2-D)
+
+with ``bar(S)_ij = (d_j bar(u_i) + d_i bar(u_j)) / 2``. Signs follow DEVELOPERS.md: the filtered
+momentum equation reads ``d_t bar(u_i) + d_j(bar(u_i) bar(u_j)) = ... - force_i``, and a positive
+``pi`` drains resolved energy to the subgrid scales.
+
+Filters (box, Gaussian, sharp spectral): every term is computed on the fine grid and the result
+sampled every ``ratio``-th point. Derivatives are taken on the fine grid (spectral on periodic
+data, 4th-order differences otherwise) *before* coarsening: the filtered products of box- and
+Gaussian-filtered fields keep content above the coarse Nyquist wavenumber (their transfer
+functions are not zero there), and differentiating the coarse samples would alias that content
+onto resolved wavenumbers and truncate it. On the fine grid ``d_j`` commutes with the (spectral,
+periodic) filter, so ``force_i`` is exactly ``bar(d_j(u_i u_j)) - d_j(bar(u_i) bar(u_j))``.
+
+Block averaging has no fine-grid filtered field: the block means of the fields and products
+are formed on the coarse grid, and the derivatives in force, strain rate, vorticity and
+vorticity forcing are taken there (spectral if periodic, fd4 otherwise) - the derivative a coarse
+solver on that grid would see.
+
+The "vorticity" field is ``d_x bar(v) - d_y bar(u)``, the vorticity of the filtered velocity;
+with periodic (spectral) filtering it equals ``bar(omega)``. Vorticity terms exist only on
+``(y, x)`` grids.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from closure.derivatives import derivative
+from closure.errors import UserError
+from closure.filters import CoarseGraining
+from closure.grid import VELOCITY_OF, Grid
+
+if TYPE_CHECKING:  # the io module imports this one
+    from closure.io import Snapshot
+
+#: Direction pairs of the independent stress components, in output order.
+_PAIRS = (("x", "x"), ("x", "y"), ("y", "y"), ("x", "z"), ("y", "z"), ("z", "z"))
+
+
+@dataclass
+class CoarseSnapshot:
+    """Filtered fields and exact subgrid terms of one snapshot, on the coarse grid.
+
+    ``fields``: filtered ``u, v[, w]``, scalars, and in 2-D ``vorticity``; ``targets``:
+    ``tau_*``, ``force_*``, ``flux_<c>_*``, ``pi`` and in 2-D ``vorticity_forcing``,
+    ``enstrophy_transfer``. Arrays are float64 of ``grid.shape`` (the coarse grid).
+    """
+
+    fields: dict[str, np.ndarray]
+    targets: dict[str, np.ndarray]
+    grid: Grid
+    coarse_graining: CoarseGraining
+    index: int
+    time: float | None
+
+    @property
+    def velocity(self) -> tuple[str, ...]:
+        return tuple(c for c in ("u", "v", "w") if c in self.fields)
+
+
+def directions(dims: Sequence[str]) -> tuple[str, ...]:
+    """The grid's directions in velocity order (x, y, z)."""
+    return tuple(d for d in ("x", "y", "z") if d in dims)
+
+
+def stress_pairs(dims: Sequence[str]) -> list[tuple[str, str]]:
+    """Direction pairs (i, j), i <= j, of the independent stress components."""
+    return [(i, j) for i, j in _PAIRS if i in dims and j in dims]
+
+
+def stress_names(dims: Sequence[str]) -> list[str]:
+    """``["tau_xx", "tau_xy", "tau_yy"]`` in 2-D, six names in 3-D, ``["tau_xx"]`` in 1-D."""
+    return [f"tau_{i}{j}" for i, j in stress_pairs(dims)]
+
+
+def _pair(i: str, j: str) -> str:
+    return i + j if "xyz".index(i) <= "xyz".index(j) else j + i
+
+
+def stress_component(stress: Mapping[str, np.ndarray], i: str, j: str) -> np.ndarray:
+    """tau_ij from the independent components (``tau_yx`` is ``tau_xy``)."""
+    return stress[f"tau_{_pair(i, j)}"]
+
+
+def deviatoric(stress: Mapping[str, np.ndarray], dims: Sequence[str]) -> dict[str, np.ndarray]:
+    """Deviatoric part tau_ij - delta_ij tau_kk / d of the stress components, d = len(dims)."""
+    dirs = directions(dims)
+    trace = sum(stress[f"tau_{d}{d}"] for d in dirs) / len(dirs)
+    return {f"tau_{i}{j}": stress[f"tau_{i}{j}"] - (trace if i == j else 0.0)
+            for i, j in stress_pairs(dims)}
+
+
+def velocity_gradient(velocity: Mapping[str, np.ndarray], grid: Grid,
+                      scheme: str) -> dict[tuple[str, str], np.ndarray]:
+    """``{(i, j): d_j u_i}`` for the velocity components of the grid's directions.
+
+    ``velocity`` maps ``u, v, w`` to arrays (or stacks) whose trailing axes are ``grid.shape``.
+    """
+    dirs = directions(grid.dims)
+    stack = np.stack([velocity[VELOCITY_OF[i]] for i in dirs])
+    out = {}
+    for j in dirs:
+        dj = derivative(stack, grid, j, 1, scheme)
+        for a, i in enumerate(dirs):
+            out[(i, j)] = dj[a]
+    return out
+
+
+def strain_rate(velocity: Mapping[str, np.ndarray], grid: Grid,
+                scheme: str = "spectral") -> dict[str, np.ndarray]:
+    """Strain rate S_ij = (d_j u_i + d_i u_j) / 2, keyed ``"xx", "xy", ...`` (i <= j)."""
+    grad = velocity_gradient(velocity, grid, scheme)
+    return {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in stress_pairs(grid.dims)}
+
+
+def energy_transfer(stress: Mapping[str, np.ndarray], strain: Mapping[str, np.ndarray],
+                    dims: Sequence[str]) -> np.ndarray:
+    """pi = -tau_ij S_ij summed over all i, j (off-diagonal pairs count twice).
+
+    ``stress`` has ``tau_xy``-style keys, ``strain`` ``"xy"``-style keys (as strain_rate).
+    """
+    total = 0.0
+    for i, j in stress_pairs(dims):
+        total = total + (1.0 if i == j else 2.0) * stress[f"tau_{i}{j}"] * strain[i + j]
+    return -total
+
+
+def backscatter_fraction(transfer: np.ndarray) -> float:
+    """Fraction of points where a transfer (``pi``, ``enstrophy_transfer``) is negative,
+    i.e. where subgrid scales return energy (enstrophy) to the resolved scales."""
+    a = np.asarray(transfer)
+    return float(np.count_nonzero(a < 0) / a.size) if a.size else float("nan")
+
+
+def fine_scheme(grid: Grid) -> str:
+    """Derivative scheme for exact terms: spectral on periodic grids, fd4 otherwise."""
+    return "spectral" if grid.periodic else "fd4"
+
+
+def _check_inputs(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str]) -> None:
+    g, f = snapshot.grid, cg.fine
+    if g.dims != f.dims or g.shape != f.shape or g.periodic != f.periodic or \
+            not np.allclose(g.spacing, f.spacing, rtol=1e-9, atol=0.0):
+        raise UserError(f"the snapshot's grid {g.dims} {g.shape} does not match the "
+                        f"coarse-graining's fine grid {f.dims} {f.shape}: build the "
+                        "coarse-graining from this file's grid")
+    for c in (*(VELOCITY_OF[d] for d in directions(g.dims)), *scalars):
+        if c not in snapshot.fields:
+            raise UserError(f"the snapshot has no field {c!r} (it has "
+                            f"{', '.join(snapshot.fields)}): add it with --scalar or --var")
+
+
+def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining,
+                          scalars: Sequence[str] = ()) -> CoarseSnapshot:
+    """Filter and coarsen one snapshot and compute its exact subgrid terms (coarse grid).
+
+    ``scalars`` names the snapshot's scalar fields whose fluxes to compute. See the module
+    docstring for the definitions and where derivatives are taken.
+    """
+    if isinstance(scalars, str):
+        scalars = (scalars,)
+    scalars = tuple(dict.fromkeys(scalars))
+    _check_inputs(snapshot, cg, scalars)
+    fine = cg.fine
+    dirs = directions(fine.dims)
+    vel_names = [VELOCITY_OF[d] for d in dirs]
+    vel = {VELOCITY_OF[d]: np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs}
+    two_d = fine.dims == ("y", "x")
+
+    # fine-grid quantities: linear fields and the products whose filters we need
+    linear = {**vel, **{c: np.asarray(snapshot.fields[c], dtype=float) for c in scalars}}
+    if two_d:
+        scheme = fine_scheme(fine)
+        linear["omega"] = (derivative(vel["v"], fine, "x", 1, scheme)
+                           - derivative(vel["u"], fine, "y", 1, scheme))
+    products = {}
+    for i, j in stress_pairs(fine.dims):
+        products[("tau", i + j)] = vel[VELOCITY_OF[i]] * vel[VELOCITY_OF[j]]
+    for c in (*scalars, *(["omega"] if two_d else [])):
+        for j in dirs:
+            products[(c, j)] = vel[VELOCITY_OF[j]] * linear[c]
+
+    # one filter pass per stack (block averaging lands on the coarse grid directly)
+    lin_keys, prod_keys = list(linear), list(products)
+    if cg.kind == "block":
+        apply, grid = cg.block_mean, cg.coarse
+    else:
+        apply, grid = cg.filter, fine
+    bar_lin = dict(zip(lin_keys, apply(np.stack([linear[k] for k in lin_keys])), strict=True))
+    bar_prod = dict(zip(prod_keys, apply(np.stack([products[k] for k in prod_keys])),
+                        strict=True))
+    del linear, products
+
+    out_fields, targets = _terms(bar_lin, bar_prod, grid, fine_scheme(grid), dirs, vel_names,
+                                 scalars, two_d)
+    if cg.kind != "block":
+        names_f, names_t = list(out_fields), list(targets)
+        sampled = cg.sample(np.stack([out_fields[k] for k in names_f]
+                                     + [targets[k] for k in names_t]))
+        out_fields = dict(zip(names_f, sampled[:len(names_f)], strict=True))
+        targets = dict(zip(names_t, sampled[len(names_f):], strict=True))
+    out_fields = {k: np.ascontiguousarray(v) for k, v in out_fields.items()}
+    targets = {k: np.ascontiguousarray(v) for k, v in targets.items()}
+    return CoarseSnapshot(out_fields, targets, cg.coarse, cg, snapshot.index, snapshot.time)
+
+
+def _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names, scalars, two_d):
+    """Fields and targets from filtered fields and products, all on ``grid``."""
+    ubar = {c: bar_lin[c] for c in vel_names}
+    stress = {}
+    for i, j in stress_pairs(grid.dims):
+        stress[f"tau_{i}{j}"] = (bar_prod[("tau", i + j)]
+                                 - ubar[VELOCITY_OF[i]] * ubar[VELOCITY_OF[j]])
+    sigma = {}
+    if two_d:
+        for j in dirs:
+            sigma[j] = bar_prod[("omega", j)] - ubar[VELOCITY_OF[j]] * bar_lin["omega"]
+
+    # every d_j in one call per direction: tau_ij (all i), the filtered velocity, sigma_j,
+    # bar(omega)
+    deriv = {}
+    for j in dirs:
+        keys = [("tau", i) for i in dirs] + [("u", i) for i in dirs]
+        arrays = [stress_component(stress, i, j) for i in dirs] + [ubar[VELOCITY_OF[i]]
+                                                                    for i in dirs]
+        if two_d:
+            keys += [("sigma", j), ("omega", j)]
+            arrays += [sigma[j], bar_lin["omega"]]
+        dj = derivative(np.stack(arrays), grid, j, 1, scheme)
+        for key, a in zip(keys, dj, strict=True):
+            deriv[(*key, j)] = a
+
+    targets = dict(stress)
+    for i in dirs:
+        targets[f"force_{i}"] = sum(deriv[("tau", i, j)] for j in dirs)
+    for c in scalars:
+        for j in dirs:
+            targets[f"flux_{c}_{j}"] = bar_prod[(c, j)] - ubar[VELOCITY_OF[j]] * bar_lin[c]
+    strain = {i + j: 0.5 * (deriv[("u", i, j)] + deriv[("u", j, i)])
+              for i, j in stress_pairs(grid.dims)}
+    targets["pi"] = energy_transfer(stress, strain, grid.dims)
+
+    fields = {**ubar, **{c: bar_lin[c] for c in scalars}}
+    if two_d:
+        fields["vorticity"] = deriv[("u", "y", "x")] - deriv[("u", "x", "y")]
+        targets["vorticity_forcing"] = deriv[("sigma", "x", "x")] + deriv[("sigma", "y", "y")]
+        targets["enstrophy_transfer"] = -(sigma["x"] * deriv[("omega", "x", "x")]
+                                          + sigma["y"] * deriv[("omega", "y", "y")])
+    return fields, targets
