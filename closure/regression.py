@@ -178,12 +178,13 @@ class Path:
 
 def default_thresholds(problem: Problem, n: int = 40) -> np.ndarray:
     """0, then ``n - 1`` thresholds spaced geometrically from 1e-4 of the largest standardised
-    least-squares coefficient up to it."""
+    least-squares coefficient up to just below it (not at it: a threshold equal to a
+    coefficient would make the support depend on round-off)."""
     beta = np.abs(least_squares(problem) * problem.scale / problem.y_scale)
     m = float(beta.max(initial=0.0))
     if m == 0.0:
         return np.zeros(1)
-    return np.concatenate([[0.0], np.geomspace(1e-4 * m, m, n - 1)])
+    return np.concatenate([[0.0], np.geomspace(1e-4 * m, 0.999 * m, n - 1)])
 
 
 def threshold_path(problem: Problem, thresholds: Sequence[float] | None = None,
@@ -417,7 +418,7 @@ def collinearity(problem: Problem, corr_limit: float = CORRELATION_LIMIT,
         cond = float("nan")
     corr = correlation_matrix(problem)
     # uncentred cosine as well: catches proportional terms with a mean (e.g. c*T and T)
-    cos = Gs.copy()
+    cos = Gs / problem.weight  # unit diagonal
     pairs = []
     for i in range(len(terms)):
         for j in range(i + 1, len(terms)):

@@ -129,7 +129,8 @@ class TransferContext:
         """Transfer fields (grid shape) of target components ``values`` (name -> field).
 
         Linear in ``values``, so applying it to each term's design column gives the design of
-        the transfers. ``which`` restricts to some of ``self.names``.
+        the transfers; fields may be stacks (leading axes, e.g. one per term, trailing axes
+        ``grid.shape``). ``which`` restricts to some of ``self.names``.
         """
         which = self.names if which is None else which
         out = {}

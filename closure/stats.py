@@ -141,9 +141,11 @@ class SufficientStats:
 
     def check_finite(self) -> None:
         """Raise a UserError naming the terms (or the target) with non-finite values."""
-        bad = [t for t, ok in zip(self.terms, np.isfinite(self.gram).all(axis=(0, 1)) &
-                                  np.isfinite(self.x_sum).all(axis=0), strict=True) if not ok]
-        if bad:
+        diag = np.diagonal(self.gram, axis1=1, axis2=2)  # (C, p): only term k's own values
+        ok = np.isfinite(diag).all(axis=0) & np.isfinite(self.x_sum).all(axis=0)
+        bad = [t for t, good in zip(self.terms, ok, strict=True) if not good]
+        if bad or not np.isfinite(self.gram).all():
+            bad = bad or list(self.terms)
             raise UserError(f"library terms {', '.join(bad)} give non-finite values on this "
                             "data (division by zero or overflow): remove them from the library")
         if not (np.isfinite(self.yy).all() and np.isfinite(self.xy).all()):
