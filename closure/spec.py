@@ -64,6 +64,11 @@ class FitSpec(_Strict):
     resamples: Annotated[int, Field(ge=0, le=1000)] = 20
     transfer_weight: Annotated[float, Field(ge=0)] = 0.0
     seed: int = 0
+    folds: Annotated[int, Field(ge=2, le=50)] = Field(
+        5, description="contiguous blocks of training snapshots for held-out selection")
+    selection: Literal["one_se", "min"] = Field(
+        "one_se", description="sparsest path point within one standard error of the best "
+        "held-out error, or the best")
 
 
 class JobSpec(_Strict):
