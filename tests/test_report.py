@@ -32,8 +32,9 @@ def assert_png(path: Path, width: int = 800, height: int = 600) -> None:
     assert png_size(path) == (width, height)
     pixels = matplotlib.image.imread(path)
     assert pixels.shape[:2] == (height, width)
-    rgb = pixels[..., :3].reshape(-1, 3)
-    assert len(np.unique(rgb, axis=0)) > 10, f"{path} is (nearly) blank"
+    rgb = np.rint(pixels[..., :3].reshape(-1, 3) * 255).astype(np.uint32)
+    colours = np.unique(rgb[:, 0] << 16 | rgb[:, 1] << 8 | rgb[:, 2])
+    assert colours.size > 10, f"{path} is (nearly) blank"
     assert float(rgb.var()) > 0
 
 
@@ -69,16 +70,6 @@ def test_cross_spectrum_parseval_random_fields(shape, lengths):
     a, b = rng.standard_normal((2, *shape))
     _, s = spectra.cross_spectrum(a, b, g)
     assert s.sum() == pytest.approx(np.mean(a * b), rel=1e-12, abs=1e-14)
-
-
-def test_energy_spectrum_parseval_3d():
-    # Parseval (Oppenheim & Schafer 2010, eq. 8.170): sum E(k) = mean(u_i u_i) / 2.
-    rng = np.random.default_rng(2)
-    g = Grid.regular((8, 10, 12), 1.0)
-    vel = {d: rng.standard_normal(g.shape) for d in g.dims}
-    _, e = spectra.energy_spectrum(vel, g)
-    assert e.sum() == pytest.approx(0.5 * sum(np.mean(f**2) for f in vel.values()), rel=1e-12)
-    assert np.all(e >= -1e-15)
 
 
 def test_energy_transfer_spectrum_sums_to_mean_pointwise_transfer():
@@ -194,3 +185,156 @@ def test_time_series_marks_blowup():
     assert any("b (blow-up t = 4.5)" == lab for lab in labels)
     vertical = [line for line in ax.get_lines() if np.allclose(line.get_xdata(), 4.5)]
     assert vertical, "no vertical line at the blow-up time"
+
+
+# ---------------------------------------------------------------- the HTML folder
+
+from html.parser import HTMLParser  # noqa: E402
+from types import SimpleNamespace  # noqa: E402
+
+from closure.report.page import CAUTION, MARKER, write_report  # noqa: E402
+
+
+class _Links(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.links: list[str] = []
+        self.tags: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        for name, value in attrs:
+            if name in ("src", "href") and value is not None:
+                self.links.append(value)
+
+
+def check_report_folder(folder: Path) -> list[str]:
+    """Every link is relative and names a file in the folder; every PNG is valid; the caution
+    is on the page. Returns the linked file names."""
+    page = (folder / "index.html").read_text(encoding="utf-8")
+    assert CAUTION in page
+    parser = _Links()
+    parser.feed(page)
+    assert "script" not in parser.tags
+    for link in parser.links:
+        assert "://" not in link and not link.startswith("/") and ".." not in link, link
+        assert (folder / link).is_file(), f"{link} is linked but missing"
+    for png in folder.glob("*.png"):
+        assert png.name in parser.links, f"{png.name} is written but not shown"
+        assert_png(png)
+    return parser.links
+
+
+class GradientStandIn:
+    """A model-like object: tau_ij = C D^2 d_k u_i d_k u_j (the gradient model's form)."""
+
+    target = "stress"
+    scheme = "spectral"
+
+    def __init__(self, c=1 / 12, delta=0.5):
+        self.c, self.delta = c, delta
+        self.filter = {"kind": "gaussian", "width": delta, "ratio": 2}
+        self.terms = [{"name": "grad_u_grad_u", "coefficient": c * delta**2,
+                       "coefficient_scaled": c, "std_error": 1e-4 * delta**2,
+                       "selection_frequency": 0.9, "delta_power": 2}]
+        self.scores = {"train": {"all": {"r2": 0.9}}, "test": {"all": {"r2": 0.8}}}
+        self.warnings = ["terms a and b are collinear (correlation 0.999)"]
+
+    def evaluate(self, fields, grid):
+        g = {(c, d): derivative(fields[c], grid, d) for c in ("u", "v") for d in grid.dims}
+        k = self.c * self.delta**2
+        return {"tau_xx": k * sum(g["u", d] ** 2 for d in grid.dims),
+                "tau_xy": k * sum(g["u", d] * g["v", d] for d in grid.dims),
+                "tau_yy": k * sum(g["v", d] ** 2 for d in grid.dims)}
+
+
+def stand_in_snapshots(model, n=2, size=16, seed=0):
+    g = grid2(size)
+    rng = np.random.default_rng(seed)
+    out = []
+    for i in range(n):
+        u, v = rng.standard_normal((2, size, size))
+        fields = {"u": u, "v": v, "vorticity": derivative(v, g, "x") - derivative(u, g, "y")}
+        targets = {k: 1.2 * a + 0.01 * rng.standard_normal(a.shape)
+                   for k, a in model.evaluate(fields, g).items()}
+        out.append(SimpleNamespace(fields=fields, targets=targets, grid=g, index=5 + i,
+                                   time=None))
+    return out
+
+
+def stand_in_les():
+    t = np.linspace(0.0, 1.0, 11)
+    k = np.arange(1.0, 9.0)
+    runs = {}
+    for label, rate, blow in (("filtered DNS", 1.0, None), ("model", 1.1, None),
+                              ("no model", 0.3, 0.65)):
+        e = np.exp(-rate * t)
+        if blow is not None:
+            e[t > blow] = np.nan
+        runs[label] = {"time": t.tolist(), "energy": e.tolist(), "enstrophy": (2 * e).tolist(),
+                       "spectrum": {"k": k.tolist(), "E": (rate * k**-3).tolist()},
+                       "blowup_time": blow}
+    return {"reference": "filtered DNS", "runs": runs}
+
+
+def stand_in_sweep():
+    entries = [{"delta": d, "width_cells": d / 0.2, "ratio": 2,
+                "terms": {"grad_u_grad_u": {"coefficient_scaled": 1 / 12 + 0.001 * d,
+                                            "std_error_scaled": 0.002}},
+                "test_scores": {"all.r2": 0.9 - 0.05 * d}} for d in (0.4, 0.8, 1.6)]
+    return {"kind": "sweep", "spec": {}, "entries": entries}
+
+
+def test_write_report_full(tmp_path):
+    model = GradientStandIn()
+    snaps = stand_in_snapshots(model)
+    out = write_report(model, tmp_path / "rep", snaps, stand_in_les(), stand_in_sweep())
+    assert out == tmp_path / "rep"
+    links = check_report_folder(out)
+    for name in ("coefficients.png", "apriori_hexbin.png", "transfer_energy.png",
+                 "transfer_enstrophy.png", "sweep_coefficients.png", "sweep_scores.png",
+                 "aposteriori_spectra.png", "aposteriori_energy.png",
+                 "aposteriori_enstrophy.png"):
+        assert name in links
+    page = (out / "index.html").read_text()
+    assert "grad_u_grad_u" in page and "collinear" in page
+    assert "0.65" in page  # the blow-up time of the run without a model
+    numbers = __import__("json").loads((out / "report.json").read_text())
+    # the a priori numbers in report.json are those of scikit-learn on the pooled points
+    exact = np.concatenate([s.targets["tau_xy"].ravel() for s in snaps])
+    pred = np.concatenate([model.evaluate(s.fields, s.grid)["tau_xy"].ravel() for s in snaps])
+    assert numbers["apriori"]["agreement"]["tau_xy"]["r2"] == pytest.approx(
+        r2_score(exact, pred), rel=1e-10)
+    assert numbers["apriori"]["snapshots"] == [5, 6]
+    # Parseval: each transfer spectrum sums to the domain mean of u_i force_i
+    energy = next(t for t in numbers["apriori"]["transfers"] if t["name"] == "energy")
+    assert energy["exact_total"] == pytest.approx(1.2 * energy["model_total"], rel=0.05)
+
+
+def test_write_report_minimal_and_rewrite(tmp_path):
+    model = GradientStandIn()
+    out = write_report(model, tmp_path / "rep")
+    links = check_report_folder(out)
+    assert links == ["coefficients.png"]
+    assert (out / MARKER).exists()
+    # a second report replaces the first, and no temporary folders stay behind
+    write_report(model, out, stand_in_snapshots(model, n=1))
+    assert "apriori_hexbin.png" in check_report_folder(out)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["rep"]
+
+
+def test_write_report_refuses_a_foreign_folder(tmp_path):
+    (tmp_path / "data").mkdir()
+    (tmp_path / "data" / "precious.nc").write_text("x")
+    with pytest.raises(Exception, match="not a closure report"):
+        write_report(GradientStandIn(), tmp_path / "data")
+    assert (tmp_path / "data" / "precious.nc").read_text() == "x"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["data"]
+
+
+def test_write_report_escapes_text(tmp_path):
+    model = GradientStandIn()
+    model.warnings = ["<script>alert(1)</script> & more"]
+    out = write_report(model, tmp_path / "rep")
+    page = (out / "index.html").read_text()
+    assert "<script>" not in page and "&lt;script&gt;" in page

@@ -45,7 +45,7 @@ def agreement_title(name: str, stats: Mapping[str, float]) -> str:
 
 
 def _grid_of_panels(n: int) -> tuple[int, int]:
-    cols = min(n, 3)
+    cols = 1 if n == 1 else 2 if n <= 4 else 3
     return -(-n // cols), cols
 
 
@@ -131,7 +131,7 @@ def coefficients(names: Sequence[str], scaled: Sequence[float], std_error: Seque
     ax.set_title("Coefficients")
     if ax2 is not None:
         f = np.array([0.0 if v is None else v for v in selection_frequency], dtype=float)
-        ax2.barh(y, f, color="tab:orange")
+        ax2.barh(y, f, height=0.6, color="tab:orange")
         ax2.set_xlim(0, 1)
         ax2.set_xlabel("selection frequency")
         ax2.set_title("Selected in resamples")
@@ -237,3 +237,21 @@ def save_png(fig: Figure, path: str | os.PathLike, dpi: int = DPI) -> Path:
     path = Path(path)
     fig.savefig(path, dpi=dpi, format="png")
     return path
+
+
+def pdfs(curves: Mapping[str, tuple[np.ndarray, np.ndarray]], variable: str,
+         reference: str | None = None, figsize=FIGSIZE) -> Figure:
+    """Probability densities ``curves[label] = (values, density)`` on a log density axis."""
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    for label, (x, p) in curves.items():
+        x = np.asarray(x, dtype=float)
+        p = np.asarray(p, dtype=float)
+        keep = p > 0
+        kw = dict(color="black", lw=2.5, zorder=3) if label == reference else dict(lw=1.2)
+        ax.semilogy(x[keep], p[keep], label=label, **kw)
+    ax.set_xlabel(variable)
+    ax.set_ylabel("probability density")
+    ax.set_title(f"A posteriori PDF of the {variable}")
+    ax.legend(fontsize=8)
+    return fig

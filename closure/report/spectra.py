@@ -25,6 +25,8 @@ pointwise ``enstrophy_transfer``. From a force, ``g = d_x force_y - d_y force_x`
 transfer from a vorticity forcing uses the streamfunction, ``psi_hat = omega_hat / |k|^2``:
 T(k) = shell sum of Re(conj(psi_hat) g_hat) / N^2.
 
+Shells and transforms are those of :mod:`closure.spectral` (its ``energy_spectrum`` is a
+density, sum(E) dk = mean energy; the transfers here are plain shell sums, sum(T) = mean).
 These are spectra of the exchange between the resolved field and the subgrid term, not spectra
 of the pointwise transfer field ``pi(x)``.
 """
@@ -32,74 +34,37 @@ of the pointwise transfer field ``pi(x)``.
 from __future__ import annotations
 
 import numpy as np
-import scipy.fft
 
 from closure.derivatives import derivative
-from closure.errors import UserError
 from closure.grid import Grid
+from closure.spectral import fourier, shell_spacing
 
 
-def _check_periodic(grid: Grid) -> None:
-    if not grid.periodic:
-        raise UserError("transfer spectra need periodic data: the grid is declared non-periodic")
-
-
-def shell_layout(grid: Grid) -> tuple[np.ndarray, np.ndarray, float, int]:
-    """Shell index and weight of every ``rfftn`` coefficient of a field on ``grid``.
-
-    Returns ``(shell, weight, dk, n_shells)``: ``shell`` (int, rfftn shape) is the nearest
-    whole multiple of ``dk = 2 pi / max(L)`` to ``|k|``; ``weight`` is 2 for coefficients
-    that stand for a conjugate pair (interior of the halved last axis), else 1.
-    """
-    _check_periodic(grid)
-    dk = 2 * np.pi / max(grid.lengths)
-    k2 = np.zeros(())
-    for i, d in enumerate(grid.dims):
-        k = grid.wavenumbers(d, real=(i == grid.ndim - 1))
-        shape = [1] * grid.ndim
-        shape[i] = k.size
-        k2 = k2 + k.reshape(shape) ** 2
-    shell = np.rint(np.sqrt(k2) / dk).astype(int)
-    n_last = grid.shape[-1]
-    weight = np.full(shell.shape[-1], 2.0)
-    weight[0] = 1.0
-    if n_last % 2 == 0:
-        weight[-1] = 1.0
-    weight = np.broadcast_to(weight, shell.shape)
-    return shell, weight, dk, int(shell.max()) + 1
-
-
-def _rfft(f: np.ndarray, grid: Grid) -> np.ndarray:
+def _forward(f: np.ndarray, grid: Grid) -> np.ndarray:
     f = np.asarray(f, dtype=float)
     if f.shape != grid.shape:
         raise ValueError(f"field shape {f.shape} is not the grid shape {grid.shape}")
-    return scipy.fft.rfftn(f, workers=-1)
+    return fourier(grid).forward(f)
 
 
 def _shell_sum(density: np.ndarray, grid: Grid) -> tuple[np.ndarray, np.ndarray]:
-    shell, weight, dk, n = shell_layout(grid)
-    total = np.bincount(shell.ravel(), weights=(weight * density).ravel(), minlength=n)
-    return dk * np.arange(n), total
+    """Sum a per-mode density (rfftn layout, conjugate weights applied here) over shells."""
+    F = fourier(grid)
+    dk = shell_spacing(grid)
+    shell = np.rint(np.sqrt(F.k2) / dk).astype(int)
+    total = np.bincount(shell.ravel(), weights=(F.half_weights * density).ravel())
+    return dk * np.arange(total.size), total
 
 
 def cross_spectrum(a: np.ndarray, b: np.ndarray, grid: Grid) -> tuple[np.ndarray, np.ndarray]:
     """Shell sums of Re(conj(a_hat) b_hat) / N^2 for two fields of ``grid.shape``.
 
     Returns ``(k, S)``, k the shell-centre angular wavenumbers (1/coordinate units) starting at
-    0; ``S.sum() == mean(a * b)`` (Parseval).
+    0; ``S.sum() == mean(a * b)`` (Parseval). Periodic grids only (UserError otherwise).
     """
     n_points = float(np.prod(grid.shape))
-    density = np.real(np.conj(_rfft(a, grid)) * _rfft(b, grid)) / n_points**2
+    density = np.real(np.conj(_forward(a, grid)) * _forward(b, grid)) / n_points**2
     return _shell_sum(density, grid)
-
-
-def energy_spectrum(velocity: dict[str, np.ndarray], grid: Grid) -> tuple[np.ndarray, np.ndarray]:
-    """Kinetic-energy spectrum E(k) with ``E.sum() == mean(u_i u_i) / 2``."""
-    k, total = None, 0.0
-    for f in velocity.values():
-        k, s = cross_spectrum(f, f, grid)
-        total = total + 0.5 * s
-    return k, total
 
 
 def energy_transfer_spectrum(velocity: dict[str, np.ndarray], force: dict[str, np.ndarray],
@@ -131,14 +96,9 @@ def energy_transfer_from_vorticity(vorticity: np.ndarray, vorticity_forcing: np.
     """2-D subgrid energy drain from a vorticity forcing, via psi_hat = omega_hat / |k|^2."""
     if grid.ndim != 2:
         raise ValueError("the streamfunction form of the energy transfer is 2-D only")
-    _check_periodic(grid)
-    kx = grid.wavenumbers(grid.dims[1], real=True)[None, :]
-    ky = grid.wavenumbers(grid.dims[0])[:, None]
-    k2 = kx**2 + ky**2
-    w_hat = _rfft(vorticity, grid)
-    psi_hat = np.divide(w_hat, k2, out=np.zeros_like(w_hat), where=k2 > 0)
+    psi_hat = _forward(vorticity, grid) * fourier(grid).inverse_k2
     n_points = float(np.prod(grid.shape))
-    density = np.real(np.conj(psi_hat) * _rfft(vorticity_forcing, grid)) / n_points**2
+    density = np.real(np.conj(psi_hat) * _forward(vorticity_forcing, grid)) / n_points**2
     return _shell_sum(density, grid)
 
 

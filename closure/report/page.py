@@ -1,0 +1,486 @@
+"""The self-contained HTML report of one model: ``index.html`` plus PNG figures in one folder.
+
+Everything the page shows is in the folder (relative links, inline CSS, no scripts, no external
+assets), so it can be zipped, mailed or served as static files. The folder is built next to its
+destination and renamed into place.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import html
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+
+import numpy as np
+
+from closure.errors import UserError
+from closure.report import plots
+from closure.report.aposteriori import AposterioriRuns, as_runs
+from closure.report.apriori import AprioriData, apriori_data
+
+#: The caution every report carries, verbatim.
+CAUTION = ("A priori skill does not guarantee a stable or accurate coarse simulation: "
+           "validate the model a posteriori in your own solver before relying on it.")
+
+#: Name of the marker file that says a folder is a report we may replace.
+MARKER = ".closure-report"
+
+_CSS = """
+body { font-family: system-ui, sans-serif; max-width: 60rem; margin: 2rem auto; padding: 0 1rem;
+       color: #1b1b1b; line-height: 1.45; }
+h1 { font-size: 1.6rem; } h2 { font-size: 1.25rem; border-bottom: 1px solid #ccc; }
+table { border-collapse: collapse; margin: 0.5rem 0 1rem; }
+th, td { border: 1px solid #ccc; padding: 0.25rem 0.6rem; text-align: right; }
+th:first-child, td:first-child { text-align: left; }
+th { background: #f2f2f2; }
+code { background: #f4f4f4; padding: 0 0.2rem; }
+.caution { border-left: 6px solid #c0392b; background: #fdecea; padding: 0.6rem 1rem; }
+.warnings li { color: #8a4b00; }
+figure { margin: 1rem 0; } figcaption { font-size: 0.9rem; color: #555; }
+img { max-width: 100%; height: auto; border: 1px solid #ddd; }
+"""
+
+
+# ------------------------------------------------------------------ reading a model
+
+
+def _get(obj, name, default=None):
+    if isinstance(obj, Mapping):
+        return obj.get(name, default)
+    return getattr(obj, name, default)
+
+
+def _model_dict(model) -> dict:
+    if isinstance(model, Mapping):
+        return dict(model)
+    to_dict = getattr(model, "to_dict", None)
+    return dict(to_dict()) if callable(to_dict) else {}
+
+
+def term_rows(model) -> list[dict]:
+    """One plain dict per term: name, coefficient, coefficient_scaled, std_error,
+    std_error_scaled, selection_frequency, delta_power, latex (None where unknown)."""
+    rows = []
+    for t in _get(model, "terms", None) or []:
+        name = t if isinstance(t, str) else _get(t, "name")
+        row = {"name": str(name)}
+        for key in ("coefficient", "coefficient_scaled", "std_error", "std_error_scaled",
+                    "selection_frequency", "delta_power", "latex", "expression"):
+            value = None if isinstance(t, str) else _get(t, key)
+            row[key] = value
+        rows.append(row)
+    coefs = _get(model, "coefficients", None)
+    if coefs is not None and rows and all(r["coefficient"] is None for r in rows):
+        for r, c in zip(rows, list(coefs), strict=False):
+            r["coefficient"] = float(c)
+    for r in rows:
+        if r["std_error_scaled"] is None and r["std_error"] is not None \
+                and r["coefficient"] and r["coefficient_scaled"] is not None:
+            # the scaling is a fixed factor D^-p, the same for the coefficient and its error
+            r["std_error_scaled"] = abs(r["std_error"] * r["coefficient_scaled"]
+                                        / r["coefficient"])
+    return rows
+
+
+# ------------------------------------------------------------------ HTML helpers
+
+
+def _fmt(v) -> str:
+    if v is None:
+        return "&ndash;"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, int | np.integer):
+        return str(int(v))
+    if isinstance(v, float | np.floating):
+        v = float(v)
+        if not math.isfinite(v):
+            return html.escape(str(v))
+        return f"{v:.4g}"
+    return html.escape(str(v))
+
+
+def _table(header: list[str], rows: list[list]) -> str:
+    head = "".join(f"<th>{html.escape(h)}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{_fmt(c)}</td>" for c in r) + "</tr>" for r in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def _kv_table(d: Mapping) -> str:
+    return _table(["", ""], [[k, _flat(v)] for k, v in d.items()]).replace(
+        "<thead><tr><th></th><th></th></tr></thead>", "")
+
+
+def _flat(v):
+    if isinstance(v, Mapping):
+        return ", ".join(f"{k}: {_plain(x)}" for k, x in v.items())
+    if isinstance(v, list | tuple):
+        return ", ".join(_plain(x) for x in v)
+    return v
+
+
+def _plain(v) -> str:
+    if isinstance(v, float):
+        return f"{v:.4g}"
+    return str(v)
+
+
+def flatten(d: Mapping, prefix: str = "") -> dict:
+    """Nested mappings as one level with dotted keys: {"all": {"r2": 1}} -> {"all.r2": 1}."""
+    out = {}
+    for k, v in d.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, Mapping):
+            out.update(flatten(v, key + "."))
+        else:
+            out[key] = v
+    return out
+
+
+def _scores_table(scores) -> str:
+    """Scores as rows (dotted names) x split columns when split by train/test, else key/value."""
+    if not scores:
+        return "<p>No scores were stored with this model.</p>"
+    splits = [k for k in ("train", "test") if isinstance(scores.get(k), Mapping)]
+    splits += [k for k, v in scores.items() if isinstance(v, Mapping) and k not in splits]
+    rest = {k: v for k, v in scores.items() if k not in splits}
+    out = ""
+    if splits:
+        flat = {s: flatten(scores[s]) for s in splits}
+        metrics: list[str] = []
+        for s in splits:
+            metrics += [m for m, v in flat[s].items()
+                        if m not in metrics and not isinstance(v, list | tuple)]
+        out = _table(["score"] + splits, [[m] + [flat[s].get(m) for s in splits]
+                                          for m in metrics])
+    return out + (_kv_table(rest) if rest else "")
+
+
+def _figure(filename: str, caption: str) -> str:
+    width, height = (int(round(s * plots.DPI)) for s in plots.FIGSIZE)
+    return (f'<figure><img src="{html.escape(filename)}" width="{width}" height="{height}"'
+            f' alt="{html.escape(caption)}">'
+            f"<figcaption>{html.escape(caption)}</figcaption></figure>")
+
+
+# ------------------------------------------------------------------ atomic folder
+
+
+@contextlib.contextmanager
+def _atomic_folder(out_dir: Path):
+    """Yield a temporary folder beside ``out_dir``; on success it replaces ``out_dir``.
+
+    An existing ``out_dir`` is replaced only when it is empty or a previous report (has the
+    marker file), so a mistyped ``-o`` never deletes someone's data.
+    """
+    out_dir = Path(out_dir)
+    if out_dir.exists():
+        if not out_dir.is_dir():
+            raise UserError(f"{out_dir} exists and is not a folder: choose another output folder")
+        if any(out_dir.iterdir()) and not (out_dir / MARKER).exists():
+            raise UserError(f"{out_dir} exists and is not a closure report: choose a new or "
+                            "empty output folder")
+    out_dir.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", suffix=".tmp", dir=out_dir.parent))
+    try:
+        yield tmp
+        (tmp / MARKER).write_text("closure report folder; replaced when the report is rebuilt\n")
+        os.chmod(tmp, 0o755)
+        if out_dir.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", suffix=".old",
+                                        dir=out_dir.parent))
+            os.replace(out_dir, old / "report")
+            os.replace(tmp, out_dir)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out_dir)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+# ------------------------------------------------------------------ sections
+
+
+def _summary_section(model, mdict) -> str:
+    filt = _get(model, "filter", None) or mdict.get("filter") or {}
+    prov = _get(model, "provenance", None) or mdict.get("provenance") or {}
+    summary = {
+        "target": _get(model, "target"),
+        "filter": filt.get("kind") if isinstance(filt, Mapping) else filt,
+        "filter width D": filt.get("width") if isinstance(filt, Mapping) else None,
+        "filter width (fine spacings)": filt.get("width_cells")
+        if isinstance(filt, Mapping) else None,
+        "coarsening ratio": filt.get("ratio") if isinstance(filt, Mapping) else None,
+        "derivative scheme": _get(model, "scheme"),
+        "library": _get(model, "library") or mdict.get("library"),
+        "fit method": (mdict.get("fit") or {}).get("method")
+        if isinstance(mdict.get("fit"), Mapping) else mdict.get("method"),
+    }
+    if isinstance(prov, Mapping):
+        inp = prov.get("input") if isinstance(prov.get("input"), Mapping) else prov
+        for key, label in (("path", "input file"), ("sha256", "input sha256")):
+            if isinstance(inp, Mapping) and inp.get(key):
+                summary[label] = inp.get(key)
+        for key in ("created", "created_at", "closure_version"):
+            if prov.get(key):
+                summary[key.replace("_", " ")] = prov[key]
+    summary = {k: v for k, v in summary.items() if v not in (None, "", {})}
+    text = getattr(model, "summary", None)
+    pre = ""
+    if callable(text):
+        with contextlib.suppress(Exception):
+            pre = f"<pre>{html.escape(str(text()))}</pre>"
+    return "<h2>Model</h2>" + _kv_table(summary) + pre
+
+
+def _terms_section(rows: list[dict]) -> str:
+    if not rows:
+        return "<h2>Terms</h2><p>The model has no terms (every candidate was eliminated).</p>"
+    body = []
+    for r in rows:
+        coef = _fmt(r["coefficient"])
+        if r["std_error"] is not None:
+            coef += f" &plusmn; {_fmt(r['std_error'])}"
+        scaled = _fmt(r["coefficient_scaled"])
+        if r["std_error_scaled"] is not None:
+            scaled += f" &plusmn; {_fmt(r['std_error_scaled'])}"
+        body.append(f"<tr><td><code>{html.escape(r['name'])}</code></td><td>{coef}</td>"
+                    f"<td>{_fmt(r['delta_power'])}</td><td>{scaled}</td>"
+                    f"<td>{_fmt(r['selection_frequency'])}</td></tr>")
+    head = ("<tr><th>term</th><th>coefficient &plusmn; std error</th><th>power p of D</th>"
+            "<th>scaled coefficient (c / D<sup>p</sup>)</th><th>selection frequency</th></tr>")
+    return (f"<h2>Terms</h2><table><thead>{head}</thead><tbody>{''.join(body)}</tbody></table>"
+            "<p>The scaled coefficient is the dimensional one divided by the filter width to the "
+            "term's power, so it is comparable across resolutions. The selection frequency is "
+            "the share of resamples in which the term was kept.</p>")
+
+
+def _collect_warnings(model, mdict, extra) -> list[str]:
+    out = []
+    for w in list(_get(model, "warnings", None) or mdict.get("warnings") or []) + list(extra):
+        text = w if isinstance(w, str) else (_get(w, "message") or json.dumps(w, default=str))
+        if text not in out:
+            out.append(str(text))
+    return out
+
+
+def _float_list(values) -> list:
+    return [None if v is None or not math.isfinite(float(v)) else float(v) for v in values]
+
+
+# ------------------------------------------------------------------ the entry point
+
+
+def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
+                 les_result=None, sweep=None, *, apriori: AprioriData | None = None,
+                 title: str | None = None, extra_warnings=(), notes=()) -> Path:
+    """Write the report folder of ``model`` to ``out_dir`` and return the folder's path.
+
+    ``model``: a ClosureModel (or anything with its attributes; a dict is read for the summary
+    and terms only). ``coarse_test_snapshots``: held-out CoarseSnapshots to score against (or
+    an already computed ``apriori``); ``les_result``: the a posteriori result of
+    :func:`closure.les` (object or its JSON dict); ``sweep``: a
+    :class:`closure.sweep.SweepResult` or its dict. Sections whose data is missing are left
+    out and say so. The folder holds ``index.html``, the PNGs, ``report.json`` (the numbers
+    behind the figures) and a marker file; it is built beside ``out_dir`` and renamed into
+    place, replacing an earlier report there.
+    """
+    out_dir = Path(out_dir)
+    mdict = _model_dict(model)
+    rows = term_rows(model)
+    if apriori is None and coarse_test_snapshots is not None:
+        if not callable(getattr(model, "evaluate", None)):
+            from closure.model import ClosureModel
+
+            model = ClosureModel.from_dict(mdict)
+        apriori = apriori_data(model, coarse_test_snapshots)
+    runs = as_runs(les_result) if les_result is not None else None
+    sweep_dict = _sweep_dict(sweep) if sweep is not None else None
+    warnings = _collect_warnings(model, mdict, extra_warnings)
+    numbers: dict = {"model_id": mdict.get("id"), "target": _get(model, "target"),
+                     "terms": rows, "scores": _get(model, "scores", None) or {},
+                     "warnings": warnings, "caution": CAUTION}
+    sections: list[str] = []
+    note_items = list(notes)
+
+    with _atomic_folder(out_dir) as tmp:
+        sections.append(_summary_section(model, mdict))
+        sections.append(_terms_section(rows))
+        if rows:
+            fig = plots.coefficients([r["name"] for r in rows],
+                                     [r["coefficient_scaled"] if r["coefficient_scaled"]
+                                      is not None else r["coefficient"] or 0.0 for r in rows],
+                                     [r["std_error_scaled"] for r in rows],
+                                     [r["selection_frequency"] for r in rows])
+            plots.save_png(fig, tmp / "coefficients.png")
+            sections.append(_figure("coefficients.png",
+                                    "Scaled coefficients with one standard error, and how "
+                                    "often each term was selected"))
+
+        sections.append("<h2>A priori scores</h2>" + _scores_table(numbers["scores"]))
+        if apriori is not None:
+            sections.append(_apriori_section(apriori, tmp))
+            numbers["apriori"] = apriori.to_dict()
+            note_items += apriori.notes
+        else:
+            sections.append("<p>No held-out snapshots were given, so the pointwise and "
+                            "spectral a priori comparisons are left out (build the report with "
+                            "the input file to include them).</p>")
+
+        sections.append("<h2>Warnings</h2>" + (
+            '<ul class="warnings">' + "".join(f"<li>{html.escape(w)}</li>" for w in warnings)
+            + "</ul>" if warnings else "<p>None.</p>"))
+
+        if sweep_dict is not None:
+            sections.append(_sweep_section(sweep_dict, tmp))
+            numbers["sweep"] = {"widths": [e.get("delta") for e in sweep_dict["entries"]]}
+        if runs is not None:
+            sections.append(_aposteriori_section(runs, tmp))
+            numbers["aposteriori"] = runs.summary()
+        if note_items:
+            sections.append("<h2>Notes</h2><ul>" + "".join(
+                f"<li>{html.escape(str(n))}</li>" for n in note_items) + "</ul>")
+
+        heading = title or f"Closure report: {_get(model, 'target', 'model')}" + (
+            f" ({mdict['id']})" if mdict.get("id") else "")
+        stamp = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%d %H:%M UTC")
+        page = ("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+                f"<title>{html.escape(heading)}</title>"
+                "<meta name=\"generator\" content=\"closure report\">"
+                f"<style>{_CSS}</style></head><body>"
+                f"<h1>{html.escape(heading)}</h1>"
+                f'<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>'
+                + "".join(sections)
+                + f"<hr><p><small>Written {stamp} by closure.</small></p></body></html>\n")
+        (tmp / "index.html").write_text(page, encoding="utf-8")
+        (tmp / "report.json").write_text(json.dumps(_jsonable(numbers), indent=1),
+                                         encoding="utf-8")
+    return out_dir
+
+
+def _jsonable(x):
+    if isinstance(x, Mapping):
+        return {str(k): _jsonable(v) for k, v in x.items()}
+    if isinstance(x, list | tuple):
+        return [_jsonable(v) for v in x]
+    if isinstance(x, np.ndarray):
+        return _jsonable(x.tolist())
+    if isinstance(x, np.generic):
+        x = x.item()
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if x is None or isinstance(x, str | int | float | bool):
+        return x
+    return str(x)
+
+
+def _apriori_section(data: AprioriData, tmp: Path) -> str:
+    out = [f"<h2>A priori comparison on held-out snapshots</h2>"
+           f"<p>Snapshots {', '.join(str(i) for i in data.snapshot_indices)}, all points "
+           "pooled.</p>"]
+    stats = data.agreement()
+    out.append(_table(["component", "R^2", "correlation"],
+                      [[n, s["r2"], s["correlation"]] for n, s in stats.items()]))
+    plots.save_png(plots.apriori_hexbin(data.exact, data.modelled), tmp / "apriori_hexbin.png")
+    out.append(_figure("apriori_hexbin.png", "Exact vs modelled subgrid term per component "
+                       "(hexbin of point counts, log scale; red: 1:1 line)"))
+    for t in data.transfers:
+        name = f"transfer_{t.name}.png"
+        fig = plots.transfer_spectra(t.k, {"exact": t.exact, "model": t.model},
+                                     f"Subgrid {t.label}: exact vs model", t.label)
+        plots.save_png(fig, tmp / name)
+        out.append(_figure(name, f"Subgrid {t.label} by shell, averaged over the held-out "
+                           f"snapshots; positive: drained to the subgrid scales. Totals: exact "
+                           f"{t.exact.sum():.4g}, model {t.model.sum():.4g}"))
+    if data.transfers:
+        out.append("<p>Transfer spectra are shell sums of Re(conj(u&#770;<sub>i</sub>) "
+                   "f&#770;<sub>i</sub>)/N<sup>2</sup> between the resolved velocity and the "
+                   "subgrid force f<sub>i</sub> = &part;<sub>j</sub>&tau;<sub>ij</sub> (and of "
+                   "the vorticity with the vorticity forcing); each sums to the domain mean of "
+                   "the pointwise transfer.</p>")
+    return "".join(out)
+
+
+def _sweep_dict(sweep) -> dict:
+    d = sweep.to_dict() if callable(getattr(sweep, "to_dict", None)) else dict(sweep)
+    if not d.get("entries"):
+        raise UserError("the sweep result has no entries: run the sweep with at least one width")
+    return d
+
+
+def _sweep_section(sweep: dict, tmp: Path) -> str:
+    entries = sorted(sweep["entries"], key=lambda e: e["delta"])
+    delta = [e["delta"] for e in entries]
+    names: list[str] = []
+    for e in entries:
+        for n in e["terms"]:
+            if n not in names:
+                names.append(n)
+    scaled = {n: _float_list([e["terms"].get(n, {}).get("coefficient_scaled", math.nan)
+                              if e["terms"].get(n) else math.nan for e in entries])
+              for n in names}
+    errors = {n: _float_list([(e["terms"].get(n) or {}).get("std_error_scaled") or math.nan
+                              for e in entries]) for n in names}
+    scaled_nan = {n: [math.nan if v is None else v for v in c] for n, c in scaled.items()}
+    errors_nan = {n: [math.nan if v is None else v for v in c] for n, c in errors.items()}
+    out = ["<h2>Filter-width sweep</h2>"]
+    rows = []
+    for e in entries:
+        rows.append([e["delta"], e.get("width_cells"), e.get("ratio")]
+                    + [(e["terms"].get(n) or {}).get("coefficient_scaled") for n in names])
+    out.append(_table(["D", "D (fine spacings)", "ratio"] + names, rows))
+    if names:
+        plots.save_png(plots.sweep_coefficients(delta, scaled_nan, errors_nan),
+                       tmp / "sweep_coefficients.png")
+        out.append(_figure("sweep_coefficients.png", "Scaled coefficients vs filter width D; a "
+                           "closure whose D-scaling is right gives flat lines"))
+    score_names: list[str] = []
+    for e in entries:
+        for n, v in (e.get("test_scores") or {}).items():
+            if isinstance(v, int | float) and n not in score_names:
+                score_names.append(n)
+    if score_names:
+        series = {n: [(e.get("test_scores") or {}).get(n, math.nan) for e in entries]
+                  for n in score_names}
+        series = {n: [math.nan if v is None else v for v in s] for n, s in series.items()}
+        plots.save_png(plots.sweep_scores(delta, series), tmp / "sweep_scores.png")
+        out.append(_figure("sweep_scores.png", "Held-out a priori scores vs filter width D"))
+    return "".join(out)
+
+
+def _aposteriori_section(runs: AposterioriRuns, tmp: Path) -> str:
+    out = ["<h2>A posteriori: coarse runs</h2>"]
+    rows = [[label, r.blowup_time if r.blowup_time is not None else "none",
+             r.final("energy"), r.final("enstrophy")] for label, r in runs.runs.items()]
+    out.append(_table(["run", "blow-up time", "final kinetic energy", "final enstrophy"], rows))
+    spectra_curves = {label: r.spectrum for label, r in runs.runs.items() if r.spectrum}
+    if spectra_curves:
+        plots.save_png(plots.aposteriori_spectra(spectra_curves, runs.reference),
+                       tmp / "aposteriori_spectra.png")
+        out.append(_figure("aposteriori_spectra.png", "Energy spectra of the coarse runs and of "
+                           "the filtered reference" + (f" (at t = {runs.spectrum_time:.4g})"
+                                                       if runs.spectrum_time is not None else "")))
+    blowup = {label: r.blowup_time for label, r in runs.runs.items()}
+    for key, label, log in (("energy", "kinetic energy", False), ("enstrophy", "enstrophy",
+                                                                   False)):
+        series = {lab: (r.time, r.series[key]) for lab, r in runs.runs.items()
+                  if key in r.series}
+        if series:
+            name = f"aposteriori_{key}.png"
+            plots.save_png(plots.time_series(series, label, blowup, runs.reference, log),
+                           tmp / name)
+            out.append(_figure(name, f"{label.capitalize()} of the coarse runs; dashed lines "
+                               "mark blow-up times"))
+    pdfs = {label: r.vorticity_pdf for label, r in runs.runs.items() if r.vorticity_pdf}
+    if pdfs:
+        plots.save_png(plots.pdfs(pdfs, "vorticity", runs.reference), tmp / "vorticity_pdf.png")
+        out.append(_figure("vorticity_pdf.png", "Probability density of the vorticity"))
+    return "".join(out)
