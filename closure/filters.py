@@ -189,7 +189,7 @@ def box_weights(width_cells: float) -> np.ndarray:
     """Discrete top-hat of width ``width_cells`` spacings: the overlap of each cell with
     [-D/2, D/2], normalised (odd integer widths: uniform; even: half weights at the ends)."""
     half = width_cells / 2.0
-    m = int(np.ceil(half - 0.5 + 1e-12))
+    m = int(np.ceil(half - 0.5 - 1e-12))  # cells reaching past the centre cell
     j = np.arange(-m, m + 1, dtype=float)
     w = np.clip(np.minimum(j + 0.5, half) - np.maximum(j - 0.5, -half), 0.0, None)
     return w / w.sum()
@@ -227,6 +227,8 @@ def make_coarse_graining(kind: str, grid: Grid, ratio: int, width: float | None 
             widths = tuple(float(width) * h for h in grid.spacing)
         else:
             widths = (float(width),) * grid.ndim
+    # the ratio first: the default width follows from it
+    grid.block(ratio) if kind == "block" else grid.coarsen(ratio)
     for d, w, L, h, n in zip(grid.dims, widths, grid.lengths, grid.spacing, grid.shape,
                              strict=True):
         if w > L * (1 + 1e-12):

@@ -1,0 +1,56 @@
+"""Shared fixtures: small synthetic netCDF files written with xarray."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+
+
+def periodic_coords(n: int, length: float = 2 * np.pi) -> np.ndarray:
+    """``n`` points ``i * length / n`` of a periodic direction."""
+    return np.arange(n) * (length / n)
+
+
+@pytest.fixture
+def make_netcdf(tmp_path):
+    """Factory: ``make_netcdf(fields, dims=("time", "y", "x"), coords=None, name=..., ...)``.
+
+    ``fields`` maps a variable name to an array, or to ``(array, attrs)``. ``coords`` maps a
+    dimension to its values or ``(values, attrs)``; by default every spatial dimension gets
+    periodic coordinates on ``[0, 2 pi)`` in metres and ``time`` gets ``0, 1, ...`` seconds.
+    Pass ``coords={}`` for a file without coordinate variables.
+    """
+
+    def make(fields: dict, dims=("time", "y", "x"), coords: dict | None = None,
+             name: str = "fields.nc", attrs: dict | None = None, units: str | None = "m s-1",
+             var_dims: dict | None = None) -> Path:
+        data_vars = {}
+        shape = None
+        for key, value in fields.items():
+            arr, a = value if isinstance(value, tuple) else (value, {})
+            a = dict(a)
+            if units and "units" not in a:
+                a["units"] = units
+            d = (var_dims or {}).get(key, dims)
+            data_vars[key] = (d, np.asarray(arr), a)
+            if d == dims:
+                shape = np.shape(arr)
+        if coords is None:
+            coords = {}
+            for d, n in zip(dims, shape, strict=True):
+                if d == "time":
+                    coords[d] = (np.arange(n, dtype=float), {"units": "s"})
+                else:
+                    coords[d] = (periodic_coords(n), {"units": "m"})
+        cvars = {}
+        for d, value in coords.items():
+            vals, a = value if isinstance(value, tuple) else (value, {})
+            cvars[d] = (d, np.asarray(vals), dict(a))
+        path = tmp_path / name
+        xr.Dataset(data_vars, coords=cvars, attrs=attrs or {}).to_netcdf(path)
+        return path
+
+    return make

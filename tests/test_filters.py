@@ -1,0 +1,243 @@
+import numpy as np
+import pytest
+import scipy.integrate
+import scipy.ndimage
+import xarray as xr
+
+from closure.errors import UserError
+from closure.filters import (
+    CoarseGraining,
+    box_weights,
+    make_coarse_graining,
+    transfer_function,
+)
+from closure.grid import Grid
+
+
+# Transfer functions written out from Pope (2000), Turbulent Flows, Table 13.2
+def pope_box(k, D):
+    return np.where(k == 0, 1.0, np.sin(k * D / 2) / np.where(k == 0, 1.0, k * D / 2))
+
+
+def pope_gaussian(k, D):
+    return np.exp(-(k**2) * D**2 / 24)
+
+
+def pope_sharp(k, D):
+    return (np.abs(k) < np.pi / D).astype(float)
+
+
+POPE = {"box": pope_box, "gaussian": pope_gaussian, "spectral": pope_sharp}
+
+
+@pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
+def test_transfer_function_is_pope_table_13_2(kind):
+    k = np.linspace(-20, 20, 401)
+    np.testing.assert_allclose(transfer_function(kind, k, 0.7), POPE[kind](k, 0.7), atol=1e-15)
+
+
+@pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
+@pytest.mark.parametrize("k", [0, 1, 3, 5, 7, 8])
+def test_single_mode_is_scaled_by_g_of_k(kind, k):
+    # filtering cos(k x) gives G(k) cos(k x) (Pope 2000, Table 13.2, and eq. 13.23)
+    g = Grid.regular((64,), 2 * np.pi)
+    x = g.coords("x")
+    D = 8 * g.spacing[0]  # cutoff pi/D = 4 for the sharp filter
+    cg = CoarseGraining(kind, 4, (D,), g)
+    f = np.cos(k * x + 0.3)
+    np.testing.assert_allclose(cg.filter(f), POPE[kind](k, D) * f, atol=1e-14)
+
+
+@pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
+def test_2d_filter_is_the_tensor_product(kind):
+    # G(k) = G1(k_x) G1(k_y) for the tensor-product filters (Pope 2000, sec. 13.2)
+    g = Grid.regular((32, 48), (2 * np.pi, 3 * np.pi))
+    y, x = g.mesh()
+    Dy, Dx = 3 * g.spacing[0], 5 * g.spacing[1]
+    cg = CoarseGraining(kind, 1, (Dy, Dx), g)
+    ky, kx = 3.0, 4 * 2 / 3  # 3 and 4 periods over the y and x lengths
+    f = np.cos(kx * x) * np.sin(ky * y) + 2.0
+    expected = POPE[kind](kx, Dx) * POPE[kind](ky, Dy) * np.cos(kx * x) * np.sin(ky * y) + 2.0
+    np.testing.assert_allclose(cg.filter(f), expected, atol=1e-13)
+
+
+def test_stacks_filter_in_one_pass_like_single_fields():
+    g = Grid.regular((16, 16), 1.0)
+    cg = CoarseGraining("gaussian", 2, (0.25, 0.25), g)
+    rng = np.random.default_rng(1)
+    stack = rng.standard_normal((3, 16, 16))
+    out = cg.filter(stack)
+    for i in range(3):
+        np.testing.assert_allclose(out[i], cg.filter(stack[i]), atol=1e-14)
+
+
+# --- second moments ---------------------------------------------------------------------------
+
+def test_second_moments_box_and_gaussian_are_d2_over_12():
+    # Pope (2000), Table 13.2 / eq. 13.30: both kernels have variance D^2 / 12
+    g = Grid.regular((32, 32), 1.0)
+    for kind in ("box", "gaussian"):
+        cg = make_coarse_graining(kind, g, 4, 6.0)
+        D = 6.0 / 32
+        assert cg.second_moment("x") == pytest.approx(D**2 / 12, rel=1e-14)
+
+
+def test_second_moments_from_the_kernels():
+    # kernels of Pope (2000), Table 13.2: box 1/D on |r| < D/2; Gaussian
+    # sqrt(6 / (pi D^2)) exp(-6 r^2 / D^2). Their variances, integrated numerically, are D^2/12,
+    # and their Fourier transforms are the transfer functions.
+    D = 0.8
+    gauss = lambda r: np.sqrt(6 / (np.pi * D**2)) * np.exp(-6 * r**2 / D**2)  # noqa: E731
+    norm = scipy.integrate.quad(gauss, -np.inf, np.inf)[0]
+    var = scipy.integrate.quad(lambda r: r**2 * gauss(r), -np.inf, np.inf)[0]
+    assert norm == pytest.approx(1.0, rel=1e-10)
+    assert var == pytest.approx(D**2 / 12, rel=1e-10)
+    box_var = scipy.integrate.quad(lambda r: r**2 / D, -D / 2, D / 2)[0]
+    assert box_var == pytest.approx(D**2 / 12, rel=1e-12)
+    cg = CoarseGraining("gaussian", 1, (D,), Grid.regular((8,), 8.0))
+    assert cg.second_moment("x") == pytest.approx(var, rel=1e-9)
+    for k in (0.5, 3.0, 7.0):
+        ft = scipy.integrate.quad(lambda r, k=k: gauss(r) * np.cos(k * r), -np.inf, np.inf)[0]
+        assert transfer_function("gaussian", k, D) == pytest.approx(ft, abs=1e-10)
+        ft_box = scipy.integrate.quad(lambda r, k=k: np.cos(k * r) / D, -D / 2, D / 2)[0]
+        assert transfer_function("box", k, D) == pytest.approx(ft_box, abs=1e-12)
+
+
+@pytest.mark.parametrize("r", [2, 3, 4, 8])
+def test_block_second_moment_is_variance_of_r_points(r):
+    # mean of r points spaced h: the variance of the positions 0, h, ..., (r-1) h is
+    # (r^2 - 1) h^2 / 12 (common practice: variance of a discrete uniform distribution)
+    h = 0.1
+    g = Grid.regular((8 * r,), 8 * r * h)
+    cg = make_coarse_graining("block", g, r)
+    assert cg.second_moment("x") == pytest.approx(np.var(np.arange(r) * h), rel=1e-12)
+    assert cg.second_moment("x") == pytest.approx((r**2 - 1) * h**2 / 12, rel=1e-12)
+
+
+def test_sharp_filter_second_moment_is_none_with_a_note():
+    cg = make_coarse_graining("spectral", Grid.regular((16,), 1.0), 2)
+    assert cg.second_moment("x") is None
+    d = cg.describe()
+    assert d["second_moment"] == {"x": None}
+    assert "no finite second moment" in d["second_moment_note"]
+
+
+# --- against scipy.ndimage and xarray ---------------------------------------------------------
+
+def test_periodic_gaussian_matches_scipy_gaussian_filter_wrap():
+    # scipy.ndimage.gaussian_filter(mode="wrap") with sigma = D / sqrt(12) in grid units: a sampled
+    # Gaussian kernel. Its DFT differs from exp(-k^2 D^2/24) only by aliases of size
+    # exp(-2 pi^2 sigma^2) (~1e-46 here), so the two agree to round-off.
+    g = Grid.regular((48, 64), (1.5, 2.0))
+    rng = np.random.default_rng(2)
+    f = rng.standard_normal(g.shape)
+    cells = 8.0
+    cg = make_coarse_graining("gaussian", g, 4, cells)
+    ref = scipy.ndimage.gaussian_filter(f, sigma=cells / np.sqrt(12), mode="wrap", truncate=12.0)
+    np.testing.assert_allclose(cg.filter(f), ref, atol=1e-13)
+
+
+def non_periodic(shape):
+    return Grid(("y", "x")[-len(shape):], shape, (0.1,) * len(shape), periodic=False)
+
+
+def test_non_periodic_gaussian_matches_scipy_reflect():
+    g = non_periodic((30, 41))
+    f = np.random.default_rng(3).standard_normal(g.shape)
+    cg = make_coarse_graining("gaussian", g, 3, 6.0)
+    ref = scipy.ndimage.gaussian_filter(f, sigma=6.0 / np.sqrt(12), mode="reflect", truncate=6.0)
+    np.testing.assert_allclose(cg.filter(f), ref, atol=1e-13)
+
+
+def test_non_periodic_box_matches_scipy_uniform_filter_reflect():
+    g = non_periodic((30, 41))
+    f = np.random.default_rng(4).standard_normal(g.shape)
+    # odd width: the mean of 5 points
+    cg = make_coarse_graining("box", g, 3, 5.0)
+    ref = scipy.ndimage.uniform_filter(f, size=5, mode="reflect")
+    np.testing.assert_allclose(cg.filter(f), ref, atol=1e-13)
+    # even width 4: weights (1/2, 1, 1, 1, 1/2)/4 = (3 * mean of 3 + 5 * mean of 5) / 8 per axis
+    cg4 = make_coarse_graining("box", g, 2, 4.0)
+    ref4 = f
+    for axis in (0, 1):
+        ref4 = (3 * scipy.ndimage.uniform_filter1d(ref4, 3, axis=axis, mode="reflect")
+                + 5 * scipy.ndimage.uniform_filter1d(ref4, 5, axis=axis, mode="reflect")) / 8
+    np.testing.assert_allclose(cg4.filter(f), ref4, atol=1e-13)
+
+
+def test_box_weights_integrate_the_top_hat():
+    np.testing.assert_allclose(box_weights(4.0), np.array([0.5, 1, 1, 1, 0.5]) / 4)
+    np.testing.assert_allclose(box_weights(3.0), np.ones(3) / 3)
+    w = box_weights(2.5)
+    assert w.sum() == pytest.approx(1.0)
+    # second moment of the discrete weights of an odd integer width D: (D^2 - 1)/12 cells^2
+    j = np.arange(5) - 2
+    assert np.sum(box_weights(5.0) * j**2) == pytest.approx((25 - 1) / 12)
+
+
+def test_block_mean_matches_xarray_coarsen():
+    # reference: xarray Dataset.coarsen(...).mean(), data and coordinates
+    g = Grid(("y", "x"), (12, 16), (0.5, 0.25), (1.0, -2.0))
+    rng = np.random.default_rng(5)
+    f = rng.standard_normal((2, *g.shape))
+    ds = xr.Dataset({"f": (("time", "y", "x"), f)},
+                    coords={"y": g.coords("y"), "x": g.coords("x")})
+    ref = ds.coarsen(x=4, y=4).mean()
+    cg = make_coarse_graining("block", g, 4)
+    np.testing.assert_allclose(cg(f), ref["f"].values, atol=1e-15)
+    np.testing.assert_allclose(cg.coarse.coords("x"), ref["x"].values, atol=1e-14)
+    np.testing.assert_allclose(cg.coarse.coords("y"), ref["y"].values, atol=1e-14)
+
+
+def test_call_filters_then_samples():
+    g = Grid.regular((32,), 2 * np.pi)
+    f = np.sin(g.coords("x"))
+    cg = make_coarse_graining("gaussian", g, 4)
+    np.testing.assert_allclose(cg(f), cg.filter(f)[::4])
+    assert cg.coarse.shape == (8,)
+    with pytest.raises(UserError, match="use coarse_grain"):
+        make_coarse_graining("block", g, 4).filter(f)
+
+
+# --- building and errors ----------------------------------------------------------------------
+
+def test_width_units_and_defaults():
+    g = Grid.regular((32, 64), (1.0, 4.0))
+    cg = make_coarse_graining("box", g, 4)  # default: 2 * ratio spacings (common practice)
+    assert cg.widths == pytest.approx((8 / 32, 8 * 4 / 64))
+    cg = make_coarse_graining("box", g, 4, 0.5, "coordinate")
+    assert cg.widths == (0.5, 0.5)
+    assert cg.delta == pytest.approx(0.5)
+    d = cg.describe()
+    assert d["width_cells"] == pytest.approx({"y": 16.0, "x": 8.0})
+    assert make_coarse_graining("block", g, 4).widths == pytest.approx((4 / 32, 16 / 64))
+
+
+def test_warns_when_the_filter_is_narrower_than_the_coarse_spacing():
+    g = Grid.regular((32,), 1.0)
+    assert make_coarse_graining("gaussian", g, 4, 2.0).warnings()
+    assert not make_coarse_graining("gaussian", g, 4, 4.0).warnings()
+
+
+@pytest.mark.parametrize("args,message", [
+    (("tophat", 4), "unknown filter 'tophat': choose one of box, gaussian, spectral, block"),
+    (("box", 0), "ratio must be a whole number >= 1"),
+    (("box", 2.5), "ratio must be a whole number >= 1"),
+    (("box", 4, -1.0), "width must be a positive number"),
+    (("box", 4, 40.0), r"filter width .* \(40 grid spacings\) is larger than the domain in x "
+                       r"\(.*32 points\): use a smaller --width"),
+    (("box", 64), "fewer than the ratio 64: use a smaller --ratio"),
+    (("box", 5), "not a multiple of the ratio 5"),
+    (("block", 4, 3.0), "block averaging has width equal to the ratio"),
+    (("box", 4, 2.0, "cells"), "unknown width units 'cells'"),
+])
+def test_bad_options_raise_clear_user_errors(args, message):
+    g = Grid.regular((32,), 1.0)
+    with pytest.raises(UserError, match=message):
+        make_coarse_graining(args[0], g, *args[1:])
+
+
+def test_sharp_filter_needs_periodic_data():
+    cg = make_coarse_graining("spectral", non_periodic((16,)), 2)
+    with pytest.raises(UserError, match="needs periodic data"):
+        cg.filter(np.zeros(16))
