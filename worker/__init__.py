@@ -1,0 +1,1 @@
+"""Queue workers of the closure service (rq): tasks, queue glue, the worker process."""

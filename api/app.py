@@ -1,0 +1,112 @@
+"""The HTTP API: FastAPI app factory, error mapping and the uvicorn entry point.
+
+Every error a user can cause answers 4xx with ``{"detail": message, "error": kind}``:
+closure.errors.UserError and its subclasses (status by class, see api.errors), request
+validation (422 with field paths and allowed values). An unreachable Redis or catalog answers
+503. OpenAPI is at /openapi.json, interactive docs at /docs.
+"""
+
+from __future__ import annotations
+
+import logging
+import socket
+
+import redis
+import sqlalchemy.exc
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+
+from api.deps import Settings
+from api.errors import AuthError, status_for
+from api.routers import datasets, health, jobs, models
+from closure import __version__
+from closure.errors import UserError
+
+log = logging.getLogger("closure.api")
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """The API for ``settings`` (default: from the CLOSURE_* environment)."""
+    settings = settings or Settings.from_env()
+    settings.check()
+    app = FastAPI(
+        title="closure", version=__version__,
+        description="Queue subgrid-scale closure discovery jobs on simulation data, follow "
+                    "them, and query and export the discovered models. A priori skill does "
+                    "not guarantee a stable or accurate coarse simulation: validate a model "
+                    "a posteriori before relying on it.")
+    app.state.settings = settings
+    app.state.store = None
+    app.state.redis = None
+    for module in (jobs, datasets, models, health):
+        app.include_router(module.router)
+    _install_error_handlers(app)
+    return app
+
+
+def _error(status: int, kind: str, message: str, **extra) -> JSONResponse:
+    headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
+    return JSONResponse({"detail": message, "error": kind, **extra}, status_code=status,
+                        headers=headers)
+
+
+def _install_error_handlers(app: FastAPI) -> None:
+    @app.exception_handler(UserError)
+    async def _user_error(request: Request, exc: UserError):
+        kind = "unauthorized" if isinstance(exc, AuthError) else type(exc).__name__
+        return _error(status_for(exc), kind, str(exc))
+
+    @app.exception_handler(RequestValidationError)
+    async def _validation(request: Request, exc: RequestValidationError):
+        errors = [_describe(e) for e in exc.errors()]
+        return _error(422, "ValidationError", "invalid request: " + "; ".join(
+            f"{e['field']}: {e['message']}" for e in errors), errors=errors)
+
+    @app.exception_handler(redis.RedisError)
+    async def _redis_down(request: Request, exc: redis.RedisError):
+        log.warning("Redis error: %s", exc)
+        return _error(503, "QueueUnavailable",
+                      f"the job queue (Redis) is not answering: {exc}; try again shortly")
+
+    @app.exception_handler(sqlalchemy.exc.OperationalError)
+    async def _db_down(request: Request, exc: sqlalchemy.exc.OperationalError):
+        log.warning("catalog error: %s", exc)
+        return _error(503, "CatalogUnavailable",
+                      "the catalog database is not answering; try again shortly")
+
+
+def _describe(err: dict) -> dict:
+    """One validation error as {field, message}: the path without FastAPI's 'body'/'query'
+    prefix, and the allowed values for a choice."""
+    loc = [str(p) for p in err.get("loc", ())]
+    where = loc[0] if loc else ""
+    if where in ("body", "query", "path", "header"):
+        loc = loc[1:]
+    field = ".".join(loc) or ("request body" if where == "body" else "request")
+    message = err.get("msg", "invalid")
+    ctx = err.get("ctx") or {}
+    if err.get("type") == "literal_error" and "expected" in ctx:
+        message = f"must be one of {ctx['expected']}"
+    if "input" in err and err.get("type") != "missing":
+        given = err["input"]
+        if isinstance(given, str | int | float | bool) or given is None:
+            message += f" (got {given!r})"
+    return {"field": field, "message": message, "in": where or None}
+
+
+def serve(settings: Settings, port: int = 8000, fd: int | None = None,
+          log_level: str = "info") -> None:
+    """Run the API with uvicorn on ``settings.host:port`` (or an inherited listening socket
+    ``fd``, which is how ``closure up`` hands over a port it has already bound)."""
+    import uvicorn
+
+    app = create_app(settings)
+    config = uvicorn.Config(app, host=settings.host, port=port, log_level=log_level,
+                            access_log=False, timeout_graceful_shutdown=5)
+    server = uvicorn.Server(config)
+    if fd is not None:
+        sock = socket.socket(fileno=fd)
+        server.run(sockets=[sock])
+    else:
+        server.run()

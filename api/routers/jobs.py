@@ -1,0 +1,73 @@
+"""/jobs: submit a discovery job, follow it, cancel it."""
+
+from __future__ import annotations
+
+from fastapi import APIRouter, Depends, Query, Response
+
+from api.deps import Settings, get_redis, get_settings, get_store, require_token
+from api.errors import ConflictError
+from api.inputs import resolve_input
+from closure.spec import JobSpec
+from closure.store import Store, fingerprint_hash, new_job_id
+from worker import queue as q
+
+router = APIRouter(tags=["jobs"], dependencies=[Depends(require_token)])
+
+
+@router.post("/jobs", status_code=202, summary="Submit a discovery job")
+def submit_job(spec: JobSpec, response: Response,
+               name: str | None = Query(None, max_length=200, description="a label for the job"),
+               settings: Settings = Depends(get_settings), store: Store = Depends(get_store),
+               conn=Depends(get_redis)) -> dict:
+    """Validate the spec and its input file, then queue the job (202).
+
+    The input is ``input.path`` (a file under the server's data roots) or
+    ``input.dataset_id`` (from POST /datasets). An identical job (same input SHA-256 and spec
+    fingerprint) is not run twice: the answer is the existing job (200, ``reused: true``),
+    finished or still running.
+    """
+    run_spec, dataset = resolve_input(spec, store, settings.data_roots)
+    fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
+    model = store.model_by_fingerprint(fingerprint)
+    existing = None
+    if model is not None and model["job_id"]:
+        existing = store.get_job(model["job_id"], missing_ok=True)
+    existing = existing or store.find_active_job(fingerprint)
+    if existing is not None:
+        response.status_code = 200
+        return {**q.status(store, conn, existing["id"]), "reused": True}
+    job_id = new_job_id()
+    store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
+                     fingerprint=fingerprint, input_sha256=dataset["sha256"],
+                     dataset_id=dataset["id"], name=name)
+    try:
+        q.enqueue_plan(conn, job_id)
+    except Exception:
+        store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
+        raise
+    return q.status(store, conn, job_id)
+
+
+@router.get("/jobs", summary="Recent jobs")
+def list_jobs(state: str | None = Query(
+                  None, pattern="^(queued|running|succeeded|failed|canceled)$"),
+              limit: int = Query(50, ge=1, le=1000), store: Store = Depends(get_store)) -> list:
+    rows = store.list_jobs(state=state, limit=limit)
+    return [{k: r[k] for k in ("id", "name", "state", "model_id", "error", "created",
+                               "finished", "input_sha256")} for r in rows]
+
+
+@router.get("/jobs/{job_id}", summary="Job state and progress")
+def get_job(job_id: str, store: Store = Depends(get_store), conn=Depends(get_redis)) -> dict:
+    """State (queued, running, succeeded, failed, canceled), progress (phase, snapshots
+    done/total), the model id once it succeeded, and the error when it failed."""
+    return q.status(store, conn, job_id)
+
+
+@router.delete("/jobs/{job_id}", summary="Cancel a job")
+def cancel_job(job_id: str, store: Store = Depends(get_store), conn=Depends(get_redis)) -> dict:
+    """Stop a queued or running job: pending tasks never run, running ones are stopped."""
+    if not q.cancel(store, conn, job_id):
+        row = store.get_job(job_id)
+        raise ConflictError(f"job {job_id} already ended ({row['state']}); nothing to cancel")
+    return q.status(store, conn, job_id)

@@ -1,0 +1,264 @@
+"""HTTP client for a closure service, for scripts and notebooks.
+
+Example::
+
+    from closure.client import Client
+
+    with Client("http://127.0.0.1:8000", token=None) as c:
+        job = c.submit("run.nc", filter="gaussian", ratio=4, target="stress")
+        final = c.wait(job["id"], progress=lambda s: print(s["progress"]))
+        model = c.model(final["model_id"])          # catalog record + model dict + summary
+        print(model["summary"])
+        print(c.export(final["model_id"], "fortran"))
+
+``submit`` takes a full spec (a :class:`closure.spec.JobSpec` or its dict) or a file path
+plus the same options as ``closure discover``. A local path is first offered to the server
+by path (it must lie under one of the server's data roots); when the server refuses the path,
+the file is uploaded (POST /datasets) and the job submitted by dataset id. ``upload=True``
+always uploads, ``upload=False`` never does.
+
+Every 4xx/5xx answer raises :class:`ServiceError` carrying the server's message; a job that
+ends failed or canceled makes :meth:`Client.wait` raise :class:`JobFailedError`.
+A priori scores do not guarantee a stable or accurate coarse simulation: validate a model a
+posteriori before relying on it.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+
+from closure.errors import UserError
+from closure.spec import JobSpec, parse_spec
+
+DEFAULT_SERVER = "http://127.0.0.1:8000"
+TERMINAL = ("succeeded", "failed", "canceled")
+
+
+class ServiceError(UserError):
+    """The service answered with an error (``status``, ``detail``), or could not be reached
+    (``status`` None)."""
+
+    def __init__(self, message: str, status: int | None = None, detail: Any = None,
+                 kind: str | None = None):
+        super().__init__(message)
+        self.status = status
+        self.detail = detail
+        self.kind = kind
+
+
+class JobFailedError(ServiceError):
+    """A job ended failed or canceled; ``status_doc`` is its last status."""
+
+    def __init__(self, message: str, status_doc: dict):
+        super().__init__(message)
+        self.status_doc = status_doc
+
+
+def spec_from_options(path: str | os.PathLike | None = None, *, dataset_id: str | None = None,
+                      filter: str | None = None, width: float | None = None,
+                      width_units: str | None = None, ratio: int | None = None,
+                      target: str | None = None, library: str | None = None,
+                      method: str | None = None, scheme: str | None = None,
+                      test_fraction: float | None = None, resamples: int | None = None,
+                      seed: int | None = None, transfer_weight: float | None = None,
+                      variables: dict[str, str] | None = None, scalars=None,
+                      snapshots=None, periodic: bool | None = None,
+                      base: dict | None = None) -> dict:
+    """A job-spec dict from discover-style options (None leaves the spec default), on top
+    of ``base`` (e.g. a spec file's content). Validation is :func:`closure.spec.parse_spec`'s."""
+    spec: dict = {k: (dict(v) if isinstance(v, dict) else v) for k, v in (base or {}).items()}
+    inp = spec.setdefault("input", {})
+    if path is not None:
+        inp["path"] = os.fspath(path)
+        inp.pop("dataset_id", None)
+    if dataset_id is not None:
+        inp["dataset_id"] = dataset_id
+        inp.pop("path", None)
+    for key, value in (("variables", variables), ("scalars", list(scalars) if scalars else None),
+                       ("snapshots", list(snapshots) if snapshots is not None else None),
+                       ("periodic", periodic)):
+        if value is not None:
+            inp[key] = value
+    for section, key, value in (("filter", "kind", filter), ("filter", "width", width),
+                                ("filter", "width_units", width_units),
+                                ("filter", "ratio", ratio), ("fit", "method", method),
+                                ("fit", "test_fraction", test_fraction),
+                                ("fit", "resamples", resamples), ("fit", "seed", seed),
+                                ("fit", "transfer_weight", transfer_weight)):
+        if value is not None:
+            spec.setdefault(section, {})[key] = value
+    for key, value in (("target", target), ("library", library), ("scheme", scheme)):
+        if value is not None:
+            spec[key] = value
+    return spec
+
+
+class Client:
+    """A closure service at ``server`` (``token``: bearer token, default $CLOSURE_TOKEN)."""
+
+    def __init__(self, server: str = DEFAULT_SERVER, token: str | None = None,
+                 timeout: float = 60.0):
+        self.server = server.rstrip("/")
+        token = token if token is not None else os.environ.get("CLOSURE_TOKEN") or None
+        headers = {"Authorization": f"Bearer {token}"} if token else {}
+        self._http = httpx.Client(base_url=self.server, headers=headers, timeout=timeout)
+
+    def close(self) -> None:
+        self._http.close()
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    # -- plumbing
+
+    def _request(self, method: str, url: str, **kwargs) -> httpx.Response:
+        try:
+            r = self._http.request(method, url, **kwargs)
+        except httpx.TimeoutException as exc:
+            raise ServiceError(f"the closure service at {self.server} did not answer in time "
+                               f"({type(exc).__name__})") from None
+        except httpx.TransportError as exc:
+            raise ServiceError(f"cannot reach the closure service at {self.server} ({exc}); "
+                               "start one with `closure up` or pass --server URL") from None
+        if r.status_code >= 400:
+            try:
+                body = r.json()
+            except ValueError:
+                body = {"detail": r.text.strip() or r.reason_phrase}
+            detail = body.get("detail") if isinstance(body, dict) else body
+            kind = body.get("error") if isinstance(body, dict) else None
+            msg = detail if isinstance(detail, str) else str(detail)
+            raise ServiceError(f"{msg} (HTTP {r.status_code})", status=r.status_code,
+                               detail=detail, kind=kind)
+        return r
+
+    def _json(self, method: str, url: str, **kwargs) -> Any:
+        return self._request(method, url, **kwargs).json()
+
+    # -- the service
+
+    def health(self) -> dict:
+        """Redis, catalog and worker count (raises ServiceError on 503)."""
+        return self._json("GET", "/health")
+
+    def upload(self, path: str | os.PathLike, variables: dict[str, str] | None = None,
+               scalars=(), periodic: bool = True) -> dict:
+        """Upload a netCDF file; returns its dataset record (``id``, ``sha256``, grid ...)."""
+        path = Path(path)
+        if not path.is_file():
+            raise UserError(f"{path}: no such file")
+        params: dict[str, Any] = {"name": path.name, "periodic": str(bool(periodic)).lower()}
+        if variables:
+            import json
+
+            params["variables"] = json.dumps(variables)
+        if scalars:
+            params["scalars"] = ",".join(scalars)
+
+        def chunks() -> Iterator[bytes]:
+            with open(path, "rb") as fh:
+                while block := fh.read(1 << 20):
+                    yield block
+
+        return self._json("POST", "/datasets", params=params, content=chunks(), headers={
+            "Content-Type": "application/octet-stream",
+            "Content-Length": str(path.stat().st_size)})
+
+    def submit(self, spec: JobSpec | dict | str | os.PathLike, *, name: str | None = None,
+               upload: bool | None = None, **options) -> dict:
+        """Submit a job; returns its status (``id``, ``state``, ``reused`` ...).
+
+        ``spec`` is a JobSpec, a spec dict, or the path of an input file (then ``options``
+        are discover options, see :func:`spec_from_options`).
+        """
+        if isinstance(spec, JobSpec):
+            spec_dict = spec.model_dump(mode="json", exclude_none=True)
+        elif isinstance(spec, dict):
+            spec_dict = spec_from_options(base=spec, **options) if options else spec
+        else:
+            spec_dict = spec_from_options(spec, **options)
+        params = {"name": name} if name else None
+        local = spec_dict.get("input", {}).get("path")
+        if local is not None and upload is not False and (upload or Path(local).is_file()):
+            if not upload:
+                try:
+                    by_path = dict(spec_dict, input={**spec_dict["input"],
+                                                     "path": str(Path(local).resolve())})
+                    parse_spec(by_path)
+                    return self._json("POST", "/jobs", json=by_path, params=params)
+                except ServiceError as exc:
+                    if exc.status != 403:
+                        raise
+            inp = spec_dict["input"]
+            ds = self.upload(local, variables=inp.get("variables"),
+                             scalars=inp.get("scalars") or (), periodic=inp.get("periodic", True))
+            spec_dict = dict(spec_dict, input={**{k: v for k, v in inp.items() if k != "path"},
+                                               "dataset_id": ds["id"]})
+        parse_spec(spec_dict)  # the same message locally as the server would give
+        return self._json("POST", "/jobs", json=spec_dict, params=params)
+
+    def status(self, job_id: str) -> dict:
+        """State, progress (phase, snapshots_done/total), model_id, error."""
+        return self._json("GET", f"/jobs/{job_id}")
+
+    def jobs(self, state: str | None = None, limit: int = 50) -> list[dict]:
+        params = {"limit": limit, **({"state": state} if state else {})}
+        return self._json("GET", "/jobs", params=params)
+
+    def cancel(self, job_id: str) -> dict:
+        return self._json("DELETE", f"/jobs/{job_id}")
+
+    def wait(self, job_id: str, progress: Callable[[dict], None] | None = None,
+             timeout: float | None = None, poll: float = 0.5) -> dict:
+        """Poll until the job ends; return its final status if it succeeded, raise
+        JobFailedError (with the server's error) if it failed or was canceled and
+        ServiceError after ``timeout`` seconds."""
+        deadline = None if timeout is None else time.monotonic() + timeout
+        while True:
+            doc = self.status(job_id)
+            if progress is not None:
+                progress(doc)
+            if doc["state"] in TERMINAL:
+                if doc["state"] != "succeeded":
+                    raise JobFailedError(
+                        f"job {job_id} {doc['state']}: {doc.get('error') or 'no reason given'}",
+                        doc)
+                return doc
+            if deadline is not None and time.monotonic() > deadline:
+                raise ServiceError(f"job {job_id} still {doc['state']} after {timeout:g} s")
+            time.sleep(poll)
+
+    def models(self, dataset: str | None = None, target: str | None = None,
+               filter: str | None = None, min_r2: float | None = None,
+               limit: int = 100) -> list[dict]:
+        """Catalog query: models by dataset (id or SHA-256), target, filter kind, least R^2."""
+        params = {k: v for k, v in (("dataset", dataset), ("target", target),
+                                    ("filter", filter), ("min_r2", min_r2),
+                                    ("limit", limit)) if v is not None}
+        return self._json("GET", "/models", params=params)
+
+    def model(self, model_id: str) -> dict:
+        """A model's catalog record with ``model`` (its dict) and ``summary`` (text)."""
+        return self._json("GET", f"/models/{model_id}")
+
+    def closure_model(self, model_id: str):
+        """The model as a :class:`closure.model.ClosureModel`."""
+        from closure.model import ClosureModel
+
+        return ClosureModel.from_dict(self.model(model_id)["model"])
+
+    def export(self, model_id: str, lang: str = "json") -> str:
+        """The model as source text: json, python, c or fortran."""
+        return self._request("GET", f"/models/{model_id}/export", params={"lang": lang}).text
+
+    def dataset(self, dataset_id: str) -> dict:
+        return self._json("GET", f"/datasets/{dataset_id}")

@@ -1,0 +1,52 @@
+"""Fixtures shared by the service tests (store, Redis, stack); imported by those test files
+(``from service_support import store``).
+
+Not a conftest.py: other test files do not need them, and importing them explicitly keeps
+the service's fixtures next to the tests that use them.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+
+import pytest
+
+POSTGRES_URL = os.environ.get("CLOSURE_TEST_POSTGRES_URL",
+                              "postgresql+psycopg://postgres@127.0.0.1:5432/test")
+
+
+def postgres_reason() -> str | None:
+    """None when the test PostgreSQL answers, else why it is skipped."""
+    try:
+        import sqlalchemy as sa
+
+        engine = sa.create_engine(POSTGRES_URL, connect_args={"connect_timeout": 3})
+        with engine.connect() as conn:
+            conn.execute(sa.text("SELECT 1"))
+        engine.dispose()
+    except Exception as exc:  # noqa: BLE001 - any failure means: skip with the reason
+        return f"no PostgreSQL at {POSTGRES_URL} ({type(exc).__name__}: {exc})"[:300]
+    return None
+
+
+@pytest.fixture(params=["sqlite", pytest.param("postgres", marks=pytest.mark.postgres)])
+def store(request, tmp_path):
+    """A Store on SQLite, and on PostgreSQL in a schema of its own (dropped after)."""
+    from closure.store import Store
+
+    if request.param == "sqlite":
+        st = Store(tmp_path / "store")
+        yield st
+        st.close()
+        return
+    reason = postgres_reason()
+    if reason:
+        pytest.skip(reason)
+    schema = f"closure_test_{uuid.uuid4().hex[:12]}"
+    st = Store(tmp_path / "store", POSTGRES_URL, schema=schema)
+    try:
+        yield st
+    finally:
+        st.drop_schema()
+        st.close()

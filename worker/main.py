@@ -1,0 +1,81 @@
+"""The worker process: an rq worker on the closure queue, JSON serializer, scheduler on.
+
+Lost work is found quickly: the started-task registry entry of a running task lives only
+``monitoring_interval + abandon_grace`` seconds past the last heartbeat (rq's default is 60 s
+past), and workers clean the registry every ``maintenance_interval`` seconds, so a task whose
+worker and work-horse were both killed is re-queued within about
+``monitoring_interval + abandon_grace + maintenance_interval`` seconds. A killed work-horse
+alone is seen at once by its worker and retried.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import os
+import socket
+import time
+
+import redis
+from rq import Worker
+from rq.serializers import JSONSerializer
+
+from worker import queue as q
+from worker import tasks
+
+log = logging.getLogger("closure.worker")
+
+
+class ClosureWorker(Worker):
+    """rq Worker whose running-task heartbeats expire after a short grace period."""
+
+    abandon_grace_s: int = 10
+    stop_asked: bool = False
+
+    def request_stop(self, signum, frame):
+        self.stop_asked = True
+        super().request_stop(signum, frame)
+
+    def get_heartbeat_ttl(self, job, working_time: float = 0.0) -> int:
+        interval = self.job_monitoring_interval
+        if job.timeout and job.timeout > 0:
+            interval = min(job.timeout - working_time, interval)
+        return int(max(interval, 1)) + self.abandon_grace_s
+
+
+def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
+               db_schema: str | None = None, *, name: str | None = None, burst: bool = False,
+               monitoring_interval: int = 5, abandon_grace: int = 10,
+               maintenance_interval: int = 10, with_scheduler: bool = True,
+               log_level: str = "INFO") -> int:
+    """Run one worker until SIGTERM/SIGINT (or, with ``burst``, until the queue is empty).
+
+    A Redis outage does not end the process: the worker reconnects with backoff and a
+    worker that stopped on a lost connection is started again.
+    """
+    logging.basicConfig(level=log_level, format="%(asctime)s %(name)s %(message)s")
+    tasks.configure(store_root, db_url, db_schema)
+    tasks.store()  # fail fast on a bad catalog URL, create the tables
+    tasks._store = None  # each work-horse opens its own connections after the fork
+    with contextlib.suppress(ImportError):
+        import closure.pipeline  # noqa: F401  (loaded once here, shared by every forked horse)
+    base = name or f"closure-{socket.gethostname()}-{os.getpid()}"
+    attempt = 0
+    while True:
+        conn = q.connect(redis_url)
+        worker = ClosureWorker(
+            [q.QUEUE_NAME], connection=conn, serializer=JSONSerializer,
+            name=f"{base}-{attempt}" if attempt else base,
+            job_monitoring_interval=monitoring_interval,
+            maintenance_interval=maintenance_interval,
+            # an idle worker wakes up every worker_ttl - 15 s: that is the cleaning cadence
+            worker_ttl=max(16, maintenance_interval + 15))
+        worker.abandon_grace_s = abandon_grace
+        try:
+            worker.work(burst=burst, with_scheduler=with_scheduler, logging_level=log_level)
+        except (redis.ConnectionError, redis.TimeoutError) as exc:
+            log.warning("lost Redis at %s (%s); reconnecting", redis_url, exc)
+        if burst or worker.stop_asked:
+            return 0
+        attempt += 1
+        time.sleep(min(5.0, 0.5 * attempt))

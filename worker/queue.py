@@ -1,0 +1,236 @@
+"""The queue side of a job: Redis connections, submission, live progress, status, cancellation.
+
+One user-visible job id (``j-...``) fans out into rq tasks with derived ids::
+
+    <job>-plan           plan the job (input SHA-256, snapshots, split); enqueues the rest
+    <job>-map-<index>    one per snapshot: SufficientStats into the store
+    <job>-reduce         waits for every map (allow_failure) and fits the model
+
+The catalog row (closure.store) is the record of the job's state; Redis holds the live
+progress in ``closure:job:<job>`` (a hash), the set of finished snapshots and map errors.
+Everything on the queue is JSON (rq's JSONSerializer), never pickle.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+
+import redis
+from redis.backoff import ExponentialBackoff
+from redis.retry import Retry as RedisRetry
+from rq import Callback, Queue, Retry
+from rq.command import send_stop_job_command
+from rq.exceptions import InvalidJobOperation, NoSuchJobError
+from rq.job import Job, JobStatus
+from rq.serializers import JSONSerializer
+
+QUEUE_NAME = "closure"
+KEY_PREFIX = "closure:job:"
+#: live-progress keys live on this long after a job ends (the catalog keeps the record)
+PROGRESS_TTL_S = 7 * 24 * 3600
+
+#: per-task wall-clock limits, seconds (env overrides for big inputs)
+PLAN_TIMEOUT_S = int(os.environ.get("CLOSURE_PLAN_TIMEOUT", 900))
+MAP_TIMEOUT_S = int(os.environ.get("CLOSURE_MAP_TIMEOUT", 3600))
+REDUCE_TIMEOUT_S = int(os.environ.get("CLOSURE_REDUCE_TIMEOUT", 3600))
+#: attempts after the first; a killed task is re-run this many times
+TASK_RETRIES = int(os.environ.get("CLOSURE_TASK_RETRIES", 3))
+
+
+def retry_policy() -> Retry:
+    """Retry for every task. Intervals (seconds, from ``CLOSURE_RETRY_INTERVAL``, e.g. "1,5")
+    need a worker running the rq scheduler; the default is an immediate re-run, which does
+    not wait on whichever worker holds the scheduler lock."""
+    spec = os.environ.get("CLOSURE_RETRY_INTERVAL", "").strip()
+    intervals = [int(x) for x in spec.split(",") if x.strip()] if spec else 0
+    return Retry(max=TASK_RETRIES, interval=intervals or 0)
+
+
+def connect(url: str, *, retry_seconds: float = 30.0) -> redis.Redis:
+    """A Redis client for ``url`` (redis://, rediss:// or unix://) that rides out a server
+    restart of up to about ``retry_seconds`` by reconnecting with backoff."""
+    retries = max(1, int(retry_seconds / 0.5))
+    retry = RedisRetry(ExponentialBackoff(cap=0.5, base=0.05), retries)
+    return redis.Redis.from_url(
+        url, retry=retry, socket_connect_timeout=2, health_check_interval=10,
+        retry_on_error=[redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError])
+
+
+def get_queue(conn: redis.Redis) -> Queue:
+    return Queue(QUEUE_NAME, connection=conn, serializer=JSONSerializer)
+
+
+def fetch(conn: redis.Redis, rq_id: str) -> Job | None:
+    try:
+        return Job.fetch(rq_id, connection=conn, serializer=JSONSerializer)
+    except NoSuchJobError:
+        return None
+
+
+# --------------------------------------------------------------------------- task ids
+
+def plan_id(job_id: str) -> str:
+    return f"{job_id}-plan"
+
+
+def map_id(job_id: str, index: int) -> str:
+    return f"{job_id}-map-{int(index)}"
+
+
+def reduce_id(job_id: str) -> str:
+    return f"{job_id}-reduce"
+
+
+def progress_key(job_id: str) -> str:
+    return KEY_PREFIX + job_id
+
+
+def done_key(job_id: str) -> str:
+    return KEY_PREFIX + job_id + ":done"
+
+
+def errors_key(job_id: str) -> str:
+    return KEY_PREFIX + job_id + ":errors"
+
+
+# --------------------------------------------------------------------------- progress
+
+def set_progress(conn: redis.Redis, job_id: str, **fields) -> None:
+    """Set live-progress fields (phase, snapshots_total, phase_done, phase_total, ...)."""
+    data = {k: (json.dumps(v) if isinstance(v, list | dict) else str(v))
+            for k, v in fields.items() if v is not None}
+    if data:
+        with conn.pipeline() as p:
+            p.hset(progress_key(job_id), mapping=data)
+            p.expire(progress_key(job_id), PROGRESS_TTL_S)
+            p.execute()
+
+
+def read_progress(conn: redis.Redis, job_id: str) -> dict:
+    """Live progress of a job: phase, snapshots done/total, and the current phase's counter."""
+    with conn.pipeline() as p:
+        p.hgetall(progress_key(job_id))
+        p.scard(done_key(job_id))
+        raw, n_done = p.execute()
+    h = {k.decode(): v.decode() for k, v in raw.items()}
+    return {
+        "phase": h.get("phase", "queued"),
+        "snapshots_done": int(n_done),
+        "snapshots_total": int(h["snapshots_total"]) if "snapshots_total" in h else None,
+        "phase_done": int(h["phase_done"]) if "phase_done" in h else None,
+        "phase_total": int(h["phase_total"]) if "phase_total" in h else None,
+    }
+
+
+def is_canceled(conn: redis.Redis, job_id: str) -> bool:
+    return conn.hget(progress_key(job_id), "canceled") == b"1"
+
+
+def snapshot_indices(conn: redis.Redis, job_id: str) -> list[int] | None:
+    raw = conn.hget(progress_key(job_id), "indices")
+    return json.loads(raw) if raw else None
+
+
+# --------------------------------------------------------------------------- submit
+
+def enqueue_plan(conn: redis.Redis, job_id: str) -> None:
+    """Put a job's first task on the queue (the plan task enqueues the rest)."""
+    set_progress(conn, job_id, phase="queued", submitted=time.time())
+    get_queue(conn).enqueue_call(
+        "worker.tasks.plan_task", args=(job_id,), job_id=plan_id(job_id),
+        timeout=PLAN_TIMEOUT_S, retry=retry_policy(), result_ttl=PROGRESS_TTL_S,
+        failure_ttl=PROGRESS_TTL_S, description=f"plan {job_id}",
+        on_failure=Callback("worker.tasks.on_task_failure"))
+
+
+# --------------------------------------------------------------------------- status
+
+def reconcile(store, conn: redis.Redis, row: dict) -> dict:
+    """Bring an active catalog row in line with the queue: a plan or reduce task that failed
+    for good (retries used up, worker lost) fails the job with an error the user can act on.
+    Returns the (possibly updated) row."""
+    if row["state"] not in ("queued", "running"):
+        return row
+    for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting")):
+        job = fetch(conn, rq_id)
+        if job is None:
+            if rq_id.endswith("-plan") and time.time() - row["created"] > 30 \
+                    and not conn.exists(progress_key(row["id"])):
+                message = ("the queue no longer knows this job (Redis lost its data, e.g. "
+                           "restarted without appendonly persistence); submit it again")
+                store.update_job(row["id"], state="failed", error=message, only_if_active=True)
+                return store.get_job(row["id"])
+            continue
+        status = job.get_status(refresh=False)
+        if status in (JobStatus.FAILED, JobStatus.STOPPED):
+            message = f"{what} failed after {TASK_RETRIES + 1} attempts: {last_error(job)}"
+            store.update_job(row["id"], state="failed", error=message, only_if_active=True)
+            return store.get_job(row["id"])
+    return row
+
+
+def last_error(job: Job) -> str:
+    """The last line of a failed task's traceback (the exception and its message)."""
+    text = ""
+    try:
+        result = job.latest_result()
+        if result is not None and result.exc_string:
+            text = result.exc_string
+    except Exception:  # noqa: BLE001 - a missing result is reported as such
+        text = ""
+    text = text or (job.exc_info or "")
+    lines = [ln for ln in str(text).strip().splitlines() if ln.strip()]
+    return lines[-1].strip() if lines else "no error recorded (the worker was lost)"
+
+
+def status(store, conn: redis.Redis, job_id: str) -> dict:
+    """The user-facing status of a job: catalog state plus live progress."""
+    row = store.get_job(job_id)
+    row = reconcile(store, conn, row)
+    progress = read_progress(conn, job_id)
+    if row["state"] == "succeeded":
+        progress["phase"] = "done"
+    elif row["state"] in ("failed", "canceled"):
+        progress["phase"] = row["state"]
+    return {
+        "id": row["id"], "name": row["name"], "state": row["state"], "progress": progress,
+        "model_id": row["model_id"], "error": row["error"], "reused": bool(row["reused"]),
+        "input_sha256": row["input_sha256"], "dataset_id": row["dataset_id"],
+        "created": row["created"], "started": row["started"], "finished": row["finished"],
+        "spec": row["spec"],
+    }
+
+
+# --------------------------------------------------------------------------- cancel
+
+def cancel(store, conn: redis.Redis, job_id: str) -> bool:
+    """Cancel a queued or running job: flag it (tasks check the flag and return), cancel the
+    tasks still waiting, stop the ones running, and mark the job canceled. Returns False when
+    the job had already ended."""
+    row = store.get_job(job_id)
+    if row["state"] not in ("queued", "running"):
+        return False
+    set_progress(conn, job_id, canceled=1)
+    store.update_job(job_id, state="canceled", error="canceled on request", only_if_active=True)
+    stop_tasks(conn, job_id)
+    return True
+
+
+def stop_tasks(conn: redis.Redis, job_id: str) -> None:
+    """Cancel every pending task of a job and stop the running ones."""
+    ids = [plan_id(job_id), reduce_id(job_id)]
+    ids += [map_id(job_id, i) for i in snapshot_indices(conn, job_id) or []]
+    for rq_id in ids:
+        job = fetch(conn, rq_id)
+        if job is None:
+            continue
+        state = job.get_status(refresh=False)
+        try:
+            if state == JobStatus.STARTED:
+                send_stop_job_command(conn, rq_id, serializer=JSONSerializer)
+            elif state in (JobStatus.QUEUED, JobStatus.DEFERRED, JobStatus.SCHEDULED):
+                job.cancel()
+        except InvalidJobOperation:
+            pass  # it finished or was canceled in the meantime

@@ -1,0 +1,235 @@
+"""rq tasks: thin glue that moves inputs and outputs of closure.pipeline through the store.
+
+Arguments and return values are plain JSON (job ids, snapshot indices, small dicts); arrays go
+through the store's files. Every task is safe to run twice: a map task overwrites its stats
+file atomically, a reduce task that finds its model already stored just reports it.
+Errors a user can fix (closure.errors.UserError) fail the job at once with their message;
+anything else raises, so rq retries the task.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+
+from rq import get_current_job
+
+from closure.errors import UserError
+from closure.spec import parse_spec
+from closure.store import (
+    Store,
+    fingerprint_hash,
+    read_json,
+    save_stats_atomic,
+    write_json_atomic,
+)
+from worker import queue as q
+
+_config: dict = {}
+_store: Store | None = None
+
+
+def configure(store_root: str, db_url: str | None = None, db_schema: str | None = None) -> None:
+    """Set where tasks find the store (the worker's main process calls this before forking)."""
+    global _store
+    _config.update(store_root=str(store_root), db_url=db_url, db_schema=db_schema)
+    _store = None
+
+
+def store() -> Store:
+    global _store
+    if _store is None:
+        root = _config.get("store_root") or os.environ.get("CLOSURE_STORE")
+        if not root:
+            raise RuntimeError("worker not configured: set CLOSURE_STORE or call configure()")
+        _store = Store(root, _config.get("db_url") or os.environ.get("CLOSURE_DB_URL"),
+                       _config.get("db_schema") or os.environ.get("CLOSURE_DB_SCHEMA"))
+    return _store
+
+
+def _conn():
+    job = get_current_job()
+    if job is None:
+        raise RuntimeError("closure tasks run inside an rq worker")
+    return job.connection
+
+
+def plan_indices(plan: dict) -> list[int]:
+    """Snapshot indices a plan asks to map (every snapshot used for fitting or scoring)."""
+    for key in ("snapshots", "indices", "snapshot_indices"):
+        if key in plan:
+            return [int(i) for i in plan[key]]
+    raise KeyError("plan has no list of snapshots")
+
+
+def _fail(conn, job_id: str, message: str) -> dict:
+    store().update_job(job_id, state="failed", error=message, only_if_active=True)
+    q.set_progress(conn, job_id, phase="failed")
+    return {"job": job_id, "failed": message}
+
+
+# --------------------------------------------------------------------------- tasks
+
+def plan_task(job_id: str) -> dict:
+    """Plan the job, then enqueue one map task per snapshot and the reduce task after them."""
+    conn = _conn()
+    if q.is_canceled(conn, job_id):
+        return {"job": job_id, "canceled": True}
+    st = store()
+    row = st.get_job(job_id)
+    if row["state"] not in ("queued", "running"):
+        return {"job": job_id, "state": row["state"]}
+    spec = parse_spec(row["spec"])
+    st.update_job(job_id, state="running", only_if_active=True)
+    q.set_progress(conn, job_id, phase="plan")
+    from closure import pipeline
+
+    try:
+        plan = pipeline.plan(spec)
+    except UserError as exc:
+        return _fail(conn, job_id, str(exc))
+
+    sha = plan.get("sha256") or row["input_sha256"]
+    fingerprint = fingerprint_hash(spec, sha)
+    if fingerprint != row["fingerprint"] or sha != row["input_sha256"]:
+        # the file changed between submission and planning: the plan's hash is the truth
+        st.update_job(job_id, fingerprint=fingerprint, input_sha256=sha)
+    existing = st.model_by_fingerprint(fingerprint)
+    if existing is not None:
+        st.update_job(job_id, state="succeeded", model_id=existing["id"], reused=True,
+                      only_if_active=True)
+        q.set_progress(conn, job_id, phase="done")
+        return {"job": job_id, "model_id": existing["id"], "reused": True}
+
+    work = st.job_dir(job_id)
+    write_json_atomic(work / "plan.json", plan)
+    write_json_atomic(work / "spec.json", spec.model_dump(mode="json"))
+    indices = plan_indices(plan)
+    q.set_progress(conn, job_id, phase="map", snapshots_total=len(indices), indices=indices)
+
+    queue = q.get_queue(conn)
+    parts = []
+    for i in indices:
+        parts.append(queue.enqueue_call(
+            "worker.tasks.map_task", args=(job_id, i), job_id=q.map_id(job_id, i),
+            timeout=q.MAP_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
+            failure_ttl=q.PROGRESS_TTL_S, description=f"map {job_id} snapshot {i}"))
+    from rq.job import Dependency
+
+    queue.enqueue_call(
+        "worker.tasks.reduce_task", args=(job_id,), job_id=q.reduce_id(job_id),
+        depends_on=Dependency(jobs=parts, allow_failure=True),
+        timeout=q.REDUCE_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
+        failure_ttl=q.PROGRESS_TTL_S, description=f"reduce {job_id}",
+        on_failure=_failure_callback())
+    if q.is_canceled(conn, job_id):  # canceled while we were fanning out
+        q.stop_tasks(conn, job_id)
+    return {"job": job_id, "snapshots": len(indices)}
+
+
+def map_task(job_id: str, index: int) -> dict:
+    """SufficientStats of one snapshot, saved atomically to the job's stats folder."""
+    conn = _conn()
+    if q.is_canceled(conn, job_id):
+        return {"job": job_id, "index": index, "canceled": True}
+    st = store()
+    work = st.job_dir(job_id)
+    spec = parse_spec(read_json(work / "spec.json"))
+    plan = read_json(work / "plan.json")
+    from closure import pipeline
+
+    try:
+        stats = pipeline.map_snapshot(spec, plan, int(index))
+    except UserError as exc:
+        conn.hset(q.errors_key(job_id), str(index), str(exc))
+        conn.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
+        return {"job": job_id, "index": index, "error": str(exc)}
+    save_stats_atomic(stats, st.stats_path(job_id, index))
+    with conn.pipeline() as p:
+        p.sadd(q.done_key(job_id), int(index))
+        p.expire(q.done_key(job_id), q.PROGRESS_TTL_S)
+        p.execute()
+    return {"job": job_id, "index": index}
+
+
+def reduce_task(job_id: str) -> dict:
+    """Load every snapshot's statistics, fit and score the model, store it, end the job."""
+    conn = _conn()
+    if q.is_canceled(conn, job_id):
+        return {"job": job_id, "canceled": True}
+    st = store()
+    row = st.get_job(job_id)
+    existing = st.model_by_fingerprint(row["fingerprint"])
+    if existing is not None:  # a re-run after the model was stored
+        st.update_job(job_id, state="succeeded", model_id=existing["id"], only_if_active=True)
+        q.set_progress(conn, job_id, phase="done")
+        return {"job": job_id, "model_id": existing["id"]}
+    if row["state"] not in ("queued", "running"):
+        return {"job": job_id, "state": row["state"]}
+
+    work = st.job_dir(job_id)
+    spec = parse_spec(read_json(work / "spec.json"))
+    plan = read_json(work / "plan.json")
+    indices = plan_indices(plan)
+    missing = [i for i in indices if not st.stats_path(job_id, i).exists()]
+    if missing:
+        return _fail(conn, job_id, _missing_message(conn, job_id, missing))
+
+    from closure import pipeline
+    from closure.stats import SufficientStats
+
+    stats = {i: SufficientStats.load(st.stats_path(job_id, i)) for i in indices}
+
+    def progress(phase: str, done: int, total: int) -> None:
+        q.set_progress(conn, job_id, phase=phase, phase_done=int(done), phase_total=int(total))
+
+    q.set_progress(conn, job_id, phase="reduce")
+    try:
+        model = pipeline.reduce(spec, plan, stats, progress=progress)
+    except UserError as exc:
+        return _fail(conn, job_id, str(exc))
+    model_row = st.add_model(
+        model=model, fingerprint=row["fingerprint"], dataset_sha256=row["input_sha256"],
+        spec=spec, plan=plan, job_id=job_id, stats_dir=work / "stats", name=row["name"])
+    st.update_job(job_id, state="succeeded", model_id=model_row["id"], only_if_active=True)
+    q.set_progress(conn, job_id, phase="done")
+    shutil.rmtree(work, ignore_errors=True)
+    return {"job": job_id, "model_id": model_row["id"]}
+
+
+def _missing_message(conn, job_id: str, missing: list[int]) -> str:
+    errors = {k.decode(): v.decode() for k, v in conn.hgetall(q.errors_key(job_id)).items()}
+    parts = []
+    for i in missing[:5]:
+        if str(i) in errors:
+            parts.append(f"snapshot {i}: {errors[str(i)]}")
+        else:
+            job = q.fetch(conn, q.map_id(job_id, i))
+            why = q.last_error(job) if job is not None else "its task was lost"
+            parts.append(f"snapshot {i}: failed after {q.TASK_RETRIES + 1} attempts: {why}")
+    more = f" (and {len(missing) - 5} more)" if len(missing) > 5 else ""
+    return "; ".join(parts) + more
+
+
+# --------------------------------------------------------------------------- callbacks
+
+def _failure_callback():
+    from rq import Callback
+
+    return Callback("worker.tasks.on_task_failure")
+
+
+def on_task_failure(job, connection, exc_type=None, exc_value=None, tb=None) -> None:
+    """rq failure callback of plan and reduce tasks: when no retry is left, fail the job with
+    the error (the status endpoint also reconciles failures rq records without a callback,
+    such as a killed work-horse on its last attempt)."""
+    if job.retries_left:
+        return
+    job_id = job.id.rsplit("-", 1)[0]
+    message = f"{exc_type.__name__ if exc_type else 'error'}: {exc_value}"
+    if isinstance(exc_value, UserError):
+        message = str(exc_value)
+    try:
+        store().update_job(job_id, state="failed", error=message, only_if_active=True)
+    finally:
+        q.set_progress(connection, job_id, phase="failed")
