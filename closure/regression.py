@@ -127,32 +127,45 @@ class Problem:
         return self.gram / np.outer(s, s), self.xy / (s * sy), self.yy / sy**2
 
 
+#: Terms whose standardised Gram has an eigenvalue below this fraction of the largest are
+#: treated as exactly dependent on the data (round-off level, not mere ill-conditioning).
+DEPENDENT = 1e-10
+
+
 def least_squares(problem: Problem, support: np.ndarray | None = None) -> np.ndarray:
     """Least-squares coefficients on ``support`` (bool (p,), default all active), zero off it.
 
-    Solved on the standardised normal equations by Cholesky; a singular or nearly singular
-    block (duplicated terms) falls back to the minimum-norm solution.
+    Solved on the standardised normal equations by Cholesky. When terms of the support are
+    exactly dependent on this data (an identity such as A A^T = S S - S R + R S - R R, or a
+    duplicated term) the solution is not unique: terms taking part in a dependency are then
+    dropped one at a time, the one with the smallest minimum-norm standardised coefficient
+    first, until the rest are independent (the collinearity diagnostics name them).
     """
     support = problem.active if support is None else np.asarray(support, bool) & problem.active
     coef = np.zeros(problem.n_terms)
-    idx = np.flatnonzero(support)
-    if idx.size == 0:
-        return coef
-    A = problem.gram[np.ix_(idx, idx)]
-    d = np.sqrt(np.diag(A))
-    A = A / np.outer(d, d)
-    r = problem.xy[idx] / d
-    try:
-        with _warnings.catch_warnings():
-            _warnings.simplefilter("error", scipy.linalg.LinAlgWarning)
-            c = scipy.linalg.solve(A, r, assume_a="pos")
-        if np.linalg.cond(A) > 1e12:
-            raise np.linalg.LinAlgError
-    except (np.linalg.LinAlgError, scipy.linalg.LinAlgWarning):
+    idx = list(np.flatnonzero(support))
+    while idx:
+        A = problem.gram[np.ix_(idx, idx)]
+        d = np.sqrt(np.diag(A))
+        A = A / np.outer(d, d)
+        r = problem.xy[idx] / d
         w, V = np.linalg.eigh(A)
-        keep = w > 1e-12 * w.max()
+        null = w <= DEPENDENT * w.max()
+        if not null.any():
+            try:
+                c = scipy.linalg.solve(A, r, assume_a="pos")
+            except np.linalg.LinAlgError:
+                c = V @ ((V.T @ r) / w)
+            coef[idx] = c / d
+            return coef
+        keep = ~null
         c = V[:, keep] @ ((V[:, keep].T @ r) / w[keep])
-    coef[idx] = c / d
+        taking_part = np.linalg.norm(V[:, null], axis=1) > 1e-6
+        candidates = np.flatnonzero(taking_part)
+        # smallest |coefficient| first; among equals (to round-off) the later term goes
+        size = np.abs(c[candidates])
+        ties = candidates[size <= size.min() * (1 + 1e-8) + 1e-300]
+        idx.pop(int(ties[-1]))
     return coef
 
 

@@ -128,13 +128,13 @@ def test_collinearity_warning_names_both_terms():
     assert [(p[0], p[1]) for p in diag.pairs] == [("grad", "copy")]
     assert any("grad and copy" in w for w in diag.warnings)
     assert diag.condition_number > 1e8
-    # an exact duplicate: infinite condition number, still fitted (minimum norm)
+    # an exact duplicate: infinite condition number; the later copy is dropped from the fit
     X2 = np.stack([a, b, a], axis=1)
     stats2 = SufficientStats.from_design(X2[None], (a + b)[None], None, ("p", "q", "p2"))
     P2 = Problem.from_stats(stats2)
     d2 = collinearity(P2)
     assert any("p and p2" in w for w in d2.warnings)
-    np.testing.assert_allclose(least_squares(P2), [0.5, 1.0, 0.5], atol=1e-8)
+    np.testing.assert_allclose(least_squares(P2), [1.0, 1.0, 0.0], atol=1e-8)
 
 
 def test_correlation_matrix_from_statistics_equals_numpy_corrcoef():
@@ -266,3 +266,26 @@ def test_one_training_snapshot_warns_and_still_fits():
 def test_unknown_method_is_a_clear_error():
     with pytest.raises(OptionError, match="choose one of threshold, lasso, ard"):
         fit_closure(_snapshot_stats(2), [0, 1], "magic")
+
+
+def test_exactly_dependent_terms_resolve_to_the_sparse_solution():
+    # the identity A A^T = S S - (S R - R S) - R R with S, R the symmetric and antisymmetric
+    # parts of A (algebra): a target A A^T is fitted by the one term, not spread over four
+    rng = np.random.default_rng(7)
+    A = rng.normal(size=(400, 2, 2))
+    S = 0.5 * (A + A.transpose(0, 2, 1))
+    R = 0.5 * (A - A.transpose(0, 2, 1))
+    tensors = {"gradient": A @ A.transpose(0, 2, 1), "ss": S @ S, "sr": S @ R - R @ S,
+               "rr": R @ R, "s": S}
+    keys = [(0, 0), (0, 1), (1, 1)]
+    X = np.stack([np.stack([t[:, i, j] for t in tensors.values()], axis=1) for i, j in keys])
+    y = np.stack([tensors["gradient"][:, i, j] for i, j in keys])
+    y = y + 1e-3 * rng.normal(size=y.shape)
+    stats = SufficientStats.from_design(X, y, [1.0, 2.0, 1.0], list(tensors))
+    P = Problem.from_stats(stats)
+    assert collinearity(P).condition_number > 1e12
+    path = threshold_path(P)
+    final = path.coefficients[path.n_terms == 1][0]
+    np.testing.assert_allclose(final, [1.0, 0, 0, 0, 0], atol=1e-3)
+    coef = least_squares(P)
+    assert coef[0] == pytest.approx(1.0, abs=1e-3) and np.count_nonzero(coef[1:4]) <= 2

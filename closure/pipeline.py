@@ -1,0 +1,402 @@
+"""The discovery job as pure functions: plan, map one snapshot, reduce, or all in one process.
+
+    plan(spec)                      -> dict (JSON: input hash, snapshots, train/test split, grids)
+    map_snapshot(spec, plan, i)     -> SufficientStats of snapshot i
+    reduce(spec, plan, stats)       -> ClosureModel (fit, selection, scores, provenance)
+    discover(spec)                  -> ClosureModel (plan + every map + reduce, in process)
+
+Only plain types cross between them (the plan is JSON, statistics save losslessly), so a queue
+can run each map on any worker. The reduction sums statistics in sorted snapshot order, so a
+queued run gives the same model as an in-process one to the last bit of the fit's input.
+
+Train/test split: snapshots are ordered in time; the last ``fit.test_fraction`` of them (at
+least one) are held out for scoring and never seen by the fit or its model selection.
+"""
+
+from __future__ import annotations
+
+import platform
+from collections.abc import Callable, Mapping
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+
+from closure.derivatives import check_scheme
+from closure.errors import InputFileError, OptionError, UserError
+from closure.filters import make_coarse_graining
+from closure.grid import Grid
+from closure.regression import FitResult, Problem, fit_closure, least_squares
+from closure.scores import (
+    TransferContext,
+    TransferSums,
+    prediction_scores,
+    transfer_names,
+    transfer_scores,
+)
+from closure.spec import JobSpec
+from closure.stats import SufficientStats
+
+PLAN_VERSION = 1
+Progress = Callable[[str, int, int], None]
+
+#: The reference closure scored beside every model, per target kind (a preset term name).
+BASELINE_TERMS = {"stress": "smagorinsky", "force": "div_smagorinsky",
+                  "vorticity": "curl_div_smagorinsky", "flux": "eddy_diffusivity"}
+
+A_PRIORI_CAVEAT = ("A priori skill does not guarantee a stable or accurate coarse simulation: "
+                   "validate the model a posteriori (closure les) before relying on it.")
+
+
+def _no_progress(phase: str, done: int, total: int) -> None:
+    pass
+
+
+# ---------------------------------------------------------------------- shared pieces
+def _input_path(spec: JobSpec) -> Path:
+    if spec.input.path is None:
+        raise UserError("input.dataset_id names an uploaded dataset, which only the service "
+                        "resolves: give input.path")
+    return Path(spec.input.path)
+
+
+def _scalars(spec: JobSpec) -> tuple[str, ...]:
+    """Scalars to read: the spec's, and the flux target's own."""
+    names = list(spec.input.scalars)
+    if spec.target.startswith("flux:"):
+        names.append(spec.target.split(":", 1)[1])
+    return tuple(dict.fromkeys(names))
+
+
+def _open(spec: JobSpec):
+    from closure.io import open_fields
+
+    return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
+                       spec.input.periodic)
+
+
+def _coarse_graining(spec: JobSpec, grid: Grid):
+    f = spec.filter
+    return make_coarse_graining(f.kind, grid, f.ratio, f.width, f.width_units)
+
+
+@lru_cache(maxsize=16)
+def _library_cached(name: str, target: str, dims: tuple[str, ...], scalars: tuple[str, ...],
+                    stamp: tuple):
+    from closure.library import make_library
+
+    return make_library(name, target, dims, scalars)
+
+
+def _library(spec: JobSpec, dims: tuple[str, ...]):
+    name = spec.library
+    stamp: tuple = ()
+    p = Path(name)
+    if p.suffix and p.exists():  # a terms file: re-read it when it changes
+        st = p.stat()
+        stamp = (str(p.resolve()), st.st_size, st.st_mtime_ns)
+    return _library_cached(name, spec.target, tuple(dims), _scalars(spec), stamp)
+
+
+def _blocks(spec: JobSpec, dims) -> tuple[str, ...]:
+    """Transfer statistics to gather: all transfers when the fit is transfer-weighted."""
+    return transfer_names(spec.target, tuple(dims)) if spec.fit.transfer_weight > 0 else ()
+
+
+def _stamp(path: Path) -> dict:
+    st = path.stat()
+    return {"size": int(st.st_size), "mtime_ns": int(st.st_mtime_ns)}
+
+
+# ---------------------------------------------------------------------- plan
+def plan(spec: JobSpec) -> dict:
+    """Resolve the input and everything the maps and the reduce need (plain JSON types).
+
+    Checks the file, variables, snapshot selection, filter, ratio, scheme and library against
+    the data now, so a bad option fails before any work is queued.
+    """
+    from closure.io import sha256_file
+
+    path = _input_path(spec)
+    with _open(spec) as src:
+        grid = src.grid
+        n = src.n_snapshots
+        times = None if src.times is None else [float(t) for t in src.times]
+        velocity = list(src.velocity)
+    chosen = list(range(n)) if spec.input.snapshots is None else list(spec.input.snapshots)
+    bad = [i for i in chosen if not 0 <= i < n]
+    if bad:
+        raise OptionError(f"input.snapshots {bad} are out of range: {path} has {n} snapshot(s), "
+                          f"indices 0..{n - 1}")
+    if len(set(chosen)) != len(chosen):
+        raise OptionError("input.snapshots lists a snapshot more than once: list each once")
+    if times is not None:
+        chosen.sort(key=lambda i: (times[i], i))
+    else:
+        chosen.sort()
+    if len(chosen) < 2:
+        raise UserError(f"{len(chosen)} snapshot(s) selected: a held-out score needs at least "
+                        "2 (one to fit, one to test); add snapshots")
+    n_test = max(1, int(round(spec.fit.test_fraction * len(chosen))))
+    n_test = min(n_test, len(chosen) - 1)
+    train, test = chosen[:len(chosen) - n_test], chosen[len(chosen) - n_test:]
+
+    cg = _coarse_graining(spec, grid)
+    check_scheme(spec.scheme, cg.coarse)
+    library = _library(spec, grid.dims)
+    if len(library.terms) == 0:
+        raise UserError(f"the library {spec.library!r} has no terms for target {spec.target} "
+                        "on this grid: choose another library")
+    missing = [f for f in library.fields if f not in (*velocity, *_scalars(spec))]
+    if missing:
+        raise UserError(f"the library's terms need fields {missing} that are not read: add "
+                        "them with --var / input.scalars")
+    from closure.library import component_weights
+
+    sha = sha256_file(path)
+    library_info = {"name": spec.library, "terms": library.names,
+                    "dropped": list(library.dropped)}
+    lib_path = Path(spec.library)
+    if lib_path.suffix and lib_path.exists():
+        library_info["sha256"] = sha256_file(lib_path)
+    return {
+        "version": PLAN_VERSION,
+        "sha256": sha,
+        "input": {"path": str(path), "sha256": sha, **_stamp(path),
+                  "variables": dict(spec.input.variables), "scalars": list(_scalars(spec)),
+                  "periodic": bool(spec.input.periodic), "n_snapshots": int(n)},
+        "snapshots": [int(i) for i in chosen],
+        "train": [int(i) for i in train],
+        "test": [int(i) for i in test],
+        "times": None if times is None else [times[i] for i in chosen],
+        "grid": grid.to_dict(),
+        "coarse_grid": cg.coarse.to_dict(),
+        "filter": cg.describe(),
+        "delta": float(cg.delta),
+        "target": spec.target,
+        "components": library.components,
+        "weights": [float(w) for w in component_weights(spec.target, grid.dims)],
+        "terms": library.names,
+        "library": library_info,
+        "scheme": spec.scheme,
+        "transfers": list(_blocks(spec, grid.dims)),
+        "warnings": list(cg.warnings()),
+    }
+
+
+# ---------------------------------------------------------------------- map
+def _check_input(plan: Mapping) -> None:
+    path = Path(plan["input"]["path"])
+    try:
+        now = _stamp(path)
+    except FileNotFoundError:
+        raise InputFileError(f"the input file {path} is gone since the job was planned") from None
+    then = {k: plan["input"][k] for k in ("size", "mtime_ns")}
+    if now != then:
+        raise InputFileError(f"the input file {path} changed since the job was planned: "
+                             "resubmit the job")
+
+
+def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
+    """Snapshot ``index`` coarse-grained, with its coarse-graining and library."""
+    from closure.residuals import coarse_grain_snapshot
+
+    if int(index) not in set(plan["snapshots"]):
+        raise UserError(f"snapshot {index} is not part of this job's plan")
+    _check_input(plan)
+    own = source is None
+    src = _open(spec) if own else source
+    try:
+        snap = src.snapshot(int(index))
+    finally:
+        if own:
+            src.close()
+    cg = _coarse_graining(spec, snap.grid)
+    cs = coarse_grain_snapshot(snap, cg, _scalars(spec))
+    library = _library(spec, snap.grid.dims)
+    if library.names != list(plan["terms"]):
+        raise UserError("the library's terms changed since the job was planned: resubmit the "
+                        "job")
+    return cs, cg, library
+
+
+def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> SufficientStats:
+    """Sufficient statistics of one snapshot: coarse-grain, build the design and target.
+
+    ``source`` may be an open closure.io FieldSource of the planned file (saves reopening it).
+    Memory: the fine snapshot, its coarse fields and the (C, n_coarse, p) design, then O(p^2).
+    """
+    from closure.library import design
+
+    cs, cg, library = _coarse(spec, plan, index, source)
+    X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
+    comps = list(plan["components"])
+    y = np.stack([cs.targets[c].reshape(-1) for c in comps])
+    extra = {}
+    blocks = tuple(plan.get("transfers") or ())
+    if blocks:
+        ctx = TransferContext(spec.target, cs.fields, cs.grid, spec.scheme)
+        p, shape = X.shape[2], cs.grid.shape
+        columns = ctx.transfers({c: X[k].T.reshape(p, *shape) for k, c in enumerate(comps)},
+                                blocks)
+        exact = ctx.transfers({c: y[k].reshape(shape) for k, c in enumerate(comps)}, blocks)
+        for name in blocks:
+            T = columns[name].reshape(p, -1).T
+            extra[name] = SufficientStats.from_design(T[None], exact[name].reshape(1, -1), None,
+                                                      library.names, (name,))
+    return SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
+                                       snapshot=int(index), extra=extra)
+
+
+# ---------------------------------------------------------------------- reduce
+def _flat_scores(pred: Mapping[str, Mapping], transfers: Mapping[str, Mapping] | None = None
+                 ) -> dict:
+    """Flat metric -> number (or None) for the model file: pooled first, then per component."""
+    pooled = pred.get("all") or next(iter(pred.values()))
+    out = {"r2": pooled["r2"], "correlation": pooled["correlation"],
+           "relative_error": pooled["relative_error"]}
+    if len(pred) > 1:
+        for name, s in pred.items():
+            if name == "all":
+                continue
+            for m in ("r2", "correlation", "relative_error"):
+                out[f"{m}_{name}"] = s[m]
+    for name, s in (transfers or {}).items():
+        for m in ("correlation", "mean_ratio", "backscatter_fraction_model",
+                  "backscatter_fraction_exact"):
+            if m in s:
+                out[f"{name}_{m}"] = s[m]
+    out["points"] = pooled["points"]
+    return out
+
+
+def _baseline(library, spec: JobSpec, train_stats: SufficientStats):
+    """Least-squares coefficient of the Smagorinsky-form term alone on the training data."""
+    name = BASELINE_TERMS[spec.target.split(":")[0]]
+    if name not in library.names:
+        return None
+    support = np.array([t == name for t in library.names])
+    return name, least_squares(Problem.from_stats(train_stats), support)
+
+
+def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
+           progress: Progress | None = None, source=None):
+    """Fit, select and score the closure from every planned snapshot's statistics.
+
+    ``stats`` maps snapshot index (int or str) to SufficientStats (or its dict form). Scores:
+    from the statistics of the test snapshots, and a second pass over them (reading and
+    coarse-graining again) for the pointwise transfers. Returns a closure.model.ClosureModel.
+    """
+    progress = progress or _no_progress
+    stats = {int(k): (v if isinstance(v, SufficientStats) else SufficientStats.from_dict(v))
+             for k, v in stats.items()}
+    missing = [i for i in plan["snapshots"] if i not in stats]
+    if missing:
+        raise ValueError(f"no statistics for planned snapshots {missing}")
+    for i, s in stats.items():
+        if s.terms != tuple(plan["terms"]) or s.components != tuple(plan["components"]):
+            raise UserError(f"the statistics of snapshot {i} are for other terms or components "
+                            "than this plan: resubmit the job")
+    train, test = list(plan["train"]), list(plan["test"])
+    progress("fit", 0, 1)
+    fit = fit_closure(stats, train, spec.fit.method, transfer_weight=spec.fit.transfer_weight,
+                      n_folds=spec.fit.folds, resamples=spec.fit.resamples, seed=spec.fit.seed,
+                      rule=spec.fit.selection)
+    progress("fit", 1, 1)
+    train_stats = SufficientStats.merge([stats[i] for i in sorted(train)])
+    test_stats = SufficientStats.merge([stats[i] for i in sorted(test)])
+
+    grid = Grid.from_dict(plan["grid"])
+    library = _library(spec, grid.dims)
+    base = _baseline(library, spec, train_stats)
+
+    # second pass over the held-out snapshots: pointwise transfers of model and baseline
+    from closure.library import predict
+
+    sums: dict[str, TransferSums] = {}
+    base_sums: dict[str, TransferSums] = {}
+    comps = list(plan["components"])
+    for done, i in enumerate(sorted(test)):
+        progress("score", done, len(test))
+        cs, cg, _ = _coarse(spec, plan, i, source)
+        ctx = TransferContext(spec.target, cs.fields, cs.grid, spec.scheme)
+        exact = {c: cs.targets[c] for c in comps}
+        te = ctx.transfers(exact)
+        for coef, acc in ((fit.coefficients, sums),) + (((base[1], base_sums),) if base else ()):
+            model = predict(library, coef, cs.fields, cs.grid, spec.scheme, cg.delta)
+            tm = ctx.transfers({c: model[c] for c in comps})
+            for k in te:
+                acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k])
+    progress("score", len(test), len(test))
+
+    scores = {
+        "train": _flat_scores(prediction_scores(train_stats, fit.coefficients)),
+        "test": _flat_scores(prediction_scores(test_stats, fit.coefficients),
+                             transfer_scores(sums)),
+    }
+    details = {"test_components": prediction_scores(test_stats, fit.coefficients),
+               "test_transfers": transfer_scores(sums),
+               "test_transfer_sums": {k: s.to_dict() for k, s in sums.items()}}
+    if base is not None:
+        scores[f"{base[0]}_only_test"] = _flat_scores(prediction_scores(test_stats, base[1]),
+                                                      transfer_scores(base_sums))
+        details["baseline"] = {"term": base[0],
+                               "coefficient_scaled": float(base[1][library.names.index(base[0])])}
+    warnings = list(plan.get("warnings") or []) + list(fit.warnings)
+    warnings.append("Coefficient standard errors treat every grid point as independent; "
+                    "neighbouring points are correlated, so they are optimistic: see the "
+                    "selection frequencies.")
+    warnings.append(A_PRIORI_CAVEAT)
+    provenance = _provenance(spec, plan)
+    return _make_model(spec, plan, library, fit, scores, details, warnings, provenance)
+
+
+def _provenance(spec: JobSpec, plan: Mapping) -> dict:
+    import scipy
+    import sklearn
+
+    from closure import __version__
+
+    spec_dict = spec.model_dump(mode="json")
+    spec_dict["input"]["sha256"] = plan["sha256"]
+    return {
+        "input": {"path": plan["input"]["path"], "sha256": plan["sha256"],
+                  "snapshots": plan["snapshots"], "train": plan["train"], "test": plan["test"],
+                  "times": plan.get("times")},
+        "spec": spec_dict,
+        "grid": plan["grid"],
+        "coarse_grid": plan["coarse_grid"],
+        "library": plan["library"],
+        "software": {"closure": __version__, "numpy": np.__version__,
+                     "scipy": scipy.__version__, "scikit-learn": sklearn.__version__,
+                     "python": platform.python_version()},
+    }
+
+
+def _make_model(spec, plan, library, fit: FitResult, scores, details, warnings, provenance):
+    from closure.model import ClosureModel
+
+    return ClosureModel.from_fit(
+        library=library, fit=fit, scheme=spec.scheme, filter=dict(plan["filter"]),
+        delta=float(plan["delta"]), scores=scores, diagnostics=details, warnings=warnings,
+        provenance=provenance)
+
+
+# ---------------------------------------------------------------------- in process
+def discover(spec: JobSpec, progress: Progress | None = None):
+    """Plan, map every snapshot and reduce, in this process (one file handle throughout)."""
+    progress = progress or _no_progress
+    progress("plan", 0, 1)
+    p = plan(spec)
+    progress("plan", 1, 1)
+    stats = {}
+    indices = sorted(p["snapshots"])
+    with _open(spec) as src:
+        for done, i in enumerate(indices):
+            progress("map", done, len(indices))
+            stats[i] = map_snapshot(spec, p, i, source=src)
+        progress("map", len(indices), len(indices))
+        return reduce(spec, p, stats, progress, source=src)
+
+
+__all__ = ["A_PRIORI_CAVEAT", "discover", "map_snapshot", "plan", "reduce"]
