@@ -100,7 +100,8 @@ def _stencil(f, axis, h, scheme, order, periodic):
     need = max(len(r) for r in rows)
     if n < need:
         raise UserError(f"{scheme} derivatives on a non-periodic axis need at least {need} points, "
-                        f"got {n}: use a finer grid, a smaller --ratio or fd2")
+                        f"got {n}: use more points along this axis (a finer grid or a smaller "
+                        "--ratio) or a lower-order scheme")
     fm = np.moveaxis(f, axis, 0)
     om = np.moveaxis(out, axis, 0)
     edge = len(rows)

@@ -205,6 +205,9 @@ def make_coarse_graining(kind: str, grid: Grid, ratio: int, width: float | None 
     """
     if kind not in FILTER_KINDS:
         raise UserError(f"unknown filter {kind!r}: choose one of {', '.join(FILTER_KINDS)}")
+    if kind == "spectral" and not grid.periodic:
+        raise UserError("the sharp spectral filter needs periodic data: use --filter box or "
+                        "gaussian, or declare the data periodic")
     if width_units not in WIDTH_UNITS:
         raise UserError(f"unknown width units {width_units!r}: choose grid or coordinate")
     if not isinstance(ratio, int | np.integer) or ratio < 1:

@@ -111,8 +111,13 @@ def _file_name(ds: xr.Dataset, ours: str, variables: Mapping[str, str]) -> str |
     return str(marked[0]) if len(marked) == 1 else None
 
 
-def _missing(path: Path, ds: xr.Dataset, ours: str, what: str) -> InputFileError:
+def _missing(path: Path, ds: xr.Dataset, ours: str, what: str,
+             variables: Mapping[str, str]) -> InputFileError:
     names = ", ".join(map(str, ds.data_vars)) or "none"
+    if ours in variables:
+        return InputFileError(f"variable {variables[ours]!r} (given for {ours}, {what}) not "
+                              f"found in {path}; the file's variables are: {names}. Fix "
+                              f"--var {ours}=NAME")
     return InputFileError(f"variable {ours!r} ({what}) not found in {path}; the file's variables "
                           f"are: {names}. Map it with --var {ours}=NAME")
 
@@ -242,6 +247,8 @@ class _Reader:
         for d in (TIME, *self.grid.dims):
             if d in ds.variables and "units" in ds[d].attrs:
                 self.units[d] = str(ds[d].attrs["units"])
+        self.time_attrs = ({k: str(ds[TIME].attrs[k]) for k in ("units", "calendar")
+                            if k in ds[TIME].attrs} if TIME in ds.variables else {})
         self._sha256: str | None = None
 
     def __len__(self) -> int:
@@ -323,7 +330,7 @@ class FieldSource(_Reader):
     def describe(self) -> dict:
         """Provenance for files we write: path, sha256, names, units (plain types)."""
         return {"file": str(self.path), "sha256": self.sha256, "names": dict(self.names),
-                "units": dict(self.units)}
+                "units": dict(self.units), "time_attrs": dict(self.time_attrs)}
 
 
 def _check_mapping(variables: Mapping[str, str] | None) -> dict[str, str]:
@@ -357,20 +364,26 @@ def open_fields(path: str | os.PathLike, variables: Mapping[str, str] | None = N
         ds = _rename_dims(ds, path, variables)
         u = _file_name(ds, "u", variables)
         if u is None:
-            raise _missing(path, ds, "u", "x velocity")
+            raise _missing(path, ds, "u", "x velocity", variables)
         spatial = [d for d in SPATIAL_DIMS if d in ds[u].dims]
         velocity = [VELOCITY_OF[d] for d in ("x", "y", "z") if d in spatial] or ["u"]
         names = {}
         for ours in velocity:
             theirs = _file_name(ds, ours, variables)
             if theirs is None:
-                raise _missing(path, ds, ours, f"{DIRECTION_OF[ours]} velocity")
+                raise _missing(path, ds, ours, f"{DIRECTION_OF[ours]} velocity", variables)
             names[ours] = theirs
         for c in scalars:
             theirs = _file_name(ds, c, variables)
             if theirs is None:
-                raise _missing(path, ds, c, "scalar")
+                raise _missing(path, ds, c, "scalar", variables)
             names[c] = theirs
+        unused = [k for k in variables if k not in names and k not in (TIME, *SPATIAL_DIMS)]
+        if unused:
+            raise UserError(
+                f"--var {unused[0]}={variables[unused[0]]} maps a name that is neither a velocity "
+                f"component of this {len(spatial)}-D grid ({', '.join(velocity)}), a dimension, "
+                f"nor a scalar: add --scalar {unused[0]} or drop the mapping")
         layout = _layout(ds, path, names, periodic)
         return FieldSource(path, ds, names, layout, velocity, scalars)
     except BaseException:
@@ -519,8 +532,8 @@ class CoarseWriter:
         t = nc.createVariable(TIME, "f8", (TIME,))
         if cs.time is not None:
             t.long_name = "time"
-            if TIME in units:
-                t.units = units[TIME]
+            t.setncatts(dict(self.source.get("time_attrs") or
+                             ({"units": units[TIME]} if TIME in units else {})))
         else:
             t.long_name = "snapshot index in the source file (the source has no time coordinate)"
         t.axis = "T"

@@ -238,6 +238,8 @@ def test_bad_options_raise_clear_user_errors(args, message):
 
 
 def test_sharp_filter_needs_periodic_data():
-    cg = make_coarse_graining("spectral", non_periodic((16,)), 2)
+    with pytest.raises(UserError, match="needs periodic data: use --filter box or gaussian"):
+        make_coarse_graining("spectral", non_periodic((16,)), 2)
+    cg = CoarseGraining("spectral", 2, (0.2,), non_periodic((16,)))
     with pytest.raises(UserError, match="needs periodic data"):
         cg.filter(np.zeros(16))

@@ -1,0 +1,331 @@
+import hashlib
+import os
+
+import numpy as np
+import pytest
+import xarray as xr
+
+from closure.errors import InputFileError, UserError
+from closure.filters import make_coarse_graining
+from closure.grid import Grid
+from closure.io import (
+    CoarseWriter,
+    open_coarse,
+    open_fields,
+    sha256_file,
+    write_coarse,
+    write_netcdf,
+)
+from closure.residuals import coarse_grain_snapshot
+
+
+def rand(*shape, seed=0):
+    return np.random.default_rng(seed).standard_normal(shape)
+
+
+# --- reading ------------------------------------------------------------------------------------
+
+def test_2d_file_reads_one_snapshot_at_a_time(make_netcdf):
+    u, v = rand(3, 8, 16), rand(3, 8, 16, seed=1)
+    path = make_netcdf({"u": u, "v": v, "T": (rand(3, 8, 16, seed=2), {"units": "K"})},
+                       attrs={"title": "test"})
+    with open_fields(path, scalars=["T"]) as src:
+        assert src.velocity == ("u", "v") and src.scalars == ("T",)
+        assert len(src) == src.n_snapshots == 3
+        np.testing.assert_allclose(src.times, [0.0, 1.0, 2.0])
+        g = src.grid
+        assert g.dims == ("y", "x") and g.shape == (8, 16) and g.periodic
+        assert g.spacing == pytest.approx((2 * np.pi / 8, 2 * np.pi / 16))
+        assert g.lengths == pytest.approx((2 * np.pi, 2 * np.pi))  # period n dx
+        assert g.units == "m"
+        assert src.units == {"u": "m s-1", "v": "m s-1", "T": "K", "time": "s", "y": "m",
+                             "x": "m"}
+        assert src.attrs["title"] == "test"
+        s = src.snapshot(2)
+        assert s.index == 2 and s.time == 2.0 and s.grid == g
+        assert s.fields["u"].dtype == np.float64
+        np.testing.assert_array_equal(s.fields["v"], v[2])
+        assert [t.index for t in src] == [0, 1, 2]
+        with pytest.raises(UserError, match=r"snapshot index 3 is out of range.*indices 0\.\.2"):
+            src.snapshot(3)
+
+
+def test_1d_and_3d_and_no_time_dimension(make_netcdf, tmp_path):
+    p1 = make_netcdf({"u": rand(2, 12)}, dims=("time", "x"), name="one.nc")
+    with open_fields(p1) as src:
+        assert src.velocity == ("u",) and src.grid.dims == ("x",)
+    p3 = make_netcdf({"u": rand(4, 6, 8), "v": rand(4, 6, 8), "w": rand(4, 6, 8)},
+                     dims=("z", "y", "x"), name="three.nc")
+    with open_fields(p3) as src:
+        assert src.velocity == ("u", "v", "w") and src.n_snapshots == 1 and src.times is None
+        s = src.snapshot(0)
+        assert s.fields["w"].shape == (4, 6, 8) and s.time is None
+
+
+def test_variable_and_dimension_mapping_and_transposed_dims(make_netcdf):
+    U = rand(2, 16, 8)  # stored (time, lon, lat) = (time, x, y)
+    path = make_netcdf({"U": U, "V": rand(2, 16, 8, seed=3)}, dims=("time", "lon", "lat"))
+    with open_fields(path, {"u": "U", "v": "V", "x": "lon", "y": "lat"}) as src:
+        assert src.grid.dims == ("y", "x") and src.grid.shape == (8, 16)
+        assert src.names == {"u": "U", "v": "V"}
+        np.testing.assert_array_equal(src.snapshot(1).fields["u"], U[1].T)
+
+
+def test_spacing_and_origin_from_coordinates(make_netcdf):
+    x = 10.0 + 0.5 * np.arange(12)
+    path = make_netcdf({"u": rand(12)}, dims=("x",), coords={"x": (x, {"units": "km"})})
+    with open_fields(path, periodic=False) as src:
+        g = src.grid
+        assert g.spacing == (0.5,) and g.origin == (10.0,) and not g.periodic
+        assert g.units == "km"
+        np.testing.assert_allclose(g.coords("x"), x)
+
+
+def test_no_coordinates_means_unit_spacing(make_netcdf):
+    path = make_netcdf({"u": rand(6, 4), "v": rand(6, 4)}, dims=("y", "x"), coords={})
+    with open_fields(path) as src:
+        assert src.grid.spacing == (1.0, 1.0) and src.grid.units is None
+
+
+def test_input_file_is_opened_read_only(make_netcdf):
+    path = make_netcdf({"u": rand(2, 8), "v": rand(2, 8)}, dims=("time", "x"))
+    before = sha256_file(path)
+    os.chmod(path, 0o444)
+    try:
+        with open_fields(path) as src:
+            for s in src:
+                s.fields["u"][:] = 0.0  # our copy, not the file
+    finally:
+        os.chmod(path, 0o644)
+    assert sha256_file(path) == before
+
+
+def test_sha256_file_matches_hashlib(tmp_path):
+    p = tmp_path / "blob.bin"
+    data = os.urandom(3 * 1024 * 1024 + 17)
+    p.write_bytes(data)
+    # reference: hashlib over the whole content at once
+    assert sha256_file(p, chunk_size=1 << 16) == hashlib.sha256(data).hexdigest()
+    with pytest.raises(InputFileError, match="no such file"):
+        sha256_file(tmp_path / "missing.bin")
+
+
+# --- bad inputs give clear messages ------------------------------------------------------------
+
+def test_missing_and_non_netcdf_files(tmp_path):
+    with pytest.raises(InputFileError, match="no such file: .*nothere.nc: check the path"):
+        open_fields(tmp_path / "nothere.nc")
+    text = tmp_path / "notes.nc"
+    text.write_text("not a netCDF file\n")
+    with pytest.raises(InputFileError, match="could not be read as netCDF.*give a netCDF"):
+        open_fields(text)
+    with pytest.raises(InputFileError, match="is a folder"):
+        open_fields(tmp_path)
+
+
+def test_missing_variable_lists_the_file_variables(make_netcdf):
+    path = make_netcdf({"U": rand(2, 8, 8), "V": rand(2, 8, 8)})
+    with pytest.raises(InputFileError, match=r"variable 'u' \(x velocity\) not found in .*; the "
+                                             r"file's variables are: U, V\. Map it with --var u="):
+        open_fields(path)
+    with pytest.raises(InputFileError, match=r"'v' \(y velocity\) not found"):
+        open_fields(path, {"u": "U"})
+    with pytest.raises(InputFileError, match=r"'T' \(scalar\) not found"):
+        open_fields(path, {"u": "U", "v": "V"}, scalars=["T"])
+
+
+def test_wrong_or_unused_mappings(make_netcdf):
+    path = make_netcdf({"U": rand(2, 8, 8), "V": rand(2, 8, 8)})
+    with pytest.raises(InputFileError, match=r"variable 'UU' \(given for u, x velocity\) not "
+                                             r"found .*variables are: U, V\. Fix --var u="):
+        open_fields(path, {"u": "UU", "v": "V"})
+    with pytest.raises(UserError, match="--var theta=U maps a name that is neither.*add "
+                                        "--scalar theta"):
+        open_fields(path, {"u": "U", "v": "V", "theta": "U"})
+    with open_fields(path, {"u": "U", "v": "V", "theta": "U"}, scalars=["theta"]) as src:
+        assert src.names["theta"] == "U"
+
+
+def test_mismatched_and_unknown_dims(make_netcdf, tmp_path):
+    path = make_netcdf({"u": rand(2, 8, 8), "v": rand(2, 8)},
+                       var_dims={"v": ("time", "x")})
+    with pytest.raises(InputFileError, match=r"'v' \(v\) .* has dims \(time, x\) but 'u' \(u\) "
+                                             r"has \(time, y, x\)"):
+        open_fields(path)
+    odd = make_netcdf({"u": rand(2, 8, 8), "v": rand(2, 8, 8)}, dims=("time", "lat", "lon"),
+                      name="odd.nc")
+    with pytest.raises(InputFileError, match="rename 'lat', 'lon'.*--var x=NAME"):
+        open_fields(odd)
+    with pytest.raises(InputFileError, match="dimension 'longitude' \\(given for x\\)"):
+        open_fields(odd, {"x": "longitude"})
+
+
+def test_non_uniform_and_decreasing_coordinates(make_netcdf):
+    x = np.arange(8.0)
+    x[5] += 1e-3
+    path = make_netcdf({"u": rand(8)}, dims=("x",), coords={"x": x})
+    with pytest.raises(InputFileError, match="coordinate 'x' .* is not uniformly spaced.*"
+                                             "index 4.*interpolate"):
+        open_fields(path)
+    # within the tolerance (relative 1e-6 of the spacing) is uniform
+    x_ok = np.arange(8.0)
+    x_ok[3] += 1e-8
+    ok = make_netcdf({"u": rand(8)}, dims=("x",), coords={"x": x_ok}, name="ok.nc")
+    open_fields(ok).close()
+    down = make_netcdf({"u": rand(8)}, dims=("x",), coords={"x": -np.arange(8.0)},
+                       name="down.nc")
+    with pytest.raises(InputFileError, match="not increasing: reverse"):
+        open_fields(down)
+
+
+def test_coordinate_units_must_agree(make_netcdf):
+    path = make_netcdf({"u": rand(4, 6), "v": rand(4, 6)}, dims=("y", "x"),
+                       coords={"y": (np.arange(4.0), {"units": "km"}),
+                               "x": (np.arange(6.0), {"units": "m"})})
+    with pytest.raises(InputFileError, match="different units .*y: km, x: m"):
+        open_fields(path)
+
+
+@pytest.mark.parametrize("bad", [np.nan, np.inf])
+def test_nan_or_inf_named_with_variable_and_snapshot(make_netcdf, bad):
+    V = rand(3, 8, 8)
+    V[1, 2, 5] = bad
+    path = make_netcdf({"u": rand(3, 8, 8), "V": V})
+    with open_fields(path, {"v": "V"}) as src:
+        src.snapshot(0)
+        with pytest.raises(InputFileError, match=r"variable 'V \(v\)' has 1 NaN or Inf value\(s\) "
+                                                 r"at snapshot 1 of .* \(first at y=2, x=5"):
+            src.snapshot(1)
+
+
+def test_fill_values_count_as_missing(make_netcdf, tmp_path):
+    u = rand(2, 8)
+    ds = xr.Dataset({"u": (("time", "x"), u)}, coords={"x": np.arange(8) * np.pi / 4})
+    ds["u"].encoding["_FillValue"] = -999.0
+    ds["u"][0, 3] = np.nan
+    path = tmp_path / "fill.nc"
+    ds.to_netcdf(path)
+    with open_fields(path) as src, pytest.raises(InputFileError, match="at snapshot 0"):
+        src.snapshot(0)
+
+
+def test_velocity_is_not_a_scalar(make_netcdf):
+    path = make_netcdf({"u": rand(2, 8)}, dims=("time", "x"))
+    with pytest.raises(UserError, match="'u' is a velocity component"):
+        open_fields(path, scalars=["u"])
+
+
+# --- coarse files -------------------------------------------------------------------------------
+
+def coarse_snapshots(path, kind="gaussian", ratio=4, scalars=("T",), **kw):
+    src = open_fields(path, scalars=scalars, **kw)
+    cg = make_coarse_graining(kind, src.grid, ratio)
+    return src, [coarse_grain_snapshot(s, cg, src.scalars) for s in src]
+
+
+def test_write_and_read_back_a_coarse_file(make_netcdf, tmp_path):
+    path = make_netcdf({"U": rand(2, 16, 16), "V": rand(2, 16, 16, seed=1),
+                        "T": (rand(2, 16, 16, seed=2), {"units": "K"})})
+    src, snaps = coarse_snapshots(path, variables={"u": "U", "v": "V"})
+    out = write_coarse(tmp_path / "coarse.nc", snaps, src.describe())
+    src.close()
+    ds = xr.open_dataset(out)
+    assert ds.attrs["Conventions"] == "CF-1.8"
+    assert ds.attrs["source_sha256"] == sha256_file(path)
+    assert {"U", "V", "T", "vorticity", "tau_xx", "flux_T_y", "pi"} <= set(ds.data_vars)
+    assert ds["U"].attrs["closure_name"] == "u"
+    assert ds["tau_xy"].attrs["units"] == "(m s-1)^2"
+    assert ds["force_x"].attrs["units"] == "(m s-1)^2/(m)"
+    assert ds["flux_T_x"].attrs["units"] == "(m s-1) (K)"
+    assert ds["T"].attrs["units"] == "K"
+    assert ds["x"].attrs["units"] == "m" and ds["time"].attrs["units"] == "s"
+    np.testing.assert_array_equal(ds["time"].values, [0.0, 1.0])
+    ds.close()
+    with open_coarse(out) as c:
+        assert c.grid == snaps[0].grid and c.coarse_graining == snaps[0].coarse_graining
+        assert c.velocity == ("u", "v") and c.scalars == ("T",)
+        assert c.field_names == tuple(snaps[0].fields)
+        assert c.target_names == tuple(snaps[0].targets)
+        for a, b in zip(c, snaps, strict=True):
+            assert a.index == b.index and a.time == b.time
+            for name in b.targets:
+                np.testing.assert_array_equal(a.targets[name], b.targets[name])
+            for name in b.fields:
+                np.testing.assert_array_equal(a.fields[name], b.fields[name])
+    # the plain reader works on coarse files too (names from the closure_name attributes)
+    with open_fields(out, scalars=["T"]) as f:
+        assert f.grid.shape == (4, 4) and f.names == {"u": "U", "v": "V", "T": "T"}
+        np.testing.assert_array_equal(f.snapshot(1).fields["u"], snaps[1].fields["u"])
+
+
+def test_cf_time_units_and_calendar_carry_over(make_netcdf, tmp_path):
+    path = make_netcdf({"u": rand(3, 8), "v": rand(3, 8)}, dims=("time", "x"),
+                       coords={"time": (np.array([0.5, 1.0, 1.5]),
+                                        {"units": "days since 2000-01-01", "calendar": "noleap"}),
+                               "x": np.arange(8.0)})
+    src, snaps = coarse_snapshots(path, "box", 2, scalars=())
+    assert src.times.tolist() == [0.5, 1.0, 1.5]  # raw values in the file's units
+    out = write_coarse(tmp_path / "t.nc", snaps, src.describe())
+    with xr.open_dataset(out) as ds:  # decodes the CF time as the source would
+        assert ds["time"].values[1] == np.datetime64("2000-01-02") or \
+            str(ds["time"].values[1]).startswith("2000-01-02")
+    with open_coarse(out) as c:
+        assert [c.snapshot(i).time for i in range(3)] == [0.5, 1.0, 1.5]
+
+
+def test_block_coarse_file_keeps_block_centres(make_netcdf, tmp_path):
+    path = make_netcdf({"u": rand(1, 8, 8), "v": rand(1, 8, 8)}, dims=("time", "y", "x"))
+    src, snaps = coarse_snapshots(path, "block", 2, scalars=())
+    out = write_coarse(tmp_path / "b.nc", snaps, src.describe())
+    with open_coarse(out) as c:
+        assert c.grid == snaps[0].grid
+        np.testing.assert_allclose(c.grid.coords("x")[0], np.pi / 8)  # between points 0 and 1
+
+
+def test_coarse_file_without_source_time_and_non_periodic(make_netcdf, tmp_path):
+    path = make_netcdf({"u": rand(20, 24), "v": rand(20, 24)}, dims=("y", "x"))
+    src, snaps = coarse_snapshots(path, "box", 4, scalars=(), periodic=False)
+    out = write_coarse(tmp_path / "np.nc", snaps, src.describe())
+    with open_coarse(out) as c:
+        assert not c.grid.periodic and c.snapshot(0).time is None
+        assert c.grid.shape == (5, 6)
+    assert xr.open_dataset(out).attrs["periodic"] == 0
+
+
+def test_writer_is_atomic_and_never_overwrites_the_input(make_netcdf, tmp_path):
+    path = make_netcdf({"u": rand(2, 8), "v": rand(2, 8)}, dims=("time", "x"))
+    src, snaps = coarse_snapshots(path, "box", 2, scalars=())
+    target = tmp_path / "out.nc"
+    target.write_text("old")
+    with pytest.raises(RuntimeError, match="boom"), CoarseWriter(target, src.describe()) as w:
+        w.append(snaps[0])
+        raise RuntimeError("boom")
+    assert target.read_text() == "old"
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
+    with pytest.raises(UserError, match="is the input file"):
+        write_coarse(path, snaps, src.describe())
+    with pytest.raises(UserError, match="no snapshots"):
+        write_coarse(tmp_path / "empty.nc", [], src.describe())
+    assert not (tmp_path / "empty.nc").exists()
+
+
+def test_open_coarse_refuses_other_files(make_netcdf):
+    path = make_netcdf({"u": rand(2, 8)}, dims=("time", "x"))
+    with pytest.raises(InputFileError, match="not a coarse file written by closure coarse-grain"):
+        open_coarse(path)
+
+
+def test_write_netcdf_is_atomic_and_chunks_by_snapshot(tmp_path):
+    ds = xr.Dataset({"a": (("time", "x"), rand(3, 5))})
+    out = write_netcdf(ds, tmp_path / "sub" / "a.nc")
+    with xr.open_dataset(out) as back:
+        np.testing.assert_array_equal(back["a"].values, ds["a"].values)
+        assert back["a"].encoding["chunksizes"] == (1, 5)
+    assert sorted(p.name for p in (tmp_path / "sub").iterdir()) == ["a.nc"]
+
+
+def test_grid_of_a_coarse_snapshot_is_the_coarse_grid(make_netcdf):
+    path = make_netcdf({"u": rand(1, 8, 8), "v": rand(1, 8, 8)})
+    src, snaps = coarse_snapshots(path, "spectral", 2, scalars=())
+    assert snaps[0].grid == Grid(("y", "x"), (4, 4), (np.pi / 2, np.pi / 2), (0.0, 0.0), True,
+                                 "m")
