@@ -26,7 +26,7 @@ from closure.derivatives import check_scheme
 from closure.errors import InputFileError, OptionError, UserError
 from closure.filters import make_coarse_graining
 from closure.grid import Grid
-from closure.regression import FitResult, Problem, fit_closure, least_squares
+from closure.regression import Problem, fit_closure, least_squares
 from closure.scores import (
     TransferContext,
     TransferSums,
@@ -43,9 +43,6 @@ Progress = Callable[[str, int, int], None]
 #: The reference closure scored beside every model, per target kind (a preset term name).
 BASELINE_TERMS = {"stress": "smagorinsky", "force": "div_smagorinsky",
                   "vorticity": "curl_div_smagorinsky", "flux": "eddy_diffusivity"}
-
-A_PRIORI_CAVEAT = ("A priori skill does not guarantee a stable or accurate coarse simulation: "
-                   "validate the model a posteriori (closure les) before relying on it.")
 
 
 def _no_progress(phase: str, done: int, total: int) -> None:
@@ -343,43 +340,46 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         details["baseline"] = {"term": base[0],
                                "coefficient_scaled": float(base[1][library.names.index(base[0])])}
     warnings = list(plan.get("warnings") or []) + list(fit.warnings)
-    warnings.append("Coefficient standard errors treat every grid point as independent; "
-                    "neighbouring points are correlated, so they are optimistic: see the "
-                    "selection frequencies.")
-    warnings.append(A_PRIORI_CAVEAT)
-    provenance = _provenance(spec, plan)
-    return _make_model(spec, plan, library, fit, scores, details, warnings, provenance)
+    warnings.append("coefficient standard errors treat every grid point as independent; "
+                    "neighbouring points are correlated, so they are optimistic: the selection "
+                    "frequencies over snapshot resamples are the better guide")
+    settings = {
+        "method": spec.fit.method, "selection": spec.fit.selection, "folds": spec.fit.folds,
+        "resamples": spec.fit.resamples, "seed": spec.fit.seed,
+        "transfer_weight": spec.fit.transfer_weight, "test_fraction": spec.fit.test_fraction,
+        "selection_record": fit.to_dict(), "a_priori_details": details,
+    }
+    from closure.model import ClosureModel
+
+    std_errors = [float(e) if s else None
+                  for e, s in zip(fit.standard_errors, fit.support, strict=True)]
+    return ClosureModel.from_fit(
+        library, fit.coefficients, std_errors,
+        None if fit.selection_frequency is None else list(fit.selection_frequency),
+        target=spec.target, filter=dict(plan["filter"]), grid=plan["coarse_grid"],
+        scheme=spec.scheme, delta=float(plan["delta"]), provenance=_provenance(spec, plan),
+        method=spec.fit.method, settings=settings, scores=scores, warnings=warnings)
 
 
 def _provenance(spec: JobSpec, plan: Mapping) -> dict:
+    """Where the model came from: input file and hash, snapshots, spec, software versions."""
     import scipy
     import sklearn
-
-    from closure import __version__
 
     spec_dict = spec.model_dump(mode="json")
     spec_dict["input"]["sha256"] = plan["sha256"]
     return {
-        "input": {"path": plan["input"]["path"], "sha256": plan["sha256"],
-                  "snapshots": plan["snapshots"], "train": plan["train"], "test": plan["test"],
-                  "times": plan.get("times")},
-        "spec": spec_dict,
-        "grid": plan["grid"],
-        "coarse_grid": plan["coarse_grid"],
+        "input": plan["input"]["path"],
+        "sha256": plan["sha256"],
+        "variables": dict(plan["input"].get("variables") or {}),
+        "snapshots": {"train": list(plan["train"]), "test": list(plan["test"])},
+        "times": plan.get("times"),
+        "fine_grid": plan["grid"],
         "library": plan["library"],
-        "software": {"closure": __version__, "numpy": np.__version__,
-                     "scipy": scipy.__version__, "scikit-learn": sklearn.__version__,
-                     "python": platform.python_version()},
+        "spec": spec_dict,
+        "software": {"numpy": np.__version__, "scipy": scipy.__version__,
+                     "scikit-learn": sklearn.__version__, "python": platform.python_version()},
     }
-
-
-def _make_model(spec, plan, library, fit: FitResult, scores, details, warnings, provenance):
-    from closure.model import ClosureModel
-
-    return ClosureModel.from_fit(
-        library=library, fit=fit, scheme=spec.scheme, filter=dict(plan["filter"]),
-        delta=float(plan["delta"]), scores=scores, diagnostics=details, warnings=warnings,
-        provenance=provenance)
 
 
 # ---------------------------------------------------------------------- in process
@@ -399,4 +399,4 @@ def discover(spec: JobSpec, progress: Progress | None = None):
         return reduce(spec, p, stats, progress, source=src)
 
 
-__all__ = ["A_PRIORI_CAVEAT", "discover", "map_snapshot", "plan", "reduce"]
+__all__ = ["discover", "map_snapshot", "plan", "reduce"]

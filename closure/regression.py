@@ -393,12 +393,14 @@ def standard_errors(problem: Problem, coef: np.ndarray, support: np.ndarray) -> 
 # ---------------------------------------------------------------------- diagnostics
 @dataclass
 class Collinearity:
-    """Condition number of the standardised Gram, nearly dependent pairs, warnings."""
+    """Condition number of the standardised Gram, nearly dependent pairs, groups of terms
+    spanning a near-null direction of it (eigenvalue below largest / cond_limit), warnings."""
 
     condition_number: float
     pairs: list[tuple[str, str, float]]
     zero_terms: list[str]
     warnings: list[str]
+    dependent_groups: list[list[str]] = field(default_factory=list)
 
 
 def correlation_matrix(problem: Problem) -> np.ndarray:
@@ -424,9 +426,14 @@ def collinearity(problem: Problem, corr_limit: float = CORRELATION_LIMIT,
            for t in zero]
     Gs, _, _ = problem.standardised()
     Ga = Gs[np.ix_(act, act)]
+    groups: list[list[str]] = []
     if Ga.size:
-        w = np.linalg.eigvalsh(Ga)
+        w, V = np.linalg.eigh(Ga)
         cond = float(w.max() / w.min()) if w.min() > 0 else float("inf")
+        names = [t for t, a in zip(terms, act, strict=True) if a]
+        for k in np.flatnonzero(w <= w.max() / cond_limit):
+            v = V[:, k]
+            groups.append([names[i] for i in np.flatnonzero(np.abs(v) > 0.1 * np.abs(v).max())])
     else:
         cond = float("nan")
     corr = correlation_matrix(problem)
@@ -443,11 +450,15 @@ def collinearity(problem: Problem, corr_limit: float = CORRELATION_LIMIT,
     for a, b, r in pairs:
         out.append(f"terms {a} and {b} are nearly collinear on this data (correlation {r:.4f}); "
                    "their coefficients are not separately determined: drop one of them")
-    if np.isfinite(cond) and cond > cond_limit or cond == float("inf"):
+    for g in groups:
+        if len(g) > 2 or not any({a, b} == set(g) for a, b, _ in pairs):
+            out.append(f"terms {', '.join(g)} are nearly linearly dependent on this data: a "
+                       "combination of them is (almost) zero, so their coefficients trade off")
+    if cond > cond_limit:
         out.append(f"the standardised Gram matrix has condition number {cond:.3g} "
                    f"(> {cond_limit:.0e}): the library is nearly dependent on this data and "
                    "coefficients may be unstable")
-    return Collinearity(cond, pairs, zero, out)
+    return Collinearity(cond, pairs, zero, out, groups)
 
 
 # ---------------------------------------------------------------------- selection
@@ -570,6 +581,7 @@ class FitResult:
                      "n_terms": [int(n) for n in self.path.n_terms]},
             "condition_number": float(self.collinearity.condition_number),
             "collinear_pairs": [[a, b, float(r)] for a, b, r in self.collinearity.pairs],
+            "dependent_groups": self.collinearity.dependent_groups,
             "warnings": list(self.warnings),
         }
         if self.cv is not None:

@@ -283,7 +283,10 @@ def test_exactly_dependent_terms_resolve_to_the_sparse_solution():
     y = y + 1e-3 * rng.normal(size=y.shape)
     stats = SufficientStats.from_design(X, y, [1.0, 2.0, 1.0], list(tensors))
     P = Problem.from_stats(stats)
-    assert collinearity(P).condition_number > 1e12
+    diag = collinearity(P)
+    assert diag.condition_number > 1e12
+    assert [sorted(g) for g in diag.dependent_groups] == [["gradient", "rr", "sr", "ss"]]
+    assert any("gradient, ss, sr, rr are nearly linearly dependent" in w for w in diag.warnings)
     path = threshold_path(P)
     final = path.coefficients[path.n_terms == 1][0]
     np.testing.assert_allclose(final, [1.0, 0, 0, 0, 0], atol=1e-3)
