@@ -378,7 +378,9 @@ def open_fields(path: str | os.PathLike, variables: Mapping[str, str] | None = N
             if theirs is None:
                 raise _missing(path, ds, c, "scalar", variables)
             names[c] = theirs
-        unused = [k for k in variables if k not in names and k not in (TIME, *SPATIAL_DIMS)]
+        # a mapping for a velocity component the grid lacks (w of a 2-D file) is harmless
+        unused = [k for k in variables
+                  if k not in names and k not in (TIME, *SPATIAL_DIMS, *VELOCITY_OF.values())]
         if unused:
             raise UserError(
                 f"--var {unused[0]}={variables[unused[0]]} maps a name that is neither a velocity "

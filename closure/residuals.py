@@ -51,6 +51,8 @@ if TYPE_CHECKING:  # the io module imports this one
 
 #: Direction pairs of the independent stress components, in output order.
 _PAIRS = (("x", "x"), ("x", "y"), ("y", "y"), ("x", "z"), ("y", "z"), ("z", "z"))
+# internal keys that no scalar name can collide with
+_OMEGA, _TAU = "<omega>", "<tau>"
 
 
 @dataclass
@@ -160,6 +162,14 @@ def _check_inputs(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str]
         raise UserError(f"the snapshot's grid {g.dims} {g.shape} does not match the "
                         f"coarse-graining's fine grid {f.dims} {f.shape}: build the "
                         "coarse-graining from this file's grid")
+    for c in scalars:
+        if c in VELOCITY_OF.values():
+            raise UserError(f"{c!r} is a velocity component, not a scalar: drop it from the "
+                            "scalars")
+        if c == "vorticity" and g.dims == ("y", "x"):
+            raise UserError("the scalar name 'vorticity' is taken by the filtered vorticity "
+                            "of a 2-D coarse file: carry it under another name "
+                            "(--var NAME=vorticity --scalar NAME)")
     for c in (*(VELOCITY_OF[d] for d in directions(g.dims)), *scalars):
         if c not in snapshot.fields:
             raise UserError(f"the snapshot has no field {c!r} (it has "
@@ -187,12 +197,12 @@ def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining,
     linear = {**vel, **{c: np.asarray(snapshot.fields[c], dtype=float) for c in scalars}}
     if two_d:
         scheme = fine_scheme(fine)
-        linear["omega"] = (derivative(vel["v"], fine, "x", 1, scheme)
+        linear[_OMEGA] = (derivative(vel["v"], fine, "x", 1, scheme)
                            - derivative(vel["u"], fine, "y", 1, scheme))
     products = {}
     for i, j in stress_pairs(fine.dims):
-        products[("tau", i + j)] = vel[VELOCITY_OF[i]] * vel[VELOCITY_OF[j]]
-    for c in (*scalars, *(["omega"] if two_d else [])):
+        products[(_TAU, i + j)] = vel[VELOCITY_OF[i]] * vel[VELOCITY_OF[j]]
+    for c in (*scalars, *([_OMEGA] if two_d else [])):
         for j in dirs:
             products[(c, j)] = vel[VELOCITY_OF[j]] * linear[c]
 
@@ -225,12 +235,12 @@ def _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names, scalars, two_d):
     ubar = {c: bar_lin[c] for c in vel_names}
     stress = {}
     for i, j in stress_pairs(grid.dims):
-        stress[f"tau_{i}{j}"] = (bar_prod[("tau", i + j)]
+        stress[f"tau_{i}{j}"] = (bar_prod[(_TAU, i + j)]
                                  - ubar[VELOCITY_OF[i]] * ubar[VELOCITY_OF[j]])
     sigma = {}
     if two_d:
         for j in dirs:
-            sigma[j] = bar_prod[("omega", j)] - ubar[VELOCITY_OF[j]] * bar_lin["omega"]
+            sigma[j] = bar_prod[(_OMEGA, j)] - ubar[VELOCITY_OF[j]] * bar_lin[_OMEGA]
 
     # every d_j in one call per direction: tau_ij (all i), the filtered velocity, sigma_j,
     # bar(omega)
@@ -241,7 +251,7 @@ def _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names, scalars, two_d):
                                                                     for i in dirs]
         if two_d:
             keys += [("sigma", j), ("omega", j)]
-            arrays += [sigma[j], bar_lin["omega"]]
+            arrays += [sigma[j], bar_lin[_OMEGA]]
         dj = derivative(np.stack(arrays), grid, j, 1, scheme)
         for key, a in zip(keys, dj, strict=True):
             deriv[(*key, j)] = a

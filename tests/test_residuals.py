@@ -336,6 +336,22 @@ def test_stress_names_order():
                                             "tau_zz"]
 
 
+def test_scalar_names_cannot_collide_with_internal_terms():
+    g = Grid.regular((16, 16), 2 * np.pi)
+    f = band_limited_flow(g, 4, seed=5)
+    cg = make_coarse_graining("gaussian", g, 2)
+    a = coarse_grain_snapshot(snapshot(g, u=f["u"], v=f["v"], c=f["c"]), cg, ["c"])
+    b = coarse_grain_snapshot(snapshot(g, u=f["u"], v=f["v"], omega=f["c"], tau=f["c"]), cg,
+                              ["omega", "tau"])
+    for name in ("tau_xy", "vorticity_forcing", "enstrophy_transfer"):
+        np.testing.assert_array_equal(a.targets[name], b.targets[name])
+    np.testing.assert_array_equal(a.targets["flux_c_x"], b.targets["flux_omega_x"])
+    np.testing.assert_array_equal(a.fields["c"], b.fields["tau"])
+    with pytest.raises(UserError, match="'vorticity' is taken"):
+        coarse_grain_snapshot(snapshot(g, u=f["u"], v=f["v"], vorticity=f["c"]), cg,
+                              ["vorticity"])
+
+
 def test_input_errors():
     g = Grid.regular((16, 16), 1.0)
     cg = make_coarse_graining("box", g, 4)
