@@ -1,7 +1,239 @@
-"""CLI commands: apply (module filled in by its owner)."""
+"""CLI commands: apply a model to coarse fields, show a model, export a model as code."""
 
+from __future__ import annotations
+
+import contextlib
+import datetime as _dt
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
 import typer
+
+from closure.errors import InputFileError, OptionError
+
+_LONG = {"tau": "modelled subgrid stress", "force": "modelled subgrid force",
+         "flux": "modelled subgrid flux", "vorticity_forcing": "modelled subgrid vorticity forcing"}
+
+
+def apply_model(
+    model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
+                                      show_default=False),
+    input: Path = typer.Argument(..., metavar="COARSE",
+                                 help="netCDF file of filtered fields on a coarse grid (as "
+                                      "`closure coarse-grain` writes it; read only)",
+                                 show_default=False),
+    output: Path = typer.Option(..., "-o", "--output", help="netCDF file to write",
+                                show_default=False),
+    var: list[str] | None = typer.Option(
+        None, "--var", help="map our name to the file's, e.g. --var u=U (files not written by "
+                            "closure)", show_default=False),
+) -> None:
+    """Evaluate a model on every snapshot of a coarse file; write its predicted subgrid terms."""
+    from closure.cli.coarse import parse_var_options
+    from closure.model import ClosureModel
+
+    model = ClosureModel.load(model_path)
+    with _open_coarse_fields(input, model, parse_var_options(var)) as src:
+        if output.exists() and output.resolve() == Path(src.path).resolve():
+            raise OptionError(f"the output {output} is the input file: choose another -o "
+                              "(input files are never written)")
+        grid = src.grid
+        for w in model.grid_warnings(grid):
+            typer.echo(f"warning: {w}", err=True)
+        n = src.n_snapshots
+        names = model.components
+        pred = {c: np.empty((n, *grid.shape)) for c in names}
+        exact_sums = _Skill(model)
+        times = []
+        for i in range(n):
+            snap = src.snapshot(i)
+            out = model.evaluate(snap.fields, grid)
+            for c in names:
+                pred[c][i] = out[c]
+            targets = getattr(snap, "targets", None) or {}
+            exact_sums.add(targets, out)
+            times.append(float(snap.time) if snap.time is not None else float(snap.index))
+        ds = _dataset(model, model_path, src, pred, times)
+    from closure.io import write_netcdf
+
+    write_netcdf(ds, output)
+    typer.echo(f"wrote {output}: {n} snapshot(s) of {', '.join(names)} from {model.target} "
+               f"model ({int(model.active.sum())} active term(s), {model.scheme} derivatives, "
+               f"Delta = {model.delta:g})")
+    skill = exact_sums.text()
+    if skill:
+        typer.echo(skill)
+    typer.echo("note: a priori skill does not guarantee a stable or accurate coarse simulation; "
+               "validate the model a posteriori before relying on it")
+
+
+@contextlib.contextmanager
+def _open_coarse_fields(path: Path, model, variables: dict[str, str]):
+    """A coarse file written by closure (CoarseSource), or any netCDF file of filtered fields
+    on a coarse grid (FieldSource)."""
+    from closure.io import open_coarse, open_fields
+
+    try:
+        src = open_coarse(path) if not variables else None
+    except InputFileError:
+        src = None
+    if src is None:
+        src = open_fields(path, variables, model.scalars, periodic=model.grid.periodic)
+    try:
+        missing = [f for f in model.library.fields if f not in (*src.velocity, *src.scalars)]
+        if missing:
+            raise InputFileError(f"{path} has no field {missing[0]!r}, which the model's terms "
+                                 "need: give a file with it (or map it with --var)")
+        yield src
+    finally:
+        src.close()
+
+
+class _Skill:
+    """Weighted a priori r2 and correlation against exact targets, where the file has them."""
+
+    def __init__(self, model):
+        from closure.library import component_weights
+
+        self.names = model.components
+        self.w = dict(zip(self.names, component_weights(model.target, model.dims), strict=True))
+        self.s = np.zeros(6)  # sum w, sum w y, sum w p, sum w y^2, sum w p^2, sum w y p
+        self.ok = True
+
+    def add(self, targets, pred) -> None:
+        if not all(c in targets for c in self.names):
+            self.ok = False
+            return
+        for c in self.names:
+            y, p, w = np.asarray(targets[c]).ravel(), pred[c].ravel(), self.w[c]
+            self.s += w * np.array([y.size, y.sum(), p.sum(), y @ y, p @ p, y @ p])
+
+    def text(self) -> str:
+        if not self.ok or self.s[0] == 0:
+            return ""
+        n, sy, sp, syy, spp, syp = self.s
+        vy, vp, cyp = syy - sy * sy / n, spp - sp * sp / n, syp - sy * sp / n
+        sse = syy - 2 * syp + spp
+        r2 = 1 - sse / vy if vy > 0 else float("nan")
+        corr = cyp / np.sqrt(vy * vp) if vy > 0 and vp > 0 else float("nan")
+        return (f"a priori on this file (all components, off-diagonal stress weighted 2): "
+                f"r2 {r2:.4f}, correlation {corr:.4f}")
+
+
+def _units(component: str, units: dict, length: str | None) -> str | None:
+    vel = {units.get(c) for c in ("u", "v", "w") if units.get(c)}
+    U = vel.pop() if len(vel) == 1 else None
+    if component.startswith("tau_"):
+        return f"({U})^2" if U else None
+    if component.startswith("force_"):
+        return f"({U})^2/({length})" if U and length else None
+    if component.startswith("flux_"):
+        c = units.get(component[5:-2])
+        return f"({U}) ({c})" if U and c else None
+    if component == "vorticity_forcing":
+        return f"({U})^2/({length})^2" if U and length else None
+    return None
+
+
+def _long_name(component: str) -> str:
+    if component.startswith("tau_"):
+        return f"{_LONG['tau']} {component} (closure model, a priori prediction)"
+    if component.startswith("force_"):
+        return f"{_LONG['force']} {component}, d_j tau_ij (closure model, a priori prediction)"
+    if component.startswith("flux_"):
+        return f"{_LONG['flux']} {component} (closure model, a priori prediction)"
+    return f"{_LONG['vorticity_forcing']} (closure model, a priori prediction)"
+
+
+def _dataset(model, model_path, src, pred, times):
+    import xarray as xr
+
+    from closure import __version__
+    from closure.io import sha256_file
+
+    grid = src.grid
+    dims = ("time", *grid.dims)
+    coords = {d: (d, grid.coords(d), {"long_name": f"{d} coordinate", "axis": d.upper(),
+                                      **({"units": grid.units} if grid.units else {})})
+              for d in grid.dims}
+    coords["time"] = ("time", np.asarray(times, dtype=float), {"long_name": "time" if getattr(
+        src, "times", None) is not None else "snapshot index", "axis": "T"})
+    units = dict(getattr(src, "units", {}) or {})
+    data = {}
+    for c, a in pred.items():
+        attrs = {"long_name": _long_name(c), "closure_name": c, "closure_role": "prediction"}
+        un = _units(c, units, grid.units)
+        if un:
+            attrs["units"] = un
+        data[c] = (dims, a, attrs)
+    now = _dt.datetime.now(_dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+    attrs = {
+        "Conventions": "CF-1.8",
+        "title": f"closure model prediction of the subgrid {model.target} terms",
+        "history": f"{now} closure {__version__} apply",
+        "source": f"closure {__version__}",
+        "model_file": str(model_path),
+        "model_sha256": sha256_file(model_path),
+        "model_target": model.target,
+        "model_scheme": model.scheme,
+        "model_delta": float(model.delta),
+        "model_terms": " ".join(t.name for t in model.active_terms),
+        "input_file": str(src.path),
+        "caution": model.caution,
+    }
+    return xr.Dataset(data, coords=coords, attrs=attrs)
+
+
+def show_model(
+    model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
+                                      show_default=False),
+) -> None:
+    """Print a model's terms, coefficients, scores, warnings and provenance."""
+    from closure.model import ClosureModel
+
+    typer.echo(ClosureModel.load(model_path).summary())
+
+
+def export_model_command(
+    model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
+                                      show_default=False),
+    lang: str = typer.Option("python", "--lang", help="json, python, c or fortran"),
+    output: Path | None = typer.Option(None, "-o", "--output",
+                                       help="file to write (default: print)",
+                                       show_default=False),
+    name: str = typer.Option("closure_model", "--name", help="function name in the code"),
+) -> None:
+    """Print (or write) a model as JSON coefficients or Python / C / Fortran source."""
+    from closure.export import export_model
+    from closure.model import ClosureModel
+
+    model = ClosureModel.load(model_path)
+    text = export_model(model, lang, name)
+    if output is None:
+        typer.echo(text, nl=False)
+        return
+    if output.exists() and output.resolve() == model_path.resolve():
+        raise OptionError(f"the output {output} is the model file: choose another -o")
+    _write_text(output, text)
+    typer.echo(f"wrote {output} ({lang})")
+
+
+def _write_text(path: Path, text: str) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
 
 
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
+    app.command("apply")(apply_model)
+    app.command("show-model")(show_model)
+    app.command("export-model")(export_model_command)
