@@ -1,7 +1,194 @@
-"""CLI commands: report (module filled in by its owner)."""
+"""CLI commands: ``closure report`` (a model's HTML report folder) and ``closure sweep``
+(the same discovery at several filter widths)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
 
 import typer
+
+from closure.errors import OptionError
+
+
+def parse_number_list(text: str | None, what: str, kind=float) -> list | None:
+    """``"4,8,16"`` -> ``[4.0, 8.0, 16.0]`` (``kind`` int for whole numbers); None stays None."""
+    if text is None:
+        return None
+    out = []
+    for item in text.split(","):
+        item = item.strip()
+        if not item:
+            continue
+        try:
+            value = kind(item)
+        except ValueError:
+            raise OptionError(f"{what} expects comma-separated "
+                              f"{'whole numbers' if kind is int else 'numbers'}, got "
+                              f"{item!r} in {text!r}") from None
+        out.append(value)
+    if not out:
+        raise OptionError(f"{what} is empty: give e.g. {what} 4,8,16")
+    return out
+
+
+def _echo_progress():
+    """A progress callback printing one line per finished phase to stderr."""
+    def progress(phase: str, done: int, total: int) -> None:
+        if done == total and total:
+            typer.echo(f"{phase}: {done}/{total}", err=True)
+    return progress
+
+
+def report(
+    model: Path = typer.Argument(..., help="model file (.json) written by closure discover",
+                                 show_default=False),
+    output: Path = typer.Option(..., "-o", "--output", help="report folder to write "
+                                "(index.html + PNGs; an earlier report there is replaced)",
+                                show_default=False),
+    input: Path | None = typer.Option(
+        None, "--input", help="the fine-grid netCDF the model was fitted on (default: the "
+        "path recorded in the model, if it exists); its held-out snapshots are compared "
+        "with the model", show_default=False),
+    les: Path | None = typer.Option(None, "--les", help="a posteriori result JSON written by "
+                                    "closure les", show_default=False),
+    sweep: Path | None = typer.Option(None, "--sweep", help="filter-width sweep JSON written "
+                                      "by closure sweep", show_default=False),
+    snapshots: str | None = typer.Option(
+        None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 (default: "
+        "the model's held-out snapshots)", show_default=False),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the folder"),
+) -> None:
+    """Write a self-contained HTML report of a model: summary, terms, a priori scores and
+    figures, warnings, and the a posteriori and sweep figures when given."""
+    from closure.report import build_report
+
+    indices = parse_number_list(snapshots, "--snapshots", int)
+    out = build_report(model, output, input, les=les, sweep=sweep, snapshots=indices,
+                       progress=None if quiet else _echo_progress())
+    typer.echo(str(out / "index.html"))
+
+
+def sweep(
+    input: Path = typer.Argument(..., help="fine-grid netCDF file (read only)",
+                                 show_default=False),
+    widths: str = typer.Option(..., "--widths", help="filter widths D, comma-separated, in "
+                               "--width-units (fine-grid spacings by default), e.g. 4,8,16",
+                               show_default=False),
+    output: Path = typer.Option(..., "-o", "--output", help="sweep result JSON to write",
+                                show_default=False),
+    ratios: str | None = typer.Option(
+        None, "--ratios", help="coarsening ratio per width, or one for all (default: D/2 "
+        "spacings, rounded down)", show_default=False),
+    spec: Path | None = typer.Option(
+        None, "--spec", help="a job-spec JSON to start from (its filter width and ratio are "
+        "replaced; options given here override its other fields)", show_default=False),
+    filter: str | None = typer.Option(None, "--filter", help="filter kind: box, gaussian "
+                                      "(default), spectral or block", show_default=False),
+    width_units: str | None = typer.Option(None, "--width-units", help="units of --widths: "
+                                           "grid (default) or coordinate", show_default=False),
+    target: str | None = typer.Option(None, "--target", help="stress (default), force, "
+                                      "vorticity or flux:NAME", show_default=False),
+    library: str | None = typer.Option(None, "--library", help="preset (default, classic, "
+                                       "minimal) or terms file", show_default=False),
+    scheme: str | None = typer.Option(None, "--scheme", help="derivative scheme: spectral "
+                                      "(default), fd2 or fd4", show_default=False),
+    method: str | None = typer.Option(None, "--method", help="threshold (default), lasso or "
+                                      "ard", show_default=False),
+    test_fraction: float | None = typer.Option(None, "--test-fraction", help="share of "
+                                               "snapshots held out (default 0.25)",
+                                               show_default=False),
+    resamples: int | None = typer.Option(None, "--resamples", help="resampled fits for "
+                                         "selection frequencies (default 20)",
+                                         show_default=False),
+    transfer_weight: float | None = typer.Option(None, "--transfer-weight",
+                                                 help="weight of the energy-transfer rows",
+                                                 show_default=False),
+    seed: int | None = typer.Option(None, "--seed", help="random seed of the resamples",
+                                    show_default=False),
+    var: list[str] | None = typer.Option(None, "--var", help="map our name to the file's, "
+                                         "e.g. --var u=U", show_default=False),
+    scalar: list[str] | None = typer.Option(None, "--scalar", help="passive scalar to carry "
+                                            "(repeatable)", show_default=False),
+    snapshots: str | None = typer.Option(None, "--snapshots", help="snapshot indices to use, "
+                                         "e.g. 0,1,2,3 (default: all)", show_default=False),
+    non_periodic: bool = typer.Option(False, "--non-periodic", help="the data are not "
+                                      "periodic"),
+    report_dir: Path | None = typer.Option(
+        None, "--report", help="also write the HTML report of the first width's model, with "
+        "the sweep figures, to this folder", show_default=False),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
+) -> None:
+    """Fit the same closure at several filter widths and record the scaled coefficients and
+    held-out scores per width (a scale-invariant closure has flat scaled coefficients)."""
+    from closure.cli.coarse import parse_var_options
+    from closure.spec import parse_spec
+    from closure.sweep import run_sweep
+
+    base: dict = {}
+    if spec is not None:
+        try:
+            base = json.loads(spec.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise OptionError(f"no spec file {spec}") from None
+        except json.JSONDecodeError as exc:
+            raise OptionError(f"{spec} is not JSON ({exc})") from None
+        if not isinstance(base, dict):
+            raise OptionError(f"{spec} must hold a JSON object (a job spec)")
+    base.setdefault("input", {})
+    base["input"] = {k: v for k, v in base["input"].items() if k != "dataset_id"}
+    base["input"]["path"] = str(input)
+    if var:
+        base["input"]["variables"] = parse_var_options(var)
+    if scalar:
+        base["input"]["scalars"] = list(scalar)
+    if snapshots is not None:
+        base["input"]["snapshots"] = parse_number_list(snapshots, "--snapshots", int)
+    if non_periodic:
+        base["input"]["periodic"] = False
+    filt = dict(base.get("filter") or {})
+    for key, value in (("kind", filter), ("width_units", width_units)):
+        if value is not None:
+            filt[key] = value
+    base["filter"] = filt
+    for key, value in (("target", target), ("library", library), ("scheme", scheme)):
+        if value is not None:
+            base[key] = value
+    fit = dict(base.get("fit") or {})
+    for key, value in (("method", method), ("test_fraction", test_fraction),
+                       ("resamples", resamples), ("transfer_weight", transfer_weight),
+                       ("seed", seed)):
+        if value is not None:
+            fit[key] = value
+    base["fit"] = fit
+    job = parse_spec(base)
+    if output.exists() and output.resolve() == input.resolve():
+        raise OptionError(f"the output {output} is the input file: choose another -o")
+    result = run_sweep(job, parse_number_list(widths, "--widths"),
+                       parse_number_list(ratios, "--ratios", int),
+                       progress=None if quiet else _sweep_progress())
+    result.save(output)
+    if not quiet:
+        for name, values in result.coefficients().items():
+            text = ", ".join("-" if v != v else f"{v:.4g}" for v in values)
+            typer.echo(f"{name}: {text}", err=True)
+    typer.echo(str(output))
+    if report_dir is not None:
+        from closure.report import build_report
+
+        first = result.entries[0].model
+        out = build_report(first, report_dir, input, sweep=result)
+        typer.echo(str(out / "index.html"))
+
+
+def _sweep_progress():
+    def progress(phase: str, done: int, total: int) -> None:
+        if phase == "sweep":
+            typer.echo(f"filter widths fitted: {done}/{total}", err=True)
+    return progress
 
 
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
+    app.command("report")(report)
+    app.command("sweep")(sweep)

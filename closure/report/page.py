@@ -66,26 +66,28 @@ def _model_dict(model) -> dict:
 
 def term_rows(model) -> list[dict]:
     """One plain dict per term: name, coefficient, coefficient_scaled, std_error,
-    std_error_scaled, selection_frequency, delta_power, latex (None where unknown)."""
+    std_error_scaled, selection_frequency, delta_power, active (None where unknown).
+
+    Read from the model file's records (``to_dict()["terms"]``) when the model has them,
+    else from ``model.terms`` items (dicts or objects with those attributes).
+    """
+    records = _model_dict(model).get("terms")
+    if not records:
+        records = _get(model, "terms", None) or []
     rows = []
-    for t in _get(model, "terms", None) or []:
-        name = t if isinstance(t, str) else _get(t, "name")
-        row = {"name": str(name)}
+    for t in records:
+        row = {"name": str(t if isinstance(t, str) else _get(t, "name"))}
         for key in ("coefficient", "coefficient_scaled", "std_error", "std_error_scaled",
-                    "selection_frequency", "delta_power", "latex", "expression"):
-            value = None if isinstance(t, str) else _get(t, key)
-            row[key] = value
+                    "selection_frequency", "delta_power", "active"):
+            row[key] = None if isinstance(t, str) else _get(t, key)
+        if row["active"] is None:
+            row["active"] = row["coefficient_scaled"] != 0 or row["coefficient"] != 0
+        if row["std_error_scaled"] is None and row["std_error"] is not None \
+                and row["coefficient"] and row["coefficient_scaled"] is not None:
+            # the scaling is one factor D^p, the same for the coefficient and its error
+            row["std_error_scaled"] = abs(row["std_error"] * row["coefficient_scaled"]
+                                          / row["coefficient"])
         rows.append(row)
-    coefs = _get(model, "coefficients", None)
-    if coefs is not None and rows and all(r["coefficient"] is None for r in rows):
-        for r, c in zip(rows, list(coefs), strict=False):
-            r["coefficient"] = float(c)
-    for r in rows:
-        if r["std_error_scaled"] is None and r["std_error"] is not None \
-                and r["coefficient"] and r["coefficient_scaled"] is not None:
-            # the scaling is a fixed factor D^-p, the same for the coefficient and its error
-            r["std_error_scaled"] = abs(r["std_error"] * r["coefficient_scaled"]
-                                        / r["coefficient"])
     return rows
 
 
@@ -122,7 +124,7 @@ def _flat(v):
     if isinstance(v, Mapping):
         return ", ".join(f"{k}: {_plain(x)}" for k, x in v.items())
     if isinstance(v, list | tuple):
-        return ", ".join(_plain(x) for x in v)
+        return _short(_plain(x) for x in v)
     return v
 
 
@@ -130,6 +132,14 @@ def _plain(v) -> str:
     if isinstance(v, float):
         return f"{v:.4g}"
     return str(v)
+
+
+def _short(values, n: int = 10) -> str:
+    values = list(values)
+    if len(values) <= n:
+        return ", ".join(map(str, values))
+    return (", ".join(map(str, values[:4])) + ", ..., " + ", ".join(map(str, values[-3:]))
+            + f" ({len(values)})")
 
 
 def flatten(d: Mapping, prefix: str = "") -> dict:
@@ -210,40 +220,47 @@ def _atomic_folder(out_dir: Path):
 
 
 def _summary_section(model, mdict) -> str:
-    filt = _get(model, "filter", None) or mdict.get("filter") or {}
-    prov = _get(model, "provenance", None) or mdict.get("provenance") or {}
+    from closure.report.gather import provenance_input
+
+    filt = dict(_get(model, "filter", None) or mdict.get("filter") or {})
+    prov = dict(_get(model, "provenance", None) or mdict.get("provenance") or {})
+    library = mdict.get("library")
+    grid = mdict.get("grid") or {}
+    info = provenance_input(model) if prov else {}
+    snaps = prov.get("snapshots") if isinstance(prov.get("snapshots"), Mapping) else {}
+    inp = prov.get("input") if isinstance(prov.get("input"), Mapping) else {}
+    train = snaps.get("train", inp.get("train"))
     summary = {
         "target": _get(model, "target"),
-        "filter": filt.get("kind") if isinstance(filt, Mapping) else filt,
-        "filter width D": filt.get("width") if isinstance(filt, Mapping) else None,
-        "filter width (fine spacings)": filt.get("width_cells")
-        if isinstance(filt, Mapping) else None,
-        "coarsening ratio": filt.get("ratio") if isinstance(filt, Mapping) else None,
+        "components": mdict.get("components"),
+        "filter": filt.get("kind"),
+        "filter width D": _get(model, "delta") or filt.get("width"),
+        "filter width (fine spacings)": filt.get("width_cells"),
+        "coarsening ratio": filt.get("ratio"),
+        "coarse grid": " x ".join(map(str, grid.get("shape", []))) + (
+            f" ({', '.join(grid.get('dims', []))}), spacing "
+            f"{', '.join(f'{h:.4g}' for h in grid.get('spacing', []))}" if grid else ""),
         "derivative scheme": _get(model, "scheme"),
-        "library": _get(model, "library") or mdict.get("library"),
-        "fit method": (mdict.get("fit") or {}).get("method")
-        if isinstance(mdict.get("fit"), Mapping) else mdict.get("method"),
+        "library": library.get("name") if isinstance(library, Mapping) else library,
+        "fit method": mdict.get("method"),
+        "input file": info.get("path"),
+        "input sha256": info.get("sha256"),
+        "training snapshots": train,
+        "held-out snapshots": info.get("test"),
+        "created": prov.get("created"),
+        "closure version": prov.get("closure_version"),
     }
-    if isinstance(prov, Mapping):
-        inp = prov.get("input") if isinstance(prov.get("input"), Mapping) else prov
-        for key, label in (("path", "input file"), ("sha256", "input sha256")):
-            if isinstance(inp, Mapping) and inp.get(key):
-                summary[label] = inp.get(key)
-        for key in ("created", "created_at", "closure_version"):
-            if prov.get(key):
-                summary[key.replace("_", " ")] = prov[key]
-    summary = {k: v for k, v in summary.items() if v not in (None, "", {})}
-    text = getattr(model, "summary", None)
-    pre = ""
-    if callable(text):
-        with contextlib.suppress(Exception):
-            pre = f"<pre>{html.escape(str(text()))}</pre>"
-    return "<h2>Model</h2>" + _kv_table(summary) + pre
+    summary = {k: v for k, v in summary.items() if v not in (None, "", {}, [])}
+    return "<h2>Model</h2>" + _kv_table(summary)
 
 
-def _terms_section(rows: list[dict]) -> str:
+def _terms_section(all_rows: list[dict]) -> str:
+    rows = [r for r in all_rows if r["active"]]
+    inactive = [r["name"] for r in all_rows if not r["active"]]
+    rest = ("<p>Terms not selected: " + ", ".join(f"<code>{html.escape(n)}</code>"
+                                                  for n in inactive) + ".</p>") if inactive else ""
     if not rows:
-        return "<h2>Terms</h2><p>The model has no terms (every candidate was eliminated).</p>"
+        return ("<h2>Terms</h2><p>No term was selected: the model predicts zero.</p>" + rest)
     body = []
     for r in rows:
         coef = _fmt(r["coefficient"])
@@ -256,11 +273,14 @@ def _terms_section(rows: list[dict]) -> str:
                     f"<td>{_fmt(r['delta_power'])}</td><td>{scaled}</td>"
                     f"<td>{_fmt(r['selection_frequency'])}</td></tr>")
     head = ("<tr><th>term</th><th>coefficient &plusmn; std error</th><th>power p of D</th>"
-            "<th>scaled coefficient (c / D<sup>p</sup>)</th><th>selection frequency</th></tr>")
+            "<th>scaled coefficient (c / D<sup>p</sup>) &plusmn; std error</th>"
+            "<th>selection frequency</th></tr>")
     return (f"<h2>Terms</h2><table><thead>{head}</thead><tbody>{''.join(body)}</tbody></table>"
-            "<p>The scaled coefficient is the dimensional one divided by the filter width to the "
-            "term's power, so it is comparable across resolutions. The selection frequency is "
-            "the share of resamples in which the term was kept.</p>")
+            + rest +
+            "<p>The coefficient multiplies the term with D = 1 (dimensional); the scaled "
+            "coefficient is it divided by the filter width D to the term's power p, so it is "
+            "comparable across resolutions. The selection frequency is the share of resamples "
+            "in which the term was kept.</p>")
 
 
 def _collect_warnings(model, mdict, extra) -> list[str]:
@@ -271,9 +291,6 @@ def _collect_warnings(model, mdict, extra) -> list[str]:
             out.append(str(text))
     return out
 
-
-def _float_list(values) -> list:
-    return [None if v is None or not math.isfinite(float(v)) else float(v) for v in values]
 
 
 # ------------------------------------------------------------------ the entry point
@@ -314,12 +331,13 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
     with _atomic_folder(out_dir) as tmp:
         sections.append(_summary_section(model, mdict))
         sections.append(_terms_section(rows))
-        if rows:
-            fig = plots.coefficients([r["name"] for r in rows],
+        active = [r for r in rows if r["active"]]
+        if active:
+            fig = plots.coefficients([r["name"] for r in active],
                                      [r["coefficient_scaled"] if r["coefficient_scaled"]
-                                      is not None else r["coefficient"] or 0.0 for r in rows],
-                                     [r["std_error_scaled"] for r in rows],
-                                     [r["selection_frequency"] for r in rows])
+                                      is not None else r["coefficient"] or 0.0 for r in active],
+                                     [r["std_error_scaled"] for r in active],
+                                     [r["selection_frequency"] for r in active])
             plots.save_png(fig, tmp / "coefficients.png")
             sections.append(_figure("coefficients.png",
                                     "Scaled coefficients with one standard error, and how "
@@ -341,7 +359,7 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
 
         if sweep_dict is not None:
             sections.append(_sweep_section(sweep_dict, tmp))
-            numbers["sweep"] = {"widths": [e.get("delta") for e in sweep_dict["entries"]]}
+            numbers["sweep"] = {"delta": [e.get("delta") for e in sweep_dict["entries"]]}
         if runs is not None:
             sections.append(_aposteriori_section(runs, tmp))
             numbers["aposteriori"] = runs.summary()
@@ -416,44 +434,49 @@ def _sweep_dict(sweep) -> dict:
     return d
 
 
+#: Held-out scores drawn against the filter width, when the sweep has them.
+SWEEP_SCORES = ("r2", "correlation", "relative_error", "energy_transfer_correlation",
+                "enstrophy_transfer_correlation", "scalar_variance_transfer_correlation")
+
+
 def _sweep_section(sweep: dict, tmp: Path) -> str:
+    from closure.sweep import selected_coefficients
+
     entries = sorted(sweep["entries"], key=lambda e: e["delta"])
     delta = [e["delta"] for e in entries]
-    names: list[str] = []
-    for e in entries:
-        for n in e["terms"]:
-            if n not in names:
-                names.append(n)
-    scaled = {n: _float_list([e["terms"].get(n, {}).get("coefficient_scaled", math.nan)
-                              if e["terms"].get(n) else math.nan for e in entries])
-              for n in names}
-    errors = {n: _float_list([(e["terms"].get(n) or {}).get("std_error_scaled") or math.nan
-                              for e in entries]) for n in names}
-    scaled_nan = {n: [math.nan if v is None else v for v in c] for n, c in scaled.items()}
-    errors_nan = {n: [math.nan if v is None else v for v in c] for n, c in errors.items()}
-    out = ["<h2>Filter-width sweep</h2>"]
-    rows = []
-    for e in entries:
-        rows.append([e["delta"], e.get("width_cells"), e.get("ratio")]
-                    + [(e["terms"].get(n) or {}).get("coefficient_scaled") for n in names])
+    scaled, errors = selected_coefficients(entries)
+    names = list(scaled)
+    out = ["<h2>Filter-width sweep</h2>",
+           "<p>The same data, library and fit at each filter width D. Scaled coefficients "
+           "(c / D<sup>p</sup>); blank where the term was not selected.</p>"]
+    rows = [[e["delta"], e.get("width_cells"), e.get("ratio")] + [
+        None if math.isnan(scaled[n][k]) else scaled[n][k] for n in names]
+        for k, e in enumerate(entries)]
     out.append(_table(["D", "D (fine spacings)", "ratio"] + names, rows))
     if names:
-        plots.save_png(plots.sweep_coefficients(delta, scaled_nan, errors_nan),
+        plots.save_png(plots.sweep_coefficients(delta, scaled, errors),
                        tmp / "sweep_coefficients.png")
-        out.append(_figure("sweep_coefficients.png", "Scaled coefficients vs filter width D; a "
-                           "closure whose D-scaling is right gives flat lines"))
-    score_names: list[str] = []
-    for e in entries:
-        for n, v in (e.get("test_scores") or {}).items():
-            if isinstance(v, int | float) and n not in score_names:
-                score_names.append(n)
-    if score_names:
-        series = {n: [(e.get("test_scores") or {}).get(n, math.nan) for e in entries]
-                  for n in score_names}
-        series = {n: [math.nan if v is None else v for v in s] for n, s in series.items()}
+        out.append(_figure("sweep_coefficients.png", "Scaled coefficients vs filter width D, "
+                           "+/- one standard error; a closure whose D-scaling is right gives "
+                           "flat lines"))
+    available = [n for n in SWEEP_SCORES
+                 if any(isinstance((e.get("test_scores") or {}).get(n), int | float)
+                        for e in entries)]
+    if not available:  # scores under other names: the numeric ones, at most six
+        for e in entries:
+            available += [n for n, v in (e.get("test_scores") or {}).items()
+                          if isinstance(v, int | float) and n not in available]
+        available = available[:6]
+    if available:
+        series = {n: [_num_or_nan((e.get("test_scores") or {}).get(n)) for e in entries]
+                  for n in available}
         plots.save_png(plots.sweep_scores(delta, series), tmp / "sweep_scores.png")
         out.append(_figure("sweep_scores.png", "Held-out a priori scores vs filter width D"))
     return "".join(out)
+
+
+def _num_or_nan(v) -> float:
+    return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else math.nan
 
 
 def _aposteriori_section(runs: AposterioriRuns, tmp: Path) -> str:

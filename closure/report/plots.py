@@ -15,6 +15,7 @@ from pathlib import Path
 import matplotlib
 
 matplotlib.use("Agg")
+import matplotlib.ticker  # noqa: E402
 import numpy as np  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
@@ -127,15 +128,24 @@ def coefficients(names: Sequence[str], scaled: Sequence[float], std_error: Seque
     ax.axvline(0.0, color="grey", lw=0.6)
     ax.set_yticks(y, list(names))
     ax.invert_yaxis()
-    ax.set_xlabel("coefficient scaled by D^p (dimensionless) +/- 1 std error")
+    ax.set_xlabel("scaled coefficient c / D^p, +/- 1 std error")
     ax.set_title("Coefficients")
     if ax2 is not None:
         f = np.array([0.0 if v is None else v for v in selection_frequency], dtype=float)
         ax2.barh(y, f, height=0.6, color="tab:orange")
         ax2.set_xlim(0, 1)
         ax2.set_xlabel("selection frequency")
-        ax2.set_title("Selected in resamples")
+        ax2.set_title("Selection")
     return fig
+
+
+def _width_axis(ax, d: np.ndarray) -> None:
+    """Log x axis with ticks at the filter widths themselves (few, often within a decade)."""
+    ax.set_xscale("log")
+    ax.xaxis.set_minor_locator(matplotlib.ticker.NullLocator())
+    ticks = np.unique(d[np.isfinite(d) & (d > 0)])
+    ax.set_xticks(ticks, [f"{v:.3g}" for v in ticks])
+    ax.set_xlabel("filter width D")
 
 
 def sweep_coefficients(delta: Sequence[float], scaled: Mapping[str, Sequence[float]],
@@ -157,9 +167,8 @@ def sweep_coefficients(delta: Sequence[float], scaled: Mapping[str, Sequence[flo
             e = np.where(np.isfinite(e), e, 0.0)
         ax.errorbar(d, c, yerr=e, marker="o", capsize=3, label=name)
     ax.axhline(0.0, color="grey", lw=0.6)
-    ax.set_xscale("log")
-    ax.set_xlabel("filter width D")
-    ax.set_ylabel("coefficient scaled by D^p")
+    _width_axis(ax, d)
+    ax.set_ylabel("scaled coefficient c / D^p")
     ax.set_title("Coefficients vs filter width (flat: scale invariant)")
     ax.legend(fontsize=8)
     return fig
@@ -173,8 +182,7 @@ def sweep_scores(delta: Sequence[float], scores: Mapping[str, Sequence[float]],
     ax = fig.subplots()
     for name, s in scores.items():
         ax.plot(d, np.asarray(s, dtype=float), marker="o", label=name)
-    ax.set_xscale("log")
-    ax.set_xlabel("filter width D")
+    _width_axis(ax, d)
     ax.set_ylabel("held-out score")
     ax.set_title("A priori scores on held-out snapshots vs filter width")
     ax.legend(fontsize=8)
