@@ -449,7 +449,8 @@ class VorticityEquation:
     with linear drag ``mu`` (s^-1), viscosity ``nu`` (m^2 s^-1 for ``p = 1``; m^(2p) s^-1 for
     hyperviscosity order ``p``), a steady ``forcing`` and an optional explicit ``subgrid`` term
     S (a callable of the real fields ``{"u", "v", "vorticity"}`` returning the vorticity
-    tendency on the grid). With ``scalar`` a passive scalar ``c`` is carried too:
+    tendency on the grid: a real array, or a complex one already in the rfftn layout).
+    With ``scalar`` a passive scalar ``c`` is carried too:
 
         d_t c + u . grad c = kappa lap c - G v       (G = ``scalar_gradient``, a mean
                                                       gradient of the total scalar along y)
@@ -531,7 +532,7 @@ class VorticityEquation:
         out = -F.forward(np.stack(products))
         if self.subgrid is not None:
             term = self.subgrid({"u": u, "v": v, "vorticity": real[-1]})
-            out[0] += F.forward(term)
+            out[0] += term if np.iscomplexobj(term) else F.forward(term)
         if self.scalar and self.scalar_gradient:
             out[1] -= self.scalar_gradient * F.forward(v)
         out *= self._mask
