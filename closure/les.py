@@ -833,6 +833,8 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
         dealias = str(attrs.get("dealias", "true")).lower() == "true"
     force = parse_forcing(forcing, attrs)
     grid = init.grid
+    if model is not None and callable(getattr(model, "grid_warnings", None)):
+        warnings.extend(model.grid_warnings(grid) or [])
     names = parse_baselines(baselines)
     closures: dict[str, object] = {model_label: model}
     for b in names:

@@ -145,6 +145,7 @@ def test_turb3d_is_divergence_free_and_decays_monotonically():
         energy.append(kinetic_energy(vel))
     assert energy[0] == pytest.approx(0.5)
     assert np.all(np.diff(energy) < 0)
+    assert ds.attrs["max_relative_divergence"] < 1e-13
 
 
 def test_3d_taylor_green_initial_dissipation():

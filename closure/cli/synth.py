@@ -69,6 +69,8 @@ def _summary(ds, path: Path) -> str:
         f"t = {t[0]:g} .. {t[-1]:g} s, {ds.attrs.get('steps', '?')} steps",
         f"kinetic energy 0.5<u_i u_i>: {energy[0]:.4g} -> {energy[1]:.4g} m2 s-2",
         f"variables: {', '.join(ds.data_vars)}",
+        *([f"max |k . u_hat| / (|k| |u_hat|): {ds.attrs['max_relative_divergence']:.2g}"]
+          if "max_relative_divergence" in ds.attrs else []),
         f"written: {path}",
     ]
     return "\n".join(lines)

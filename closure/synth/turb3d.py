@@ -19,6 +19,7 @@ from closure.errors import OptionError
 from closure.grid import Grid
 from closure.spectral import (
     cfl_time_step,
+    divergence_hat_norm,
     fourier,
     ifrk4_step,
     project_hat,
@@ -126,10 +127,12 @@ def turb3d(
         uh, steps = eq.advance(uh, spinup, cfl)
     frames = {"u": [], "v": [], "w": []}
     times = []
+    divergence = 0.0
     for j in range(snapshots):
         if j:
             uh, k = eq.advance(uh, interval, cfl)
             steps += k
+        divergence = max(divergence, divergence_hat_norm(uh, grid))
         w, v, u = eq.fourier.backward(uh)
         for name, f in (("u", u), ("v", v), ("w", w)):
             frames[name].append(f)
@@ -151,5 +154,6 @@ def turb3d(
         "cfl": float(cfl),
         "dealias": bool(dealias),
         "steps": int(steps),
+        "max_relative_divergence": float(divergence),
     }
     return make_dataset(grid, times, frames, attrs)
