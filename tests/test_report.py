@@ -338,3 +338,123 @@ def test_write_report_escapes_text(tmp_path):
     out = write_report(model, tmp_path / "rep")
     page = (out / "index.html").read_text()
     assert "<script>" not in page and "&lt;script&gt;" in page
+
+
+# ---------------------------------------------------------------- from files, real modules
+
+import json  # noqa: E402
+
+from closure.errors import UserError  # noqa: E402
+from closure.report import build_report  # noqa: E402
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory):
+    """Demo 2-D turbulence (closure.synth.turb2d, 32^2, 4 snapshots) and a model fitted on
+    it (the last snapshot held out)."""
+    from closure import pipeline
+    from closure.spec import parse_spec
+    from closure.synth import turb2d, write
+
+    root = tmp_path_factory.mktemp("fitted")
+    data = write(turb2d(n=32, snapshots=4, interval=0.2, spinup=0.5), root / "turb.nc")
+    spec = parse_spec({"input": {"path": str(data)}, "filter": {"ratio": 2},
+                       "fit": {"resamples": 2}})
+    model = pipeline.discover(spec)
+    path = model.save(root / "model.json")
+    return {"root": root, "data": data, "model": model, "path": path}
+
+
+def test_build_report_from_model_file(fitted, tmp_path):
+    out = build_report(fitted["path"], tmp_path / "rep")
+    links = check_report_folder(out)
+    assert {"coefficients.png", "apriori_hexbin.png", "transfer_energy.png",
+            "transfer_enstrophy.png"} <= set(links)
+    numbers = json.loads((out / "report.json").read_text())
+    model = fitted["model"]
+    test = model.provenance["snapshots"]["test"]
+    assert numbers["apriori"]["snapshots"] == test
+    # the report re-reads and re-coarse-grains the held-out snapshots itself; its pooled R^2
+    # equals scikit-learn's on those points, and the model's own held-out score (computed
+    # from sufficient statistics, another code path)
+    from closure.filters import make_coarse_graining
+    from closure.io import open_fields
+    from closure.residuals import coarse_grain_snapshot
+
+    with open_fields(fitted["data"]) as src:
+        cg = make_coarse_graining("gaussian", src.grid, 2)
+        snaps = [coarse_grain_snapshot(src.snapshot(i), cg) for i in test]
+    for comp in model.components:
+        exact = np.concatenate([s.targets[comp].ravel() for s in snaps])
+        pred = np.concatenate([model.evaluate(s.fields, s.grid)[comp].ravel() for s in snaps])
+        got = numbers["apriori"]["agreement"][comp]["r2"]
+        assert got == pytest.approx(r2_score(exact, pred), rel=1e-9)
+        assert got == pytest.approx(model.scores["test"][f"r2_{comp}"], rel=1e-6)
+    # the transfer spectra sum to the domain means of the pointwise transfers (Parseval), so
+    # their model/exact ratio is the model's held-out mean-transfer ratio
+    for t in numbers["apriori"]["transfers"]:
+        ratio = model.scores["test"][f"{t['name']}_transfer_mean_ratio"]
+        assert t["model_total"] / t["exact_total"] == pytest.approx(ratio, rel=1e-6)
+    page = (out / "index.html").read_text()
+    for r in [t for t in model.to_dict()["terms"] if t["active"]]:
+        assert r["name"] in page
+    assert "held-out snapshots" in page
+
+
+def test_build_report_without_the_input_file(fitted, tmp_path):
+    d = fitted["model"].to_dict()
+    d["provenance"]["input"] = str(tmp_path / "gone.nc")
+    out = build_report(d, tmp_path / "rep")
+    assert check_report_folder(out) == ["coefficients.png"]
+    assert "gone.nc is not available here" in (out / "index.html").read_text()
+
+
+def test_build_report_notes_a_different_input(fitted, tmp_path):
+    from closure.synth import turb2d, write
+
+    other = write(turb2d(n=32, snapshots=4, interval=0.2, spinup=0.5, seed=7),
+                  tmp_path / "other.nc")
+    out = build_report(fitted["path"], tmp_path / "rep", other)
+    assert "apriori_hexbin.png" in check_report_folder(out)
+    assert "not the one the model was fitted on" in (out / "index.html").read_text()
+
+
+def test_build_report_refuses_a_mismatched_grid(fitted, tmp_path):
+    from closure.synth import turb2d, write
+
+    other = write(turb2d(n=16, snapshots=2, interval=0.2, spinup=0.2), tmp_path / "small.nc")
+    with pytest.raises(UserError, match="differs from the model's training grid"):
+        build_report(fitted["path"], tmp_path / "rep", other)
+    assert not (tmp_path / "rep").exists()
+
+
+def test_report_command(fitted, tmp_path, capsys):
+    from closure.cli import main
+
+    les = tmp_path / "les.json"
+    les.write_text(json.dumps(stand_in_les()))
+    rc = main(["report", str(fitted["path"]), "-o", str(tmp_path / "rep"), "--les", str(les),
+               "--snapshots", "2,3", "-q"])
+    assert rc == 0
+    assert capsys.readouterr().out.strip() == str(tmp_path / "rep" / "index.html")
+    links = check_report_folder(tmp_path / "rep")
+    assert "aposteriori_spectra.png" in links
+    numbers = json.loads((tmp_path / "rep" / "report.json").read_text())
+    assert numbers["apriori"]["snapshots"] == [2, 3]
+
+
+@pytest.mark.parametrize("args,message", [
+    (["missing.json"], "no model file"),
+    (["MODEL", "--snapshots", "1,a"], "--snapshots expects comma-separated whole numbers"),
+    (["MODEL", "--snapshots", "9"], "out of range"),
+    (["MODEL", "--les", "missing-les.json"], "no a posteriori result file"),
+])
+def test_report_command_user_errors(fitted, tmp_path, capsys, args, message):
+    from closure.cli import main
+
+    args = [str(fitted["path"]) if a == "MODEL" else a for a in args]
+    rc = main(["report", *args, "-o", str(tmp_path / "rep")])
+    assert rc == 2
+    err = capsys.readouterr().err
+    assert err.startswith("error: ") and message in err
+    assert not (tmp_path / "rep").exists()

@@ -151,11 +151,21 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
     out. ``les``: a posteriori result (object, dict or JSON path from ``closure les``);
     ``sweep``: sweep result (SweepResult, dict or JSON path from ``closure sweep``).
     """
+    from closure.report.aposteriori import as_runs
     from closure.report.apriori import apriori_data
-    from closure.report.page import write_report
+    from closure.report.page import _sweep_dict, write_report
 
     model_file = Path(model) if isinstance(model, str | os.PathLike) else None
     model = load_model(model)
+    if isinstance(les, str | os.PathLike):
+        les = _json_file(les, "a posteriori result", "closure les")
+    if isinstance(sweep, str | os.PathLike):
+        sweep = _json_file(sweep, "sweep", "closure sweep")
+    # malformed a posteriori or sweep data fail here, before the a priori pass
+    if les is not None:
+        les = as_runs(les)
+    if sweep is not None:
+        _sweep_dict(sweep)
     notes: list[str] = []
     if input_path is None:
         recorded = provenance_input(model)["path"]
@@ -173,10 +183,6 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
         snaps, more = held_out_snapshots(model, input_path, snapshots, progress)
         notes += more
         apriori = apriori_data(model, snaps)
-    if isinstance(les, str | os.PathLike):
-        les = _json_file(les, "a posteriori result", "closure les")
-    if isinstance(sweep, str | os.PathLike):
-        sweep = _json_file(sweep, "sweep", "closure sweep")
     if progress is not None:
         progress("write", 0, 1)
     out = write_report(model, out_dir, les_result=les, sweep=sweep, apriori=apriori,
