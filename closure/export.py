@@ -94,16 +94,20 @@ class _Code:
                 e += coef[t.name] * t.components[key]
             exprs.append(_printable(e))
         names = [*self.inputs, *(n for n, _ in self.constants), *self.outputs]
-        self._check_names(names)
+        for n in names:
+            if not _IDENT.match(n):
+                raise UserError(f"{n!r} is not a valid identifier for C and Fortran: rename it")
+        if name in names:
+            raise UserError(f"the function name {name!r} is also a variable name: choose another "
+                            "--name")
+        self.names = names
         taken = {n.lower() for n in names}
         temps = (sympy.Symbol(f"tmp_{i}", real=True) for i in _count(taken))
         self.temporaries, self.results = sympy.cse(exprs, symbols=temps, order="none")
 
-    def _check_names(self, names):
+    def _check_case(self):
         seen = {}
-        for n in names:
-            if not _IDENT.match(n):
-                raise UserError(f"{n!r} is not a valid identifier for C and Fortran: rename it")
+        for n in [*self.names, self.name, f"{self.name}_mod"]:
             low = n.lower()
             if low in seen and seen[low] != n:
                 raise UserError(f"{seen[low]!r} and {n!r} differ only in case, which Fortran "
@@ -209,6 +213,7 @@ class _Code:
     # -- Fortran ---------------------------------------------------------------------------
 
     def fortran(self) -> str:
+        self._check_case()
         head = "\n".join(("! " + ln).rstrip() for ln in self.header_lines())
         mod = f"{self.name}_mod"
         args = [*self.inputs, *self.outputs]

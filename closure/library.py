@@ -554,7 +554,10 @@ def _make_term(name: str, target: str, k: Kinematics, comps: Mapping[str, sympy.
     keys = component_keys(target, k.dirs)
     out = {}
     for key in keys:
-        e = _guard(sympy.sympify(comps[key]))
+        e = sympy.sympify(comps[key])
+        if e.is_polynomial():  # canonical, so the model file's string reads back identically
+            e = sympy.expand(e)
+        e = _guard(e)
         _check_printable(e, f"term {name!r} component {key or 'value'}")
         out[key] = e
     term = Term(name, target_rank(target), out, delta_power, description, source)

@@ -469,3 +469,15 @@ terms:
     assert [s.name for s in L.term("advective").symbols] == ["u", "dc_dx"]
     # Delta u dc/dx has the flux's units (velocity x scalar)
     assert L.term("advective").dimensionless
+
+
+@pytest.mark.parametrize("target,dims", [("stress", ("x",)), ("stress", ("z", "y", "x")),
+                                         ("force", ("y", "x")), ("force", ("z", "y", "x")),
+                                         ("flux:c", ("z", "y", "x")), ("vorticity", ("y", "x"))])
+def test_preset_expressions_read_back_identically(target, dims):
+    # the model file stores str(expression); reading it back must give the same expression
+    L = make_library("default", target, dims)
+    ns = lib.Namespace(lib.Kinematics(dims, L.scalars), allow_bare_velocity=True)
+    for t in L.terms:
+        for key, e in t.components.items():
+            assert lib.parse_expression(str(e), ns) == e, (t.name, key)

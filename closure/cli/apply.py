@@ -75,14 +75,19 @@ def _open_coarse_fields(path: Path, model, variables: dict[str, str]):
     on a coarse grid (FieldSource)."""
     from closure.io import open_coarse, open_fields
 
+    needed = model.library.subset([t.name for t in model.active_terms]).fields
+    scalars = tuple(f for f in needed if f in model.scalars)
     try:
         src = open_coarse(path) if not variables else None
     except InputFileError:
         src = None
     if src is None:
-        src = open_fields(path, variables, model.scalars, periodic=model.grid.periodic)
+        src = open_fields(path, variables, scalars, periodic=model.grid.periodic)
     try:
-        missing = [f for f in model.library.fields if f not in (*src.velocity, *src.scalars)]
+        if tuple(src.grid.dims) != model.dims:
+            raise InputFileError(f"the model is for a grid with dims {model.dims}; {path} has "
+                                 f"{tuple(src.grid.dims)}: apply a model fitted on such data")
+        missing = [f for f in needed if f not in (*src.velocity, *src.scalars)]
         if missing:
             raise InputFileError(f"{path} has no field {missing[0]!r}, which the model's terms "
                                  "need: give a file with it (or map it with --var)")

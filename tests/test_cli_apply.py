@@ -1,0 +1,148 @@
+import numpy as np
+import pytest
+import xarray as xr
+
+from closure.cli import main
+from closure.filters import make_coarse_graining
+from closure.grid import Grid
+from closure.io import Snapshot, open_coarse, write_coarse
+from closure.library import design, make_library
+from closure.model import ClosureModel
+from closure.residuals import coarse_grain_snapshot
+
+
+def fine_snapshots(n=2, size=32, seed=0):
+    """Smooth random 2-D velocity (a few Fourier modes) with a scalar c."""
+    g = Grid.regular((size, size), 2 * np.pi, units="m")
+    y, x = g.mesh()
+    rng = np.random.default_rng(seed)
+    out = []
+    for i in range(n):
+        f = {}
+        for name in ("u", "v", "c"):
+            f[name] = sum(rng.standard_normal() * np.cos(kx * x + ky * y + rng.uniform(0, 6))
+                          for kx, ky in rng.integers(-6, 7, size=(6, 2)))
+        out.append(Snapshot(f, g, i, float(i)))
+    return g, out
+
+
+@pytest.fixture
+def coarse_file(tmp_path):
+    g, snaps = fine_snapshots()
+    cg = make_coarse_graining("gaussian", g, 4)
+    coarse = [coarse_grain_snapshot(s, cg, ("c",)) for s in snaps]
+    path = write_coarse(tmp_path / "coarse.nc", coarse,
+                        {"file": "fine.nc", "sha256": "0" * 64, "names": {},
+                         "units": {"u": "m s-1", "v": "m s-1", "c": "K"}})
+    return path, cg, coarse
+
+
+def fitted_model(coarse, cg, target="stress", library="classic"):
+    """Least-squares coefficients of the library on the coarse snapshots (a real fit)."""
+    cs = coarse[0]
+    L = make_library(library, target, cs.grid.dims, ("c",))
+    X = np.concatenate([design(L, s.fields, s.grid, "spectral", cg.delta).reshape(-1, len(L))
+                        for s in coarse])
+    y = np.concatenate([np.stack([s.targets[c] for c in L.components]).reshape(-1)
+                        for s in coarse])
+    coef = np.linalg.lstsq(X, y, rcond=None)[0]
+    return ClosureModel.from_fit(L, coef, filter=cg, grid=cs.grid, scheme="spectral",
+                                 delta=cg.delta, provenance={"input": "fine.nc"},
+                                 method="least_squares", scores={"test": {"r2": 0.5}})
+
+
+def test_apply_writes_the_model_prediction(tmp_path, coarse_file, capsys):
+    path, cg, coarse = coarse_file
+    model = fitted_model(coarse, cg)
+    mpath = model.save(tmp_path / "model.json")
+    out = tmp_path / "pred.nc"
+    assert main(["apply", str(mpath), str(path), "-o", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "wrote" in text and "2 snapshot(s) of tau_xx, tau_xy, tau_yy" in text
+    assert "a priori on this file" in text and "a posteriori" in text
+    ds = xr.open_dataset(out)
+    try:
+        assert set(ds.data_vars) == {"tau_xx", "tau_xy", "tau_yy"}
+        assert ds["tau_xy"].dims == ("time", "y", "x")
+        assert ds["tau_xx"].attrs["units"] == "(m s-1)^2"
+        assert "modelled subgrid stress" in ds["tau_xx"].attrs["long_name"]
+        assert "a posteriori" in ds.attrs["caution"]
+        np.testing.assert_allclose(ds["x"].values, coarse[0].grid.coords("x"))
+        for i, cs in enumerate(coarse):
+            want = model.evaluate(cs.fields, cs.grid)
+            for c in want:
+                np.testing.assert_allclose(ds[c].values[i], want[c], rtol=1e-13)
+    finally:
+        ds.close()
+
+
+def test_apply_a_priori_skill_matches_a_direct_computation(tmp_path, coarse_file, capsys):
+    # r2 = 1 - sum w (y - p)^2 / sum w (y - mean)^2 with the Frobenius weights (common practice)
+    path, cg, coarse = coarse_file
+    model = fitted_model(coarse, cg, "flux:c")
+    mpath = model.save(tmp_path / "m.json")
+    assert main(["apply", str(mpath), str(path), "-o", str(tmp_path / "p.nc")]) == 0
+    text = capsys.readouterr().out
+    ys, ps = [], []
+    for cs in coarse:
+        pred = model.evaluate(cs.fields, cs.grid)
+        for c in model.components:
+            ys.append(cs.targets[c].ravel())
+            ps.append(pred[c].ravel())
+    y, p = np.concatenate(ys), np.concatenate(ps)
+    r2 = 1 - np.sum((y - p) ** 2) / np.sum((y - y.mean()) ** 2)
+    assert f"r2 {r2:.4f}" in text
+    assert f"correlation {np.corrcoef(y, p)[0, 1]:.4f}" in text
+
+
+def test_apply_reads_plain_netcdf_fields(tmp_path, coarse_file, make_netcdf, capsys):
+    path, cg, coarse = coarse_file
+    model = fitted_model(coarse, cg, "force")
+    mpath = model.save(tmp_path / "m.json")
+    g = coarse[0].grid
+    plain = make_netcdf({"U": np.stack([cs.fields["u"] for cs in coarse]),
+                         "V": np.stack([cs.fields["v"] for cs in coarse])}, name="plain.nc",
+                        coords={"time": [0.0, 1.0], "y": g.coords("y"), "x": g.coords("x")})
+    out = tmp_path / "pred.nc"
+    assert main(["apply", str(mpath), str(plain), "-o", str(out), "--var", "u=U",
+                 "--var", "v=V"]) == 0
+    assert "a priori on this file" not in capsys.readouterr().out  # no exact targets there
+    with xr.open_dataset(out) as ds:
+        want = model.evaluate(coarse[1].fields, g)
+        np.testing.assert_allclose(ds["force_y"].values[1], want["force_y"], rtol=1e-12)
+
+
+def test_apply_errors_are_one_line(tmp_path, coarse_file, capsys):
+    path, cg, coarse = coarse_file
+    assert main(["apply", str(tmp_path / "none.json"), str(path), "-o",
+                 str(tmp_path / "p.nc")]) == 2
+    assert "error: no model file" in capsys.readouterr().err
+    mpath = fitted_model(coarse, cg).save(tmp_path / "m.json")
+    assert main(["apply", str(mpath), str(path), "-o", str(path)]) == 2
+    assert "is the input file" in capsys.readouterr().err
+    L = make_library("classic", "stress", ("z", "y", "x"))
+    g3 = Grid.regular((8, 8, 8), 2 * np.pi)
+    m3 = ClosureModel.from_fit(L, [0.1, 1.0], filter={"kind": "box", "ratio": 2}, grid=g3,
+                               scheme="spectral", delta=0.5).save(tmp_path / "m3.json")
+    assert main(["apply", str(m3), str(path), "-o", str(tmp_path / "p.nc")]) == 2
+    assert "error: the model is for a grid with dims ('z', 'y', 'x')" in capsys.readouterr().err
+    assert not (tmp_path / "p.nc").exists()
+    # the input was never written
+    with open_coarse(path) as src:
+        assert src.n_snapshots == 2
+
+
+def test_show_model_and_export_model(tmp_path, coarse_file, capsys):
+    path, cg, coarse = coarse_file
+    mpath = fitted_model(coarse, cg).save(tmp_path / "m.json")
+    assert main(["show-model", str(mpath)]) == 0
+    text = capsys.readouterr().out
+    assert "Closure model for stress" in text and "gradient_model" in text
+    assert "Scores (test): r2 0.5" in text and "a posteriori" in text
+    out = tmp_path / "code" / "model.f90"
+    assert main(["export-model", str(mpath), "--lang", "fortran", "-o", str(out)]) == 0
+    assert "module closure_model_mod" in out.read_text()
+    assert main(["export-model", str(mpath), "--lang", "c"]) == 0
+    assert "void closure_model(" in capsys.readouterr().out
+    assert main(["export-model", str(mpath), "--lang", "cobol"]) == 2
+    assert "unknown export language 'cobol'" in capsys.readouterr().err
