@@ -434,7 +434,7 @@ def test_report_command(fitted, tmp_path, capsys):
     les = tmp_path / "les.json"
     les.write_text(json.dumps(stand_in_les()))
     rc = main(["report", str(fitted["path"]), "-o", str(tmp_path / "rep"), "--les", str(les),
-               "--snapshots", "2,3", "-q"])
+               "--snapshots", "2-3", "-q"])
     assert rc == 0
     assert capsys.readouterr().out.strip() == str(tmp_path / "rep" / "index.html")
     links = check_report_folder(tmp_path / "rep")
@@ -445,7 +445,7 @@ def test_report_command(fitted, tmp_path, capsys):
 
 @pytest.mark.parametrize("args,message", [
     (["missing.json"], "no model file"),
-    (["MODEL", "--snapshots", "1,a"], "--snapshots expects comma-separated whole numbers"),
+    (["MODEL", "--snapshots", "1,a"], "--snapshots expects indices like 0,2,5-9"),
     (["MODEL", "--snapshots", "9"], "out of range"),
     (["MODEL", "--les", "missing-les.json"], "no a posteriori result file"),
 ])
@@ -458,3 +458,20 @@ def test_report_command_user_errors(fitted, tmp_path, capsys, args, message):
     err = capsys.readouterr().err
     assert err.startswith("error: ") and message in err
     assert not (tmp_path / "rep").exists()
+
+
+def test_report_with_a_real_a_posteriori_comparison(fitted, tmp_path):
+    from closure.les import simulate
+
+    comparison = simulate(fitted["model"], fitted["data"], baselines=["none", "smagorinsky"])
+    out = build_report(fitted["path"], tmp_path / "rep", les=comparison)
+    links = check_report_folder(out)
+    for name in ("aposteriori_spectra.png", "aposteriori_energy.png",
+                 "aposteriori_enstrophy.png", "vorticity_pdf.png"):
+        assert name in links
+    summary = json.loads((out / "report.json").read_text())["aposteriori"]
+    assert set(summary["runs"]) == set(comparison.to_dict()["runs"])
+    for label, run in comparison.runs.items():
+        assert summary["runs"][label]["final_energy"] == pytest.approx(float(run.energy[-1]))
+        assert summary["runs"][label]["mean_energy_error"] == pytest.approx(
+            comparison.metrics[label]["mean_energy_error"])

@@ -32,6 +32,26 @@ def parse_number_list(text: str | None, what: str, kind=float) -> list | None:
     return out
 
 
+def parse_indices(text: str | None, what: str = "--snapshots") -> list[int] | None:
+    """``"0,2,5-7"`` -> ``[0, 2, 5, 6, 7]``; None stays None."""
+    if text is None:
+        return None
+    out: list[int] = []
+    try:
+        for part in text.split(","):
+            part = part.strip()
+            if "-" in part.lstrip("-"):
+                a, b = part.split("-", 1)
+                out += list(range(int(a), int(b) + 1))
+            elif part:
+                out.append(int(part))
+    except ValueError:
+        raise OptionError(f"{what} expects indices like 0,2,5-9, got {text!r}") from None
+    if not out:
+        raise OptionError(f"{what} is empty: give indices like 0,2,5-9")
+    return out
+
+
 def _echo_progress():
     """A progress callback printing one line per finished phase to stderr."""
     def progress(phase: str, done: int, total: int) -> None:
@@ -55,7 +75,7 @@ def report(
     sweep: Path | None = typer.Option(None, "--sweep", help="filter-width sweep JSON written "
                                       "by closure sweep", show_default=False),
     snapshots: str | None = typer.Option(
-        None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 (default: "
+        None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 or 6-9 (default: "
         "the model's held-out snapshots)", show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the folder"),
 ) -> None:
@@ -63,7 +83,7 @@ def report(
     figures, warnings, and the a posteriori and sweep figures when given."""
     from closure.report import build_report
 
-    indices = parse_number_list(snapshots, "--snapshots", int)
+    indices = parse_indices(snapshots)
     out = build_report(model, output, input, les=les, sweep=sweep, snapshots=indices,
                        progress=None if quiet else _echo_progress())
     typer.echo(str(out / "index.html"))
@@ -111,7 +131,7 @@ def sweep(
     scalar: list[str] | None = typer.Option(None, "--scalar", help="passive scalar to carry "
                                             "(repeatable)", show_default=False),
     snapshots: str | None = typer.Option(None, "--snapshots", help="snapshot indices to use, "
-                                         "e.g. 0,1,2,3 (default: all)", show_default=False),
+                                         "e.g. 0-9,12 (default: all)", show_default=False),
     non_periodic: bool = typer.Option(False, "--non-periodic", help="the data are not "
                                       "periodic"),
     report_dir: Path | None = typer.Option(
@@ -143,7 +163,7 @@ def sweep(
     if scalar:
         base["input"]["scalars"] = list(scalar)
     if snapshots is not None:
-        base["input"]["snapshots"] = parse_number_list(snapshots, "--snapshots", int)
+        base["input"]["snapshots"] = parse_indices(snapshots)
     if non_periodic:
         base["input"]["periodic"] = False
     filt = dict(base.get("filter") or {})

@@ -27,6 +27,8 @@ class RunSeries:
     spectrum: tuple[np.ndarray, np.ndarray] | None = None
     vorticity_pdf: tuple[np.ndarray, np.ndarray] | None = None
     blowup_time: float | None = None
+    status: str | None = None
+    metrics: dict = field(default_factory=dict)
 
     def final(self, name: str) -> float | None:
         """Last finite value of a series (None when missing or never finite)."""
@@ -48,10 +50,16 @@ class AposterioriRuns:
 
     def summary(self) -> dict:
         return {"reference": self.reference,
-                "runs": {k: {"blowup_time": r.blowup_time, "final_energy": r.final("energy"),
-                             "final_enstrophy": r.final("enstrophy")}
+                "runs": {k: {"status": r.status, "blowup_time": r.blowup_time,
+                             "final_energy": r.final("energy"),
+                             "final_enstrophy": r.final("enstrophy"),
+                             **{m: r.metrics.get(m) for m in METRICS if m in r.metrics}}
                          for k, r in self.runs.items()}}
 
+
+#: Summary errors of a run against the reference, as ``closure.les`` names them.
+METRICS = {"mean_energy_error": "energy error", "mean_enstrophy_error": "enstrophy error",
+           "mean_hellinger": "vorticity PDF distance"}
 
 _SERIES_KEYS = {"energy": ("energy", "kinetic_energy"), "enstrophy": ("enstrophy",)}
 
@@ -93,13 +101,17 @@ def _run(d: Mapping, label: str) -> RunSeries:
                 ("density", "pdf", "p"))
     blowup = d.get("blowup_time", d.get("blow_up_time"))
     blowup = None if blowup is None or not math.isfinite(float(blowup)) else float(blowup)
-    return RunSeries(t, series, spectrum, pdf, blowup)
+    metrics = d.get("metrics") if isinstance(d.get("metrics"), Mapping) else {}
+    status = d.get("status")
+    return RunSeries(t, series, spectrum, pdf, blowup, None if status is None else str(status),
+                     dict(metrics))
 
 
 def as_runs(result) -> AposterioriRuns:
     """Read an a posteriori result: an object with ``to_dict()`` or a dict shaped
     ``{"runs": {label: {"time", "energy", "enstrophy", "spectrum": {"k", "E"},
-    "vorticity_pdf": {"x", "density"}, "blowup_time"}}, "reference": label}``."""
+    "vorticity_pdf": {"x", "density"}, "blowup_time", "status", "metrics"}},
+    "reference": label, "spectrum_time"}`` (the JSON of ``closure les --json``)."""
     if isinstance(result, AposterioriRuns):
         return result
     d = result.to_dict() if callable(getattr(result, "to_dict", None)) else result

@@ -480,10 +480,20 @@ def _num_or_nan(v) -> float:
 
 
 def _aposteriori_section(runs: AposterioriRuns, tmp: Path) -> str:
-    out = ["<h2>A posteriori: coarse runs</h2>"]
-    rows = [[label, r.blowup_time if r.blowup_time is not None else "none",
-             r.final("energy"), r.final("enstrophy")] for label, r in runs.runs.items()]
-    out.append(_table(["run", "blow-up time", "final kinetic energy", "final enstrophy"], rows))
+    from closure.report.aposteriori import METRICS
+
+    out = ["<h2>A posteriori: coarse runs</h2>",
+           "<p>The model and the baselines run in the coarse solver from the same filtered "
+           "initial state" + (f", against the filtered reference <code>"
+                              f"{html.escape(runs.reference)}</code>" if runs.reference else "")
+           + ". Errors are time means of relative errors against the reference (PDF "
+           "distance: Hellinger distance of the vorticity PDFs).</p>"]
+    metric_names = [m for m in METRICS if any(m in r.metrics for r in runs.runs.values())]
+    rows = [[label, r.status, r.blowup_time if r.blowup_time is not None else "none",
+             r.final("energy"), r.final("enstrophy")] + [r.metrics.get(m) for m in metric_names]
+            for label, r in runs.runs.items()]
+    out.append(_table(["run", "status", "blow-up time", "final kinetic energy",
+                       "final enstrophy"] + [METRICS[m] for m in metric_names], rows))
     spectra_curves = {label: r.spectrum for label, r in runs.runs.items() if r.spectrum}
     if spectra_curves:
         plots.save_png(plots.aposteriori_spectra(spectra_curves, runs.reference),

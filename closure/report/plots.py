@@ -22,6 +22,8 @@ from matplotlib.figure import Figure  # noqa: E402
 #: Size of every report figure, inches (width, height), and the resolution it is saved at.
 FIGSIZE = (8.0, 6.0)
 DPI = 100
+#: spectral values below this fraction of the largest are drawn as absent (round-off)
+SPECTRUM_FLOOR = 1e-12
 
 
 def agreement(exact: np.ndarray, modelled: np.ndarray) -> dict[str, float]:
@@ -192,13 +194,18 @@ def sweep_scores(delta: Sequence[float], scores: Mapping[str, Sequence[float]],
 def aposteriori_spectra(curves: Mapping[str, tuple[np.ndarray, np.ndarray]],
                         reference: str | None = None, figsize=FIGSIZE) -> Figure:
     """Energy spectra E(k) of coarse runs (model, baselines) and of the filtered reference,
-    log-log; ``curves[label] = (k, E)``; the reference is drawn black and thick."""
+    log-log; ``curves[label] = (k, E)``; the reference is drawn black and thick. Values below
+    :data:`SPECTRUM_FLOOR` times the largest are left out (round-off beyond a dealiasing
+    cutoff would otherwise set the axis)."""
     fig = Figure(figsize=figsize, layout="constrained")
     ax = fig.subplots()
+    peak = max((float(np.nanmax(np.asarray(e, dtype=float), initial=0.0))
+                for _, e in curves.values()), default=0.0)
+    floor = SPECTRUM_FLOOR * peak  # below: round-off in modes the solver removes (dealiasing)
     for label, (k, e) in curves.items():
         k = np.asarray(k, dtype=float)
         e = np.asarray(e, dtype=float)
-        keep = (k > 0) & (e > 0) & np.isfinite(e)
+        keep = (k > 0) & (e > floor) & np.isfinite(e)
         if label == reference:
             ax.loglog(k[keep], e[keep], color="black", lw=2.5, label=label, zorder=3)
         else:
