@@ -552,11 +552,16 @@ def _builtin_terms(target: str, k: Kinematics) -> list[Term]:
 def _make_term(name: str, target: str, k: Kinematics, comps: Mapping[str, sympy.Expr],
                delta_power: float, description: str, source: str) -> Term:
     keys = component_keys(target, k.dirs)
+    ns = Namespace(k, allow_bare_velocity=True) if source != "preset" else None
     out = {}
     for key in keys:
         e = sympy.sympify(comps[key])
-        if e.is_polynomial():  # canonical, so the model file's string reads back identically
+        # a canonical form, so the model file's string reads back as the same expression:
+        # built-in polynomials expanded; user terms (whose expansion could be huge) as read back
+        if ns is None and e.is_polynomial():
             e = sympy.expand(e)
+        elif ns is not None:
+            e = parse_expression(str(e), ns, f"term {name!r}")
         e = _guard(e)
         _check_printable(e, f"term {name!r} component {key or 'value'}")
         out[key] = e

@@ -105,7 +105,7 @@ terms:
     expression: "Delta**2 * dc_d{i} * sqrt(dc_dx**2 + dc_dy**2)"
   - name: div_like
     delta_power: 2
-    expression: "dx(Delta**2*S_mag*dc_dx) * kronecker_{i}x"
+    expression: "dx(Delta**2*S_mag*dc_dx) * kronecker_{i}x - (dc_dx - 2*dc_dy)*Delta**2*A_x{i}/2"
 """)
     g = Grid.regular((8, 8), 2 * np.pi)
     L = make_library(str(terms), "flux:c", g.dims)
@@ -113,6 +113,7 @@ terms:
                               scheme="spectral", delta=0.7)
     assert "Piecewise" in m.to_dict()["terms"][1]["expression"]["x"]
     back = ClosureModel.load(m.save(tmp_path / "m.json"))
+    assert back.to_dict()["terms"] == m.to_dict()["terms"]
     assert back.scalars == ("c",)
     f = smooth_fields(g, ["u", "v", "c"])
     for k, a in m.evaluate(f, g).items():
