@@ -475,3 +475,32 @@ def test_report_with_a_real_a_posteriori_comparison(fitted, tmp_path):
         assert summary["runs"][label]["final_energy"] == pytest.approx(float(run.energy[-1]))
         assert summary["runs"][label]["mean_energy_error"] == pytest.approx(
             comparison.metrics[label]["mean_energy_error"])
+
+
+def test_moments_merge_matches_scikit_learn_despite_a_large_mean():
+    # pooled R^2 (scikit-learn r2_score) and Pearson correlation (numpy corrcoef) from merged
+    # per-chunk moments; a mean 1e6 times the spread would ruin naive sums of squares
+    from closure.report.apriori import Moments
+
+    rng = np.random.default_rng(6)
+    y = 1e6 + rng.standard_normal(30000)
+    p = y + 0.3 * rng.standard_normal(30000)
+    chunks = np.array_split(np.arange(y.size), 7)
+    total = sum((Moments.of(y[c], p[c]) for c in chunks), Moments())
+    got = total.agreement()
+    assert got["r2"] == pytest.approx(r2_score(y, p), rel=1e-9)
+    assert got["correlation"] == pytest.approx(np.corrcoef(y, p)[0, 1], rel=1e-9)
+
+
+def test_apriori_scatter_is_capped_but_scores_use_every_point():
+    from closure.report.apriori import apriori_data
+
+    model = GradientStandIn()
+    snaps = stand_in_snapshots(model, n=3, size=16)
+    data = apriori_data(model, snaps, max_points=200)
+    assert data.stride > 1 and data.exact["tau_xx"].size <= 200
+    exact = np.concatenate([s.targets["tau_xx"].ravel() for s in snaps])
+    pred = np.concatenate([model.evaluate(s.fields, s.grid)["tau_xx"].ravel() for s in snaps])
+    assert data.agreement()["tau_xx"]["r2"] == pytest.approx(r2_score(exact, pred), rel=1e-10)
+    assert any("every" in n for n in data.notes)
+    np.testing.assert_array_equal(data.exact["tau_xx"], exact[::data.stride])

@@ -30,21 +30,74 @@ class TransferSpectrum:
 
 
 @dataclass
+class Moments:
+    """Count, means, centred second moments and squared error of exact values y and model
+    values p, mergeable across snapshots (pairwise update of Chan, Golub & LeVeque 1979,
+    "Updating formulae and a pairwise algorithm for computing sample variances"), so pooled
+    R^2 and correlation need no pooled arrays and suffer no cancellation."""
+
+    n: float = 0.0
+    mean_y: float = 0.0
+    mean_p: float = 0.0
+    m2_y: float = 0.0
+    m2_p: float = 0.0
+    c_yp: float = 0.0
+    sse: float = 0.0
+
+    @classmethod
+    def of(cls, y: np.ndarray, p: np.ndarray) -> Moments:
+        y = np.asarray(y, dtype=float).ravel()
+        p = np.asarray(p, dtype=float).ravel()
+        my, mp = float(y.mean()), float(p.mean())
+        dy, dp = y - my, p - mp
+        return cls(float(y.size), my, mp, float(dy @ dy), float(dp @ dp), float(dy @ dp),
+                   float(np.sum((y - p) ** 2)))
+
+    def __add__(self, o: Moments) -> Moments:
+        n = self.n + o.n
+        if n == 0:
+            return Moments()
+        dy, dp = o.mean_y - self.mean_y, o.mean_p - self.mean_p
+        w = self.n * o.n / n
+        return Moments(n, self.mean_y + dy * o.n / n, self.mean_p + dp * o.n / n,
+                       self.m2_y + o.m2_y + dy * dy * w, self.m2_p + o.m2_p + dp * dp * w,
+                       self.c_yp + o.c_yp + dy * dp * w, self.sse + o.sse)
+
+    def agreement(self) -> dict[str, float]:
+        """R^2 of p as a prediction of y, and their Pearson correlation (NaN if undefined)."""
+        r2 = 1.0 - self.sse / self.m2_y if self.m2_y > 0 else float("nan")
+        den = np.sqrt(self.m2_y * self.m2_p)
+        corr = self.c_yp / den if den > 0 else float("nan")
+        return {"r2": float(r2), "correlation": float(corr)}
+
+
+@dataclass
 class AprioriData:
-    """Pooled exact and modelled values per target component over the given snapshots."""
+    """Exact and modelled values per target component over the given snapshots.
+
+    ``moments`` cover every point; ``exact`` / ``modelled`` hold the points for the scatter
+    figure, every ``stride``-th one when there were more than the cap (``stride`` 1: all).
+    """
 
     exact: dict[str, np.ndarray]
     modelled: dict[str, np.ndarray]
     snapshot_indices: list[int]
     transfers: list[TransferSpectrum] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    moments: dict[str, Moments] | None = None
+    stride: int = 1
 
     def agreement(self) -> dict[str, dict[str, float]]:
-        """R^2 and correlation per component (see :func:`closure.report.plots.agreement`)."""
+        """R^2 and correlation per component over every point (see
+        :func:`closure.report.plots.agreement`)."""
+        if self.moments is not None:
+            return {n: m.agreement() for n, m in self.moments.items()}
         return {n: agreement(self.exact[n], self.modelled[n]) for n in self.exact}
 
     def to_dict(self) -> dict:
         return {"snapshots": self.snapshot_indices, "agreement": self.agreement(),
+                "points": {n: int(m.n) for n, m in (self.moments or {}).items()},
+                "scatter_stride": self.stride,
                 "transfers": [t.to_dict() for t in self.transfers], "notes": self.notes}
 
 
@@ -93,22 +146,30 @@ def _transfers(target: str, fields: dict, exact: dict, modelled: dict, grid,
     return out
 
 
-def apriori_data(model, snapshots: Iterable, transfer: bool = True) -> AprioriData:
-    """Evaluate ``model`` on each coarse snapshot (``.fields``, ``.targets``, ``.grid``,
-    ``.index``) and pool exact vs modelled values of every component the model predicts.
+#: Most points per component kept for the scatter figure (statistics use every point).
+MAX_SCATTER_POINTS = 1_000_000
 
+
+def apriori_data(model, snapshots: Iterable, transfer: bool = True,
+                 max_points: int = MAX_SCATTER_POINTS) -> AprioriData:
+    """Evaluate ``model`` on each coarse snapshot (``.fields``, ``.targets``, ``.grid``,
+    ``.index``) and compare exact and modelled values of every component the model predicts.
+
+    R^2 and correlation pool every point of every snapshot; the scatter keeps at most about
+    ``max_points`` per component (a regular stride, doubled whenever the cap is passed).
     Transfer spectra are computed on periodic grids only (a note says when they are skipped);
     stress targets are turned into forces with the model's own derivative scheme, applied
     alike to the exact and the modelled stress.
     """
     exact: dict[str, list] = {}
     modelled: dict[str, list] = {}
+    moments: dict[str, Moments] = {}
     indices: list[int] = []
     sums: dict[str, list] = {}
     notes: list[str] = []
     target = model.target
     scheme = getattr(model, "scheme", "spectral")
-    count = 0
+    count, stride, kept = 0, 1, 0
     for snap in snapshots:
         pred = model.evaluate(snap.fields, snap.grid)
         names = [n for n in pred if n in snap.targets]
@@ -116,8 +177,18 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True) -> AprioriDa
             raise ValueError(f"the model predicts {sorted(pred)}, none of which is among the "
                              f"snapshot's targets {sorted(snap.targets)}")
         for n in names:
-            exact.setdefault(n, []).append(np.asarray(snap.targets[n], dtype=float).ravel())
-            modelled.setdefault(n, []).append(np.asarray(pred[n], dtype=float).ravel())
+            y = np.asarray(snap.targets[n], dtype=float).ravel()
+            p = np.asarray(pred[n], dtype=float).ravel()
+            moments[n] = moments.get(n, Moments()) + Moments.of(y, p)
+            exact.setdefault(n, []).append(y[::stride])
+            modelled.setdefault(n, []).append(p[::stride])
+        kept += exact[names[0]][-1].size
+        while kept > max_points:  # thin what is kept so far, and what comes, by 2
+            stride *= 2
+            for store in (exact, modelled):
+                for n in store:
+                    store[n] = [a[::2] for a in store[n]]
+            kept = sum(a.size for a in exact[names[0]])
         indices.append(int(getattr(snap, "index", count)))
         if transfer and snap.grid.periodic:
             for name, (label, k, te, tm) in _transfers(target, snap.fields, snap.targets, pred,
@@ -131,8 +202,11 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True) -> AprioriDa
     if transfer and not sums:
         notes.append("transfer spectra need periodic data (or the resolved velocity / "
                      "vorticity fields); they are left out")
+    if stride > 1:
+        notes.append(f"the scatter figure shows every {stride}-th point; the scores use all "
+                     "of them")
     transfers = [TransferSpectrum(name, label, k, te / count, tm / count)
                  for name, (label, k, te, tm) in sums.items()]
     return AprioriData({n: np.concatenate(v) for n, v in exact.items()},
                        {n: np.concatenate(v) for n, v in modelled.items()},
-                       indices, transfers, notes)
+                       indices, transfers, notes, moments, stride)

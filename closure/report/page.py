@@ -407,7 +407,8 @@ def _apriori_section(data: AprioriData, tmp: Path) -> str:
     stats = data.agreement()
     out.append(_table(["component", "R^2", "correlation"],
                       [[n, s["r2"], s["correlation"]] for n, s in stats.items()]))
-    plots.save_png(plots.apriori_hexbin(data.exact, data.modelled), tmp / "apriori_hexbin.png")
+    plots.save_png(plots.apriori_hexbin(data.exact, data.modelled, stats=stats),
+                   tmp / "apriori_hexbin.png")
     out.append(_figure("apriori_hexbin.png", "Exact vs modelled subgrid term per component "
                        "(hexbin of point counts, log scale; red: 1:1 line)"))
     for t in data.transfers:

@@ -53,12 +53,14 @@ def _grid_of_panels(n: int) -> tuple[int, int]:
 
 
 def apriori_hexbin(exact: Mapping[str, np.ndarray], modelled: Mapping[str, np.ndarray],
-                   gridsize: int = 50, figsize=FIGSIZE) -> Figure:
+                   gridsize: int = 50, figsize=FIGSIZE,
+                   stats: Mapping[str, Mapping[str, float]] | None = None) -> Figure:
     """Exact vs modelled subgrid term, one hexbin panel per component (log counts).
 
     ``exact`` and ``modelled`` map component names (e.g. ``tau_xx``) to arrays of equal shape
     (any: pooled over points and snapshots). Each panel has the 1:1 line and the title
-    :func:`agreement_title`.
+    :func:`agreement_title` of these arrays, or of ``stats[name]`` when given (scores over
+    more points than are drawn).
     """
     names = [n for n in exact if n in modelled]
     if not names:
@@ -82,7 +84,8 @@ def apriori_hexbin(exact: Mapping[str, np.ndarray], modelled: Mapping[str, np.nd
         ax.set_ylim(lo, hi)
         ax.set_xlabel("exact")
         ax.set_ylabel("model")
-        ax.set_title(agreement_title(name, agreement(y, p)), fontsize=9)
+        title_stats = stats[name] if stats and name in stats else agreement(y, p)
+        ax.set_title(agreement_title(name, title_stats), fontsize=9)
     fig.suptitle("A priori: exact vs modelled subgrid term (held-out snapshots)")
     return fig
 
