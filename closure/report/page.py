@@ -485,8 +485,9 @@ def _aposteriori_section(runs: AposterioriRuns, tmp: Path) -> str:
 
     out = ["<h2>A posteriori: coarse runs</h2>",
            "<p>The model and the baselines run in the coarse solver from the same filtered "
-           "initial state" + (f", against the filtered reference <code>"
-                              f"{html.escape(runs.reference)}</code>" if runs.reference else "")
+           "initial state" + (f", against the filtered fine-grid data (run <code>"
+                              f"{html.escape(runs.reference)}</code>)" if runs.reference
+                              else "")
            + ". Errors are time means of relative errors against the reference (PDF "
            "distance: Hellinger distance of the vorticity PDFs).</p>"]
     metric_names = [m for m in METRICS if any(m in r.metrics for r in runs.runs.values())]
