@@ -15,7 +15,9 @@ least one) are held out for scoring and never seen by the fit or its model selec
 
 from __future__ import annotations
 
+import os
 import platform
+import tempfile
 from collections.abc import Callable, Mapping
 from functools import lru_cache
 from pathlib import Path
@@ -65,11 +67,24 @@ def _scalars(spec: JobSpec) -> tuple[str, ...]:
     return tuple(dict.fromkeys(names))
 
 
+#: HDF5 chunk cache per variable while a job's file is open (bytes). Each snapshot is read
+#: once, so a cache only holds memory: netCDF's default (64 MiB per variable) would keep the
+#: last few snapshots of every field resident.
+CHUNK_CACHE_BYTES = 1 << 20
+
+
 def _open(spec: JobSpec):
+    import netCDF4
+
     from closure.io import open_fields
 
-    return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
-                       spec.input.periodic)
+    saved = netCDF4.get_chunk_cache()
+    netCDF4.set_chunk_cache(CHUNK_CACHE_BYTES, saved[1], saved[2])  # read when a file opens
+    try:
+        return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
+                           spec.input.periodic)
+    finally:
+        netCDF4.set_chunk_cache(*saved)
 
 
 def _coarse_graining(spec: JobSpec, grid: Grid):
@@ -223,6 +238,11 @@ def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> Suffi
     ``source`` may be an open closure.io FieldSource of the planned file (saves reopening it).
     Memory: the fine snapshot, its coarse fields and the (C, n_coarse, p) design, then O(p^2).
     """
+    return _map(spec, plan, index, source)[0]
+
+
+def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
+    """(statistics, coarse snapshot) of snapshot ``index``."""
     from closure.library import design
 
     cs, cg, library = _coarse(spec, plan, index, source)
@@ -241,8 +261,36 @@ def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> Suffi
             T = columns[name].reshape(p, -1).T
             extra[name] = SufficientStats.from_design(T[None], exact[name].reshape(1, -1), None,
                                                       library.names, (name,))
-    return SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
-                                       snapshot=int(index), extra=extra)
+    stats = SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
+                                        snapshot=int(index), extra=extra)
+    return stats, cs
+
+
+class HeldOut:
+    """Coarse fields and exact targets of held-out snapshots, kept in a folder between the map
+    pass and the scoring pass of an in-process run (so scoring need not coarse-grain them
+    again, and memory does not grow with the number of snapshots)."""
+
+    def __init__(self, folder: str | os.PathLike, components: list[str]):
+        self.folder = Path(folder)
+        self.components = list(components)
+        self.indices: set[int] = set()
+
+    def put(self, cs) -> None:
+        arrays = {f"field:{k}": v for k, v in cs.fields.items()}
+        arrays.update({f"target:{c}": cs.targets[c] for c in self.components})
+        with open(self.folder / f"{int(cs.index)}.npz", "wb") as fh:
+            np.savez(fh, **arrays)
+        self.indices.add(int(cs.index))
+
+    def __contains__(self, index) -> bool:
+        return int(index) in self.indices
+
+    def get(self, index: int) -> tuple[dict, dict]:
+        with np.load(self.folder / f"{int(index)}.npz", allow_pickle=False) as z:
+            fields = {k[6:]: z[k] for k in z.files if k.startswith("field:")}
+            targets = {k[7:]: z[k] for k in z.files if k.startswith("target:")}
+        return fields, targets
 
 
 # ---------------------------------------------------------------------- reduce
@@ -277,12 +325,13 @@ def _baseline(library, spec: JobSpec, train_stats: SufficientStats):
 
 
 def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
-           progress: Progress | None = None, source=None):
+           progress: Progress | None = None, source=None, held_out: HeldOut | None = None):
     """Fit, select and score the closure from every planned snapshot's statistics.
 
     ``stats`` maps snapshot index (int or str) to SufficientStats (or its dict form). Scores:
     from the statistics of the test snapshots, and a second pass over them (reading and
-    coarse-graining again) for the pointwise transfers. Returns a closure.model.ClosureModel.
+    coarse-graining again, unless ``held_out`` has them) for the pointwise transfers.
+    Returns a closure.model.ClosureModel.
     """
     progress = progress or _no_progress
     stats = {int(k): (v if isinstance(v, SufficientStats) else SufficientStats.from_dict(v))
@@ -313,14 +362,19 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
     sums: dict[str, TransferSums] = {}
     base_sums: dict[str, TransferSums] = {}
     comps = list(plan["components"])
+    coarse = Grid.from_dict(plan["coarse_grid"])
     for done, i in enumerate(sorted(test)):
         progress("score", done, len(test))
-        cs, cg, _ = _coarse(spec, plan, i, source)
-        ctx = TransferContext(spec.target, cs.fields, cs.grid, spec.scheme)
-        exact = {c: cs.targets[c] for c in comps}
+        if held_out is not None and i in held_out:
+            fields, targets = held_out.get(i)
+        else:
+            cs, _, _ = _coarse(spec, plan, i, source)
+            fields, targets = cs.fields, cs.targets
+        ctx = TransferContext(spec.target, fields, coarse, spec.scheme)
+        exact = {c: targets[c] for c in comps}
         te = ctx.transfers(exact)
         for coef, acc in ((fit.coefficients, sums),) + (((base[1], base_sums),) if base else ()):
-            model = predict(library, coef, cs.fields, cs.grid, spec.scheme, cg.delta)
+            model = predict(library, coef, fields, coarse, spec.scheme, float(plan["delta"]))
             tm = ctx.transfers({c: model[c] for c in comps})
             for k in te:
                 acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k])
@@ -391,12 +445,17 @@ def discover(spec: JobSpec, progress: Progress | None = None):
     progress("plan", 1, 1)
     stats = {}
     indices = sorted(p["snapshots"])
-    with _open(spec) as src:
+    test = set(p["test"])
+    with _open(spec) as src, tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
+        held_out = HeldOut(tmp, p["components"])
         for done, i in enumerate(indices):
             progress("map", done, len(indices))
-            stats[i] = map_snapshot(spec, p, i, source=src)
+            stats[i], cs = _map(spec, p, i, source=src)
+            if i in test:
+                held_out.put(cs)
+            del cs
         progress("map", len(indices), len(indices))
-        return reduce(spec, p, stats, progress, source=src)
+        return reduce(spec, p, stats, progress, source=src, held_out=held_out)
 
 
-__all__ = ["discover", "map_snapshot", "plan", "reduce"]
+__all__ = ["HeldOut", "discover", "map_snapshot", "plan", "reduce"]
