@@ -138,8 +138,9 @@ def least_squares(problem: Problem, support: np.ndarray | None = None) -> np.nda
     Solved on the standardised normal equations by Cholesky. When terms of the support are
     exactly dependent on this data (an identity such as A A^T = S S - S R + R S - R R, or a
     duplicated term) the solution is not unique: terms taking part in a dependency are then
-    dropped one at a time, the one with the smallest minimum-norm standardised coefficient
-    first, until the rest are independent (the collinearity diagnostics name them).
+    dropped one at a time, the last in library order first, until the rest are independent
+    (so the earlier, preferred, term of a library is kept; the collinearity diagnostics name
+    the dependent terms).
     """
     support = problem.active if support is None else np.asarray(support, bool) & problem.active
     coef = np.zeros(problem.n_terms)
@@ -158,14 +159,8 @@ def least_squares(problem: Problem, support: np.ndarray | None = None) -> np.nda
                 c = V @ ((V.T @ r) / w)
             coef[idx] = c / d
             return coef
-        keep = ~null
-        c = V[:, keep] @ ((V[:, keep].T @ r) / w[keep])
-        taking_part = np.linalg.norm(V[:, null], axis=1) > 1e-6
-        candidates = np.flatnonzero(taking_part)
-        # smallest |coefficient| first; among equals (to round-off) the later term goes
-        size = np.abs(c[candidates])
-        ties = candidates[size <= size.min() * (1 + 1e-8) + 1e-300]
-        idx.pop(int(ties[-1]))
+        taking_part = np.flatnonzero(np.linalg.norm(V[:, null], axis=1) > 1e-6)
+        idx.pop(int(taking_part[-1]))
     return coef
 
 
@@ -282,9 +277,8 @@ def lasso_path_fit(problem: Problem, alphas: Sequence[float] | None = None,
     """The lasso path, then least squares on each path point's support."""
     alphas = default_alphas(problem) if alphas is None else np.asarray(alphas, dtype=float)
     raw = lasso_raw(problem, alphas, tol=tol)
-    supports = raw != 0
-    coefs = np.array([least_squares(problem, s) for s in supports])
-    return Path("lasso", alphas, coefs, supports, raw)
+    coefs = np.array([least_squares(problem, s) for s in raw != 0])
+    return Path("lasso", alphas, coefs, (raw != 0) & (coefs != 0), raw)
 
 
 @dataclass
