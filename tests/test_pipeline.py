@@ -227,3 +227,12 @@ def test_transfer_weight_gathers_transfer_statistics(turb_file):
     assert sorted(s.extra) == ["energy_transfer", "enstrophy_transfer"]
     model = pipeline.reduce(spec, p, {i: pipeline.map_snapshot(spec, p, i) for i in (0, 1, 2)})
     assert model.settings["transfer_weight"] == 1.0
+
+
+def test_non_periodic_data_need_finite_differences(tmp_path):
+    path = smooth_fields(tmp_path / "np.nc", n=32, snapshots=3)
+    with pytest.raises(UserError, match="use --scheme fd2 or fd4"):
+        pipeline.plan(_spec(path, periodic=False, width=2, ratio=2))
+    model = pipeline.discover(_spec(path, periodic=False, width=2, ratio=2, scheme="fd4",
+                                    resamples=0))
+    assert model.scheme == "fd4" and not model.grid.periodic
