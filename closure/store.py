@@ -21,13 +21,13 @@ from __future__ import annotations
 import contextlib
 import hashlib
 import json
+import math
 import os
 import re
 import shutil
 import tempfile
 import time
 import uuid
-from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
@@ -162,21 +162,6 @@ def _json_default(obj):
     raise TypeError(f"{type(obj).__name__} is not JSON serialisable")
 
 
-def save_stats_atomic(stats, path: str | os.PathLike) -> Path:
-    """Save a SufficientStats to ``path`` (a ``.npz``) atomically: re-running a map task
-    overwrites the file in one step, so a reader sees the old or the new file, never a mix."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.stem}.{uuid.uuid4().hex[:8]}.tmp{path.suffix}")
-    try:
-        stats.save(tmp)
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-    return path
-
-
 # --------------------------------------------------------------------------- the store
 
 class Store:
@@ -195,8 +180,18 @@ class Store:
         self.db_url = db_url or f"sqlite:///{self.root / 'catalog.sqlite'}"
         self.schema = schema
         self._pid = os.getpid()
-        self._engine = self._make_engine()
-        self._create_tables()
+        self._engine: sa.Engine | None = None  # opened on first use: file-only users skip it
+        self._tables_ready = False
+        try:
+            backend = sa.make_url(self.db_url).get_backend_name()
+        except sa.exc.ArgumentError:
+            raise UserError(f"the catalog database URL {self.db_url!r} is not a URL such as "
+                            "sqlite:///PATH or postgresql+psycopg://USER@HOST/DB") from None
+        if schema is not None:
+            if backend == "sqlite":
+                raise UserError("a catalog schema is only supported with PostgreSQL")
+            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", schema):
+                raise UserError(f"catalog schema {schema!r}: use letters, digits and _")
 
     # -- database plumbing
 
@@ -220,10 +215,6 @@ class Store:
                 cur.execute("PRAGMA busy_timeout=30000")
                 cur.close()
         if self.schema:
-            if url.get_backend_name() == "sqlite":
-                raise UserError("a catalog schema is only supported with PostgreSQL")
-            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", self.schema):
-                raise UserError(f"catalog schema {self.schema!r}: use letters, digits and _")
             engine = engine.execution_options(schema_translate_map={None: self.schema})
         return engine
 
@@ -235,16 +226,30 @@ class Store:
 
     @property
     def engine(self) -> sa.Engine:
-        if os.getpid() != self._pid:
+        if self._engine is None:
+            self._engine = self._make_engine()
+        elif os.getpid() != self._pid:
             # after a fork: never share the parent's pooled connections
             self._engine.dispose(close=False)
             self._pid = os.getpid()
+        if not self._tables_ready:
+            self._tables_ready = True
+            try:
+                self._create_tables()
+            except BaseException:
+                self._tables_ready = False
+                raise
         return self._engine
+
+    def open(self) -> Store:
+        """Connect to the catalog now (and create its tables): fail early on a bad URL."""
+        self.engine  # noqa: B018
+        return self
 
     def _create_tables(self) -> None:
         for attempt in range(5):
             try:
-                with self.engine.begin() as conn:
+                with self._engine.begin() as conn:
                     if self.schema:
                         conn.execute(sa.text(f'CREATE SCHEMA IF NOT EXISTS "{self.schema}"'))
                     _metadata.create_all(conn, checkfirst=True)
@@ -265,7 +270,8 @@ class Store:
             conn.execute(sa.text("SELECT 1"))
 
     def close(self) -> None:
-        self._engine.dispose()
+        if self._engine is not None:
+            self._engine.dispose()
 
     def drop_schema(self) -> None:
         """Drop this store's PostgreSQL schema and everything in it (test clean-up)."""
@@ -481,7 +487,7 @@ class Store:
             filter_width=_model_filter_width(model, spec_obj), filter_ratio=spec_obj.filter.ratio,
             scheme=spec_obj.scheme, method=spec_obj.fit.method,
             n_terms=_n_active_terms(model), test_r2=score_of(scores, "r2"),
-            test_corr=score_of(scores, "corr"), job_id=job_id, name=name,
+            test_corr=score_of(scores, "correlation"), job_id=job_id, name=name,
             created=time.time(), path=str(final))
         try:
             with self.engine.begin() as conn:
@@ -550,15 +556,18 @@ def _check_id(value: str) -> str:
 
 
 def score_of(scores: dict | None, kind: str) -> float | None:
-    """Pull a held-out score (``kind`` "r2" or "corr") out of a model's scores, whatever
-    nesting the scores use: {"test": {"r2": ..}}, {"test_r2": ..} or {"r2": ..}."""
+    """A held-out score (``kind`` "r2" or "corr") out of a model's scores: the pooled
+    value of ``scores["test"]`` ({"test": {"r2": .., "correlation": ..}}), or a flat
+    {"test_r2": ..} / {"r2": ..}."""
     if not isinstance(scores, dict):
         return None
-    for key in (f"test_{kind}", kind):
-        v = scores.get(key)
-        if isinstance(v, int | float) and not isinstance(v, bool):
-            return float(v)
-    for key in ("test", "held_out", "heldout"):
+    names = ("corr", "correlation") if kind in ("corr", "correlation") else (kind,)
+    for name in names:
+        for key in (f"test_{name}", name):
+            v = scores.get(key)
+            if isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v):
+                return float(v)
+    for key in ("test", "held_out"):
         sub = scores.get(key)
         if isinstance(sub, dict):
             v = score_of(sub, kind)
@@ -568,28 +577,10 @@ def score_of(scores: dict | None, kind: str) -> float | None:
 
 
 def _n_active_terms(model) -> int | None:
-    coefs = getattr(model, "coefficients", None)
-    if coefs is None:
+    active = getattr(model, "active", None)
+    if active is None:
         return None
-    try:
-        flat: Iterable = coefs.values() if isinstance(coefs, dict) else coefs
-        return int(sum(1 for c in _flatten(flat) if c != 0))
-    except TypeError:
-        return None
-
-
-def _flatten(values):
-    for v in values:
-        if isinstance(v, list | tuple) or hasattr(v, "tolist") and not isinstance(v, float):
-            seq = v.tolist() if hasattr(v, "tolist") else v
-            if isinstance(seq, list):
-                yield from _flatten(seq)
-            else:
-                yield seq
-        elif isinstance(v, dict):
-            yield from _flatten(v.values())
-        else:
-            yield v
+    return int(sum(bool(a) for a in active))
 
 
 def _model_filter_width(model, spec) -> float | None:

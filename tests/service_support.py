@@ -50,3 +50,26 @@ def store(request, tmp_path):
     finally:
         st.drop_schema()
         st.close()
+
+
+@pytest.fixture
+def redis_server(tmp_path_factory):
+    """A redis-server of our own (bundled binary, unix socket in a fresh folder, append-only
+    persistence); never the system one on 6379. Yields the RedisServer; stopped after."""
+    from closure.localstack import RedisServer
+
+    server = RedisServer(tmp_path_factory.mktemp("redis"))
+    server.start()
+    try:
+        yield server
+    finally:
+        server.stop()
+
+
+@pytest.fixture(scope="session")
+def turb2d_file(tmp_path_factory):
+    """A small 2-D turbulence file from closure.synth (32 x 32, 6 snapshots)."""
+    from closure.synth import turb2d, write
+
+    folder = tmp_path_factory.mktemp("data")
+    return write(turb2d(n=32, snapshots=6, spinup=1.0, interval=0.2), folder / "turb2d.nc")

@@ -115,6 +115,7 @@ def test_ids_that_could_escape_the_store_are_refused(store):  # noqa: F811
 def test_score_of_reads_common_layouts():
     assert score_of({"test": {"r2": 0.9, "corr": 0.95}}, "r2") == 0.9
     assert score_of({"test_corr": 0.5}, "corr") == 0.5
+    assert score_of({"test": {"r2": 0.2, "correlation": 0.7}}, "correlation") == 0.7
     assert score_of({"r2": 1}, "r2") == 1.0
     assert score_of({"train": {"r2": 0.1}}, "r2") is None
     assert score_of(None, "r2") is None
@@ -122,7 +123,9 @@ def test_score_of_reads_common_layouts():
 
 def test_bad_database_url_is_a_user_error(tmp_path):
     with pytest.raises(UserError, match="catalog database"):
-        Store(tmp_path, "nosuchdialect://x")
+        Store(tmp_path, "nosuchdialect://x").open()
+    with pytest.raises(UserError, match="not a URL"):
+        Store(tmp_path, "catalog.db")
 
 
 def test_schema_is_refused_on_sqlite(tmp_path):

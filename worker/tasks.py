@@ -20,7 +20,6 @@ from closure.store import (
     Store,
     fingerprint_hash,
     read_json,
-    save_stats_atomic,
     write_json_atomic,
 )
 from worker import queue as q
@@ -144,7 +143,7 @@ def map_task(job_id: str, index: int) -> dict:
         conn.hset(q.errors_key(job_id), str(index), str(exc))
         conn.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
         return {"job": job_id, "index": index, "error": str(exc)}
-    save_stats_atomic(stats, st.stats_path(job_id, index))
+    stats.save(st.stats_path(job_id, index))  # atomic: temp file + rename
     with conn.pipeline() as p:
         p.sadd(q.done_key(job_id), int(index))
         p.expire(q.done_key(job_id), q.PROGRESS_TTL_S)

@@ -69,7 +69,10 @@ async def upload_dataset(
         if not head.startswith(_NETCDF_MAGIC):
             raise InputFileError(f"{name}: not a netCDF file (netCDF-3 or netCDF-4/HDF5 "
                                  "expected)")
-        info = await run_in_threadpool(describe_fields, tmp, mapping, scalar_names, periodic)
+        try:
+            info = await run_in_threadpool(describe_fields, tmp, mapping, scalar_names, periodic)
+        except InputFileError as exc:  # name the user's file, not our temporary copy
+            raise InputFileError(str(exc).replace(str(tmp), name)) from None
         ds, created = await run_in_threadpool(
             store.import_upload, tmp, sha256=digest.hexdigest(), name=name, size=size,
             grid=info["grid"], n_snapshots=info["n_snapshots"], variables=mapping)

@@ -1,0 +1,203 @@
+"""worker/: the rq glue over closure.pipeline, run by a real (forking) rq worker in burst mode
+on a Redis of our own. The model a queued job stores equals in-process pipeline.discover.
+"""
+
+from __future__ import annotations
+
+import json
+import zlib
+
+import numpy as np
+import pytest
+from rq.serializers import JSONSerializer
+from service_support import redis_server, turb2d_file  # noqa: F401
+
+from closure import pipeline
+from closure.io import sha256_file
+from closure.spec import parse_spec
+from closure.store import Store, fingerprint_hash, new_job_id
+from worker import queue as q
+from worker import tasks
+from worker.main import ClosureWorker
+
+
+@pytest.fixture
+def env(tmp_path, redis_server):  # noqa: F811
+    conn = q.connect(redis_server.url)
+    store = Store(tmp_path / "store")
+    tasks.configure(str(store.root))
+    yield conn, store
+    tasks.configure("")
+    conn.close()
+
+
+def submit(conn, store, spec_dict) -> str:
+    """What POST /jobs does once the input is resolved: a catalog row and the plan task."""
+    spec = parse_spec(spec_dict)
+    sha = sha256_file(spec.input.path)
+    job_id = new_job_id()
+    store.create_job(job_id=job_id, spec=spec.model_dump(mode="json"),
+                     fingerprint=fingerprint_hash(spec, sha), input_sha256=sha)
+    q.enqueue_plan(conn, job_id)
+    return job_id
+
+
+def run_burst(conn, max_jobs=None) -> None:
+    worker = ClosureWorker([q.QUEUE_NAME], connection=conn, serializer=JSONSerializer)
+    worker.work(burst=True, with_scheduler=False, max_jobs=max_jobs, logging_level="WARNING")
+
+
+def spec_dict(path, **extra):
+    return {"input": {"path": str(path)}, "filter": {"kind": "gaussian", "ratio": 4},
+            "fit": {"resamples": 4}, **extra}
+
+
+def assert_same_model(a, b):
+    assert a.names == b.names
+    ca, cb = np.asarray(a.coefficients), np.asarray(b.coefficients)
+    assert np.all(np.abs(ca - cb) <= 1e-10 * np.maximum(1.0, np.abs(cb)))
+    assert list(a.active) == list(b.active)
+
+
+def test_heartbeat_ttl_is_interval_plus_grace(env):
+    conn, _ = env
+    w = ClosureWorker([q.QUEUE_NAME], connection=conn, serializer=JSONSerializer,
+                      job_monitoring_interval=2)
+    w.abandon_grace_s = 3
+
+    class FakeJob:
+        timeout = 3600
+
+    assert w.get_heartbeat_ttl(FakeJob()) == 5
+    FakeJob.timeout = 1  # a task about to time out: no longer than its timeout allows
+    assert w.get_heartbeat_ttl(FakeJob()) == 4
+
+
+def test_queued_job_equals_in_process_discover(env, turb2d_file):  # noqa: F811
+    conn, store = env
+    before = sha256_file(turb2d_file)
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "succeeded", doc
+    assert doc["progress"]["snapshots_done"] == doc["progress"]["snapshots_total"] == 6
+    stored = store.load_model(doc["model_id"])
+    direct = pipeline.discover(parse_spec(spec_dict(turb2d_file)))
+    assert_same_model(stored, direct)
+    # the model folder is complete and the job's work area is gone
+    folder = store.model_dir(doc["model_id"])
+    assert {"model.json", "spec.json", "plan.json", "diagnostics.json", "summary.txt",
+            "stats"} <= {p.name for p in folder.iterdir()}
+    assert len(list((folder / "stats").glob("*.npz"))) == 6
+    assert not store.job_dir(job_id).exists()
+    row = store.get_model(doc["model_id"])
+    assert row["dataset_sha256"] == before and row["target"] == "stress"
+    assert row["test_r2"] == pytest.approx(direct.scores["test"]["r2"], rel=1e-12)
+    assert store.find_models(dataset=before[:12], min_r2=row["test_r2"])[0]["id"] == row["id"]
+    assert store.find_models(filter_kind="box") == []
+    # every task on the queue was JSON: inspect one stored payload
+    raw = conn.hget(f"rq:job:{q.map_id(job_id, 0)}", "data")
+    assert json.loads(zlib.decompress(raw))[2] == [job_id, 0]
+    assert sha256_file(turb2d_file) == before
+
+
+def test_map_task_rerun_overwrites_its_stats_atomically(env, turb2d_file):  # noqa: F811
+    conn, store = env
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn, max_jobs=2)  # the plan and one map
+    done = sorted(store.job_dir(job_id).glob("stats/*.npz"))
+    assert len(done) == 1
+    first = done[0].read_bytes()
+    index = int(done[0].stem)
+    # run the same map again (as a retry would)
+    q.get_queue(conn).enqueue_call("worker.tasks.map_task", args=(job_id, index),
+                                   job_id=q.map_id(job_id, index), at_front=True)
+    run_burst(conn, max_jobs=1)
+    assert done[0].read_bytes() == first
+    assert not [p for p in done[0].parent.iterdir() if p.name.startswith(".")]
+    run_burst(conn)
+    assert q.status(store, conn, job_id)["state"] == "succeeded"
+
+
+def test_identical_job_in_the_plan_reuses_the_model(env, turb2d_file):  # noqa: F811
+    conn, store = env
+    first = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn)
+    second = submit(conn, store, spec_dict(turb2d_file))  # bypasses the API's check
+    run_burst(conn)
+    a, b = q.status(store, conn, first), q.status(store, conn, second)
+    assert b["state"] == "succeeded" and b["reused"] and b["model_id"] == a["model_id"]
+    assert len(store.find_models()) == 1
+
+
+def test_user_error_in_plan_fails_the_job_with_its_message(env, turb2d_file):  # noqa: F811
+    conn, store = env
+    spec = spec_dict(turb2d_file)
+    spec["input"]["snapshots"] = [3]
+    job_id = submit(conn, store, spec)
+    run_burst(conn)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "at least 2" in doc["error"]
+    assert doc["progress"]["phase"] == "failed"
+    assert store.find_models() == [] and not any((store.root / "models").iterdir())
+
+
+def test_input_changed_after_planning_fails_with_the_snapshots(env, turb2d_file, tmp_path):  # noqa: F811
+    conn, store = env
+    copy = tmp_path / "copy.nc"
+    copy.write_bytes(turb2d_file.read_bytes())
+    job_id = submit(conn, store, spec_dict(copy))
+    run_burst(conn, max_jobs=1)  # plan only
+    import os
+
+    st = copy.stat()
+    os.utime(copy, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+    run_burst(conn)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed"
+    assert "snapshot 0:" in doc["error"] and "changed since the job was planned" in doc["error"]
+    assert store.find_models() == []
+
+
+def test_cancel_stops_pending_tasks(env, turb2d_file):  # noqa: F811
+    conn, store = env
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn, max_jobs=2)  # plan and one map
+    assert q.cancel(store, conn, job_id)
+    assert not q.cancel(store, conn, job_id)
+    for i in range(6):
+        job = q.fetch(conn, q.map_id(job_id, i))
+        assert job.get_status() in ("finished", "canceled")
+    assert q.fetch(conn, q.reduce_id(job_id)).get_status() == "canceled"
+    run_burst(conn)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "canceled" and doc["model_id"] is None
+    assert store.find_models() == []
+
+
+def test_task_that_keeps_failing_fails_the_job(env, turb2d_file, monkeypatch):  # noqa: F811
+    conn, store = env
+
+    def broken(spec):
+        raise RuntimeError("disk on fire")
+
+    monkeypatch.setattr(pipeline, "plan", broken)  # inherited by the forked work-horses
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "RuntimeError: disk on fire" in doc["error"]
+
+
+def test_status_reconciles_a_failure_rq_recorded_without_callback(env, turb2d_file,  # noqa: F811
+                                                                  monkeypatch):
+    conn, store = env
+    monkeypatch.setattr(pipeline, "plan", lambda spec: 1 / 0)
+    # a killed work-horse on its last attempt runs no failure callback: model that here
+    monkeypatch.setattr(tasks, "on_task_failure", lambda *a, **k: None)
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    run_burst(conn)
+    assert store.get_job(job_id)["state"] == "running"
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed"
+    assert doc["error"].startswith("planning failed after")
+    assert "ZeroDivisionError" in doc["error"]
