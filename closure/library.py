@@ -43,9 +43,25 @@ Presets (``make_library(name, target, dims)``)
 ----------------------------------------------
 ``default``  every built-in term for the target; ``classic``  the Smagorinsky form and the
 gradient model; ``minimal``  the Smagorinsky form alone (eddy viscosity / diffusivity).
-On 1-D and 2-D grids terms that vanish identically or are a constant multiple of an earlier
-term (e.g. ``strain_squared`` equals the gradient model in 1-D) are left out and listed in
-``Library.dropped``.
+
+Exact dependencies. A term that is an exact linear combination of earlier terms of its library
+(or vanishes) cannot be fitted apart from them, so presets leave it out and list it in
+``Library.dropped`` with the combination, e.g. ``"rotation_squared: a linear combination of
+earlier terms on any field (rotation_squared = strain_squared - 12 gradient_model -
+strain_rotation)"`` (from ``A A^T = S S - (S R - R S) - R R``), and in 2-D ``strain_squared =
+1/4 isotropic`` (``S S = |S|^2/4 I`` when ``tr S = 0``). The test is symbolic and exact (see
+:func:`find_dependencies`); the preset order puts the preferred terms first (Smagorinsky,
+gradient model, strain, isotropic part, then the products), so those survive. Force, flux and
+vorticity terms are checked on their own expressions, so a dependency among the stress terms
+carries over to their divergences and curls, and new ones (a curl of a gradient) are found
+too. ``make_library(..., prune=False)`` keeps every built-in term.
+
+On 2-D and 3-D grids the libraries assume an incompressible filtered velocity: the check uses
+``dv_dy = -du_dx`` (2-D) or ``dw_dz = -du_dx - dv_dy`` (3-D) and their derivatives. This holds
+for filtered incompressible data on periodic grids (the filters commute with derivatives).
+For compressible data, or a 2-D slice of a 3-D flow, list the terms wanted in a terms file
+(user terms are never dropped) or build the library with ``prune=False``. In 1-D nothing is
+assumed.
 
 Terms files (user-defined terms)
 --------------------------------
@@ -71,18 +87,23 @@ Component keys: ``xx, xy, yy, xz, yz, zz`` (stress), ``x, y, z`` (force, flux), 
 symbols above, ``Delta``, ``A_xy`` (= du_dy), ``S_xy``, ``R_xy``, ``kronecker_xy``, ``S_mag``
 (|S|), ``omega`` (2-D: dv_dx - du_dy), the scalar names, numbers, ``+ - * / **`` and the
 functions ``sqrt, abs, exp, log, tanh`` and ``dx, dy, dz`` (chain-rule derivative of an
-expression) and ``lap`` (its Laplacian). A duplicated expression is allowed (the collinearity
-check reports it); duplicated names are not.
+expression) and ``lap`` (its Laplacian). Duplicated names are not allowed. A user term that is
+an exact linear combination of earlier terms (a duplicated expression, or one equal to a preset
+term on incompressible fields) is kept, because the file asked for it, and named with the
+combination in ``Library.warnings``, which the model file and its summary carry; the fit's
+numerical collinearity check reports it as well.
 """
 
 from __future__ import annotations
 
 import ast
+import dataclasses
 import json
 import math
 import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
+from fractions import Fraction
 from functools import lru_cache
 from pathlib import Path
 
@@ -384,7 +405,8 @@ class Term:
         """(symbols, f(Delta, *symbol values) -> list of component values), compiled once."""
         if "fn" not in self._cache:
             syms = self.symbols
-            fn = sympy.lambdify([DELTA, *syms], list(self.components.values()), modules="numpy")
+            fn = sympy.lambdify([DELTA, *syms], list(self.components.values()), modules="numpy",
+                                docstring_limit=None)
             self._cache["fn"] = (syms, fn)
         return self._cache["fn"]
 
@@ -462,6 +484,7 @@ def _stress_terms(k: Kinematics) -> list[tuple[str, float, str, sympy.Matrix]]:
     H = [k.hessian(u) for u in k.velocity]
     second = sympy.Matrix(n, n, lambda i, j: sum(H[i][a, b] * H[j][a, b]
                                                  for a in range(n) for b in range(n)))
+    # preferred terms first: the exact-dependency check keeps the earliest of dependent terms
     return [
         ("smagorinsky", 2, "Smagorinsky eddy-viscosity form Delta^2 |S| S_ij, "
          "|S| = sqrt(2 S_kl S_kl)", D**2 * k.S_mag * S),
@@ -469,6 +492,8 @@ def _stress_terms(k: Kinematics) -> list[tuple[str, float, str, sympy.Matrix]]:
          "leading Taylor term of a box or Gaussian filter)", D**2 / 12 * A * A.T),
         ("strain", 0, "strain rate S_ij (constant eddy viscosity; the coefficient has units "
          "length^2/time)", S),
+        ("isotropic", 2, "Delta^2 |S|^2 delta_ij (the trace part)",
+         D**2 * k.S_sq * sympy.eye(n)),
         ("strain_squared", 2, "Delta^2 S_ik S_kj", D**2 * S * S),
         ("strain_rotation", 2, "Delta^2 (S_ik R_kj - R_ik S_kj), R = (A - A^T)/2",
          D**2 * (S * R - R * S)),
@@ -476,8 +501,6 @@ def _stress_terms(k: Kinematics) -> list[tuple[str, float, str, sympy.Matrix]]:
         ("strain_laplacian", 2, "Delta^2 Laplacian of S_ij (the coefficient has units "
          "length^2/time)", D**2 * S.applyfunc(k.lap)),
         ("second_gradient_model", 4, "Delta^4 d_k d_l u_i d_k d_l u_j", D**4 * second),
-        ("isotropic", 2, "Delta^2 |S|^2 delta_ij (the trace part)",
-         D**2 * k.S_sq * sympy.eye(n)),
     ]
 
 
@@ -566,8 +589,7 @@ def _make_term(name: str, target: str, k: Kinematics, comps: Mapping[str, sympy.
         _check_printable(e, f"term {name!r} component {key or 'value'}")
         out[key] = e
     term = Term(name, target_rank(target), out, delta_power, description, source)
-    units = _scaled_units(term, target, k)
-    return Term(name, term.rank, out, delta_power, description, source, units)
+    return dataclasses.replace(term, scaled_units=_scaled_units(term, target, k))  # same cache
 
 
 # ---------------------------------------------------------------------------------------------
@@ -632,27 +654,357 @@ def _scaled_units(term: Term, target: str, k: Kinematics) -> dict[str, float] | 
     return {key: _num(v) for key, v in units.items() if abs(v) > 1e-9}
 
 
-def _drop_degenerate(terms: list[Term]) -> tuple[list[Term], list[str]]:
-    """Leave out terms that vanish identically or are a constant multiple of an earlier one."""
-    syms = sorted({s for t in terms for s in t.symbols}, key=lambda s: s.name)
-    values = _probe_values(syms)
-    kept, vectors, dropped = [], [], []
-    for t in terms:
-        v = _probe(t, values, 0.7)
-        norm = np.linalg.norm(v)
-        if norm < 1e-12:
-            dropped.append(f"{t.name}: vanishes identically on this grid")
+# ---------------------------------------------------------------------------------------------
+# exact linear dependencies between terms
+#
+# The fit can only tell terms apart that are linearly independent as functions of the resolved
+# field. Dependence is decided exactly: every component is expanded into a polynomial over
+# monomials of the derivative symbols (non-polynomial factors such as the square root in |S|
+# become atoms after a canonical simplification) with rational coefficients, and a term joins
+# the independent set only if it raises the rank (fraction arithmetic). A numerical probe at
+# random derivative values screens first: a term clearly independent there (relative residual
+# far above round-off) cannot be exactly dependent, so only candidates are expanded. Treating
+# atoms as free symbols can miss a dependency (the term is then kept) but never invent one.
+# On 2-D and 3-D grids the velocity is taken divergence-free: the last diagonal derivative is
+# minus the others (dv_dy = -du_dx; dw_dz = -du_dx - dv_dy), and every derivative of it
+# likewise (d2v_dyy = -d2u_dxy).
+
+_MAX_MONOMIALS = 20000  # expansions larger than this are not attempted (the term is kept)
+_PROBE_POINTS = 64
+_PROBE_INDEPENDENT = 1e-7  # relative residual above which a probe column is independent
+
+
+@dataclass(frozen=True)
+class Dependency:
+    """An exact linear relation of a term to earlier ones of its library:
+    ``term = sum_k coefficient_k * Delta**delta_power_k * other_k`` (as written, with Delta),
+    on every field (``incompressible`` False) or on divergence-free fields only."""
+
+    term: str
+    combination: tuple[tuple[str, Fraction, float], ...]  # (other term, coefficient, power)
+    incompressible: bool
+    ndim: int
+
+    @property
+    def where(self) -> str:
+        if self.ndim == 1:
+            return "on any 1-D field"
+        return "on incompressible fields" if self.incompressible else "on any field"
+
+    @property
+    def equation(self) -> str:
+        """``"rotation_squared = strain_squared - strain_rotation - 12 gradient_model"``."""
+        parts = []
+        # positive coefficients first, each group in library order
+        for name, c, p in sorted(self.combination, key=lambda item: item[1] < 0):
+            mag = abs(c)
+            text = "" if mag == 1 else f"{mag} "
+            if p:
+                text += f"Delta^{_num(p)} "
+            text += name
+            parts.append(("-" if c < 0 else "+", text))
+        if not parts:
+            return f"{self.term} = 0"
+        first_sign, first = parts[0]
+        rhs = ("-" if first_sign == "-" else "") + first
+        rhs += "".join(f" {s} {t}" for s, t in parts[1:])
+        return f"{self.term} = {rhs}"
+
+    def describe(self) -> str:
+        """``"name: <kind> <where> (<equation>)"``, the form of ``Library.dropped`` entries."""
+        if not self.combination:
+            return f"{self.term}: vanishes identically {self.where}"
+        if len(self.combination) == 1:
+            kind = f"a constant multiple of {self.combination[0][0]}"
+        else:
+            kind = "a linear combination of earlier terms"
+        return f"{self.term}: {kind} {self.where} ({self.equation})"
+
+    def to_dict(self) -> dict:
+        return {"term": self.term, "incompressible": self.incompressible,
+                "combination": [{"term": n, "coefficient": str(c), "delta_power": _num(p)}
+                                for n, c, p in self.combination]}
+
+
+class _TooLarge(Exception):
+    pass
+
+
+def _monomial_bound(e: sympy.Basic, limit: int) -> int:
+    """An upper bound of the number of monomials of expand(e) (capped just above limit)."""
+    if e.is_Atom or not e.args:
+        return 1
+    if e.is_Add:
+        return min(sum(_monomial_bound(a, limit) for a in e.args), limit + 1)
+    if e.is_Mul:
+        n = 1
+        for a in e.args:
+            n = min(n * _monomial_bound(a, limit), limit + 1)
+        return n
+    if e.is_Pow and e.exp.is_Integer and e.exp > 0:
+        m = _monomial_bound(e.base, limit)
+        return min(math.comb(m + int(e.exp) - 1, int(e.exp)), limit + 1)
+    return 1  # an atom after canonicalisation (its own expansion is bounded separately)
+
+
+class _DependencyCheck:
+    """Exact rank test of terms on one set of directions (see the comment above)."""
+
+    def __init__(self, dirs: tuple[str, ...]):
+        self.dirs = dirs
+        self.incompressible = len(dirs) >= 2
+        last = dirs[-1]
+        self._last_field, self._last_axis = VELOCITY_OF[last], AXES.index(last)
+        self._atoms: dict[tuple, sympy.Dummy] = {}
+        self._with_delta: set[sympy.Dummy] = set()
+        self._values: dict[str, np.ndarray] = {}
+        self._rng = np.random.default_rng(20261202)
+        self._exact: dict[tuple[int, bool], tuple[dict, float]] = {}
+
+    # -- incompressibility ---------------------------------------------------------------------
+
+    def _replacement(self, name: str) -> list[str] | None:
+        """Symbols whose negated sum replaces ``name`` on divergence-free fields, or None."""
+        if not self.incompressible:
+            return None
+        f, counts = _INFO[name]
+        if f != self._last_field or counts[self._last_axis] == 0:
+            return None
+        out = []
+        for d in self.dirs[:-1]:
+            c = list(counts)
+            c[self._last_axis] -= 1
+            c[AXES.index(d)] += 1
+            out.append(field_symbol(VELOCITY_OF[d], tuple(c)).name)
+        return out
+
+    def _value(self, name: str) -> np.ndarray:
+        if name not in self._values:
+            repl = self._replacement(name) if name in _INFO else None
+            if repl is None:
+                self._values[name] = self._rng.standard_normal(_PROBE_POINTS)
+            else:
+                self._values[name] = -sum(self._value(r) for r in repl)
+        return self._values[name]
+
+    # -- numbers at random divergence-free derivative values -------------------------------------
+
+    def probe(self, term: Term) -> np.ndarray:
+        syms, f = term.function()
+        with np.errstate(all="ignore"):
+            out = f(1.0, *(self._value(s.name) for s in syms))
+        return np.concatenate([np.broadcast_to(np.asarray(v, dtype=float), (_PROBE_POINTS,))
+                               for v in out])
+
+    # -- exact polynomial vectors ---------------------------------------------------------------
+
+    def _atomize(self, e: sympy.Basic) -> sympy.Basic:
+        """``e`` with non-polynomial parts replaced by Dummy atoms, one per canonical form."""
+        if e.is_Atom or not e.args:
+            return e
+        if isinstance(e, sympy.Piecewise) and len(e.args) == 2 and e.args[1].cond is sympy.true \
+                and e.args[1].expr == 0:
+            return self._atomize(e.args[0].expr)  # the _guard form: 0 only where |S| = 0
+        if e.is_Pow and e.exp.is_Rational and not e.exp.is_Integer:
+            base = self._expand(self._atomize(e.base))
+            content, prim = base.primitive() if base.is_Add else (sympy.Integer(1), base)
+            whole = sympy.floor(e.exp)
+            atom = self._atom(("pow", prim, e.exp - whole))
+            return content ** e.exp * prim ** whole * atom
+        if isinstance(e, sympy.Function | sympy.Piecewise) or e.is_Pow and not e.exp.is_Integer:
+            args = tuple(self._expand(self._atomize(a)) if isinstance(a, sympy.Expr) else a
+                         for a in e.args)
+            return self._atom(("function", e.func(*args)))
+        return e.func(*[self._atomize(a) for a in e.args])
+
+    def _atom(self, key: tuple) -> sympy.Dummy:
+        d = self._atoms.get(key)
+        if d is None:
+            d = self._atoms[key] = sympy.Dummy("atom")
+            if any(DELTA in getattr(x, "free_symbols", ()) for x in key[1:]):
+                self._with_delta.add(d)
+        return d
+
+    @staticmethod
+    def _expand(e: sympy.Basic) -> sympy.Basic:
+        if _monomial_bound(e, _MAX_MONOMIALS) > _MAX_MONOMIALS:
+            raise _TooLarge
+        return sympy.expand(e)
+
+    def exact(self, i: int, term: Term, incompressible: bool) -> tuple[dict, float]:
+        """({(component, monomial): Fraction}, Delta power): the Delta-free part of a term that
+        carries one power of Delta, else the whole polynomial with power 0. Raises _TooLarge."""
+        key = (i, incompressible)
+        if key in self._exact:
+            return self._exact[key]
+        rows: dict = {}
+        degrees: set = set()
+        mixed = False
+        for comp, e in term.components.items():
+            if incompressible and self.incompressible:
+                sub = {}
+                for s in e.free_symbols:
+                    repl = self._replacement(s.name) if s.name in _INFO else None
+                    if repl is not None:
+                        sub[s] = -sympy.Add(*[_SYMBOLS[r] for r in repl])
+                e = e.xreplace(sub)
+            e = self._expand(self._atomize(e))
+            for mono, c in e.as_coefficients_dict().items():
+                if c == 0 or mono == 0:
+                    continue
+                powers = mono.as_powers_dict()
+                mixed |= any(a in self._with_delta for a in powers)
+                degrees.add(powers.get(DELTA, 0))
+                rows[(comp, mono)] = _fraction(c)
+        if mixed or len(degrees) > 1:
+            vector, power = {("mixed", *k): v for k, v in rows.items()}, 0.0
+        else:
+            p = degrees.pop() if degrees else 0
+            scale = DELTA ** p
+            vector = {}
+            for (comp, mono), v in rows.items():
+                k = (comp, mono / scale)
+                vector[k] = v
+            power = float(p)
+        self._exact[key] = (vector, power)
+        return vector, power
+
+    # -- the greedy rank test -------------------------------------------------------------------
+
+    def run(self, terms: Sequence[Term], independent: int = 0) -> list[Dependency | None]:
+        """For each term: None when it raises the rank of the earlier independent ones, else
+        its exact relation to them. The first ``independent`` terms are taken as independent
+        (already checked). Terms too large to expand count as independent."""
+        cols = [self.probe(t) for t in terms]
+        finite = [bool(np.all(np.isfinite(c))) for c in cols]
+        norms = [float(np.linalg.norm(c)) if ok else 0.0 for c, ok in zip(cols, finite,
+                                                                            strict=True)]
+        ref = max(norms + [1e-300])
+        basis: list[int] = []  # independent term indices
+        out: list[Dependency | None] = []
+        for i in range(len(terms)):
+            if i < independent or not finite[i]:
+                out.append(None)
+                basis.append(i)
+                continue
+            support = self._numeric_support(cols, norms, ref, basis, i)
+            dep = None
+            if support is not None:
+                try:
+                    dep = self._relation(terms, i, support)
+                    if dep is None and len(support) < len(basis):
+                        dep = self._relation(terms, i, basis)
+                except _TooLarge:
+                    dep = None
+            out.append(dep)
+            if dep is None:
+                basis.append(i)
+        return out
+
+    @staticmethod
+    def _numeric_support(cols, norms, ref, basis, i) -> list[int] | None:
+        """Indices of ``basis`` a probe column seems to be a combination of; None when it is
+        clearly independent of them."""
+        if norms[i] <= 1e-9 * ref:
+            return []
+        usable = [k for k in basis if norms[k] > 0]
+        if not usable:
+            return None
+        K = np.stack([cols[k] / norms[k] for k in usable], axis=1)
+        y = cols[i] / norms[i]
+        a, *_ = np.linalg.lstsq(K, y, rcond=None)
+        if np.linalg.norm(y - K @ a) > _PROBE_INDEPENDENT:
+            return None
+        big = np.abs(a).max(initial=0.0)
+        return [k for k, ak in zip(usable, a, strict=True) if abs(ak) > 1e-9 * big]
+
+    def _relation(self, terms, i, support) -> Dependency | None:
+        """The exact relation of term i to the terms ``support``, or None if it has none."""
+        target, p_i = self.exact(i, terms[i], True)
+        combination = _solve([self.exact(k, terms[k], True)[0] for k in support], target)
+        if combination is None:
+            return None
+        combo = []
+        for k, c in zip(support, combination, strict=True):
+            if c:
+                combo.append((terms[k].name, c, p_i - self.exact(k, terms[k], True)[1]))
+        needs = False
+        if self.incompressible:  # does the relation hold without div u = 0 as well?
+            raw, _ = self.exact(i, terms[i], False)
+            rest = dict(raw)
+            for k, c in zip(support, combination, strict=True):
+                for key, v in self.exact(k, terms[k], False)[0].items():
+                    rest[key] = rest.get(key, 0) - c * v
+            needs = any(v != 0 for v in rest.values())
+        return Dependency(terms[i].name, tuple(combo), needs, len(self.dirs))
+
+
+def _fraction(c) -> Fraction:
+    if c.is_Rational:
+        return Fraction(int(c.p), int(c.q))
+    if c.is_Float:
+        return Fraction(float(c))  # the binary value the evaluation uses
+    raise _TooLarge  # a coefficient we cannot do exact arithmetic with: not checked
+
+
+def _solve(vectors: Sequence[Mapping], target: Mapping) -> list[Fraction] | None:
+    """Exact coefficients a with target = sum_k a_k vectors[k] (vectors independent), or None.
+
+    Fraction-exact Gaussian elimination on sparse vectors (dicts key -> Fraction)."""
+    basis: list[tuple[object, dict, dict]] = []  # (pivot, reduced vector, as combination)
+    for k, v in enumerate(vectors):
+        r, taken = dict(v), {}
+        _reduce(r, taken, basis)
+        if r:  # r = v_k - taken, as a combination of the original vectors
+            rep = {n: -c for n, c in taken.items()}
+            rep[k] = rep.get(k, Fraction(0)) + 1
+            basis.append((next(iter(r)), r, rep))
+    r, taken = dict(target), {}
+    _reduce(r, taken, basis)
+    if r:
+        return None
+    return [taken.get(k, Fraction(0)) for k in range(len(vectors))]  # target = taken
+
+
+def _reduce(r: dict, taken: dict, basis) -> None:
+    """Subtract basis vectors from r until it has no basis pivot; ``taken`` accumulates what
+    was subtracted, as a combination of the original vectors."""
+    for pivot, b, brep in basis:
+        f = r.get(pivot)
+        if not f:
             continue
-        dup = None
-        for other, w in zip(kept, vectors, strict=True):
-            if abs(abs(v @ w) / (norm * np.linalg.norm(w)) - 1) < 1e-10:
-                dup = other
-                break
-        if dup is not None:
-            dropped.append(f"{t.name}: a constant multiple of {dup.name} on this grid")
-            continue
-        kept.append(t)
-        vectors.append(v)
+        f = f / b[pivot]
+        for key, bv in b.items():
+            nv = r.get(key, 0) - f * bv
+            if nv:
+                r[key] = nv
+            else:
+                r.pop(key, None)
+        for n, cv in brep.items():
+            nv = taken.get(n, 0) + f * cv
+            if nv:
+                taken[n] = nv
+            else:
+                taken.pop(n, None)
+
+
+def find_dependencies(terms: Sequence[Term], dims: Iterable[str],
+                      independent: int = 0) -> list[Dependency | None]:
+    """Exact linear dependencies of each term on the earlier independent terms (greedy, in
+    order), on divergence-free fields for 2-D and 3-D grids: ``None`` for a term that raises
+    the rank, else its :class:`Dependency`. The first ``independent`` terms are assumed
+    independent."""
+    return _DependencyCheck(directions(dims)).run(list(terms), independent)
+
+
+def _prune(terms: list[Term], dims) -> tuple[list[Term], list[Dependency]]:
+    """Leave out terms that are exact linear combinations of earlier ones (or vanish)."""
+    kept, dropped = [], []
+    for t, dep in zip(terms, find_dependencies(terms, dims), strict=True):
+        if dep is None:
+            kept.append(t)
+        else:
+            dropped.append(dep)
     return kept, dropped
 
 
@@ -665,7 +1017,9 @@ class Library:
     """An ordered set of candidate terms for one target on one set of grid directions.
 
     ``name`` is the preset name or the terms file path; ``dropped`` lists preset terms left
-    out on this grid and why.
+    out on this grid and why (``"name: reason (name = combination)"``); ``dependencies`` the
+    exact relations found (of dropped preset terms and of kept user terms); ``warnings`` what
+    a user should hear about the terms (a user term that depends exactly on earlier ones).
     """
 
     name: str
@@ -674,6 +1028,8 @@ class Library:
     scalars: tuple[str, ...]
     terms: tuple[Term, ...]
     dropped: tuple[str, ...] = ()
+    warnings: tuple[str, ...] = ()
+    dependencies: tuple[Dependency, ...] = ()
     _cache: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -725,13 +1081,14 @@ class Library:
         if key not in self._cache:
             keep = tuple(t for t in self.terms if t.name in set(names))
             self._cache[key] = Library(self.name, self.target, self.dims, self.scalars, keep,
-                                       self.dropped)
+                                       self.dropped, self.warnings, self.dependencies)
         return self._cache[key]
 
     def to_dict(self) -> dict:
         return {"name": self.name, "target": self.target, "dims": list(self.dims),
                 "scalars": list(self.scalars), "terms": [t.to_dict() for t in self.terms],
-                "dropped": list(self.dropped)}
+                "dropped": list(self.dropped), "warnings": list(self.warnings),
+                "dependencies": [d.to_dict() for d in self.dependencies]}
 
     def _compiled(self):
         """(symbols, function(Delta, *symbol arrays) -> flat list [term][component])."""
@@ -744,10 +1101,13 @@ class Library:
 
 
 def make_library(name_or_path: str, target: str, dims: Iterable[str],
-                 scalars: Iterable[str] = ()) -> Library:
+                 scalars: Iterable[str] = (), *, prune: bool = True) -> Library:
     """A preset (``default``, ``classic``, ``minimal``) or a terms file, for ``target`` on a
     grid with ``dims``. ``scalars`` are the scalar fields available (the target's own scalar is
-    added). Raises UserError naming the problem."""
+    added). Preset terms that depend exactly on earlier ones (on incompressible fields in 2-D
+    and 3-D) are left out and listed in ``Library.dropped``, unless ``prune`` is False; user
+    terms are kept and their dependencies reported in ``Library.warnings``. Presets are cached
+    per (preset, target, dims, scalars). Raises UserError naming the problem."""
     kind, scalar = parse_target(target)
     dims = tuple(dims)
     component_keys(target, dims)  # checks vorticity needs (y, x)
@@ -756,31 +1116,39 @@ def make_library(name_or_path: str, target: str, dims: Iterable[str],
         scalars = (*scalars, scalar)
     scalars = check_scalar_names(scalars)
     if name_or_path in PRESETS:
-        return _preset(str(name_or_path), target, directions(dims), scalars, dims)
+        return _preset(str(name_or_path), target, directions(dims), scalars, dims, bool(prune))
     path = Path(str(name_or_path))
     if not path.suffix and not path.exists():
         raise UserError(f"unknown library {name_or_path!r}: choose {', '.join(PRESETS)} or give "
                         "the path of a terms file (.yaml, .yml or .json)")
-    return load_terms_file(path, target, dims, scalars)
+    return load_terms_file(path, target, dims, scalars, prune=prune)
 
 
 @lru_cache(maxsize=64)
-def _preset_terms(name: str, target: str, dirs: tuple[str, ...],
-                  scalars: tuple[str, ...]) -> tuple[tuple[Term, ...], tuple[str, ...]]:
-    k = Kinematics(dirs, scalars)
-    kept, dropped = _drop_degenerate(_builtin_terms(target, k))
-    kind, _ = parse_target(target)
-    if name != "default":
-        wanted = (_CLASSIC if name == "classic" else _MINIMAL)[kind]
-        kept = [t for t in kept if t.name in wanted]
-        dropped = [d for d in dropped if d.split(":")[0] in wanted]
+def _default_terms(target: str, dirs: tuple[str, ...], scalars: tuple[str, ...], prune: bool
+                   ) -> tuple[tuple[Term, ...], tuple[Dependency, ...]]:
+    terms = _builtin_terms(target, Kinematics(dirs, scalars))
+    if not prune:
+        return tuple(terms), ()
+    kept, dropped = _prune(terms, dirs)
     return tuple(kept), tuple(dropped)
 
 
+def _preset_terms(name: str, target: str, dirs: tuple[str, ...], scalars: tuple[str, ...],
+                  prune: bool = True) -> tuple[tuple[Term, ...], tuple[Dependency, ...]]:
+    kept, dropped = _default_terms(target, dirs, scalars, prune)
+    if name != "default":
+        wanted = (_CLASSIC if name == "classic" else _MINIMAL)[parse_target(target)[0]]
+        kept = tuple(t for t in kept if t.name in wanted)
+        dropped = tuple(d for d in dropped if d.term in wanted)
+    return kept, dropped
+
+
 @lru_cache(maxsize=64)
-def _preset(name, target, dirs, scalars, dims) -> Library:
-    terms, dropped = _preset_terms(name, target, dirs, scalars)
-    return Library(name, target, tuple(dims), scalars, terms, dropped)
+def _preset(name, target, dirs, scalars, dims, prune) -> Library:
+    terms, dropped = _preset_terms(name, target, dirs, scalars, prune)
+    return Library(name, target, tuple(dims), scalars, terms,
+                   tuple(d.describe() for d in dropped), (), dropped)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -945,7 +1313,7 @@ _TERM_KEYS = {"name", "delta_power", "description", "expression", "components"}
 
 
 def load_terms_file(path: str | Path, target: str, dims: Iterable[str],
-                    scalars: Iterable[str] = ()) -> Library:
+                    scalars: Iterable[str] = (), *, prune: bool = True) -> Library:
     """Read user-defined terms (format in the module docstring) for ``target``."""
     path = Path(path)
     if not path.is_file():
@@ -962,12 +1330,14 @@ def load_terms_file(path: str | Path, target: str, dims: Iterable[str],
     except Exception as exc:
         kind = "JSON" if path.suffix.lower() == ".json" else "YAML"
         raise UserError(f"terms file {path} is not valid {kind}: {exc}") from None
-    return terms_from_data(data, target, dims, scalars, name=str(path))
+    return terms_from_data(data, target, dims, scalars, name=str(path), prune=prune)
 
 
 def terms_from_data(data, target: str, dims: Iterable[str], scalars: Iterable[str] = (),
-                    name: str = "terms") -> Library:
-    """Build a Library from the parsed contents of a terms file."""
+                    name: str = "terms", *, prune: bool = True) -> Library:
+    """Build a Library from the parsed contents of a terms file. An included preset is
+    pruned as by :func:`make_library`; a user term that depends exactly on earlier terms is
+    kept (the file asked for it) and named with the relation in ``Library.warnings``."""
     where = f"terms file {name}"
     if not isinstance(data, dict):
         raise UserError(f"{where}: expected a mapping with a 'terms' list at the top")
@@ -987,13 +1357,14 @@ def terms_from_data(data, target: str, dims: Iterable[str], scalars: Iterable[st
     k = Kinematics(dims, scalars)
     ns = Namespace(k, allow_bare_velocity=allow)
     terms: list[Term] = []
-    dropped: tuple[str, ...] = ()
+    dropped: tuple[Dependency, ...] = ()
     if "include" in data:
         inc = data["include"]
         if inc not in PRESETS:
             raise UserError(f"{where}: include must be one of {', '.join(PRESETS)}, got {inc!r}")
-        base, dropped = _preset_terms(inc, target, k.dirs, k.scalars)
+        base, dropped = _preset_terms(inc, target, k.dirs, k.scalars, prune)
         terms.extend(base)
+    n_base = len(terms)
     items = data.get("terms", [])
     if not isinstance(items, list) or (not items and not terms):
         raise UserError(f"{where}: 'terms' must be a non-empty list of terms")
@@ -1006,7 +1377,21 @@ def terms_from_data(data, target: str, dims: Iterable[str], scalars: Iterable[st
             raise UserError(f"{where}: the term name {t.name!r} is used twice; names must be "
                             "unique")
         seen.add(t.name)
-    return Library(name, target, dims, k.scalars, tuple(terms), dropped)
+    found = find_dependencies(terms, k.dirs, independent=n_base) if prune else []
+    user_deps = [d for d in found if d is not None]
+    warnings = tuple(_user_dependency_warning(where, d) for d in user_deps)
+    return Library(name, target, dims, k.scalars, tuple(terms),
+                   tuple(d.describe() for d in dropped), warnings, (*dropped, *user_deps))
+
+
+def _user_dependency_warning(where: str, dep: Dependency) -> str:
+    if not dep.combination:
+        return (f"{where}: term {dep.term} vanishes identically {dep.where}; it is kept as "
+                "listed, but it cannot be fitted: remove it")
+    others = [n for n, _, _ in dep.combination]
+    return (f"{where}: term {dep.term} is an exact linear combination of {', '.join(others)} "
+            f"{dep.where} ({dep.equation}); it is kept as listed, but the fit cannot separate "
+            f"its coefficient from theirs: remove {dep.term} or the terms it repeats")
 
 
 def _user_term(item, n, target, keys, k, ns, where) -> Term:

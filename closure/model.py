@@ -18,7 +18,8 @@ Model file, schema version 1 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Sche
 ``delta``             the filter width Delta used in the terms (coordinate units)
 ``provenance``        ``{input, variables, snapshots: {train, test}, sha256, created,
                       closure_version, ...}``
-``library``           ``{name, terms}``: the library (preset or terms file) and its term names
+``library``           ``{name, terms, dropped}``: the library (preset or terms file), its term
+                      names, and the preset terms left out as exact combinations of them
 ``method``            the regression method; ``settings`` its and the selection's settings
 ``terms``             one record per library term: ``name, description, rank, delta_power,
                       dimensionless, scaled_units, expression`` (sympy string per component key),
@@ -356,7 +357,9 @@ class ClosureModel:
         self.method = method
         self.settings = _plain(dict(settings or {}))
         self.scores = _plain(dict(scores or {}))
-        self.warnings = [str(w) for w in warnings]
+        given = [str(w) for w in warnings]
+        # what the library says about its terms (a user term repeating others) comes first
+        self.warnings = [w for w in library.warnings if w not in given] + given
         self.caution = caution or CAUTION
 
     # -- construction ------------------------------------------------------------------------
@@ -638,11 +641,13 @@ class ClosureModel:
         inactive = [t.name for t in self.terms if not t.active]
         if inactive:
             lines.append(f"Inactive terms: {', '.join(inactive)}")
-        for split in ("test", "train", *[s for s in self.scores if s not in ("test", "train")]):
-            sc = self.scores.get(split)
-            if isinstance(sc, Mapping) and sc:
-                lines.append(f"Scores ({split}): " + ", ".join(
-                    f"{k} {_fmt(v)}" for k, v in sc.items() if not isinstance(v, Mapping | list)))
+        if self.library.dropped:
+            lines.append("Left out of the library (exact linear combinations of its terms):")
+            lines += [f"  {_dropped_note(d)}" for d in self.library.dropped]
+        scores = _scores_lines(self.scores, self.components)
+        if scores:
+            lines += ["", *scores]
+        lines.append("")
         if self.warnings:
             lines.append("Warnings:")
             lines += [f"  - {w}" for w in self.warnings]
@@ -651,9 +656,96 @@ class ClosureModel:
 
 
 def _fmt(v) -> str:
-    if isinstance(v, float):
-        return f"{v:.4g}"
-    return str(v)
+    """A score as text: 4 significant digits, integers (point counts) in full, n/a for None."""
+    if v is None:
+        return "n/a"
+    if isinstance(v, bool) or not isinstance(v, int | float):
+        return str(v)
+    if isinstance(v, int) or (float(v).is_integer() and abs(v) >= 1000):
+        return str(int(v))
+    text = f"{v:#.4g}"
+    return text[:-1] if text.endswith(".") else text
+
+
+_SPLIT_LEGEND = {"test": "held-out snapshots", "train": "fitted snapshots"}
+_ONLY = re.compile(r"^(?P<term>[A-Za-z][A-Za-z0-9_]*)_only_(?P<split>test|train)$")
+_DROPPED = re.compile(r"^(?P<term>\w+): (?P<kind>.*?) (?P<where>on [^(]*?)(?: \((?P<eq>.*)\))?$")
+
+
+def _dropped_note(text: str) -> str:
+    """``"rotation_squared = ... (on any field)"`` from a ``Library.dropped`` entry."""
+    m = _DROPPED.match(text)
+    if not m:
+        return text
+    if m["eq"]:
+        return f"{m['eq']}  ({m['where']})"
+    if m["kind"] == "vanishes identically":
+        return f"{m['term']} = 0  ({m['where']})"
+    return text
+
+
+def _scores_lines(scores: Mapping, components: Sequence[str]) -> list[str]:
+    """Scores as a table: rows are metrics, columns the splits (test, train, reference fits);
+    per-component metrics of the test split in a second table."""
+    splits = [s for s in ("test", "train") if isinstance(scores.get(s), Mapping) and scores[s]]
+    splits += [s for s, v in scores.items()
+               if s not in splits and isinstance(v, Mapping) and v]
+    if not splits:
+        return []
+    suffixes = [f"_{c}" for c in components] if len(components) > 1 else []
+
+    def split_metrics(sc):
+        pooled, per = {}, {}
+        for k, v in sc.items():
+            if isinstance(v, Mapping | list):
+                continue
+            comp = next((c for c in suffixes if k.endswith(c) and len(k) > len(c)), None)
+            if comp is None:
+                pooled[k] = v
+            else:
+                per.setdefault(k[:-len(comp)], {})[comp[1:]] = v
+        return pooled, per
+
+    parsed = {s: split_metrics(scores[s]) for s in splits}
+    if len(splits) == 1 and len(parsed[splits[0]][0]) <= 3 and not parsed[splits[0]][1]:
+        s = splits[0]  # a line is easier to read than a one-column table of a few numbers
+        return [f"Scores ({s}): " + ", ".join(f"{k} {_fmt(v)}" for k, v in scores[s].items()
+                                             if not isinstance(v, Mapping | list))]
+    rows = list(dict.fromkeys(k for s in splits for k in parsed[s][0]))
+    table = [["A priori scores", *splits]]
+    table += [[m, *(_fmt(parsed[s][0][m]) if m in parsed[s][0] else "-" for s in splits)]
+              for m in rows]
+    out = _aligned(table)
+    plain = [f"{s} = {_SPLIT_LEGEND[s]}" for s in splits if s in _SPLIT_LEGEND]
+    if plain:
+        out.append("  " + ", ".join(plain))
+    for s in splits:
+        m = _ONLY.match(s)
+        if m:
+            out.append(f"  {s} = the {m['term']} term alone, least squares on train, scored "
+                       f"on {m['split']}")
+    first = next((s for s in splits if parsed[s][1]), None)
+    if first is not None:
+        per = parsed[first][1]
+        comps = [c for c in components if any(c in v for v in per.values())]
+        table = [[f"Per component ({first})", *per]]
+        table += [[c, *(_fmt(per[m][c]) if c in per[m] else "-" for m in per)] for c in comps]
+        out += ["", *_aligned(table)]
+    return out
+
+
+def _aligned(table: list[list[str]]) -> list[str]:
+    """Rows of text cells: the first column left-aligned (indented under its header), the
+    others right-aligned."""
+    widths = [max(len(r[i]) + (2 if i == 0 and n else 0) for n, r in enumerate(table))
+              for i in range(len(table[0]))]
+    out = []
+    for n, row in enumerate(table):
+        first = row[0] if n == 0 else "  " + row[0]
+        cells = [first.ljust(widths[0])] + [c.rjust(w) for c, w in zip(row[1:], widths[1:],
+                                                                     strict=True)]
+        out.append("  ".join(cells).rstrip())
+    return out
 
 
 def _fmt_power(p) -> str:

@@ -210,8 +210,9 @@ def test_force_terms_are_divergences_of_stress_terms(dims, shape):
     g = Grid.regular(shape, 2 * np.pi, dims)
     vel = [c for c, d in zip("uvw", "xyz", strict=False) if d in dims]
     f = random_band_limited(g, vel, kmax=3, seed=1)
-    Ls = make_library("default", "stress", dims)
-    Lf = make_library("default", "force", dims)
+    # every built-in term, the exactly dependent ones included (prune=False)
+    Ls = make_library("default", "stress", dims, prune=False)
+    Lf = make_library("default", "force", dims, prune=False)
     Xs = design(Ls, f, g, "spectral", 0.8)
     Xf = design(Lf, f, g, "spectral", 0.8)
     dirs = lib.directions(dims)
@@ -233,8 +234,8 @@ def test_vorticity_terms_are_curls_of_force_terms():
     # vorticity forcing = d_x force_y - d_y force_x for the chain-rule terms (same argument)
     g = Grid.regular((24, 24), 2 * np.pi)
     f = random_band_limited(g, ["u", "v"], kmax=3, seed=2)
-    Lf = make_library("default", "force", g.dims)
-    Lw = make_library("default", "vorticity", g.dims)
+    Lf = make_library("default", "force", g.dims, prune=False)
+    Lw = make_library("default", "vorticity", g.dims, prune=False)
     Xf = design(Lf, f, g, "spectral", 0.6)
     Xw = design(Lw, f, g, "spectral", 0.6)
     for name in ("gradient_model", "strain_squared", "strain"):
@@ -275,9 +276,14 @@ def test_presets_and_degenerate_terms():
                                                                   "gradient_model"]
     assert make_library("minimal", "flux:c", ("y", "x")).names == ["eddy_diffusivity"]
     d3 = make_library("default", "stress", ("z", "y", "x"))
+    # rotation_squared = strain_squared - strain_rotation - 12 gradient_model (see
+    # test_gradient_model_tensor_is_a_combination_of_the_products)
+    assert {"smagorinsky", "gradient_model", "strain", "strain_squared", "strain_rotation",
+            "strain_laplacian", "second_gradient_model", "isotropic"} == set(d3.names)
     assert {"smagorinsky", "gradient_model", "strain", "strain_squared", "strain_rotation",
             "rotation_squared", "strain_laplacian", "second_gradient_model",
-            "isotropic"} == set(d3.names)
+            "isotropic"} == set(make_library("default", "stress", ("z", "y", "x"),
+                                             prune=False).names)
     one = make_library("default", "stress", ("x",))
     # in 1-D S S = (du_dx)^2 = 12/Delta^2 x gradient model, and R = 0
     assert "strain_squared" not in one.names and "rotation_squared" not in one.names
@@ -369,8 +375,13 @@ terms:
     Xu, Xc = design(user, f, g, "spectral", 0.3), design(classic, f, g, "spectral", 0.3)
     np.testing.assert_allclose(Xu[:, :, 0], Xc[:, :, 0], atol=1e-14)
     np.testing.assert_allclose(Xu[:, :, 1], Xc[:, :, 1], atol=1e-14)
-    # a duplicated term loads (the fit's collinearity check reports it)
+    # a duplicated term loads (the fit's collinearity check reports it), and the library
+    # names both terms in a warning the model file and its summary carry
     np.testing.assert_allclose(Xu[:, :, 2], Xu[:, :, 0], atol=1e-14)
+    assert len(user.warnings) == 1
+    assert "term smagorinsky_again is an exact linear combination of my_smagorinsky on any " \
+           "field (smagorinsky_again = my_smagorinsky); it is kept" in user.warnings[0]
+    assert user.dropped == ()
 
 
 def test_user_terms_with_include_json_and_derivative_helpers(tmp_path):
@@ -388,6 +399,8 @@ def test_user_terms_with_include_json_and_derivative_helpers(tmp_path):
     X = design(L, f, g, "spectral", 0.5)
     np.testing.assert_allclose(X[:, :, 2], X[:, :, 0], atol=1e-13)
     np.testing.assert_allclose(X[1, :, 3], 0.0)
+    assert ["div_smag_by_hand = div_smagorinsky"] == [d.equation for d in L.dependencies]
+    assert "div_smag_by_hand" in L.warnings[0] and "div_smagorinsky" in L.warnings[0]
 
 
 def test_vorticity_user_term_uses_omega(tmp_path):
@@ -481,3 +494,233 @@ def test_preset_expressions_read_back_identically(target, dims):
     for t in L.terms:
         for key, e in t.components.items():
             assert lib.parse_expression(str(e), ns) == e, (t.name, key)
+
+
+# --- exact dependencies between terms -------------------------------------------------------
+
+def solenoidal_band_limited(grid, kmax=3, seed=0):
+    """A random divergence-free velocity with Fourier modes |k_i| <= kmax: in 2-D from a stream
+    function (u = d_y psi, v = -d_x psi), in 3-D the curl of a vector potential. Spectral
+    derivatives commute, so its spectral divergence vanishes to round-off."""
+    d = lambda f, dim: derivative(f, grid, dim, 1, "spectral")  # noqa: E731
+    if grid.ndim == 2:
+        psi = random_band_limited(grid, ["psi"], kmax, seed)["psi"]
+        return {"u": d(psi, "y"), "v": -d(psi, "x")}
+    a = random_band_limited(grid, ["ax", "ay", "az"], kmax, seed)
+    return {"u": d(a["az"], "y") - d(a["ay"], "z"), "v": d(a["ax"], "z") - d(a["az"], "x"),
+            "w": d(a["ay"], "x") - d(a["ax"], "y")}
+
+
+def standardised_gram_condition(library, fields, grid):
+    """Condition number of the weighted Gram of the design with unit-diagonal scaling (the
+    standardised Gram of closure.regression)."""
+    X = design(library, fields, grid, "spectral", 0.5)
+    w = component_weights(library.target, grid.dims)
+    G = sum(wc * Xc.T @ Xc for wc, Xc in zip(w, X, strict=True))
+    s = np.sqrt(np.diag(G))
+    return np.linalg.cond(G / np.outer(s, s))
+
+
+def incompressible(expr, k):
+    """expr with the last diagonal derivative replaced: dv_dy = -du_dx (2-D),
+    dw_dz = -du_dx - dv_dy (3-D)."""
+    last = k.A.shape[0] - 1
+    return sympy.expand(expr.xreplace({k.A[last, last]: -sum(k.A[i, i] for i in range(last))}))
+
+
+@pytest.mark.parametrize("dims", [("x",), ("y", "x"), ("z", "y", "x")])
+def test_gradient_model_tensor_is_a_combination_of_the_products(dims):
+    # With A = grad u (A_ij = d_j u_i), S = (A + A^T)/2 and R = (A - A^T)/2 we have A = S + R
+    # and A^T = S - R, so A A^T = (S + R)(S - R) = S S - S R + R S - R R
+    # = S S - (S R - R S) - R R. No trace condition enters: the identity holds in every
+    # dimension and for any velocity field (derived here), so gradient_model (Delta^2/12 A A^T),
+    # strain_squared, strain_rotation and rotation_squared are always linearly dependent.
+    k = lib.Kinematics(dims)
+    n = len(dims)
+    diff = k.A * k.A.T - (k.S * k.S - (k.S * k.R - k.R * k.S) - k.R * k.R)
+    assert diff.applyfunc(sympy.expand) == sympy.zeros(n, n)
+    L = make_library("default", "stress", dims)
+    assert "gradient_model" in L.names and "rotation_squared" not in L.names
+
+
+def test_two_dimensional_products_are_isotropic_on_incompressible_fields():
+    # In 2-D with tr S = 0: S = [[a, b], [b, -a]] (a = S_xx, b = S_xy), so
+    # S S = [[a^2 + b^2, ab - ba], [ba - ab, b^2 + a^2]] = (a^2 + b^2) I, and
+    # |S|^2 = 2 S_ij S_ij = 2 (2 a^2 + 2 b^2), so S S = (|S|^2 / 4) I. With
+    # R = [[0, -omega/2], [omega/2, 0]] (omega = d_x v - d_y u), R R = -(omega^2 / 4) I
+    # in any 2-D field (derived here).
+    k = lib.Kinematics(("y", "x"))
+    a, b = k.S[0, 0], k.S[0, 1]
+    SS = (k.S * k.S).applyfunc(lambda e: incompressible(e, k))
+    assert SS == (incompressible(a**2 + b**2, k) * sympy.eye(2)).applyfunc(sympy.expand)
+    assert SS == (incompressible(k.S_sq / 4, k) * sympy.eye(2)).applyfunc(sympy.expand)
+    RR = (k.R * k.R).applyfunc(sympy.expand)
+    assert RR == (-sympy.expand(k.omega**2) / 4 * sympy.eye(2)).applyfunc(sympy.expand)
+    # without tr S = 0 the strain product is not isotropic: the substitution is what matters
+    assert sympy.expand((k.S * k.S)[0, 0] - (k.S * k.S)[1, 1]) != 0
+
+
+def test_pruned_default_stress_libraries_drop_exactly_the_dependent_terms():
+    two = make_library("default", "stress", ("y", "x"))
+    assert two.names == ["smagorinsky", "gradient_model", "strain", "isotropic",
+                         "strain_rotation", "strain_laplacian", "second_gradient_model"]
+    # by the identities above: Delta^2 S S = (1/4) Delta^2 |S|^2 I, and
+    # Delta^2 R R = Delta^2 S S - Delta^2 (S R - R S) - 12 (Delta^2/12 A A^T)
+    assert two.dropped == (
+        "strain_squared: a constant multiple of isotropic on incompressible fields "
+        "(strain_squared = 1/4 isotropic)",
+        "rotation_squared: a linear combination of earlier terms on incompressible fields "
+        "(rotation_squared = 1/4 isotropic - 12 gradient_model - strain_rotation)")
+    three = make_library("default", "stress", ("z", "y", "x"))
+    assert three.dropped == (
+        "rotation_squared: a linear combination of earlier terms on any field "
+        "(rotation_squared = strain_squared - 12 gradient_model - strain_rotation)",)
+    dep = three.dependencies[0]
+    assert dep.term == "rotation_squared" and not dep.incompressible
+    assert {(n, c) for n, c, _ in dep.combination} == {("strain_squared", 1),
+                                                      ("gradient_model", -12),
+                                                      ("strain_rotation", -1)}
+
+
+@pytest.mark.parametrize("dims,shape", [(("y", "x"), (32, 32)), (("z", "y", "x"), (16, 16, 16))])
+def test_pruned_default_stress_libraries_have_full_rank(dims, shape):
+    # a library of linearly independent functions has a well-conditioned Gram on a generic
+    # field; the unpruned one is singular to round-off (common practice: condition number of
+    # the column-scaled Gram as the collinearity measure, e.g. Belsley, Kuh & Welsch 1980)
+    g = Grid.regular(shape, 2 * np.pi, dims)
+    f = solenoidal_band_limited(g, kmax=3, seed=7)
+    div = sum(derivative(f[lib.VELOCITY_OF[d]], g, d, 1, "spectral") for d in dims)
+    assert np.abs(div).max() < 1e-10 * np.abs(f["u"]).max()
+    assert standardised_gram_condition(make_library("default", "stress", dims), f, g) < 1e8
+    assert standardised_gram_condition(make_library("default", "stress", dims, prune=False),
+                                       f, g) > 1e12
+
+
+@pytest.mark.parametrize("dims", [("x",), ("y", "x"), ("z", "y", "x")])
+def test_gradient_model_and_smagorinsky_survive_in_every_dimension(dims):
+    targets = ["stress", "force", "flux:c"] + (["vorticity"] if len(dims) == 2 else [])
+    prefix = {"stress": "", "force": "div_", "vorticity": "curl_div_", "flux:c": ""}
+    for target in targets:
+        names = make_library("default", target, dims).names
+        assert prefix[target] + "gradient_model" in names, (target, names)
+        smag = "eddy_diffusivity" if target == "flux:c" else prefix[target] + "smagorinsky"
+        assert smag in names, (target, names)
+
+
+CASES = [("stress", ("x",), (16,)), ("stress", ("y", "x"), (24, 24)),
+         ("stress", ("z", "y", "x"), (12, 12, 12)), ("force", ("y", "x"), (24, 24)),
+         ("force", ("z", "y", "x"), (12, 12, 12)), ("vorticity", ("y", "x"), (24, 24)),
+         ("flux:c", ("y", "x"), (24, 24)), ("flux:c", ("z", "y", "x"), (12, 12, 12))]
+
+
+@pytest.mark.parametrize("target,dims,shape", CASES)
+def test_each_dropped_term_is_its_stated_combination(target, dims, shape):
+    # the relation found symbolically holds pointwise on a divergence-free field (design
+    # columns of the unpruned library), and, where it is stated to need incompressibility,
+    # fails on a generic compressible field (so the substitution is really used)
+    g = Grid.regular(shape, 2 * np.pi, dims)
+    vel = [lib.VELOCITY_OF[d] for d in dims]
+    rough = random_band_limited(g, [*vel, "c"], kmax=2, seed=11)
+    smooth = ({"u": rough["u"]} if len(dims) == 1 else solenoidal_band_limited(g, 2, seed=5))
+    smooth["c"] = rough["c"]
+    pruned = make_library("default", target, dims)
+    full = make_library("default", target, dims, prune=False)
+    assert pruned.dependencies and len(pruned.dropped) == len(pruned.dependencies)
+    assert set(full.names) == set(pruned.names) | {d.term for d in pruned.dependencies}
+    delta = 0.6
+    for fields, solenoidal in ((smooth, True), (rough, False)):
+        X = design(full, fields, g, "spectral", delta)
+        scale = np.abs(X).max(axis=(0, 1))
+        for dep, text in zip(pruned.dependencies, pruned.dropped, strict=True):
+            assert text == dep.describe()
+            assert dep.equation in text if dep.combination else "vanishes identically" in text
+            lhs = component_array(X, full, dep.term)
+            rhs = sum(float(c) * delta**p * component_array(X, full, n)
+                      for n, c, p in dep.combination) if dep.combination else 0 * lhs
+            tol = 1e-9 * max(scale[full.names.index(n)] for n, _, _ in dep.combination) \
+                if dep.combination else 1e-9 * scale.max()
+            if solenoidal or not dep.incompressible:
+                np.testing.assert_allclose(lhs, rhs, atol=tol, err_msg=text)
+            else:
+                assert np.abs(lhs - rhs).max() > 1e5 * tol, text
+
+
+def test_vorticity_gradient_model_is_the_curl_of_the_divergence_of_the_gradient_model():
+    # 2-D, div u = 0: d_j(d_k u_i d_k u_j) = d_k u_j d_j d_k u_i, so with M = grad(d_k u)
+    # (M_jl = d_l d_k u_j) curl div tau = (Delta^2/12) [eps_li (M M)_il + d_k u_j d_j d_k omega].
+    # M has trace d_k div u = 0, so by Cayley-Hamilton M M = -det(M) I is isotropic and the
+    # first part vanishes; the rest is d_j (Delta^2/12 d_k u_j d_k omega) with div u = 0
+    # (derived here). Found by the exact check:
+    L = make_library("default", "vorticity", ("y", "x"))
+    assert ("vorticity_gradient_model: a constant multiple of curl_div_gradient_model on "
+            "incompressible fields (vorticity_gradient_model = curl_div_gradient_model)"
+            in L.dropped)
+    # and the curl of a gradient (the isotropic terms) vanishes on any field
+    assert "curl_div_isotropic: vanishes identically on any field" in L.dropped
+
+
+def test_dependent_user_terms_are_kept_and_named(tmp_path):
+    p = write_terms(tmp_path, """
+include: default
+terms:
+  - name: my_strain_squared
+    delta_power: 2
+    expression: "Delta**2 * (S_{i}x * S_x{j} + S_{i}y * S_y{j})"
+  - name: nearly_smagorinsky
+    delta_power: 2
+    expression: "Delta**2 * (S_mag * S_{i}{j} + 1e-12 * du_dx**2 * S_{i}{j})"
+""")
+    L = make_library(str(p), "stress", ("y", "x"))
+    assert L.names[-2:] == ["my_strain_squared", "nearly_smagorinsky"]
+    assert len(L.dropped) == 2  # the preset's own
+    # dependent only through tr S = 0; numerically close but independent terms are not flagged
+    assert L.warnings == (
+        f"terms file {p}: term my_strain_squared is an exact linear combination of isotropic "
+        "on incompressible fields (my_strain_squared = 1/4 isotropic); it is kept as listed, "
+        "but the fit cannot separate its coefficient from theirs: remove my_strain_squared or "
+        "the terms it repeats",)
+    assert not make_library(str(p), "stress", ("y", "x"), prune=False).warnings
+
+
+def test_dependencies_carry_delta_powers_and_skip_huge_expansions(tmp_path):
+    p = write_terms(tmp_path, """
+terms:
+  - name: low
+    delta_power: 2
+    expression: "Delta**2 * S_{i}{j}"
+  - name: high
+    delta_power: 4
+    expression: "3 * Delta**4 * S_{i}{j}"
+  - name: huge
+    delta_power: 0
+    expression: "(du_dx + du_dy + dv_dx + 2*du_dx*du_dy + 3*dv_dx**2)**40 * S_{i}{j}"
+  - name: huge_again
+    delta_power: 0
+    expression: "(du_dx + du_dy + dv_dx + 2*du_dx*du_dy + 3*dv_dx**2)**40 * S_{i}{j}"
+""")
+    L = make_library(str(p), "stress", ("y", "x"))
+    assert [d.equation for d in L.dependencies] == ["high = 3 Delta^2 low"]
+    # a duplicate too large to expand exactly is kept without a claim (the fit's numeric
+    # collinearity check still reports it)
+    assert L.names == ["low", "high", "huge", "huge_again"]
+    assert lib._monomial_bound(sympy.sympify("(a + b + c + d + e)**40"), 10**9) == 135751
+
+
+@pytest.mark.parametrize("target,dims", [("stress", ("y", "x")), ("stress", ("z", "y", "x")),
+                                         ("vorticity", ("y", "x")), ("flux:c", ("y", "x"))])
+def test_exact_rank_agrees_with_sympy_matrix_rank(target, dims):
+    # the fraction-exact elimination against sympy's Matrix.rank on the same Rational
+    # coefficient vectors (reference: sympy)
+    full = make_library("default", target, dims, prune=False)
+    kept = make_library("default", target, dims).names
+    check = lib._DependencyCheck(lib.directions(dims))
+    vectors = [check.exact(i, t, True)[0] for i, t in enumerate(full.terms)]
+    keys = sorted({k for v in vectors for k in v}, key=str)
+
+    def rank(names):
+        rows = [[sympy.Rational(x.numerator, x.denominator)
+                 for x in (vectors[full.names.index(n)].get(k, 0) for k in keys)]
+                for n in names]
+        return sympy.Matrix(rows).rank()
+
+    assert rank(kept) == len(kept) == rank(full.names)

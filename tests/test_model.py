@@ -198,7 +198,14 @@ def test_summary_reads_well():
     assert "-0.03 +/- 0.001 x Delta^2 [1]" in text
     assert "selected 85%" in text
     assert "Inactive terms: strain" in text
-    assert "Scores (test): r2 0.88, corr 0.94" in text
+    lines = text.splitlines()
+    start = lines.index("A priori scores    test   train")
+    assert lines[start:start + 4] == ["A priori scores    test   train",
+                                      "  r2             0.8800  0.9100",
+                                      "  corr           0.9400  0.9500",
+                                      "  test = held-out snapshots, train = fitted snapshots"]
+    # the terms the default 2-D library left out, with their exact combinations
+    assert "  strain_squared = 1/4 isotropic  (on incompressible fields)" in lines
     assert "nearly collinear" in text
     assert "does not guarantee a stable or accurate coarse simulation" in text
     assert "a posteriori" in text
@@ -293,3 +300,61 @@ def test_schema_is_strict_about_term_records():
     errors = validate_schema(d, MODEL_SCHEMA)
     assert any("$.terms[0].colour: unknown field" in e for e in errors)
     assert any("$.terms[1].selection_frequency: must be <= 1" in e for e in errors)
+
+
+def test_summary_scores_table_of_a_pipeline_model():
+    # the keys closure.pipeline.reduce stores: pooled metrics, per-component ones, transfers,
+    # points, and the Smagorinsky-only reference fit
+    test = {"r2": 0.99751, "correlation": 0.9988, "relative_error": 0.046164,
+            "r2_tau_xx": 0.99718, "correlation_tau_xx": 0.9986, "relative_error_tau_xx": 0.04298,
+            "r2_tau_xy": 0.9962, "correlation_tau_xy": 0.9981, "relative_error_tau_xy": 0.06087,
+            "r2_tau_yy": 0.9966, "correlation_tau_yy": 0.9983, "relative_error_tau_yy": 0.0456,
+            "energy_transfer_correlation": 0.96294, "energy_transfer_mean_ratio": None,
+            "points": 8192}
+    train = {"r2": 0.9981, "correlation": 0.999, "relative_error": 0.03992, "points": 24576}
+    smag = {"r2": -0.151412, "correlation": 0.0106713, "relative_error": 0.99991,
+            "energy_transfer_correlation": 0.12663, "points": 8192}
+    m, _ = make_model(scores={"test": test, "train": train, "smagorinsky_only_test": smag})
+    lines = m.summary().splitlines()
+    start = lines.index(next(x for x in lines if x.startswith("A priori scores")))
+    assert lines[start:start + 16] == [
+        "A priori scores                   test    train  smagorinsky_only_test",
+        "  r2                            0.9975   0.9981                -0.1514",
+        "  correlation                   0.9988   0.9990                0.01067",
+        "  relative_error               0.04616  0.03992                 0.9999",
+        "  energy_transfer_correlation   0.9629        -                 0.1266",
+        "  energy_transfer_mean_ratio       n/a        -                      -",
+        "  points                          8192    24576                   8192",
+        "  test = held-out snapshots, train = fitted snapshots",
+        "  smagorinsky_only_test = the smagorinsky term alone, least squares on train, scored "
+        "on test",
+        "",
+        "Per component (test)      r2  correlation  relative_error",
+        "  tau_xx              0.9972       0.9986         0.04298",
+        "  tau_xy              0.9962       0.9981         0.06087",
+        "  tau_yy              0.9966       0.9983         0.04560",
+        "",
+        "Warnings:"]
+    # a single split of a few numbers stays on one line
+    m, _ = make_model(scores={"test": {"r2": 0.5}})
+    assert "Scores (test): r2 0.5000" in m.summary()
+
+
+def test_library_warnings_reach_the_model_and_its_file(tmp_path):
+    terms = tmp_path / "t.yaml"
+    terms.write_text("""
+include: classic
+terms:
+  - name: smagorinsky_again
+    delta_power: 2
+    expression: "Delta**2 * sqrt(2*(S_xx**2 + 2*S_xy**2 + S_yy**2)) * S_{i}{j}"
+""")
+    g = Grid.regular((8, 8), 2 * np.pi)
+    L = make_library(str(terms), "stress", g.dims)
+    m = ClosureModel.from_fit(L, [0.1, 1.0, 0.0], filter={"kind": "box", "ratio": 2}, grid=g,
+                              scheme="spectral", delta=0.5, warnings=["from the fit"])
+    assert m.warnings[1] == "from the fit"
+    assert "smagorinsky_again is an exact linear combination of smagorinsky" in m.warnings[0]
+    assert m.warnings[0] in m.summary()
+    back = ClosureModel.load(m.save(tmp_path / "m.json"))
+    assert back.warnings == m.warnings  # read back once, not twice
