@@ -41,7 +41,10 @@ for _module in (synth, coarse, discover, apply, service, les, report):
 def main(argv: list[str] | None = None) -> int:
     """Console entry point: user errors print one line and exit 2, no traceback."""
     try:
-        app(args=argv, standalone_mode=False)
+        # without standalone mode click returns (not raises) the code of a typer.Exit
+        code = app(args=argv, standalone_mode=False)
+        if isinstance(code, int) and code:
+            return code
     except UserError as exc:
         typer.echo(f"error: {exc}", err=True)
         return 2
