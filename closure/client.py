@@ -103,11 +103,14 @@ class Client:
     """A closure service at ``server`` (``token``: bearer token, default $CLOSURE_TOKEN)."""
 
     def __init__(self, server: str = DEFAULT_SERVER, token: str | None = None,
-                 timeout: float = 60.0):
+                 timeout: float = 60.0, http: httpx.Client | None = None):
         self.server = server.rstrip("/")
         token = token if token is not None else os.environ.get("CLOSURE_TOKEN") or None
         headers = {"Authorization": f"Bearer {token}"} if token else {}
-        self._http = httpx.Client(base_url=self.server, headers=headers, timeout=timeout)
+        if http is None:  # ``http``: an httpx.Client of your own (e.g. a test client)
+            http = httpx.Client(base_url=self.server, timeout=timeout)
+        http.headers.update(headers)
+        self._http = http
 
     def close(self) -> None:
         self._http.close()
@@ -218,13 +221,30 @@ class Client:
         return self._json("DELETE", f"/jobs/{job_id}")
 
     def wait(self, job_id: str, progress: Callable[[dict], None] | None = None,
-             timeout: float | None = None, poll: float = 0.5) -> dict:
+             timeout: float | None = None, poll: float = 0.5,
+             outage_tolerance: float = 60.0) -> dict:
         """Poll until the job ends; return its final status if it succeeded, raise
         JobFailedError (with the server's error) if it failed or was canceled and
-        ServiceError after ``timeout`` seconds."""
+        ServiceError after ``timeout`` seconds. ``progress(status)`` is called at each poll.
+        The service being unavailable (503, no answer) for up to ``outage_tolerance`` seconds
+        is waited out."""
         deadline = None if timeout is None else time.monotonic() + timeout
+        outage_since = None
         while True:
-            doc = self.status(job_id)
+            try:
+                doc = self.status(job_id)
+                outage_since = None
+            except ServiceError as exc:
+                # ride out a short outage (Redis restarting: 503; API restarting: no answer)
+                if exc.status not in (None, 502, 503, 504):
+                    raise
+                outage_since = outage_since or time.monotonic()
+                if time.monotonic() - outage_since > outage_tolerance:
+                    raise
+                if deadline is not None and time.monotonic() > deadline:
+                    raise
+                time.sleep(poll)
+                continue
             if progress is not None:
                 progress(doc)
             if doc["state"] in TERMINAL:

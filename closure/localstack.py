@@ -370,18 +370,24 @@ class LocalStack:
                     echo(f"error: {exc}; stopping the stack")
                     status = 1
                     break
-                for n, proc in enumerate(self.worker_procs):
-                    if proc.poll() is not None:
-                        echo(f"worker {n} (pid {proc.pid}) exited with {proc.returncode}; "
-                             "starting a new one")
-                        _killpg(proc.pid)
-                        self.worker_procs[n] = self._spawn_worker(n)
-                        self._write_state()
+                for n in self.respawn_dead_workers():
+                    echo(f"worker {n} exited; started a new one "
+                         f"(pid {self.worker_procs[n].pid})")
         finally:
             for s, h in old.items():
                 signal.signal(s, h)
             self.stop()
         return status
+
+    def respawn_dead_workers(self) -> list[int]:
+        """Start a new worker in place of each one that exited; returns their numbers."""
+        dead = [n for n, p in enumerate(self.worker_procs) if p.poll() is not None]
+        for n in dead:
+            _killpg(self.worker_procs[n].pid)  # its scheduler child, if it left one
+            self.worker_procs[n] = self._spawn_worker(n)
+        if dead:
+            self._write_state()
+        return dead
 
     # -- stop
 
