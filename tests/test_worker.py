@@ -5,6 +5,8 @@ on a Redis of our own. The model a queued job stores equals in-process pipeline.
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 import zlib
 
 import numpy as np
@@ -19,6 +21,9 @@ from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
 from worker import tasks
 from worker.main import ClosureWorker
+
+# each test runs a worker process over a real Redis
+pytestmark = pytest.mark.slow
 
 
 @pytest.fixture
@@ -42,9 +47,19 @@ def submit(conn, store, spec_dict) -> str:
     return job_id
 
 
-def run_burst(conn, max_jobs=None) -> None:
-    worker = ClosureWorker([q.QUEUE_NAME], connection=conn, serializer=JSONSerializer)
-    worker.work(burst=True, with_scheduler=False, max_jobs=max_jobs, logging_level="WARNING")
+def run_burst(conn, store, max_jobs=None, patch: str = "") -> None:
+    """Run a worker in burst mode in a fresh process (``closure worker --burst``), after the
+    Python in ``patch`` (e.g. replacing a pipeline function to make it fail). A fresh process,
+    not a fork of the test process: forking a process whose thread pools have run is unsafe.
+    """
+    url = conn.connection_pool.connection_kwargs.get("path")
+    code = patch + "\nimport sys; from closure.cli import main; sys.exit(main(sys.argv[1:]))"
+    args = [sys.executable, "-c", code, "worker", "--burst", "--redis", f"unix://{url}",
+            "--store", str(store.root), "--log-level", "WARNING"]
+    if max_jobs is not None:
+        args += ["--max-jobs", str(max_jobs)]
+    r = subprocess.run(args, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr[-3000:]
 
 
 def spec_dict(path, **extra):
@@ -77,7 +92,7 @@ def test_queued_job_equals_in_process_discover(env, turb2d_file):  # noqa: F811
     conn, store = env
     before = sha256_file(turb2d_file)
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn)
+    run_burst(conn, store)
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "succeeded", doc
     assert doc["progress"]["snapshots_done"] == doc["progress"]["snapshots_total"] == 6
@@ -104,27 +119,31 @@ def test_queued_job_equals_in_process_discover(env, turb2d_file):  # noqa: F811
 def test_map_task_rerun_overwrites_its_stats_atomically(env, turb2d_file):  # noqa: F811
     conn, store = env
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn, max_jobs=2)  # the plan and one map
+    run_burst(conn, store, max_jobs=2)  # the plan and one map
     done = sorted(store.job_dir(job_id).glob("stats/*.npz"))
     assert len(done) == 1
-    first = done[0].read_bytes()
+    from closure.stats import SufficientStats
+
+    first = SufficientStats.load(done[0])
+    inode = done[0].stat().st_ino
     index = int(done[0].stem)
     # run the same map again (as a retry would)
     q.get_queue(conn).enqueue_call("worker.tasks.map_task", args=(job_id, index),
                                    job_id=q.map_id(job_id, index), at_front=True)
-    run_burst(conn, max_jobs=1)
-    assert done[0].read_bytes() == first
+    run_burst(conn, store, max_jobs=1)
+    assert done[0].stat().st_ino != inode  # a new file renamed into place ...
+    assert SufficientStats.load(done[0]).equals(first)  # ... with the same statistics
     assert not [p for p in done[0].parent.iterdir() if p.name.startswith(".")]
-    run_burst(conn)
+    run_burst(conn, store)
     assert q.status(store, conn, job_id)["state"] == "succeeded"
 
 
 def test_identical_job_in_the_plan_reuses_the_model(env, turb2d_file):  # noqa: F811
     conn, store = env
     first = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn)
+    run_burst(conn, store)
     second = submit(conn, store, spec_dict(turb2d_file))  # bypasses the API's check
-    run_burst(conn)
+    run_burst(conn, store)
     a, b = q.status(store, conn, first), q.status(store, conn, second)
     assert b["state"] == "succeeded" and b["reused"] and b["model_id"] == a["model_id"]
     assert len(store.find_models()) == 1
@@ -135,7 +154,7 @@ def test_user_error_in_plan_fails_the_job_with_its_message(env, turb2d_file):  #
     spec = spec_dict(turb2d_file)
     spec["input"]["snapshots"] = [3]
     job_id = submit(conn, store, spec)
-    run_burst(conn)
+    run_burst(conn, store)
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "failed" and "at least 2" in doc["error"]
     assert doc["progress"]["phase"] == "failed"
@@ -147,12 +166,12 @@ def test_input_changed_after_planning_fails_with_the_snapshots(env, turb2d_file,
     copy = tmp_path / "copy.nc"
     copy.write_bytes(turb2d_file.read_bytes())
     job_id = submit(conn, store, spec_dict(copy))
-    run_burst(conn, max_jobs=1)  # plan only
+    run_burst(conn, store, max_jobs=1)  # plan only
     import os
 
     st = copy.stat()
     os.utime(copy, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
-    run_burst(conn)
+    run_burst(conn, store)
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "failed"
     assert "snapshot 0:" in doc["error"] and "changed since the job was planned" in doc["error"]
@@ -162,42 +181,44 @@ def test_input_changed_after_planning_fails_with_the_snapshots(env, turb2d_file,
 def test_cancel_stops_pending_tasks(env, turb2d_file):  # noqa: F811
     conn, store = env
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn, max_jobs=2)  # plan and one map
+    run_burst(conn, store, max_jobs=2)  # plan and one map
     assert q.cancel(store, conn, job_id)
     assert not q.cancel(store, conn, job_id)
     for i in range(6):
         job = q.fetch(conn, q.map_id(job_id, i))
         assert job.get_status() in ("finished", "canceled")
     assert q.fetch(conn, q.reduce_id(job_id)).get_status() == "canceled"
-    run_burst(conn)
+    run_burst(conn, store)
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "canceled" and doc["model_id"] is None
     assert store.find_models() == []
 
 
-def test_task_that_keeps_failing_fails_the_job(env, turb2d_file, monkeypatch):  # noqa: F811
+BROKEN_PLAN = """
+import closure.pipeline as p
+def broken(spec):
+    raise RuntimeError("disk on fire")
+p.plan = broken
+"""
+
+
+def test_task_that_keeps_failing_fails_the_job(env, turb2d_file):  # noqa: F811
     conn, store = env
 
-    def broken(spec):
-        raise RuntimeError("disk on fire")
-
-    monkeypatch.setattr(pipeline, "plan", broken)  # inherited by the forked work-horses
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn)
+    run_burst(conn, store, patch=BROKEN_PLAN)
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "failed" and "RuntimeError: disk on fire" in doc["error"]
 
 
-def test_status_reconciles_a_failure_rq_recorded_without_callback(env, turb2d_file,  # noqa: F811
-                                                                  monkeypatch):
+def test_status_reconciles_a_failure_rq_recorded_without_callback(env, turb2d_file):  # noqa: F811
     conn, store = env
-    monkeypatch.setattr(pipeline, "plan", lambda spec: 1 / 0)
-    # a killed work-horse on its last attempt runs no failure callback: model that here
-    monkeypatch.setattr(tasks, "on_task_failure", lambda *a, **k: None)
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn)
+    # a killed work-horse on its last attempt runs no failure callback: model that here
+    run_burst(conn, store, patch=BROKEN_PLAN
+              + "\nimport worker.tasks as t; t.on_task_failure = lambda *a, **k: None")
     assert store.get_job(job_id)["state"] == "running"
     doc = q.status(store, conn, job_id)
     assert doc["state"] == "failed"
     assert doc["error"].startswith("planning failed after")
-    assert "ZeroDivisionError" in doc["error"]
+    assert "RuntimeError: disk on fire" in doc["error"]

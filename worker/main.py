@@ -62,8 +62,9 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
                db_schema: str | None = None, *, name: str | None = None, burst: bool = False,
                monitoring_interval: int = 5, abandon_grace: int = 10,
                maintenance_interval: int = 10, with_scheduler: bool = True,
-               log_level: str = "INFO") -> int:
-    """Run one worker until SIGTERM/SIGINT (or, with ``burst``, until the queue is empty).
+               max_jobs: int | None = None, log_level: str = "INFO") -> int:
+    """Run one worker until SIGTERM/SIGINT (with ``burst``: until the queue is empty; with
+    ``max_jobs``: until it has run that many tasks).
 
     A Redis outage does not end the process: the worker reconnects with backoff and a
     worker that stopped on a lost connection is started again.
@@ -86,10 +87,11 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
             worker_ttl=max(16, maintenance_interval + 15))
         worker.abandon_grace_s = abandon_grace
         try:
-            worker.work(burst=burst, with_scheduler=with_scheduler, logging_level=log_level)
+            worker.work(burst=burst, with_scheduler=with_scheduler and not burst,
+                        max_jobs=max_jobs, logging_level=log_level)
         except (redis.ConnectionError, redis.TimeoutError) as exc:
             log.warning("lost Redis at %s (%s); reconnecting", redis_url, exc)
-        if burst or worker.stop_asked:
+        if burst or max_jobs is not None or worker.stop_asked:
             return 0
         attempt += 1
         time.sleep(min(5.0, 0.5 * attempt))

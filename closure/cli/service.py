@@ -174,6 +174,7 @@ def worker(
     db_schema: str = DB_SCHEMA,
     name: str = typer.Option(None, "--name", help="worker name (default: host and pid)"),
     burst: bool = typer.Option(False, "--burst", help="quit when the queue is empty"),
+    max_jobs: int = typer.Option(None, "--max-jobs", min=1, help="quit after this many tasks"),
     monitoring_interval: int = typer.Option(5, "--monitoring-interval", min=1,
                                             help="seconds between heartbeats of a running task"),
     abandon_grace: int = typer.Option(10, "--abandon-grace", min=1, help="seconds past a "
@@ -196,7 +197,8 @@ def worker(
         redis, str(store_root), db or os.environ.get("CLOSURE_DB_URL") or None,
         db_schema or os.environ.get("CLOSURE_DB_SCHEMA") or None, name=name, burst=burst,
         monitoring_interval=monitoring_interval, abandon_grace=abandon_grace,
-        maintenance_interval=maintenance_interval, log_level=log_level.upper()))
+        maintenance_interval=maintenance_interval, max_jobs=max_jobs,
+        log_level=log_level.upper()))
 
 
 # --------------------------------------------------------------------------- client
