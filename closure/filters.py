@@ -13,6 +13,12 @@ transfer functions. On non-periodic grids the box and Gaussian filters are appli
 needs periodic data. Coarsening by ratio r samples every r-th point from index 0. Block
 averaging instead takes the mean of r^d fine cells, with coordinates at the block centres.
 
+On periodic grids filtering and coarsening are one spectral step: sampling every r-th point of a
+field is, in Fourier space, folding its spectrum onto the coarse wavenumbers (the coefficient of
+coarse wavenumber k is the sum of the fine ones at k + m N_coarse, m = 0..r-1, divided by r per
+direction), followed by an inverse FFT of coarse size (:func:`fold_spectrum`). This is exact,
+not an approximation, and needs no fine-grid inverse transform.
+
 All operations act on the trailing ``grid.ndim`` axes, so a stack of fields (leading axes)
 is filtered in one FFT pass.
 """
@@ -95,7 +101,9 @@ class CoarseGraining:
         return transfer_function(self.kind, k, self.widths[self.fine.axis(dim)])
 
     @cached_property
-    def _spectral_multiplier(self) -> np.ndarray:
+    def spectral_multiplier(self) -> np.ndarray:
+        """Transfer function on the fine grid's ``rfftn`` wavenumbers (periodic filters):
+        real, shape ``fine.shape`` with the last axis ``n // 2 + 1``."""
         g = self.fine
         factors = []
         for i, d in enumerate(g.dims):
@@ -117,7 +125,7 @@ class CoarseGraining:
         axes = tuple(range(f.ndim - g.ndim, f.ndim))
         if g.periodic:
             fh = scipy.fft.rfftn(f, axes=axes, workers=-1)
-            fh *= self._spectral_multiplier
+            fh *= self.spectral_multiplier
             return scipy.fft.irfftn(fh, s=g.shape, axes=axes, workers=-1)
         if self.kind == "spectral":
             raise UserError("the sharp spectral filter needs periodic data: use --filter box or "
@@ -150,10 +158,34 @@ class CoarseGraining:
         blocks = f.reshape(shape)
         return blocks.mean(axis=tuple(len(lead) + 2 * i + 1 for i in range(self.fine.ndim)))
 
+    def coarse_from_spectrum(self, spectrum: np.ndarray,
+                             factor: np.ndarray | None = None) -> np.ndarray:
+        """Filtered and sampled field on the coarse grid from fine ``rfftn`` coefficients.
+
+        ``spectrum``: ``scipy.fft.rfftn`` of fine-grid fields over the trailing axes (leading
+        axes are a stack); ``factor``: an optional further multiplier on the same wavenumbers
+        (e.g. ``1j * k`` for a derivative). Returns ``sample(filter(f))`` (times the factor's
+        operator) without a fine-grid inverse transform (periodic grids only).
+        """
+        g = self.fine
+        if not g.periodic or self.kind == "block":
+            raise ValueError("coarse_from_spectrum needs a periodic grid and a filter")
+        fh = spectrum * self.spectral_multiplier
+        if factor is not None:
+            fh *= factor
+        ch = fold_spectrum(fh, g.shape, self.ratio)
+        axes = tuple(range(ch.ndim - g.ndim, ch.ndim))
+        return scipy.fft.irfftn(ch, s=self.coarse.shape, axes=axes, workers=-1)
+
     def __call__(self, f: np.ndarray) -> np.ndarray:
         """Coarse-grain: filter then sample, or block-average; returns a coarse-grid array."""
         if self.kind == "block":
             return self.block_mean(f)
+        g = self.fine
+        if g.periodic:  # one spectral step, no fine-grid inverse transform
+            f = np.asarray(f, dtype=float)
+            axes = tuple(range(f.ndim - g.ndim, f.ndim))
+            return self.coarse_from_spectrum(scipy.fft.rfftn(f, axes=axes, workers=-1))
         return self.sample(self.filter(f))
 
     def describe(self) -> dict:
@@ -183,6 +215,55 @@ class CoarseGraining:
                     out.append(f"filter width {w:g} in {d} is narrower than the coarse spacing "
                                f"{h:g}: the coarse fields alias unfiltered scales")
         return out
+
+
+def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int) -> np.ndarray:
+    """Coarse ``rfftn`` coefficients of every ``ratio``-th point of a real periodic field.
+
+    ``spectrum`` is ``scipy.fft.rfftn`` of the fine field(s) over the trailing
+    ``len(fine_shape)`` axes (the last one the half axis, ``N // 2 + 1`` long; leading axes are
+    a stack). With ``f_c[j] = f[r j]`` and ``n = N / r`` per direction, the coarse coefficients
+    are ``F_c(k) = r^-d sum_m F(k + m n)`` over the full fine spectrum (aliasing). On the half
+    axis the aliases above ``N / 2`` are not stored: they are ``conj(F(-k_lead, N - k))`` by the
+    Hermitian symmetry of a real field's transform. Returns the coarse half spectrum, last axis
+    ``n // 2 + 1`` long, ready for ``irfftn(..., s=coarse shape)``. Every ``N`` must be a
+    multiple of ``ratio``.
+    """
+    fine_shape = tuple(int(n) for n in fine_shape)
+    d, r = len(fine_shape), int(ratio)
+    if any(n % r for n in fine_shape):
+        raise ValueError(f"fine shape {fine_shape} is not a multiple of the ratio {r}")
+    if spectrum.shape[spectrum.ndim - d:] != (*fine_shape[:-1], fine_shape[-1] // 2 + 1):
+        raise ValueError(f"spectrum of shape {spectrum.shape} is not the rfftn of a field of "
+                         f"shape {fine_shape}")
+    coarse = tuple(n // r for n in fine_shape)
+    a = spectrum
+    # full axes: sum the r aliases k + m n (a fixed order of additions)
+    for i in range(d - 1):
+        lead, n = (slice(None),) * (a.ndim - d + i), coarse[i]
+        acc = a[(*lead, slice(0, n))].copy()
+        for m in range(1, r):
+            acc += a[(*lead, slice(m * n, (m + 1) * n))]
+        a = acc
+    # half axis: aliases k + m n stored directly up to N // 2, mirrored above
+    N, n = fine_shape[-1], coarse[-1]
+    h, top = n // 2 + 1, N // 2
+    direct = np.zeros((*a.shape[:-1], h), dtype=np.result_type(a.dtype, np.complex128))
+    mirrored = np.zeros_like(direct)
+    for m in range(r):
+        lo = m * n
+        nd = min(max(top - lo + 1, 0), h)  # aliases lo .. lo + nd - 1 are stored
+        if nd:
+            direct[..., :nd] += a[..., lo:lo + nd]
+        if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(-k_lead, N - k))
+            mirrored[..., nd:] += a[..., N - lo - nd:N - lo - h:-1]
+    # the leading-axis flip k -> -k commutes with the fold: apply it on the coarse grid
+    for i in range(d - 1):
+        axis = mirrored.ndim - d + i
+        mirrored = np.take(mirrored, (-np.arange(coarse[i])) % coarse[i], axis=axis)
+    direct += np.conj(mirrored)
+    direct *= float(r) ** -d
+    return direct
 
 
 def box_weights(width_cells: float) -> np.ndarray:

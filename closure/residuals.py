@@ -23,6 +23,14 @@ functions are not zero there), and differentiating the coarse samples would alia
 onto resolved wavenumbers and truncate it. On the fine grid ``d_j`` commutes with the (spectral,
 periodic) filter, so ``force_i`` is exactly ``bar(d_j(u_i u_j)) - d_j(bar(u_i) bar(u_j))``.
 
+On periodic grids these sampled fine-grid values are computed in one spectral step: a sampled
+filtered (and differentiated) field is the fold of its fine spectrum onto the coarse
+wavenumbers (closure.filters.fold_spectrum, exact), and sampling commutes with pointwise
+products, so one forward fine FFT per field or product and coarse inverse FFTs give the stress,
+fluxes, ``pi`` and the enstrophy transfer. Only ``force_i`` and the vorticity forcing, fine-grid
+derivatives of products of filtered fields, need the filtered velocity on the fine grid.
+``targets`` restricts the work to the target variables asked for.
+
 Block averaging has no fine-grid filtered field: the block means of the fields and products
 are formed on the coarse grid, and the derivatives in force, strain rate, vorticity and
 vorticity forcing are taken there (spectral if periodic, fd4 otherwise) - the derivative a coarse
@@ -40,10 +48,11 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 import numpy as np
+import scipy.fft
 
 from closure.derivatives import derivative
 from closure.errors import UserError
-from closure.filters import CoarseGraining
+from closure.filters import CoarseGraining, fold_spectrum
 from closure.grid import VELOCITY_OF, Grid
 
 if TYPE_CHECKING:  # the io module imports this one
@@ -176,33 +185,198 @@ def _check_inputs(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str]
                             f"{', '.join(snapshot.fields)}): add it with --scalar or --var")
 
 
-def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining,
-                          scalars: Sequence[str] = ()) -> CoarseSnapshot:
+def target_names(dims: Sequence[str], scalars: Sequence[str] = ()) -> list[str]:
+    """Every target variable coarse_grain_snapshot can compute on a grid of ``dims``, in output
+    order: stress, force, scalar fluxes, ``pi``, and in 2-D the vorticity terms."""
+    dirs = directions(dims)
+    out = stress_names(dims) + [f"force_{i}" for i in dirs]
+    out += [f"flux_{c}_{j}" for c in scalars for j in dirs]
+    out.append("pi")
+    if tuple(dims) == ("y", "x"):
+        out += ["vorticity_forcing", "enstrophy_transfer"]
+    return out
+
+
+def _wanted(targets, dims, scalars) -> list[str]:
+    every = target_names(dims, scalars)
+    if targets is None:
+        return every
+    if isinstance(targets, str):
+        targets = (targets,)
+    asked = set(targets)
+    unknown = sorted(asked - set(every))
+    if unknown:
+        raise UserError(f"unknown target variable(s) {', '.join(unknown)} on this "
+                        f"{len(dims)}-D grid with scalars ({', '.join(scalars) or 'none'}): "
+                        f"choose from {', '.join(every)} (a flux needs its scalar in scalars)")
+    return [t for t in every if t in asked]
+
+
+def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str] = (),
+                          targets: Sequence[str] | None = None) -> CoarseSnapshot:
     """Filter and coarsen one snapshot and compute its exact subgrid terms (coarse grid).
 
-    ``scalars`` names the snapshot's scalar fields whose fluxes to compute. See the module
-    docstring for the definitions and where derivatives are taken.
+    ``scalars`` names the snapshot's scalar fields to carry (filtered) and whose fluxes may be
+    computed. ``targets`` names the target variables to compute (see :func:`target_names`);
+    None computes every one. The fields (filtered velocity, scalars, 2-D vorticity) are always
+    returned. See the module docstring for the definitions and where derivatives are taken.
     """
     if isinstance(scalars, str):
         scalars = (scalars,)
     scalars = tuple(dict.fromkeys(scalars))
     _check_inputs(snapshot, cg, scalars)
+    want = _wanted(targets, cg.fine.dims, scalars)
+    if cg.kind != "block" and cg.fine.periodic:
+        fields, out = _spectral_terms(snapshot, cg, scalars, set(want))
+    else:
+        fields, out = _grid_terms(snapshot, cg, scalars, set(want))
+    fields = {k: np.ascontiguousarray(v) for k, v in fields.items()}
+    out = {k: np.ascontiguousarray(out[k]) for k in want}
+    return CoarseSnapshot(fields, out, cg.coarse, cg, snapshot.index, snapshot.time)
+
+
+# ---------------------------------------------------------------------- periodic: spectral
+def _rfftn(stack: np.ndarray, grid: Grid) -> np.ndarray:
+    axes = tuple(range(stack.ndim - grid.ndim, stack.ndim))
+    return scipy.fft.rfftn(stack, axes=axes, workers=-1)
+
+
+def _irfftn(spectrum: np.ndarray, grid: Grid) -> np.ndarray:
+    axes = tuple(range(spectrum.ndim - grid.ndim, spectrum.ndim))
+    return scipy.fft.irfftn(spectrum, s=grid.shape, axes=axes, workers=-1)
+
+
+def _ik(grid: Grid) -> dict[str, np.ndarray]:
+    """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even axes dropped
+    (as closure.derivatives does for odd derivatives)."""
+    out = {}
+    for a, d in enumerate(grid.dims):
+        real = a == grid.ndim - 1
+        k = grid.wavenumbers(d, real=real)
+        if grid.shape[a] % 2 == 0:
+            k[-1 if real else grid.shape[a] // 2] = 0.0
+        shape = [1] * grid.ndim
+        shape[a] = k.size
+        out[d] = (1j * k).reshape(shape)
+    return out
+
+
+def _spectral_terms(snapshot, cg, scalars, want):
+    """Periodic filters: every output from fine-grid spectra, folded onto the coarse grid.
+
+    Sampling commutes with pointwise products, and a sampled (filtered, differentiated) field is
+    the fold of its fine spectrum (closure.filters.fold_spectrum), so only the terms with a
+    fine-grid derivative of a product of filtered fields (force, vorticity forcing) need the
+    filtered velocity on the fine grid. Each group of fields is transformed in one call, in a
+    composition that does not depend on which targets are asked for, so a target has the same
+    bits whatever else is computed.
+    """
+    fine = cg.fine
+    dirs = directions(fine.dims)
+    two_d = fine.dims == ("y", "x")
+    G = cg.spectral_multiplier
+    ik = _ik(fine)
+
+    def coarse(spectrum, factor=None):
+        return cg.coarse_from_spectrum(spectrum, factor)
+
+    vel = np.stack([np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs])
+    U = _rfftn(vel, fine)  # (direction, fine spectrum)
+    a_of = {d: a for a, d in enumerate(dirs)}
+    ubar_stack = coarse(U)
+    ubar = {d: ubar_stack[a_of[d]] for d in dirs}
+    fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
+    cbar, C = {}, {}
+    for c in scalars:  # one transform per scalar: its bits do not depend on the others
+        C[c] = _rfftn(np.asarray(snapshot.fields[c], dtype=float), fine)
+        cbar[c] = coarse(C[c])
+        fields[c] = cbar[c]
+    if two_d:
+        W = ik["x"] * U[a_of["y"]] - ik["y"] * U[a_of["x"]]  # omega = d_x v - d_y u
+        fields["vorticity"] = coarse(W)
+
+    out = {}
+    pairs = stress_pairs(fine.dims)
+    need_stress = bool(want & {*stress_names(fine.dims), "pi"})
+    need_force = any(t.startswith("force_") for t in want)
+    if need_stress or need_force:
+        P = _rfftn(np.stack([vel[a_of[i]] * vel[a_of[j]] for i, j in pairs]), fine)
+        if need_stress:
+            bar_p = coarse(P)
+            for k, (i, j) in enumerate(pairs):
+                out[f"tau_{i}{j}"] = bar_p[k] - ubar[i] * ubar[j]
+            del bar_p
+    if "pi" in want:
+        strain = coarse(np.stack([0.5 * (ik[j] * U[a_of[i]] + ik[i] * U[a_of[j]])
+                                  for i, j in pairs]))
+        out["pi"] = energy_transfer(out, {i + j: strain[k] for k, (i, j) in enumerate(pairs)},
+                                    fine.dims)
+        del strain
+    fine_ubar = None
+    if need_force or "vorticity_forcing" in want:
+        fine_ubar = _irfftn(U * G, fine)
+    if need_force:
+        Q = _rfftn(np.stack([fine_ubar[a_of[i]] * fine_ubar[a_of[j]] for i, j in pairs]), fine)
+        index = {(i, j): k for k, (i, j) in enumerate(pairs)}
+        index.update({(j, i): k for (i, j), k in list(index.items())})
+        # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)), summed over j spectrally
+        force = np.stack([sum(ik[j] * (G * P[index[i, j]] - Q[index[i, j]]) for j in dirs)
+                          for i in dirs])
+        del Q
+        force = scipy.fft.irfftn(fold_spectrum(force, fine.shape, cg.ratio), s=cg.coarse.shape,
+                                 axes=tuple(range(1, 1 + fine.ndim)), workers=-1)
+        for a, i in enumerate(dirs):
+            out[f"force_{i}"] = force[a]
+    for c in scalars:
+        names = [f"flux_{c}_{j}" for j in dirs]
+        if not want & set(names):
+            continue
+        field = np.asarray(snapshot.fields[c], dtype=float)
+        bar_q = coarse(_rfftn(np.stack([vel[a_of[j]] * field for j in dirs]), fine))
+        for a, j in enumerate(dirs):
+            out[f"flux_{c}_{j}"] = bar_q[a] - ubar[j] * cbar[c]
+    if two_d and want & {"vorticity_forcing", "enstrophy_transfer"}:
+        omega_bar = fields["vorticity"]
+        omega = _irfftn(W, fine)
+        S = _rfftn(np.stack([vel[a_of[j]] * omega for j in dirs]), fine)
+        del omega
+        if "enstrophy_transfer" in want:
+            bar_s = coarse(S)
+            grad = coarse(np.stack([ik[j] * W for j in dirs]))
+            out["enstrophy_transfer"] = -sum(
+                (bar_s[a] - ubar[j] * omega_bar) * grad[a] for a, j in enumerate(dirs))
+        if "vorticity_forcing" in want:
+            fine_omega_bar = _irfftn(W * G, fine)
+            T = _rfftn(np.stack([fine_ubar[a_of[j]] * fine_omega_bar for j in dirs]), fine)
+            vf = sum(ik[j] * (G * S[a] - T[a]) for a, j in enumerate(dirs))
+            out["vorticity_forcing"] = _irfftn(fold_spectrum(vf, fine.shape, cg.ratio),
+                                               cg.coarse)
+    return fields, out
+
+
+# ---------------------------------------------------------------------- block or non-periodic
+def _grid_terms(snapshot, cg, scalars, want):
+    """Block averaging, or real-space filters on non-periodic grids: filter on the fine grid (or
+    average onto the coarse one), differentiate there, then sample."""
     fine = cg.fine
     dirs = directions(fine.dims)
     vel_names = [VELOCITY_OF[d] for d in dirs]
     vel = {VELOCITY_OF[d]: np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs}
     two_d = fine.dims == ("y", "x")
+    need_sigma = two_d and bool(want & {"vorticity_forcing", "enstrophy_transfer"})
+    fluxes = [c for c in scalars if any(t.startswith(f"flux_{c}_") for t in want)]
 
     # fine-grid quantities: linear fields and the products whose filters we need
     linear = {**vel, **{c: np.asarray(snapshot.fields[c], dtype=float) for c in scalars}}
-    if two_d:
+    if need_sigma:
         scheme = fine_scheme(fine)
         linear[_OMEGA] = (derivative(vel["v"], fine, "x", 1, scheme)
-                           - derivative(vel["u"], fine, "y", 1, scheme))
+                          - derivative(vel["u"], fine, "y", 1, scheme))
     products = {}
-    for i, j in stress_pairs(fine.dims):
-        products[(_TAU, i + j)] = vel[VELOCITY_OF[i]] * vel[VELOCITY_OF[j]]
-    for c in (*scalars, *([_OMEGA] if two_d else [])):
+    if want & {*stress_names(fine.dims), "pi"} or any(t.startswith("force_") for t in want):
+        for i, j in stress_pairs(fine.dims):
+            products[(_TAU, i + j)] = vel[VELOCITY_OF[i]] * vel[VELOCITY_OF[j]]
+    for c in (*fluxes, *([_OMEGA] if need_sigma else [])):
         for j in dirs:
             products[(c, j)] = vel[VELOCITY_OF[j]] * linear[c]
 
@@ -213,63 +387,74 @@ def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining,
     else:
         apply, grid = cg.filter, fine
     bar_lin = dict(zip(lin_keys, apply(np.stack([linear[k] for k in lin_keys])), strict=True))
-    bar_prod = dict(zip(prod_keys, apply(np.stack([products[k] for k in prod_keys])),
-                        strict=True))
+    bar_prod = (dict(zip(prod_keys, apply(np.stack([products[k] for k in prod_keys])),
+                         strict=True)) if prod_keys else {})
     del linear, products
 
     out_fields, targets = _terms(bar_lin, bar_prod, grid, fine_scheme(grid), dirs, vel_names,
-                                 scalars, two_d)
+                                 scalars, fluxes, two_d, want)
     if cg.kind != "block":
         names_f, names_t = list(out_fields), list(targets)
         sampled = cg.sample(np.stack([out_fields[k] for k in names_f]
                                      + [targets[k] for k in names_t]))
         out_fields = dict(zip(names_f, sampled[:len(names_f)], strict=True))
         targets = dict(zip(names_t, sampled[len(names_f):], strict=True))
-    out_fields = {k: np.ascontiguousarray(v) for k, v in out_fields.items()}
-    targets = {k: np.ascontiguousarray(v) for k, v in targets.items()}
-    return CoarseSnapshot(out_fields, targets, cg.coarse, cg, snapshot.index, snapshot.time)
+    return out_fields, targets
 
 
-def _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names, scalars, two_d):
-    """Fields and targets from filtered fields and products, all on ``grid``."""
+def _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names, scalars, fluxes, two_d, want):
+    """Fields and the wanted targets from filtered fields and products, all on ``grid``."""
     ubar = {c: bar_lin[c] for c in vel_names}
+    need_force = any(t.startswith("force_") for t in want)
     stress = {}
-    for i, j in stress_pairs(grid.dims):
-        stress[f"tau_{i}{j}"] = (bar_prod[(_TAU, i + j)]
-                                 - ubar[VELOCITY_OF[i]] * ubar[VELOCITY_OF[j]])
+    if (_TAU, dirs[0] * 2) in bar_prod:
+        for i, j in stress_pairs(grid.dims):
+            stress[f"tau_{i}{j}"] = (bar_prod[(_TAU, i + j)]
+                                     - ubar[VELOCITY_OF[i]] * ubar[VELOCITY_OF[j]])
     sigma = {}
-    if two_d:
+    if (_OMEGA, dirs[0]) in bar_prod:
         for j in dirs:
             sigma[j] = bar_prod[(_OMEGA, j)] - ubar[VELOCITY_OF[j]] * bar_lin[_OMEGA]
 
     # every d_j in one call per direction: tau_ij (all i), the filtered velocity, sigma_j,
-    # bar(omega)
+    # bar(omega) - each only where a wanted output uses it
+    need_grad = "pi" in want or two_d
     deriv = {}
     for j in dirs:
-        keys = [("tau", i) for i in dirs] + [("u", i) for i in dirs]
-        arrays = [stress_component(stress, i, j) for i in dirs] + [ubar[VELOCITY_OF[i]]
-                                                                    for i in dirs]
-        if two_d:
+        keys, arrays = [], []
+        if need_force:
+            keys += [("tau", i) for i in dirs]
+            arrays += [stress_component(stress, i, j) for i in dirs]
+        if need_grad:
+            keys += [("u", i) for i in dirs]
+            arrays += [ubar[VELOCITY_OF[i]] for i in dirs]
+        if sigma:
             keys += [("sigma", j), ("omega", j)]
             arrays += [sigma[j], bar_lin[_OMEGA]]
+        if not arrays:
+            continue
         dj = derivative(np.stack(arrays), grid, j, 1, scheme)
         for key, a in zip(keys, dj, strict=True):
             deriv[(*key, j)] = a
 
     targets = dict(stress)
-    for i in dirs:
-        targets[f"force_{i}"] = sum(deriv[("tau", i, j)] for j in dirs)
-    for c in scalars:
+    if need_force:
+        for i in dirs:
+            targets[f"force_{i}"] = sum(deriv[("tau", i, j)] for j in dirs)
+    for c in fluxes:
         for j in dirs:
             targets[f"flux_{c}_{j}"] = bar_prod[(c, j)] - ubar[VELOCITY_OF[j]] * bar_lin[c]
-    strain = {i + j: 0.5 * (deriv[("u", i, j)] + deriv[("u", j, i)])
-              for i, j in stress_pairs(grid.dims)}
-    targets["pi"] = energy_transfer(stress, strain, grid.dims)
+    if "pi" in want:
+        strain = {i + j: 0.5 * (deriv[("u", i, j)] + deriv[("u", j, i)])
+                  for i, j in stress_pairs(grid.dims)}
+        targets["pi"] = energy_transfer(stress, strain, grid.dims)
 
     fields = {**ubar, **{c: bar_lin[c] for c in scalars}}
     if two_d:
         fields["vorticity"] = deriv[("u", "y", "x")] - deriv[("u", "x", "y")]
-        targets["vorticity_forcing"] = deriv[("sigma", "x", "x")] + deriv[("sigma", "y", "y")]
-        targets["enstrophy_transfer"] = -(sigma["x"] * deriv[("omega", "x", "x")]
-                                          + sigma["y"] * deriv[("omega", "y", "y")])
-    return fields, targets
+        if sigma:
+            targets["vorticity_forcing"] = (deriv[("sigma", "x", "x")]
+                                            + deriv[("sigma", "y", "y")])
+            targets["enstrophy_transfer"] = -(sigma["x"] * deriv[("omega", "x", "x")]
+                                              + sigma["y"] * deriv[("omega", "y", "y")])
+    return fields, {k: v for k, v in targets.items() if k in want}

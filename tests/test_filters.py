@@ -8,6 +8,7 @@ from closure.errors import UserError
 from closure.filters import (
     CoarseGraining,
     box_weights,
+    fold_spectrum,
     make_coarse_graining,
     transfer_function,
 )
@@ -197,6 +198,67 @@ def test_call_filters_then_samples():
     assert cg.coarse.shape == (8,)
     with pytest.raises(UserError, match="use coarse_grain"):
         make_coarse_graining("block", g, 4).filter(f)
+
+
+# --- filtering and coarsening in one spectral step ----------------------------------------------
+
+# fine shapes and ratios: odd and even fine and coarse lengths, 1-, 2- and 3-D
+FOLD_CASES = [((12,), 4), ((15,), 3), ((18,), 3), ((21,), 7), ((12, 15), 3), ((16, 8), 4),
+              ((10, 14), 2), ((9, 12, 6), 3), ((8, 8, 8), 2), ((6, 10, 14), 2)]
+
+
+@pytest.mark.parametrize("shape,r", FOLD_CASES)
+def test_fold_gives_the_spectrum_of_every_rth_point(shape, r):
+    # sampling f[r j] aliases the DFT: F_c(k) = r^-d sum_m F(k + m n) over the full spectrum
+    # (common practice: the DFT of a downsampled sequence). Reference: numpy.fft.rfftn of the
+    # samples themselves, every coefficient including the Nyquist bins.
+    f = np.random.default_rng(len(shape) + r).standard_normal((2, *shape))
+    axes = tuple(range(1, 1 + len(shape)))
+    got = fold_spectrum(np.fft.rfftn(f, axes=axes), shape, r)
+    samples = f[(Ellipsis,) + (slice(None, None, r),) * len(shape)]
+    ref = np.fft.rfftn(samples, axes=axes)
+    assert got.shape == ref.shape
+    np.testing.assert_allclose(got, ref, atol=1e-12 * np.abs(ref).max())
+
+
+@pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
+@pytest.mark.parametrize("shape,r", FOLD_CASES)
+def test_one_step_coarse_graining_equals_filter_then_sample(shape, r, kind):
+    g = Grid.regular(shape, 2 * np.pi)
+    cg = make_coarse_graining(kind, g, r, min(2.0 * r, min(shape)))
+    f = np.random.default_rng(7).standard_normal((3, *shape))
+    ref = cg.sample(cg.filter(f))
+    got = cg(f)
+    assert got.shape == (3, *cg.coarse.shape)
+    np.testing.assert_allclose(got, ref, atol=1e-13)
+    # with a derivative multiplier: the sampled fine-grid spectral derivative of the filtered
+    # field (reference: closure.derivatives on the fine grid, then every r-th point)
+    from closure.derivatives import derivative
+
+    d = g.dims[-1]
+    k = g.wavenumbers(d, real=True)
+    if g.shape[-1] % 2 == 0:
+        k[-1] = 0.0  # the Nyquist mode of an odd derivative, as closure.derivatives drops it
+    axes = tuple(range(1, 1 + len(shape)))
+    got = cg.coarse_from_spectrum(np.fft.rfftn(f, axes=axes), 1j * k)
+    ref = cg.sample(derivative(cg.filter(f), g, d))
+    np.testing.assert_allclose(got, ref, atol=1e-12)
+
+
+def test_fold_checks_its_input():
+    with pytest.raises(ValueError, match="not a multiple of the ratio"):
+        fold_spectrum(np.zeros(6, complex), (10,), 3)
+    with pytest.raises(ValueError, match="not the rfftn"):
+        fold_spectrum(np.zeros(5, complex), (12,), 3)
+
+
+def test_non_periodic_coarse_graining_filters_in_real_space_then_samples():
+    g = non_periodic((30, 21))
+    cg = make_coarse_graining("gaussian", g, 3, 4.0)
+    f = np.random.default_rng(8).standard_normal(g.shape)
+    np.testing.assert_array_equal(cg(f), cg.filter(f)[::3, ::3])
+    with pytest.raises(ValueError, match="periodic grid"):
+        cg.coarse_from_spectrum(np.zeros((30, 11), complex))
 
 
 # --- building and errors ----------------------------------------------------------------------

@@ -16,6 +16,7 @@ from closure.residuals import (
     energy_transfer,
     strain_rate,
     stress_names,
+    target_names,
 )
 
 
@@ -246,6 +247,101 @@ def test_stress_is_galilean_invariant():
     b = coarse_grain_snapshot(snapshot(g, u=f["u"] + 3.0, v=f["v"] - 2.0), cg)
     for name in stress_names(g.dims):
         np.testing.assert_allclose(a.targets[name], b.targets[name], atol=1e-12)
+
+
+def fine_grid_reference(fields, cg, scalars):
+    """Every term filtered and differentiated on the fine grid, then sampled: the definition
+    of the module docstring written out with closure.filters.filter (Pope's transfer functions)
+    and closure.derivatives (spectral), without the one-step spectral coarsening."""
+    g = cg.fine
+    dirs = [d for d in ("x", "y", "z") if d in g.dims]
+    vel = {"x": "u", "y": "v", "z": "w"}
+    u = {d: fields[vel[d]] for d in dirs}
+    bar = cg.filter
+    ub = {d: bar(u[d]) for d in dirs}
+    out = {vel[d]: ub[d] for d in dirs}
+    tau = {}
+    for i, j in [(i, j) for i in dirs for j in dirs if "xyz".index(i) <= "xyz".index(j)]:
+        tau[i, j] = tau[j, i] = bar(u[i] * u[j]) - ub[i] * ub[j]
+        out[f"tau_{i}{j}"] = tau[i, j]
+    for i in dirs:
+        out[f"force_{i}"] = sum(derivative(tau[i, j], g, j) for j in dirs)
+    for c in scalars:
+        cb = bar(fields[c])
+        out[c] = cb
+        for j in dirs:
+            out[f"flux_{c}_{j}"] = bar(u[j] * fields[c]) - ub[j] * cb
+    S = {(i, j): 0.5 * (derivative(ub[i], g, j) + derivative(ub[j], g, i))
+         for i in dirs for j in dirs}
+    out["pi"] = -sum(tau[i, j] * S[i, j] for i in dirs for j in dirs)
+    if len(dirs) == 2:
+        om = derivative(u["y"], g, "x") - derivative(u["x"], g, "y")
+        omb = bar(om)
+        out["vorticity"] = derivative(ub["y"], g, "x") - derivative(ub["x"], g, "y")
+        sig = {j: bar(u[j] * om) - ub[j] * omb for j in dirs}
+        out["vorticity_forcing"] = sum(derivative(sig[j], g, j) for j in dirs)
+        out["enstrophy_transfer"] = -sum(sig[j] * derivative(omb, g, j) for j in dirs)
+    return {k: cg.sample(a) for k, a in out.items()}
+
+
+@pytest.mark.parametrize("shape,ratio,kind", [
+    ((48,), 4, "box"), ((45,), 3, "gaussian"), ((30, 24), 3, "spectral"),
+    ((28, 21), 7, "gaussian"), ((12, 9, 18), 3, "box"), ((8, 12, 10), 2, "gaussian")])
+def test_one_step_spectral_terms_equal_filtering_and_differentiating_on_the_fine_grid(
+        shape, ratio, kind):
+    # random (not band-limited) fields, odd and even fine and coarse sizes, 1-, 2- and 3-D
+    g = Grid.regular(shape, 2 * np.pi)
+    rng = np.random.default_rng(sum(shape))
+    names = ["u", "v", "w"][:len(shape)]
+    f = {c: rng.standard_normal(shape) for c in (*names, "c")}
+    cg = make_coarse_graining(kind, g, ratio)
+    cs = coarse_grain_snapshot(snapshot(g, **f), cg, scalars=("c",))
+    ref = fine_grid_reference(f, cg, ("c",))
+    got = {**cs.fields, **cs.targets}
+    assert set(got) == set(ref)
+    for name, r in ref.items():
+        np.testing.assert_allclose(got[name], r, atol=1e-12 * max(1.0, np.max(np.abs(r))),
+                                   err_msg=name)
+
+
+@pytest.mark.parametrize("grid,kind", [
+    (Grid.regular((24, 30), 2 * np.pi), "gaussian"),
+    (Grid.regular((12, 8, 16), 2 * np.pi), "spectral"),
+    (Grid.regular((32,), 2 * np.pi), "box"),
+    (Grid(("y", "x"), (24, 30), (0.1, 0.1), periodic=False), "gaussian"),
+    (Grid.regular((24, 32), 2 * np.pi), "block")])
+def test_asking_for_some_targets_gives_the_same_bits(grid, kind):
+    # the pipeline asks only for the fitted target: it must be the very array that
+    # `closure coarse-grain` computes among all the others, and the fields must not change
+    rng = np.random.default_rng(6)
+    f = {c: rng.standard_normal(grid.shape) for c in ("u", "v", "w")[:grid.ndim]}
+    f["c"] = rng.standard_normal(grid.shape)
+    cg = make_coarse_graining(kind, grid, 2)
+    snap = snapshot(grid, **f)
+    full = coarse_grain_snapshot(snap, cg, ["c"])
+    assert list(full.targets) == target_names(grid.dims, ["c"])
+    for want in [stress_names(grid.dims), ["pi"], [f"force_{grid.dims[-1]}"],
+                 [n for n in full.targets if n.startswith("flux_")],
+                 *([["vorticity_forcing"], ["enstrophy_transfer"]] if grid.ndim == 2 else [])]:
+        part = coarse_grain_snapshot(snap, cg, ["c"], targets=want)
+        assert list(part.targets) == want
+        for name in want:
+            np.testing.assert_array_equal(part.targets[name], full.targets[name], err_msg=name)
+        assert list(part.fields) == list(full.fields)
+        for name in full.fields:
+            np.testing.assert_array_equal(part.fields[name], full.fields[name], err_msg=name)
+    assert coarse_grain_snapshot(snap, cg, targets=[]).targets == {}
+
+
+def test_unknown_targets_are_named():
+    g = Grid.regular((16, 16), 2 * np.pi)
+    cg = make_coarse_graining("gaussian", g, 2)
+    s = snapshot(g, u=np.zeros(g.shape), v=np.zeros(g.shape), c=np.zeros(g.shape))
+    with pytest.raises(UserError, match="unknown target variable.*tau_zz.*choose from tau_xx"):
+        coarse_grain_snapshot(s, cg, targets=["tau_xx", "tau_zz"])
+    with pytest.raises(UserError, match="flux_c_x.*needs its scalar"):
+        coarse_grain_snapshot(s, cg, targets=["flux_c_x"])
+    assert list(coarse_grain_snapshot(s, cg, ["c"], targets="flux_c_x").targets) == ["flux_c_x"]
 
 
 # --- block averaging and non-periodic data ----------------------------------------------------
