@@ -69,16 +69,38 @@ def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20) -> str:
 # reading
 
 
+#: HDF5 chunk cache per variable of the files we read (bytes). Each chunk (one snapshot of a
+#: field) is read once, so a cache only holds memory: netCDF's default (64 MiB per variable)
+#: keeps the last few snapshots of every field resident, and a job's memory grows with the
+#: number of snapshots until the caches fill. Chunks larger than this bypass the cache.
+CHUNK_CACHE_BYTES = 1 << 20
+
+
+def _open_netcdf(path: Path) -> netCDF4.Dataset:
+    """The file opened read-only with a small chunk cache on every variable."""
+    nc = netCDF4.Dataset(path, "r")
+    if nc.data_model.startswith("NETCDF4"):  # classic files have no chunk cache
+        for var in nc.variables.values():
+            with contextlib.suppress(RuntimeError):
+                var.set_var_chunk_cache(size=CHUNK_CACHE_BYTES)
+    return nc
+
+
 def _open_dataset(path: Path) -> xr.Dataset:
     if not path.exists():
         raise InputFileError(f"no such file: {path}: check the path")
     if path.is_dir():
         raise InputFileError(f"{path} is a folder: give a netCDF file")
+    nc = None
     try:
-        # netCDF4 opens read-only (mode "r"); cache=False keeps only the requested slice in memory
-        return xr.open_dataset(path, engine="netcdf4", decode_times=False,
+        # our own handle (closed with the dataset), so xarray never reopens the file with the
+        # default caches; cache=False keeps only the requested slice in memory
+        nc = _open_netcdf(path)
+        return xr.open_dataset(xr.backends.NetCDF4DataStore(nc), decode_times=False,
                                decode_timedelta=False, cache=False)
     except Exception as exc:  # the netCDF library's OSError, or xarray's decoding errors
+        if nc is not None and nc.isopen():
+            nc.close()
         raise InputFileError(f"{path} could not be read as netCDF ({exc}): give a netCDF-3 or "
                              "netCDF-4 file (convert other formats, e.g. with xarray)") from None
 

@@ -67,29 +67,22 @@ def _scalars(spec: JobSpec) -> tuple[str, ...]:
     return tuple(dict.fromkeys(names))
 
 
-#: HDF5 chunk cache per variable while a job's file is open (bytes). Each snapshot is read
-#: once, so a cache only holds memory: netCDF's default (64 MiB per variable) would keep the
-#: last few snapshots of every field resident.
-CHUNK_CACHE_BYTES = 1 << 20
-
-
 def _open(spec: JobSpec):
-    import netCDF4
-
     from closure.io import open_fields
 
-    saved = netCDF4.get_chunk_cache()
-    netCDF4.set_chunk_cache(CHUNK_CACHE_BYTES, saved[1], saved[2])  # read when a file opens
-    try:
-        return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
-                           spec.input.periodic)
-    finally:
-        netCDF4.set_chunk_cache(*saved)
+    return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
+                       spec.input.periodic)
 
 
 def _coarse_graining(spec: JobSpec, grid: Grid):
     f = spec.filter
-    return make_coarse_graining(f.kind, grid, f.ratio, f.width, f.width_units)
+    return _coarse_graining_cached(f.kind, grid, f.ratio, f.width, f.width_units)
+
+
+@lru_cache(maxsize=4)
+def _coarse_graining_cached(kind, grid, ratio, width, width_units):
+    # one per job: its fine-grid transfer function is computed once, not once per snapshot
+    return make_coarse_graining(kind, grid, ratio, width, width_units)
 
 
 @lru_cache(maxsize=16)
@@ -224,7 +217,8 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
         if own:
             src.close()
     cg = _coarse_graining(spec, snap.grid)
-    cs = coarse_grain_snapshot(snap, cg, _scalars(spec))
+    # only the fitted target: the scores' transfers come from the coarse fields
+    cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"])
     library = _library(spec, snap.grid.dims)
     if library.names != list(plan["terms"]):
         raise UserError("the library's terms changed since the job was planned: resubmit the "

@@ -329,3 +329,37 @@ def test_grid_of_a_coarse_snapshot_is_the_coarse_grid(make_netcdf):
     src, snaps = coarse_snapshots(path, "spectral", 2, scalars=())
     assert snaps[0].grid == Grid(("y", "x"), (4, 4), (np.pi / 2, np.pi / 2), (0.0, 0.0), True,
                                  "m")
+
+
+def test_files_open_with_a_small_chunk_cache_per_variable(make_netcdf, tmp_path, monkeypatch):
+    # each snapshot is read once: netCDF's default cache (64 MiB per variable) would keep the
+    # last few snapshots of every field in memory, so memory would grow with the snapshot count
+    import netCDF4
+
+    import closure.io as io_module
+
+    handles = []
+    real = io_module._open_netcdf
+
+    def spy(path):
+        handles.append(real(path))
+        return handles[-1]
+
+    monkeypatch.setattr(io_module, "_open_netcdf", spy)
+    path = write_netcdf(xr.Dataset({"u": (("time", "y", "x"), rand(3, 8, 16)),
+                                    "v": (("time", "y", "x"), rand(3, 8, 16, seed=1))}),
+                        tmp_path / "chunked.nc")
+    before = netCDF4.get_chunk_cache()
+    with open_fields(path) as src:
+        (nc,) = handles
+        for name in ("u", "v"):
+            assert nc[name].chunking() == [1, 8, 16]
+            assert nc[name].get_var_chunk_cache()[0] == io_module.CHUNK_CACHE_BYTES
+        np.testing.assert_array_equal(src.snapshot(1).fields["v"], rand(3, 8, 16, seed=1)[1])
+    assert not nc.isopen()  # closed with the source
+    assert netCDF4.get_chunk_cache() == before  # the library-wide default is left alone
+    # netCDF-3 files have no chunk cache and still open
+    classic = tmp_path / "classic.nc"
+    xr.Dataset({"u": (("time", "x"), rand(2, 8))}).to_netcdf(classic, format="NETCDF3_64BIT")
+    with open_fields(classic) as src:
+        np.testing.assert_array_equal(src.snapshot(1).fields["u"], rand(2, 8)[1])
