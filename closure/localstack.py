@@ -14,6 +14,7 @@ find a running stack.
 from __future__ import annotations
 
 import contextlib
+import fcntl
 import json
 import os
 import signal
@@ -146,13 +147,20 @@ class RedisServer:
                 raise UserError(f"redis-server exited with status {self.proc.returncode}:\n"
                                 f"{_tail(self.log_path)}")
             try:
-                client = redis.Redis.from_url(self.url, socket_connect_timeout=0.5)
+                client = redis.Redis.from_url(self.url, socket_connect_timeout=0.5,
+                                              socket_timeout=0.5)
                 try:
-                    if client.ping():
-                        return
+                    # the server that answers must be our child, not whatever else listens
+                    pid = int(client.info("server")["process_id"])
                 finally:
                     client.close()
-            except (redis.ConnectionError, redis.BusyLoadingError, OSError):
+                if pid == self.proc.pid:
+                    return
+                self.stop()
+                raise UserError(f"another Redis (pid {pid}) answers at {self.url}; "
+                                "choose another port")
+            except (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError,
+                    OSError):
                 pass
             time.sleep(0.05)
         self.stop()
@@ -217,6 +225,7 @@ class LocalStack:
         self.worker_procs: list[subprocess.Popen] = []
         self.server_url: str | None = None
         self._stopping = False
+        self._lock = None
 
     # -- start
 
@@ -229,6 +238,15 @@ class LocalStack:
                             "stop it first or use another --state-dir")
         self.state_dir.mkdir(parents=True, exist_ok=True)
         (self.state_dir / "logs").mkdir(exist_ok=True)
+        self._lock = open(self.state_dir / "stack.lock", "w")
+        try:
+            fcntl.flock(self._lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            self._lock.close()
+            self._lock = None
+            raise UserError(f"a local stack is already running (or starting) from "
+                            f"{self.state_dir}; stop it first or use another --state-dir") \
+                from None
         try:
             if self.redis_url is None:
                 self.redis = RedisServer(self.state_dir)
@@ -236,8 +254,8 @@ class LocalStack:
             self._start_api()
             for n in range(self.workers):
                 self.worker_procs.append(self._spawn_worker(n))
-            self._write_state()
             self._wait_healthy(timeout)
+            self._write_state()  # only a ready stack is advertised to client commands
         except BaseException:
             self.stop()
             raise
@@ -415,10 +433,13 @@ class LocalStack:
                 self.api.wait()
         if self.redis is not None:
             self.redis.stop()
-        with contextlib.suppress(FileNotFoundError):
+        with contextlib.suppress(FileNotFoundError, ValueError):
             state = json.loads((self.state_dir / STATE_FILE).read_text())
             if state.get("pids", {}).get("supervisor") == os.getpid():
                 (self.state_dir / STATE_FILE).unlink()
+        if self._lock is not None:
+            self._lock.close()  # releases the flock
+            self._lock = None
 
     def __enter__(self) -> LocalStack:
         return self.start()
