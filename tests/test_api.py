@@ -11,8 +11,8 @@ import zlib
 
 import pytest
 
-with warnings.catch_warnings():  # starlette's note about its httpx-based test client
-    warnings.simplefilter("ignore", DeprecationWarning)
+with warnings.catch_warnings():  # starlette warns that its test client is built on httpx
+    warnings.simplefilter("ignore")
     from fastapi.testclient import TestClient
 from service_support import redis_server, turb2d_file  # noqa: F401
 
