@@ -17,7 +17,9 @@ On periodic grids filtering and coarsening are one spectral step: sampling every
 field is, in Fourier space, folding its spectrum onto the coarse wavenumbers (the coefficient of
 coarse wavenumber k is the sum of the fine ones at k + m N_coarse, m = 0..r-1, divided by r per
 direction), followed by an inverse FFT of coarse size (:func:`fold_spectrum`). This is exact,
-not an approximation, and needs no fine-grid inverse transform.
+not an approximation, and needs no fine-grid inverse transform. The filters being tensor
+products, :meth:`CoarseGraining.separable` does it one direction at a time with 1-D FFTs, so
+later directions are transformed on arrays already coarse in the earlier ones.
 
 All operations act on the trailing ``grid.ndim`` axes, so a stack of fields (leading axes)
 is filtered in one FFT pass.
@@ -25,6 +27,7 @@ is filtered in one FFT pass.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -158,34 +161,118 @@ class CoarseGraining:
         blocks = f.reshape(shape)
         return blocks.mean(axis=tuple(len(lead) + 2 * i + 1 for i in range(self.fine.ndim)))
 
-    def coarse_from_spectrum(self, spectrum: np.ndarray,
-                             factor: np.ndarray | None = None) -> np.ndarray:
-        """Filtered and sampled field on the coarse grid from fine ``rfftn`` coefficients.
+    @cached_property
+    def _direction_multipliers(self) -> list[dict[str, np.ndarray]]:
+        """Per direction (``fine.dims`` order), 1-D multipliers on its FFT wavenumbers (``rfft``
+        ones for the last direction): ``"f"`` the transfer function, ``"d"`` the first
+        derivative ``1j k`` (Nyquist mode of an even length dropped, as closure.derivatives
+        does), ``"fd"`` both."""
+        g = self.fine
+        out = []
+        for a, d in enumerate(g.dims):
+            real = a == g.ndim - 1
+            k = g.wavenumbers(d, real=real)
+            G = self.transfer(k, d)
+            ik = 1j * k
+            if g.shape[a] % 2 == 0:
+                ik[-1 if real else g.shape[a] // 2] = 0.0
+            out.append({"f": G, "d": ik, "fd": G * ik})
+        return out
 
-        ``spectrum``: ``scipy.fft.rfftn`` of fine-grid fields over the trailing axes (leading
-        axes are a stack); ``factor``: an optional further multiplier on the same wavenumbers
-        (e.g. ``1j * k`` for a derivative). Returns ``sample(filter(f))`` (times the factor's
-        operator) without a fine-grid inverse transform (periodic grids only).
+    def separable(self, f: np.ndarray, ops: Sequence[Sequence[str]],
+                  sample: bool = True) -> list[np.ndarray]:
+        """Fields under per-direction spectral operators, each then sampled (periodic grids).
+
+        ``f``: a field or stack (trailing axes ``fine.shape``). Each op gives, per direction of
+        ``fine.dims``, one code: ``""`` nothing, ``"f"`` the filter, ``"d"`` the first
+        derivative, ``"fd"`` both. ``("f",) * ndim`` is the filtered field; ``("f", "fd")`` on
+        a (y, x) grid its x derivative. With ``sample`` every ``ratio``-th point is kept
+        (coarse grid), else the result stays on the fine grid. Returns one array per op.
+
+        The filters are tensor products, so the directions are transformed one at a time, the
+        last (x) first with a real FFT of each row, and each spectrum is folded onto the coarse
+        wavenumbers (:func:`fold_spectrum`) before the next direction is transformed: the
+        complex FFTs along y (and z) act on arrays already coarse in x. A direction without a
+        code is sampled by slicing. One coarse inverse FFT per op at the end. Ops sharing codes
+        share the transforms. Exact: the values of filtering and differentiating on the fine
+        grid, then sampling, to round-off.
         """
         g = self.fine
         if not g.periodic or self.kind == "block":
-            raise ValueError("coarse_from_spectrum needs a periodic grid and a filter")
-        fh = spectrum * self.spectral_multiplier
-        if factor is not None:
-            fh *= factor
-        ch = fold_spectrum(fh, g.shape, self.ratio)
-        axes = tuple(range(ch.ndim - g.ndim, ch.ndim))
-        return scipy.fft.irfftn(ch, s=self.coarse.shape, axes=axes, workers=-1)
+            raise ValueError("separable needs a periodic grid and a filter")
+        f = np.asarray(f, dtype=float)
+        if f.shape[f.ndim - g.ndim:] != g.shape:
+            raise ValueError(f"array of shape {f.shape} does not end with the grid shape "
+                             f"{g.shape}")
+        ops = [tuple(op) for op in ops]
+        for op in ops:
+            if len(op) != g.ndim or not set(op) <= {"", "f", "d", "fd"}:
+                raise ValueError(f"op {op!r}: give one of '', 'f', 'd', 'fd' per direction of "
+                                 f"{g.dims}")
+        out: dict[tuple[str, ...], np.ndarray] = {}
+        last, N, r = g.ndim - 1, g.shape[-1], self.ratio
+        groups: dict[str, list] = {}
+        for op in sorted(set(ops)):
+            groups.setdefault(op[last], []).append(op)
+        rows = None
+        for code, members in groups.items():
+            if not code:  # sample the real rows first: a shorter transform, nothing to fold
+                X = scipy.fft.rfft(f[..., ::r] if sample else f, axis=-1, workers=-1)
+            else:
+                if rows is None:  # real rows: 1-D Hermitian symmetry
+                    rows = scipy.fft.rfft(f, axis=-1, workers=-1)
+                m = self._direction_multipliers[last][code]
+                X = fold_spectrum(rows, (N,), r, m) if sample else rows * m
+            self._lead_directions(X, last - 1, members, sample, (), out)
+        return [out[op] for op in ops]
+
+    def _lead_directions(self, X, direction, ops, sample, spectral, out) -> None:
+        """Directions before the last, from the last but one to the first; ``X`` is real
+        along the directions still to do, spectral along ``spectral`` and the last one."""
+        g, r = self.fine, self.ratio
+        if direction < 0:
+            shape = tuple(g.shape[b] // r if sample else g.shape[b]
+                          for b in (*spectral, g.ndim - 1))
+            axes = tuple(X.ndim - g.ndim + b for b in (*spectral, g.ndim - 1))
+            result = scipy.fft.irfftn(X, s=shape, axes=axes, workers=-1)
+            for op in ops:
+                out[op] = result
+            return
+        axis = X.ndim - g.ndim + direction
+        N = g.shape[direction]
+        n = N // r
+        groups: dict[str, list] = {}
+        for op in ops:
+            groups.setdefault(op[direction], []).append(op)
+        T = None
+        for code, members in groups.items():
+            if not code:  # real along this direction: sampling is slicing
+                Y = X[(slice(None),) * axis + (slice(None, None, r),)] if sample else X
+                self._lead_directions(Y, direction - 1, members, sample, spectral, out)
+                continue
+            if T is None:
+                T = scipy.fft.fft(X, axis=axis, workers=-1)
+            shape = [1] * X.ndim
+            m = self._direction_multipliers[direction][code]
+            if sample:  # full axis: the aliases k + q n are contiguous blocks
+                shape[axis] = n
+                Y = T[(slice(None),) * axis + (slice(0, n),)] * m[:n].reshape(shape)
+                for q in range(1, r):
+                    Y += (T[(slice(None),) * axis + (slice(q * n, (q + 1) * n),)]
+                          * m[q * n:(q + 1) * n].reshape(shape))
+                Y *= 1.0 / r
+            else:
+                shape[axis] = N
+                Y = T * m.reshape(shape)
+            self._lead_directions(Y, direction - 1, members, sample, (direction, *spectral),
+                                  out)
 
     def __call__(self, f: np.ndarray) -> np.ndarray:
         """Coarse-grain: filter then sample, or block-average; returns a coarse-grid array."""
         if self.kind == "block":
             return self.block_mean(f)
-        g = self.fine
-        if g.periodic:  # one spectral step, no fine-grid inverse transform
-            f = np.asarray(f, dtype=float)
-            axes = tuple(range(f.ndim - g.ndim, f.ndim))
-            return self.coarse_from_spectrum(scipy.fft.rfftn(f, axes=axes, workers=-1))
+        if self.fine.periodic:  # one spectral step per direction, no fine-grid inverse
+            return self.separable(f, [("f",) * self.fine.ndim])[0]
         return self.sample(self.filter(f))
 
     def describe(self) -> dict:
@@ -217,7 +304,8 @@ class CoarseGraining:
         return out
 
 
-def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int) -> np.ndarray:
+def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int,
+                  multiplier: np.ndarray | None = None) -> np.ndarray:
     """Coarse ``rfftn`` coefficients of every ``ratio``-th point of a real periodic field.
 
     ``spectrum`` is ``scipy.fft.rfftn`` of the fine field(s) over the trailing
@@ -225,9 +313,11 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int)
     a stack). With ``f_c[j] = f[r j]`` and ``n = N / r`` per direction, the coarse coefficients
     are ``F_c(k) = r^-d sum_m F(k + m n)`` over the full fine spectrum (aliasing). On the half
     axis the aliases above ``N / 2`` are not stored: they are ``conj(F(-k_lead, N - k))`` by the
-    Hermitian symmetry of a real field's transform. Returns the coarse half spectrum, last axis
-    ``n // 2 + 1`` long, ready for ``irfftn(..., s=coarse shape)``. Every ``N`` must be a
-    multiple of ``ratio``.
+    Hermitian symmetry of a real field's transform. ``multiplier`` (broadcastable to the
+    spectrum, the transform of a real operator such as a filter or a derivative) multiplies
+    the coefficients first, in 1-D without forming the whole product. Returns the coarse half
+    spectrum, last axis ``n // 2 + 1`` long, ready for ``irfftn(..., s=coarse shape)``. Every
+    ``N`` must be a multiple of ``ratio``.
     """
     fine_shape = tuple(int(n) for n in fine_shape)
     d, r = len(fine_shape), int(ratio)
@@ -237,7 +327,13 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int)
         raise ValueError(f"spectrum of shape {spectrum.shape} is not the rfftn of a field of "
                          f"shape {fine_shape}")
     coarse = tuple(n // r for n in fine_shape)
-    a = spectrum
+    a, m_last = spectrum, None
+    if multiplier is not None:
+        multiplier = np.asarray(multiplier)
+        if d == 1 and multiplier.ndim <= 1:  # fused into the fold below
+            m_last = np.broadcast_to(multiplier, spectrum.shape[-1:])
+        else:
+            a = spectrum * multiplier
     # full axes: sum the r aliases k + m n (a fixed order of additions)
     for i in range(d - 1):
         lead, n = (slice(None),) * (a.ndim - d + i), coarse[i]
@@ -248,15 +344,20 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int)
     # half axis: aliases k + m n stored directly up to N // 2, mirrored above
     N, n = fine_shape[-1], coarse[-1]
     h, top = n // 2 + 1, N // 2
-    direct = np.zeros((*a.shape[:-1], h), dtype=np.result_type(a.dtype, np.complex128))
-    mirrored = np.zeros_like(direct)
+    dtype = np.result_type(a.dtype, np.complex128)
+    direct = np.zeros((*a.shape[:-1], h), dtype=dtype)
+    mirrored = np.zeros((*a.shape[:-1], h), dtype=dtype)
     for m in range(r):
         lo = m * n
         nd = min(max(top - lo + 1, 0), h)  # aliases lo .. lo + nd - 1 are stored
         if nd:
-            direct[..., :nd] += a[..., lo:lo + nd]
+            part = a[..., lo:lo + nd]
+            direct[..., :nd] += part if m_last is None else part * m_last[lo:lo + nd]
         if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(-k_lead, N - k))
-            mirrored[..., nd:] += a[..., N - lo - nd:N - lo - h:-1]
+            index = slice(N - lo - nd, N - lo - h, -1)
+            part = a[..., index]
+            # a real operator's multiplier at -k is the conjugate of that at k
+            mirrored[..., nd:] += part if m_last is None else part * m_last[index]
     # the leading-axis flip k -> -k commutes with the fold: apply it on the coarse grid
     for i in range(d - 1):
         axis = mirrored.ndim - d + i

@@ -25,9 +25,10 @@ periodic) filter, so ``force_i`` is exactly ``bar(d_j(u_i u_j)) - d_j(bar(u_i) b
 
 On periodic grids these sampled fine-grid values are computed in one spectral step: a sampled
 filtered (and differentiated) field is the fold of its fine spectrum onto the coarse
-wavenumbers (closure.filters.fold_spectrum, exact), and sampling commutes with pointwise
-products, so one forward fine FFT per field or product and coarse inverse FFTs give the stress,
-fluxes, ``pi`` and the enstrophy transfer. Only ``force_i`` and the vorticity forcing, fine-grid
+wavenumbers (closure.filters.fold_spectrum, exact; done one direction at a time by
+CoarseGraining.separable), and sampling commutes with pointwise products, so one forward
+transform per field or product and coarse inverse transforms give the stress, fluxes, ``pi``
+and the enstrophy transfer. Only ``force_i`` and the vorticity forcing, fine-grid
 derivatives of products of filtered fields, need the filtered velocity on the fine grid.
 ``targets`` restricts the work to the target variables asked for.
 
@@ -52,7 +53,7 @@ import scipy.fft
 
 from closure.derivatives import derivative
 from closure.errors import UserError
-from closure.filters import CoarseGraining, fold_spectrum
+from closure.filters import CoarseGraining
 from closure.grid import VELOCITY_OF, Grid
 
 if TYPE_CHECKING:  # the io module imports this one
@@ -236,9 +237,106 @@ def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Seque
 
 
 # ---------------------------------------------------------------------- periodic: spectral
-def _rfftn(stack: np.ndarray, grid: Grid) -> np.ndarray:
-    axes = tuple(range(stack.ndim - grid.ndim, stack.ndim))
-    return scipy.fft.rfftn(stack, axes=axes, workers=-1)
+def _spectral_terms(snapshot, cg, scalars, want):
+    """Periodic filters: every output as per-direction spectral operators sampled onto the
+    coarse grid (CoarseGraining.separable: filter, derivative, fold, coarse inverse).
+
+    Sampling commutes with pointwise products, so the stress, fluxes, ``pi`` and the enstrophy
+    transfer are products of sampled fields. Only the terms with a fine-grid derivative of a
+    product of filtered fields (force, vorticity forcing) and the fluxes of the fine vorticity
+    need fields on the fine grid, from one n-D transform of the velocity. Each output's
+    transforms do not depend on which other outputs are computed, so a target has the same
+    bits whatever else is asked for.
+    """
+    fine = cg.fine
+    dims = fine.dims
+    dirs = directions(dims)
+    two_d = dims == ("y", "x")
+    pairs = stress_pairs(dims)
+    F = ("f",) * fine.ndim  # filtered
+
+    def op(code, j):  # ``code`` along direction j, the filter (or nothing) along the others
+        return tuple(code if d == j else ("f" if "f" in code else "") for d in dims)
+
+    Fd = {j: op("fd", j) for j in dirs}  # d_j of the filtered field
+    D = {j: op("d", j) for j in dirs}  # d_j alone
+
+    vel = {d: np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs}
+    a_of = {d: a for a, d in enumerate(dirs)}
+    # per component: the filtered field and the derivatives d_j bar(u_i) that are used
+    ubar, grad = {}, {}
+    for i in dirs:
+        js = [j for j in dirs if "pi" in want or (two_d and j != i)]
+        ubar[i], *dj = cg.separable(vel[i], [F, *(Fd[j] for j in js)])
+        grad.update({(i, j): a for j, a in zip(js, dj, strict=True)})
+    fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
+    cbar = {}
+    for c in scalars:  # one transform per scalar: its bits do not depend on the others
+        (cbar[c],) = cg.separable(np.asarray(snapshot.fields[c], dtype=float), [F])
+        fields[c] = cbar[c]
+    if two_d:
+        fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
+
+    out = {}
+    need_force = any(t.startswith("force_") for t in want)
+    need_vf = two_d and "vorticity_forcing" in want
+    need_sigma = two_d and bool(want & {"vorticity_forcing", "enstrophy_transfer"})
+    # fine-grid fields, from one n-D transform of the velocity: the filtered velocity (force,
+    # vorticity forcing) and the vorticity and its filter (vorticity terms)
+    fine_ubar = omega = fine_omega_bar = None
+    if need_force or need_sigma:
+        U = scipy.fft.rfftn(np.stack([vel[d] for d in dirs]), axes=tuple(range(1, 1 + fine.ndim)),
+                            workers=-1)
+        if need_force or need_vf:
+            fine_ubar = _irfftn(U * cg.spectral_multiplier, fine)
+        if need_sigma:
+            ik = _ik(fine)
+            W = ik["x"] * U[a_of["y"]] - ik["y"] * U[a_of["x"]]  # omega = d_x v - d_y u
+            omega = _irfftn(W, fine)
+            if need_vf:
+                fine_omega_bar = _irfftn(W * cg.spectral_multiplier, fine)
+            del W
+        del U
+
+    if want & {*stress_names(dims), "pi"} or need_force:
+        for i, j in pairs:
+            product = vel[i] * vel[j]
+            # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)) on the fine grid, sampled
+            js = sorted({i, j}) if need_force else []
+            bar_p, *d_bar_p = cg.separable(product, [F, *(Fd[d] for d in js)])
+            out[f"tau_{i}{j}"] = bar_p - ubar[i] * ubar[j]
+            if need_force:
+                d_p = cg.separable(fine_ubar[a_of[i]] * fine_ubar[a_of[j]], [D[d] for d in js])
+                for d, a, b in zip(js, d_bar_p, d_p, strict=True):
+                    # d_j tau_ij adds to force_i; d_i tau_ij (= d_i tau_ji) to force_j
+                    key = f"force_{j if d == i else i}"
+                    out[key] = out[key] + (a - b) if key in out else a - b
+            del product
+    if "pi" in want:
+        strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in pairs}
+        out["pi"] = energy_transfer(out, strain, dims)
+    for c in scalars:
+        if not want & {f"flux_{c}_{j}" for j in dirs}:
+            continue
+        field = np.asarray(snapshot.fields[c], dtype=float)
+        (bar_q,) = cg.separable(np.stack([vel[j] * field for j in dirs]), [F])
+        for a, j in enumerate(dirs):
+            out[f"flux_{c}_{j}"] = bar_q[a] - ubar[j] * cbar[c]
+    if need_sigma:
+        omega_bar, *d_omega_bar = cg.separable(omega, [F, *(Fd[j] for j in dirs)])
+        sigma, vf = {}, 0.0
+        for j in dirs:
+            bar_s, *d_bar_s = cg.separable(vel[j] * omega, [F, *([Fd[j]] if need_vf else [])])
+            sigma[j] = bar_s - ubar[j] * omega_bar
+            if need_vf:
+                (d_s,) = cg.separable(fine_ubar[a_of[j]] * fine_omega_bar, [D[j]])
+                vf = vf + (d_bar_s[0] - d_s)
+        if "enstrophy_transfer" in want:
+            out["enstrophy_transfer"] = -sum(sigma[j] * d_omega_bar[a]
+                                             for a, j in enumerate(dirs))
+        if need_vf:
+            out["vorticity_forcing"] = vf
+    return fields, out
 
 
 def _irfftn(spectrum: np.ndarray, grid: Grid) -> np.ndarray:
@@ -247,8 +345,8 @@ def _irfftn(spectrum: np.ndarray, grid: Grid) -> np.ndarray:
 
 
 def _ik(grid: Grid) -> dict[str, np.ndarray]:
-    """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even axes dropped
-    (as closure.derivatives does for odd derivatives)."""
+    """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even lengths
+    dropped (as closure.derivatives does for odd derivatives)."""
     out = {}
     for a, d in enumerate(grid.dims):
         real = a == grid.ndim - 1
@@ -261,97 +359,12 @@ def _ik(grid: Grid) -> dict[str, np.ndarray]:
     return out
 
 
-def _spectral_terms(snapshot, cg, scalars, want):
-    """Periodic filters: every output from fine-grid spectra, folded onto the coarse grid.
-
-    Sampling commutes with pointwise products, and a sampled (filtered, differentiated) field is
-    the fold of its fine spectrum (closure.filters.fold_spectrum), so only the terms with a
-    fine-grid derivative of a product of filtered fields (force, vorticity forcing) need the
-    filtered velocity on the fine grid. Each group of fields is transformed in one call, in a
-    composition that does not depend on which targets are asked for, so a target has the same
-    bits whatever else is computed.
-    """
-    fine = cg.fine
-    dirs = directions(fine.dims)
-    two_d = fine.dims == ("y", "x")
-    G = cg.spectral_multiplier
-    ik = _ik(fine)
-
-    def coarse(spectrum, factor=None):
-        return cg.coarse_from_spectrum(spectrum, factor)
-
-    vel = np.stack([np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs])
-    U = _rfftn(vel, fine)  # (direction, fine spectrum)
-    a_of = {d: a for a, d in enumerate(dirs)}
-    ubar_stack = coarse(U)
-    ubar = {d: ubar_stack[a_of[d]] for d in dirs}
-    fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
-    cbar, C = {}, {}
-    for c in scalars:  # one transform per scalar: its bits do not depend on the others
-        C[c] = _rfftn(np.asarray(snapshot.fields[c], dtype=float), fine)
-        cbar[c] = coarse(C[c])
-        fields[c] = cbar[c]
-    if two_d:
-        W = ik["x"] * U[a_of["y"]] - ik["y"] * U[a_of["x"]]  # omega = d_x v - d_y u
-        fields["vorticity"] = coarse(W)
-
-    out = {}
-    pairs = stress_pairs(fine.dims)
-    need_stress = bool(want & {*stress_names(fine.dims), "pi"})
-    need_force = any(t.startswith("force_") for t in want)
-    if need_stress or need_force:
-        P = _rfftn(np.stack([vel[a_of[i]] * vel[a_of[j]] for i, j in pairs]), fine)
-        if need_stress:
-            bar_p = coarse(P)
-            for k, (i, j) in enumerate(pairs):
-                out[f"tau_{i}{j}"] = bar_p[k] - ubar[i] * ubar[j]
-            del bar_p
-    if "pi" in want:
-        strain = coarse(np.stack([0.5 * (ik[j] * U[a_of[i]] + ik[i] * U[a_of[j]])
-                                  for i, j in pairs]))
-        out["pi"] = energy_transfer(out, {i + j: strain[k] for k, (i, j) in enumerate(pairs)},
-                                    fine.dims)
-        del strain
-    fine_ubar = None
-    if need_force or "vorticity_forcing" in want:
-        fine_ubar = _irfftn(U * G, fine)
-    if need_force:
-        Q = _rfftn(np.stack([fine_ubar[a_of[i]] * fine_ubar[a_of[j]] for i, j in pairs]), fine)
-        index = {(i, j): k for k, (i, j) in enumerate(pairs)}
-        index.update({(j, i): k for (i, j), k in list(index.items())})
-        # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)), summed over j spectrally
-        force = np.stack([sum(ik[j] * (G * P[index[i, j]] - Q[index[i, j]]) for j in dirs)
-                          for i in dirs])
-        del Q
-        force = scipy.fft.irfftn(fold_spectrum(force, fine.shape, cg.ratio), s=cg.coarse.shape,
-                                 axes=tuple(range(1, 1 + fine.ndim)), workers=-1)
-        for a, i in enumerate(dirs):
-            out[f"force_{i}"] = force[a]
-    for c in scalars:
-        names = [f"flux_{c}_{j}" for j in dirs]
-        if not want & set(names):
-            continue
-        field = np.asarray(snapshot.fields[c], dtype=float)
-        bar_q = coarse(_rfftn(np.stack([vel[a_of[j]] * field for j in dirs]), fine))
-        for a, j in enumerate(dirs):
-            out[f"flux_{c}_{j}"] = bar_q[a] - ubar[j] * cbar[c]
-    if two_d and want & {"vorticity_forcing", "enstrophy_transfer"}:
-        omega_bar = fields["vorticity"]
-        omega = _irfftn(W, fine)
-        S = _rfftn(np.stack([vel[a_of[j]] * omega for j in dirs]), fine)
-        del omega
-        if "enstrophy_transfer" in want:
-            bar_s = coarse(S)
-            grad = coarse(np.stack([ik[j] * W for j in dirs]))
-            out["enstrophy_transfer"] = -sum(
-                (bar_s[a] - ubar[j] * omega_bar) * grad[a] for a, j in enumerate(dirs))
-        if "vorticity_forcing" in want:
-            fine_omega_bar = _irfftn(W * G, fine)
-            T = _rfftn(np.stack([fine_ubar[a_of[j]] * fine_omega_bar for j in dirs]), fine)
-            vf = sum(ik[j] * (G * S[a] - T[a]) for a, j in enumerate(dirs))
-            out["vorticity_forcing"] = _irfftn(fold_spectrum(vf, fine.shape, cg.ratio),
-                                               cg.coarse)
-    return fields, out
+def _products(stack: np.ndarray, pairs: Sequence[tuple[int, int]]) -> np.ndarray:
+    """``stack[a] * stack[b]`` for each pair, written into one new stack."""
+    out = np.empty((len(pairs), *stack.shape[1:]))
+    for k, (a, b) in enumerate(pairs):
+        np.multiply(stack[a], stack[b], out=out[k])
+    return out
 
 
 # ---------------------------------------------------------------------- block or non-periodic

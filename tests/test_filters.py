@@ -219,11 +219,23 @@ def test_fold_gives_the_spectrum_of_every_rth_point(shape, r):
     ref = np.fft.rfftn(samples, axes=axes)
     assert got.shape == ref.shape
     np.testing.assert_allclose(got, ref, atol=1e-12 * np.abs(ref).max())
+    # with the multiplier of a real operator (here d/dx along the last axis, Nyquist dropped):
+    # the coefficients of every r-th point of the differentiated field (numpy reference)
+    N = shape[-1]
+    ik = 2j * np.pi * np.fft.rfftfreq(N)
+    if N % 2 == 0:
+        ik[-1] = 0
+    deriv = np.fft.irfftn(np.fft.rfftn(f, axes=axes) * ik, s=shape, axes=axes)
+    ref = np.fft.rfftn(deriv[(Ellipsis,) + (slice(None, None, r),) * len(shape)], axes=axes)
+    got = fold_spectrum(np.fft.rfftn(f, axes=axes), shape, r, ik)
+    np.testing.assert_allclose(got, ref, atol=1e-12 * np.abs(ref).max())
 
 
 @pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
 @pytest.mark.parametrize("shape,r", FOLD_CASES)
 def test_one_step_coarse_graining_equals_filter_then_sample(shape, r, kind):
+    from closure.derivatives import derivative
+
     g = Grid.regular(shape, 2 * np.pi)
     cg = make_coarse_graining(kind, g, r, min(2.0 * r, min(shape)))
     f = np.random.default_rng(7).standard_normal((3, *shape))
@@ -231,18 +243,18 @@ def test_one_step_coarse_graining_equals_filter_then_sample(shape, r, kind):
     got = cg(f)
     assert got.shape == (3, *cg.coarse.shape)
     np.testing.assert_allclose(got, ref, atol=1e-13)
-    # with a derivative multiplier: the sampled fine-grid spectral derivative of the filtered
-    # field (reference: closure.derivatives on the fine grid, then every r-th point)
-    from closure.derivatives import derivative
-
-    d = g.dims[-1]
-    k = g.wavenumbers(d, real=True)
-    if g.shape[-1] % 2 == 0:
-        k[-1] = 0.0  # the Nyquist mode of an odd derivative, as closure.derivatives drops it
-    axes = tuple(range(1, 1 + len(shape)))
-    got = cg.coarse_from_spectrum(np.fft.rfftn(f, axes=axes), 1j * k)
-    ref = cg.sample(derivative(cg.filter(f), g, d))
-    np.testing.assert_allclose(got, ref, atol=1e-12)
+    # per-direction derivatives, with and without the filter, sampled or not. Reference:
+    # closure.derivatives (spectral) of the fine-grid filtered field, then every r-th point
+    ops, refs = [], []
+    for a, d in enumerate(g.dims):
+        filtered = tuple("fd" if b == a else "f" for b in range(g.ndim))
+        bare = tuple("d" if b == a else "" for b in range(g.ndim))
+        ops += [filtered, bare]
+        refs += [derivative(cg.filter(f), g, d), derivative(f, g, d)]
+    for sample in (True, False):
+        got = cg.separable(f, [("f",) * g.ndim, *ops], sample=sample)
+        for out, r_ in zip(got, [cg.filter(f), *refs], strict=True):
+            np.testing.assert_allclose(out, cg.sample(r_) if sample else r_, atol=1e-12)
 
 
 def test_fold_checks_its_input():
@@ -258,7 +270,12 @@ def test_non_periodic_coarse_graining_filters_in_real_space_then_samples():
     f = np.random.default_rng(8).standard_normal(g.shape)
     np.testing.assert_array_equal(cg(f), cg.filter(f)[::3, ::3])
     with pytest.raises(ValueError, match="periodic grid"):
-        cg.coarse_from_spectrum(np.zeros((30, 11), complex))
+        cg.separable(f, [("f", "f")])
+    periodic = make_coarse_graining("gaussian", Grid.regular((12, 9), 1.0), 3)
+    with pytest.raises(ValueError, match="one of '', 'f', 'd', 'fd' per direction"):
+        periodic.separable(np.zeros((12, 9)), [("f",)])
+    with pytest.raises(ValueError, match="does not end with the grid shape"):
+        periodic.separable(np.zeros((9, 12)), [("f", "f")])
 
 
 # --- building and errors ----------------------------------------------------------------------
