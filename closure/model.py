@@ -41,19 +41,18 @@ a model at that width; refit, or rebuild it with :meth:`ClosureModel.with_delta`
 
 from __future__ import annotations
 
-import contextlib
 import datetime as _dt
 import json
 import math
 import os
 import re
-import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from closure.atomic import write_text
 from closure.derivatives import SCHEMES
 from closure.errors import UserError
 from closure.filters import FILTER_KINDS, CoarseGraining
@@ -567,18 +566,7 @@ class ClosureModel:
         errors = validate_schema(json.loads(text), MODEL_SCHEMA)
         if errors:  # a bug, not a user error: the writer must produce valid files
             raise RuntimeError(f"model does not match its schema: {errors[:3]}")
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                fh.write(text)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
-        finally:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-        return path
+        return write_text(path, text)
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> ClosureModel:

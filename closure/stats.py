@@ -21,17 +21,16 @@ also match transfers. Each block is itself a one-component :class:`SufficientSta
 
 from __future__ import annotations
 
-import contextlib
 import io as _io
 import json
 import os
-import tempfile
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from closure.atomic import write_bytes
 from closure.errors import InputFileError, UserError
 
 FORMAT = "closure.stats"
@@ -276,15 +275,7 @@ class SufficientStats:
         arrays["meta"] = np.array(json.dumps(meta))
         buf = _io.BytesIO()
         np.savez(buf, **arrays)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                fh.write(buf.getvalue())
-            os.replace(tmp, path)
-        finally:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-        return path
+        return write_bytes(path, buf.getvalue())
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> SufficientStats:

@@ -12,11 +12,11 @@ import contextlib
 import json
 import math
 import os
-import tempfile
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from closure.atomic import write_text
 from closure.errors import OptionError, UserError
 from closure.spec import JobSpec, parse_spec
 
@@ -87,16 +87,7 @@ class SweepResult:
     def save(self, path: str | os.PathLike) -> Path:
         """Write the result as JSON, atomically (temp file + rename)."""
         path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-        try:
-            with os.fdopen(fd, "w", encoding="utf-8") as fh:
-                json.dump(_jsonable(self.to_dict()), fh, indent=1)
-            os.replace(tmp, path)
-        finally:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-        return path
+        return write_text(path, json.dumps(_jsonable(self.to_dict()), indent=1))
 
     @classmethod
     def load(cls, path: str | os.PathLike) -> SweepResult:

@@ -4,13 +4,12 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
 import typer
 
+from closure.atomic import write_text
 from closure.errors import InputFileError, OptionError
 
 _LONG = {"tau": "modelled subgrid stress", "force": "modelled subgrid force",
@@ -221,20 +220,8 @@ def export_model_command(
         return
     if output.exists() and output.resolve() == model_path.resolve():
         raise OptionError(f"the output {output} is the model file: choose another -o")
-    _write_text(output, text)
+    write_text(output, text)
     typer.echo(f"wrote {output} ({lang})")
-
-
-def _write_text(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
 
 
 def register(app: typer.Typer) -> None:

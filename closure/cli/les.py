@@ -3,12 +3,11 @@
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from pathlib import Path
 
 import typer
 
+from closure.atomic import write_text
 from closure.errors import OptionError
 
 
@@ -26,15 +25,7 @@ def _load_model(spec: str):
 
 
 def _write_json(data: dict, path: Path) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            json.dump(data, fh, indent=1, allow_nan=False, default=_plain)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+    write_text(path, json.dumps(data, indent=1, allow_nan=False, default=_plain))
 
 
 def _plain(obj):
