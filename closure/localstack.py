@@ -198,7 +198,10 @@ class WorkerOptions:
 @dataclass
 class LocalStack:
     """Redis (unless ``redis_url``), the API on ``host:port`` (0: a free port) and
-    ``workers`` worker processes, all children of this process, state in ``state_dir``."""
+    ``workers`` worker processes, all children of this process, state in ``state_dir``.
+
+    ``threads_per_worker`` caps each worker's BLAS/OpenMP threads; ``pin_cpus`` puts worker n
+    on CPU n (mod the CPU count), so N workers do not compete for cores."""
 
     state_dir: Path
     port: int = 8000
@@ -213,6 +216,7 @@ class LocalStack:
     max_upload_mb: float | None = None
     worker_options: WorkerOptions = field(default_factory=WorkerOptions)
     threads_per_worker: int | None = None
+    pin_cpus: bool = False
     env: dict = field(default_factory=dict)
     quiet: bool = True
 
@@ -309,7 +313,12 @@ class LocalStack:
                 env[var] = str(self.threads_per_worker)
         args = ["worker", *self._common_args(), *self.worker_options.args(),
                 "--name", f"local-{os.getpid()}-{n}-{int(time.time() * 1000) % 100000}"]
-        return self._spawn(f"worker-{n}", args, env)
+        proc = self._spawn(f"worker-{n}", args, env)
+        if self.pin_cpus:  # worker n (and the work-horses it forks) on CPU n mod count
+            cpus = sorted(os.sched_getaffinity(0))
+            with contextlib.suppress(OSError):
+                os.sched_setaffinity(proc.pid, {cpus[n % len(cpus)]})
+        return proc
 
     def _spawn(self, name: str, args: list[str], env: dict, pass_fds=()) -> subprocess.Popen:
         log = open(self.state_dir / "logs" / f"{name}.log", "ab")

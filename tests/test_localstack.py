@@ -210,3 +210,18 @@ def test_closure_up_runs_and_stops_cleanly_on_sigterm(tmp_path):
     finally:
         if proc.poll() is None:
             proc.kill()
+
+
+@pytest.mark.slow
+def test_demo_runs_the_whole_job_and_stops_the_stack(tmp_path):
+    r = subprocess.run([*CLI, "demo", "--n", "32", "--state-dir", str(tmp_path / "demo")],
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
+    out = r.stdout
+    assert "Closure model for stress" in out and "Active terms" in out
+    model_id = out.split("model m-")[1].split()[0]
+    folder = tmp_path / "demo" / "stack" / "store" / "models" / f"m-{model_id}"
+    assert f"stored in {folder}" in out and (folder / "model.json").exists()
+    assert "validate the model a posteriori" in out
+    assert read_state(tmp_path / "demo" / "stack") is None  # stopped
+    assert not (tmp_path / "demo" / "stack" / STATE_FILE).exists()

@@ -5,6 +5,7 @@ on a Redis of our own. The model a queued job stores equals in-process pipeline.
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 import zlib
@@ -47,7 +48,7 @@ def submit(conn, store, spec_dict) -> str:
     return job_id
 
 
-def run_burst(conn, store, max_jobs=None, patch: str = "") -> None:
+def run_burst(conn, store, max_jobs=None, patch: str = "", db: list[str] = ()) -> None:
     """Run a worker in burst mode in a fresh process (``closure worker --burst``), after the
     Python in ``patch`` (e.g. replacing a pipeline function to make it fail). A fresh process,
     not a fork of the test process: forking a process whose thread pools have run is unsafe.
@@ -55,7 +56,7 @@ def run_burst(conn, store, max_jobs=None, patch: str = "") -> None:
     url = conn.connection_pool.connection_kwargs.get("path")
     code = patch + "\nimport sys; from closure.cli import main; sys.exit(main(sys.argv[1:]))"
     args = [sys.executable, "-c", code, "worker", "--burst", "--redis", f"unix://{url}",
-            "--store", str(store.root), "--log-level", "WARNING"]
+            "--store", str(store.root), "--log-level", "WARNING", *db]
     if max_jobs is not None:
         args += ["--max-jobs", str(max_jobs)]
     r = subprocess.run(args, capture_output=True, text=True, timeout=120)
@@ -72,6 +73,18 @@ def assert_same_model(a, b):
     ca, cb = np.asarray(a.coefficients), np.asarray(b.coefficients)
     assert np.all(np.abs(ca - cb) <= 1e-10 * np.maximum(1.0, np.abs(cb)))
     assert list(a.active) == list(b.active)
+
+
+def test_split_snapshots_into_map_tasks(monkeypatch):
+    monkeypatch.delenv("CLOSURE_SNAPSHOTS_PER_TASK", raising=False)
+    idx = list(range(10))
+    assert q.split_snapshots(idx, workers=1) == [idx[:5], idx[5:]]
+    assert q.split_snapshots(idx, workers=2) == [[0, 1, 2], [3, 4, 5], [6, 7, 8], [9]]
+    assert q.split_snapshots(idx, workers=0) == [idx[:5], idx[5:]]  # none registered yet
+    assert q.split_snapshots(idx[:3], workers=8) == [[0], [1], [2]]
+    assert q.split_snapshots(idx, workers=2, per_task=1) == [[i] for i in idx]
+    monkeypatch.setenv("CLOSURE_SNAPSHOTS_PER_TASK", "4")
+    assert q.split_snapshots(idx, workers=2) == [idx[:4], idx[4:8], idx[8:]]
 
 
 def test_heartbeat_ttl_is_interval_plus_grace(env):
@@ -112,27 +125,29 @@ def test_queued_job_equals_in_process_discover(env, turb2d_file):  # noqa: F811
     assert store.find_models(filter_kind="box") == []
     # every task on the queue was JSON: inspect one stored payload
     raw = conn.hget(f"rq:job:{q.map_id(job_id, 0)}", "data")
-    assert json.loads(zlib.decompress(raw))[2] == [job_id, 0]
+    assert json.loads(zlib.decompress(raw))[2] == [job_id, q.map_tasks(conn, job_id)[0]]
     assert sha256_file(turb2d_file) == before
 
 
 def test_map_task_rerun_overwrites_its_stats_atomically(env, turb2d_file):  # noqa: F811
     conn, store = env
     job_id = submit(conn, store, spec_dict(turb2d_file))
-    run_burst(conn, store, max_jobs=2)  # the plan and one map
+    run_burst(conn, store, max_jobs=2)  # the plan and the first map task
+    groups = q.map_tasks(conn, job_id)
+    assert len(groups) == 2 and sorted(sum(groups, [])) == list(range(6))  # 1 worker: 2 tasks
     done = sorted(store.job_dir(job_id).glob("stats/*.npz"))
-    assert len(done) == 1
+    assert [int(p.stem) for p in done] == groups[0]
     from closure.stats import SufficientStats
 
-    first = SufficientStats.load(done[0])
-    inode = done[0].stat().st_ino
-    index = int(done[0].stem)
-    # run the same map again (as a retry would)
-    q.get_queue(conn).enqueue_call("worker.tasks.map_task", args=(job_id, index),
-                                   job_id=q.map_id(job_id, index), at_front=True)
+    first = [SufficientStats.load(p) for p in done]
+    inodes = [p.stat().st_ino for p in done]
+    # run the same map task again (as a retry would)
+    q.get_queue(conn).enqueue_call("worker.tasks.map_task", args=(job_id, groups[0]),
+                                   job_id=q.map_id(job_id, 0), at_front=True)
     run_burst(conn, store, max_jobs=1)
-    assert done[0].stat().st_ino != inode  # a new file renamed into place ...
-    assert SufficientStats.load(done[0]).equals(first)  # ... with the same statistics
+    for path, inode, stats in zip(done, inodes, first, strict=True):
+        assert path.stat().st_ino != inode  # a new file renamed into place ...
+        assert SufficientStats.load(path).equals(stats)  # ... with the same statistics
     assert not [p for p in done[0].parent.iterdir() if p.name.startswith(".")]
     run_burst(conn, store)
     assert q.status(store, conn, job_id)["state"] == "succeeded"
@@ -184,9 +199,9 @@ def test_cancel_stops_pending_tasks(env, turb2d_file):  # noqa: F811
     run_burst(conn, store, max_jobs=2)  # plan and one map
     assert q.cancel(store, conn, job_id)
     assert not q.cancel(store, conn, job_id)
-    for i in range(6):
-        job = q.fetch(conn, q.map_id(job_id, i))
-        assert job.get_status() in ("finished", "canceled")
+    states = [q.fetch(conn, q.map_id(job_id, k)).get_status()
+              for k in range(len(q.map_tasks(conn, job_id)))]
+    assert states == ["finished", "canceled"]
     assert q.fetch(conn, q.reduce_id(job_id)).get_status() == "canceled"
     run_burst(conn, store)
     doc = q.status(store, conn, job_id)
@@ -222,3 +237,27 @@ def test_status_reconciles_a_failure_rq_recorded_without_callback(env, turb2d_fi
     assert doc["state"] == "failed"
     assert doc["error"].startswith("planning failed after")
     assert "RuntimeError: disk on fire" in doc["error"]
+
+
+@pytest.mark.postgres
+def test_queued_job_with_a_postgresql_catalog(tmp_path, redis_server, turb2d_file):  # noqa: F811
+    from service_support import POSTGRES_URL, postgres_reason
+
+    reason = postgres_reason()
+    if reason:
+        pytest.skip(reason)
+    schema = f"closure_test_{os.urandom(6).hex()}"
+    store = Store(tmp_path / "store", POSTGRES_URL, schema=schema)
+    conn = q.connect(redis_server.url)
+    try:
+        job_id = submit(conn, store, spec_dict(turb2d_file, scheme="fd4"))
+        run_burst(conn, store, db=["--db", POSTGRES_URL, "--db-schema", schema])
+        doc = q.status(store, conn, job_id)
+        assert doc["state"] == "succeeded", doc
+        assert_same_model(store.load_model(doc["model_id"]),
+                          pipeline.discover(parse_spec(spec_dict(turb2d_file, scheme="fd4"))))
+        assert [r["id"] for r in store.find_models(target="stress")] == [doc["model_id"]]
+    finally:
+        conn.close()
+        store.drop_schema()
+        store.close()

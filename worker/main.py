@@ -27,10 +27,43 @@ log = logging.getLogger("closure.worker")
 
 
 class ClosureWorker(Worker):
-    """rq Worker whose running-task heartbeats expire after a short grace period."""
+    """rq Worker whose running-task heartbeats expire after a short grace period, and which
+    prepares a job's per-process caches once before forking the work-horses of its tasks."""
 
     abandon_grace_s: int = 10
     stop_asked: bool = False
+    _warmed: tuple[str, ...] = ()
+
+    def execute_job(self, job, queue):
+        self._warm_for(job)
+        return super().execute_job(job, queue)
+
+    def _warm_for(self, job) -> None:
+        """Build the job's term library (sympy code generation) and coarse-graining in this
+        process, so every work-horse forked for the job inherits them instead of redoing it
+        (about 0.1 s per task). No data is read and no numerical work is done here. Best
+        effort: if it fails, the horse simply builds them itself."""
+        job_id = (job.args or [None])[0]
+        if not isinstance(job_id, str) or job_id in self._warmed \
+                or job.func_name == "worker.tasks.plan_task":
+            return
+        self._warmed = (*self._warmed[-15:], job_id)
+        try:
+            from closure.grid import Grid
+            from closure.spec import parse_spec
+            from closure.store import read_json
+
+            work = tasks.store().job_dir(job_id)
+            spec = parse_spec(read_json(work / "spec.json"))
+            plan = read_json(work / "plan.json")
+            from closure import pipeline
+
+            grid = Grid.from_dict(plan["grid"])
+            # the pipeline's own per-process caches (no public hook for this yet)
+            pipeline._library(spec, grid.dims)._compiled()
+            pipeline._coarse_graining(spec, grid)
+        except Exception as exc:  # noqa: BLE001 - an optimisation only
+            log.debug("no warm-up for %s: %s", job_id, exc)
 
     def request_stop(self, signum, frame):
         self.stop_asked = True
@@ -47,15 +80,22 @@ class ClosureWorker(Worker):
 #: with them loaded (importing them costs about a second per task otherwise)
 PRELOAD = ("closure.pipeline", "closure.io", "closure.library", "closure.residuals",
            "closure.stats", "closure.regression", "closure.scores", "closure.model",
-           "closure.store", "netCDF4", "xarray", "sympy")
+           "closure.export", "closure.store", "netCDF4", "xarray", "sympy",
+           "sklearn.linear_model", "scipy.optimize", "scipy.interpolate", "scipy.integrate",
+           "scipy.linalg", "scipy.sparse")
 
 
 def preload() -> None:
+    """Import what tasks use (imports only: no numerical work before forking)."""
     import importlib
 
     for name in PRELOAD:
         with contextlib.suppress(ImportError):
             importlib.import_module(name)
+    with contextlib.suppress(Exception):
+        import xarray
+
+        xarray.backends.list_engines()  # backend discovery, cached for every horse
 
 
 def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
@@ -72,7 +112,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
     logging.basicConfig(level=log_level, format="%(asctime)s %(name)s %(message)s")
     tasks.configure(store_root, db_url, db_schema)
     tasks.store().open()  # fail fast on a bad catalog URL, create the tables
-    tasks._store = None  # each work-horse opens its own connections after the fork
+    tasks.store().close()  # each work-horse opens its own connections after the fork
     preload()
     base = name or f"closure-{socket.gethostname()}-{os.getpid()}"
     attempt = 0

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import os
 import shutil
+import uuid
+from pathlib import Path
 
 from rq import get_current_job
 
@@ -104,15 +106,18 @@ def plan_task(job_id: str) -> dict:
     write_json_atomic(work / "plan.json", plan)
     write_json_atomic(work / "spec.json", spec.model_dump(mode="json"))
     indices = plan_indices(plan)
-    q.set_progress(conn, job_id, phase="map", snapshots_total=len(indices), indices=indices)
+    from rq import Worker
 
     queue = q.get_queue(conn)
+    groups = q.split_snapshots(indices, Worker.count(queue=queue))
+    q.set_progress(conn, job_id, phase="map", snapshots_total=len(indices), tasks=groups)
     parts = []
-    for i in indices:
+    for k, group in enumerate(groups):
         parts.append(queue.enqueue_call(
-            "worker.tasks.map_task", args=(job_id, i), job_id=q.map_id(job_id, i),
+            "worker.tasks.map_task", args=(job_id, group), job_id=q.map_id(job_id, k),
             timeout=q.MAP_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
-            failure_ttl=q.PROGRESS_TTL_S, description=f"map {job_id} snapshot {i}"))
+            failure_ttl=q.PROGRESS_TTL_S,
+            description=f"map {job_id} snapshots {group[0]}..{group[-1]}"))
     from rq.job import Dependency
 
     queue.enqueue_call(
@@ -126,29 +131,88 @@ def plan_task(job_id: str) -> dict:
     return {"job": job_id, "snapshots": len(indices)}
 
 
-def map_task(job_id: str, index: int) -> dict:
-    """SufficientStats of one snapshot, saved atomically to the job's stats folder."""
+def _open_planned(plan: dict):
+    """The planned input file, opened as the plan read it (closure.io.open_fields)."""
+    from closure.io import open_fields
+
+    inp = plan["input"]
+    return open_fields(inp["path"], inp.get("variables") or None, tuple(inp.get("scalars") or ()),
+                       bool(inp.get("periodic", True)))
+
+
+def _keep_held_out(work: Path, plan: dict, coarse) -> None:
+    """Save a held-out snapshot's coarse fields and targets (closure.pipeline.HeldOut's
+    format) into the job's held_out/ folder, atomically (temp folder + rename)."""
+    from closure.pipeline import HeldOut
+
+    folder = work / "held_out"
+    tmp = folder / f".tmp-{uuid.uuid4().hex}"
+    tmp.mkdir(parents=True)
+    try:
+        HeldOut(tmp, list(plan["components"])).put(coarse)
+        name = f"{int(coarse.index)}.npz"
+        if (tmp / name).exists():
+            os.replace(tmp / name, folder / name)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _held_out(work: Path, plan: dict):
+    """The held-out snapshots kept by the map tasks (any missing one is recomputed)."""
+    from closure.pipeline import HeldOut
+
+    held = HeldOut(work / "held_out", list(plan["components"]))
+    held.indices = {int(p.stem) for p in (work / "held_out").glob("*.npz")
+                    if p.stem.isdigit()}
+    return held
+
+
+def map_task(job_id: str, indices: list[int]) -> dict:
+    """SufficientStats of each snapshot in ``indices``, one file each, saved atomically
+    (temp file + rename): a re-run overwrites them with identical statistics."""
     conn = _conn()
     if q.is_canceled(conn, job_id):
-        return {"job": job_id, "index": index, "canceled": True}
+        return {"job": job_id, "indices": indices, "canceled": True}
     st = store()
     work = st.job_dir(job_id)
     spec = parse_spec(read_json(work / "spec.json"))
     plan = read_json(work / "plan.json")
     from closure import pipeline
 
+    source = None
+    errors = {}
     try:
-        stats = pipeline.map_snapshot(spec, plan, int(index))
+        source = _open_planned(plan)  # once for the whole group
     except UserError as exc:
-        conn.hset(q.errors_key(job_id), str(index), str(exc))
-        conn.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
-        return {"job": job_id, "index": index, "error": str(exc)}
-    stats.save(st.stats_path(job_id, index))  # atomic: temp file + rename
-    with conn.pipeline() as p:
-        p.sadd(q.done_key(job_id), int(index))
-        p.expire(q.done_key(job_id), q.PROGRESS_TTL_S)
-        p.execute()
-    return {"job": job_id, "index": index}
+        errors = {int(i): str(exc) for i in indices}
+    test = {int(i) for i in plan.get("test") or ()}
+    for i in indices if not errors else ():
+        if q.is_canceled(conn, job_id):
+            break
+        try:
+            if int(i) in test and hasattr(pipeline, "_map"):
+                # keep the held-out snapshot's coarse fields for the scoring pass, as an
+                # in-process run does (saves coarse-graining it again in the reduce)
+                stats, coarse = pipeline._map(spec, plan, int(i), source=source)
+                _keep_held_out(work, plan, coarse)
+            else:
+                stats = pipeline.map_snapshot(spec, plan, int(i), source=source)
+        except UserError as exc:
+            errors[int(i)] = str(exc)
+            continue
+        stats.save(st.stats_path(job_id, i))  # atomic: temp file + rename
+        with conn.pipeline() as p:
+            p.sadd(q.done_key(job_id), int(i))
+            p.expire(q.done_key(job_id), q.PROGRESS_TTL_S)
+            p.execute()
+    if source is not None:
+        source.close()
+    if errors:
+        with conn.pipeline() as p:
+            p.hset(q.errors_key(job_id), mapping={str(k): v for k, v in errors.items()})
+            p.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
+            p.execute()
+    return {"job": job_id, "indices": indices, "errors": len(errors)}
 
 
 def reduce_task(job_id: str) -> dict:
@@ -184,7 +248,10 @@ def reduce_task(job_id: str) -> dict:
 
     q.set_progress(conn, job_id, phase="reduce")
     try:
-        model = pipeline.reduce(spec, plan, stats, progress=progress)
+        held = _held_out(work, plan) if hasattr(pipeline, "HeldOut") else None
+        with _open_planned(plan) as source:  # for held-out snapshots not kept by the maps
+            model = pipeline.reduce(spec, plan, stats, progress=progress, source=source,
+                                    held_out=held)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
     model_row = st.add_model(
@@ -199,11 +266,12 @@ def reduce_task(job_id: str) -> dict:
 def _missing_message(conn, job_id: str, missing: list[int]) -> str:
     errors = {k.decode(): v.decode() for k, v in conn.hgetall(q.errors_key(job_id)).items()}
     parts = []
+    task_of = {i: k for k, group in enumerate(q.map_tasks(conn, job_id)) for i in group}
     for i in missing[:5]:
         if str(i) in errors:
             parts.append(f"snapshot {i}: {errors[str(i)]}")
         else:
-            job = q.fetch(conn, q.map_id(job_id, i))
+            job = q.fetch(conn, q.map_id(job_id, task_of.get(i, -1)))
             why = q.last_error(job) if job is not None else "its task was lost"
             parts.append(f"snapshot {i}: failed after {q.TASK_RETRIES + 1} attempts: {why}")
     more = f" (and {len(missing) - 5} more)" if len(missing) > 5 else ""
