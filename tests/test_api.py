@@ -347,3 +347,28 @@ def test_submit_when_redis_is_down_is_503_not_500(tmp_path, turb2d_file):  # noq
     with TestClient(app, raise_server_exceptions=False) as c:
         r = c.post("/jobs", json=spec_for(turb2d_file))
         assert r.status_code == 503 and "Redis" in r.json()["detail"]
+
+
+def test_stored_model_of_a_canceled_job_is_still_reused(client, turb2d_file):  # noqa: F811
+    """A job canceled after its model was stored: resubmitting returns a finished job."""
+    from closure.spec import parse_spec
+    from closure.store import Store, fingerprint_hash, model_id_for, models_table
+
+    r = client.post("/jobs", json=spec_for(turb2d_file))
+    job = r.json()
+    client.delete(f"/jobs/{job['id']}")
+    store = Store(client.store_root)
+    spec = parse_spec(job["spec"])
+    fp = fingerprint_hash(spec, job["input_sha256"])
+    # enter a catalog row for that job's model (what a reduce finishing at the moment of the
+    # cancel leaves behind)
+    with store.engine.begin() as conn:
+        conn.execute(models_table.insert().values(
+            id=model_id_for(fp), fingerprint=fp, dataset_sha256=job["input_sha256"],
+            target="stress", filter_kind="gaussian", filter_ratio=4, scheme="spectral",
+            method="threshold", job_id=job["id"], created=0.0, path="/nowhere"))
+    again = client.post("/jobs", json=spec_for(turb2d_file))
+    assert again.status_code == 200
+    doc = again.json()
+    assert doc["id"] != job["id"] and doc["state"] == "succeeded" and doc["reused"]
+    assert doc["model_id"] == model_id_for(fp)

@@ -96,6 +96,10 @@ def preload() -> None:
         import xarray
 
         xarray.backends.list_engines()  # backend discovery, cached for every horse
+    with contextlib.suppress(Exception):
+        from closure import pipeline
+
+        pipeline._threadpools()  # the BLAS thread-limit controller (a library scan, ~20 ms)
 
 
 def run_worker(redis_url: str, store_root: str, db_url: str | None = None,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from fastapi import APIRouter, Depends, Query, Response
+from fastapi.responses import JSONResponse
 
 from api.deps import Settings, get_redis, get_settings, get_store, require_token
 from api.errors import ConflictError
@@ -30,8 +31,16 @@ def submit_job(spec: JobSpec, response: Response,
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     model = store.model_by_fingerprint(fingerprint)
     existing = None
-    if model is not None and model["job_id"]:
-        existing = store.get_job(model["job_id"], missing_ok=True)
+    if model is not None:
+        existing = store.get_job(model["job_id"], missing_ok=True) if model["job_id"] else None
+        if existing is None or existing["state"] != "succeeded":
+            # e.g. the job that made it was canceled just after storing it: a finished job
+            # of its own points at the stored model
+            existing = store.create_job(
+                job_id=new_job_id(), spec=run_spec.model_dump(mode="json"),
+                fingerprint=fingerprint, input_sha256=dataset["sha256"],
+                dataset_id=dataset["id"], name=name, state="succeeded",
+                model_id=model["id"], reused=True)
     existing = existing or store.find_active_job(fingerprint)
     if existing is not None:
         response.status_code = 200
@@ -58,10 +67,12 @@ def list_jobs(state: str | None = Query(
 
 
 @router.get("/jobs/{job_id}", summary="Job state and progress")
-def get_job(job_id: str, store: Store = Depends(get_store), conn=Depends(get_redis)) -> dict:
+def get_job(job_id: str, store: Store = Depends(get_store),
+            conn=Depends(get_redis)) -> JSONResponse:
     """State (queued, running, succeeded, failed, canceled), progress (phase, snapshots
     done/total), the model id once it succeeded, and the error when it failed."""
-    return q.status(store, conn, job_id)
+    # plain JSON types already: answer directly (this is the route clients poll)
+    return JSONResponse(q.status(store, conn, job_id))
 
 
 @router.delete("/jobs/{job_id}", summary="Cancel a job")
