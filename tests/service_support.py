@@ -73,3 +73,28 @@ def turb2d_file(tmp_path_factory):
 
     folder = tmp_path_factory.mktemp("data")
     return write(turb2d(n=32, snapshots=6, spinup=1.0, interval=0.2), folder / "turb2d.nc")
+
+
+def child_pids(pid: int) -> list[int]:
+    """Live child processes of ``pid`` (from /proc; Linux)."""
+    out = []
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            with open(f"/proc/{entry}/stat") as fh:
+                fields = fh.read().rsplit(")", 1)[1].split()
+        except OSError:
+            continue
+        if int(fields[1]) == pid and fields[0] != "Z":
+            out.append(int(entry))
+    return out
+
+
+def pid_alive(pid: int) -> bool:
+    """Whether ``pid`` is a running (not zombie) process."""
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] != "Z"
+    except OSError:
+        return False

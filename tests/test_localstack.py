@@ -12,9 +12,9 @@ import sys
 import threading
 import time
 
-import psutil
 import pytest
 import redis
+from service_support import pid_alive
 
 from closure.client import Client, ServiceError
 from closure.errors import UserError
@@ -204,7 +204,7 @@ def test_closure_up_runs_and_stops_cleanly_on_sigterm(tmp_path):
         proc.send_signal(signal.SIGTERM)
         assert proc.wait(60) == 0
         for pid in pids:
-            assert not psutil.pid_exists(pid) or psutil.Process(pid).status() == "zombie", pid
+            assert not pid_alive(pid), pid
         assert not (state_dir / STATE_FILE).exists()
         assert "redis" in os.listdir(state_dir) and os.listdir(state_dir / "redis")
     finally:

@@ -13,8 +13,8 @@ import sys
 import time
 
 import numpy as np
-import psutil
 import pytest
+from service_support import child_pids
 
 from closure import pipeline
 from closure.client import Client, JobFailedError, ServiceError
@@ -92,12 +92,12 @@ def horses(stack) -> list[tuple[int, int]]:
     process group (rq's scheduler child stays in the worker's group)."""
     out = []
     for proc in stack.worker_procs:
-        try:
-            for child in psutil.Process(proc.pid).children():
-                if os.getpgid(child.pid) == child.pid:
-                    out.append((proc.pid, child.pid))
-        except (psutil.NoSuchProcess, ProcessLookupError):
-            continue
+        for child in child_pids(proc.pid):
+            try:
+                if os.getpgid(child) == child:
+                    out.append((proc.pid, child))
+            except ProcessLookupError:
+                continue
     return out
 
 
