@@ -19,8 +19,11 @@ import functools
 import os
 import platform
 import tempfile
+from collections import deque
 from collections.abc import Callable, Mapping
+from concurrent.futures import ThreadPoolExecutor
 from functools import lru_cache
+from itertools import islice
 from pathlib import Path
 
 import numpy as np
@@ -457,9 +460,18 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
 
 
 # ---------------------------------------------------------------------- in process
+#: snapshots mapped at once by discover: the map is mostly numpy and FFT work that runs
+#: outside the GIL, so two in flight keep two cores busy between the multi-threaded FFTs
+MAP_THREADS = 2
+
+
 @_small_blas
 def discover(spec: JobSpec, progress: Progress | None = None):
-    """Plan, map every snapshot and reduce, in this process (one file handle throughout)."""
+    """Plan, map every snapshot and reduce, in this process (one file handle throughout).
+
+    Up to MAP_THREADS snapshots are mapped at a time (threads), so memory is that of a few
+    snapshots whatever their number; the statistics are the queued ones, bit for bit.
+    """
     progress = progress or _no_progress
     progress("plan", 0, 1)
     p = plan(spec)
@@ -469,13 +481,28 @@ def discover(spec: JobSpec, progress: Progress | None = None):
     test = set(p["test"])
     with _open(spec) as src, tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
         held_out = HeldOut(tmp, p["components"])
-        for done, i in enumerate(indices):
-            progress("map", done, len(indices))
-            stats[i], cs = _map(spec, p, i, source=src)
+
+        def keep(i, result):
+            stats[i], cs = result
             if i in test:
                 held_out.put(cs)
-            del cs
-        progress("map", len(indices), len(indices))
+
+        progress("map", 0, len(indices))
+        # the first in this thread: it compiles the library's terms once
+        keep(indices[0], _map(spec, p, indices[0], source=src))
+        progress("map", 1, len(indices))
+        rest = iter(indices[1:])
+        threads = max(1, min(MAP_THREADS, os.cpu_count() or 1))
+        with ThreadPoolExecutor(max_workers=threads) as pool:
+            pending = deque((i, pool.submit(_map, spec, p, i, src))
+                            for i in islice(rest, threads))
+            while pending:
+                i, future = pending.popleft()
+                keep(i, future.result())
+                nxt = next(rest, None)
+                if nxt is not None:
+                    pending.append((nxt, pool.submit(_map, spec, p, nxt, src)))
+                progress("map", len(stats), len(indices))
         return reduce(spec, p, stats, progress, source=src, held_out=held_out)
 
 

@@ -236,3 +236,51 @@ def test_non_periodic_data_need_finite_differences(tmp_path):
     model = pipeline.discover(_spec(path, periodic=False, width=2, ratio=2, scheme="fd4",
                                     resamples=0))
     assert model.scheme == "fd4" and not model.grid.periodic
+
+
+def test_map_computes_only_the_fitted_target(smooth_file, monkeypatch):
+    # the scores' transfers come from the coarse fields, so the map asks closure.residuals
+    # for the target components alone (the force, vorticity and transfer terms cost fine-grid
+    # transforms that a stress fit never reads)
+    import closure.residuals
+
+    asked = []
+    real = closure.residuals.coarse_grain_snapshot
+
+    def spy(*args, **kwargs):
+        cs = real(*args, **kwargs)
+        asked.append((kwargs.get("targets"), sorted(cs.targets), sorted(cs.fields)))
+        return cs
+
+    monkeypatch.setattr(closure.residuals, "coarse_grain_snapshot", spy)
+    spec = _spec(smooth_file)
+    p = pipeline.plan(spec)
+    pipeline.map_snapshot(spec, p, 1)
+    assert asked == [(p["components"], sorted(p["components"]), ["u", "v", "vorticity"])]
+
+
+def test_job_functions_run_blas_single_threaded(smooth_file, monkeypatch):
+    # idle BLAS threads spin after each call and take the cores from the FFT threads; the
+    # job's BLAS work (Gram matrices of a few terms) gains nothing from more threads
+    import threadpoolctl
+
+    import closure.library
+
+    def blas_threads():
+        return {i["num_threads"] for i in threadpoolctl.threadpool_info()
+                if i["user_api"] == "blas"}
+
+    seen = []
+    real = closure.library.design
+
+    def spy(*args, **kwargs):
+        seen.append(blas_threads())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(closure.library, "design", spy)
+    with threadpoolctl.threadpool_limits(limits=2, user_api="blas"):
+        before = blas_threads()
+        spec = _spec(smooth_file)
+        pipeline.map_snapshot(spec, pipeline.plan(spec), 0)
+        assert seen == [{1}]
+        assert blas_threads() == before  # restored afterwards
