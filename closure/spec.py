@@ -97,6 +97,91 @@ class JobSpec(_Strict):
         return d
 
 
+
+# --------------------------------------------------------------------------- a posteriori runs
+
+#: the baselines the coarse solver knows (closure.les.BASELINES; listed here so the schema
+#: needs no numerics)
+Baseline = Literal["none", "smagorinsky", "dynamic", "gradient", "gradient-clipped"]
+_NUMBER = r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?"
+_FORCING = re.compile(rf"^(file|none|shell:{_NUMBER}:{_NUMBER}(:\d+)?"
+                      rf"|kolmogorov:{_NUMBER}:{_NUMBER})$")
+
+
+class FileSpec(_Strict):
+    """A fine-grid file for an a posteriori run: a path (under a data root for the service)
+    or an uploaded dataset id."""
+
+    path: str | None = None
+    dataset_id: str | None = None
+
+    @model_validator(mode="after")
+    def _one_source(self):
+        if (self.path is None) == (self.dataset_id is None):
+            raise ValueError("give exactly one of path or dataset_id")
+        return self
+
+
+class AposterioriSpec(_Strict):
+    """An a posteriori run of a stored model in the 2-D coarse solver (closure.les.simulate),
+    against the baselines, from filtered-DNS initial fields. Every field has a default: an
+    empty spec runs the model from the first snapshot of its own input file."""
+
+    version: Literal[1] = SPEC_VERSION
+    kind: Literal["aposteriori"] = "aposteriori"
+    model_id: str | None = Field(None, description="the stored model (the URL's; service)")
+    input: FileSpec | None = Field(None, description="initial (and reference) fields; "
+                                   "default: the model's own input file")
+    reference: FileSpec | None = Field(
+        None, description="filtered DNS to compare with (default: the input, when it has "
+        "snapshots after the initial one)")
+    initial_index: Annotated[int, Field(ge=0)] = 0
+    viscosity: Annotated[float, Field(ge=0)] | None = Field(
+        None, description="nu, m2 s-1 (default: the file's)")
+    drag: Annotated[float, Field(ge=0)] | None = Field(
+        None, description="linear drag, s-1 (default: the file's, else 0)")
+    hyperviscosity_order: Annotated[int, Field(ge=1, le=8)] | None = None
+    forcing: str = Field("file", description="file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+    time: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="run length, s (default: to the reference's last snapshot)")
+    interval: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="output interval, s, without a reference")
+    baselines: list[Baseline] = Field(
+        default_factory=lambda: ["none", "smagorinsky", "dynamic", "gradient",
+                                 "gradient-clipped"])
+    smagorinsky_constant: Annotated[float, Field(ge=0)] = 0.17
+    dealias: bool | None = Field(None, description="2/3-rule dealiasing (default: the file's)")
+    cfl: Annotated[float, Field(gt=0, le=2)] = 0.5
+    energy_bound: Annotated[float, Field(gt=1)] = Field(
+        10.0, description="a run stops as blown up past this multiple of its initial energy")
+
+    @field_validator("forcing")
+    @classmethod
+    def _forcing(cls, v: str) -> str:
+        if not _FORCING.match(v.strip()):
+            raise ValueError("forcing must be file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+        return v.strip()
+
+    def fingerprint(self) -> dict:
+        """The fields that determine the result, without the files' locations."""
+        d = self.model_dump(mode="json")
+        for key in ("input", "reference"):
+            d[key] = None if d[key] is None else "file"
+        return d
+
+
+def parse_aposteriori_spec(data: dict | str | None) -> AposterioriSpec:
+    """Validate an a posteriori spec (None: all defaults); OptionError naming each bad field."""
+    try:
+        if data is None:
+            return AposterioriSpec()
+        if isinstance(data, str):
+            return AposterioriSpec.model_validate_json(data)
+        return AposterioriSpec.model_validate(data)
+    except ValidationError as exc:
+        raise OptionError(format_validation_error(exc).replace("job spec", "a posteriori spec",
+                                                               1)) from None
+
 def parse_spec(data: dict | str) -> JobSpec:
     """Validate a spec from a dict or JSON text; raise OptionError naming each bad field."""
     try:
