@@ -7,7 +7,9 @@ Layout under the store root::
     jobs/<job id>/plan.json        work area of a running job: its plan ...
     jobs/<job id>/stats/<i>.npz    ... and one SufficientStats file per snapshot
     models/<model id>/             model.json, spec.json, plan.json, diagnostics.json,
-                                   summary.txt, stats/ (and later report/)
+                                   summary.txt, stats/
+    models/<model id>/les/         the latest a posteriori run: les.json, table.txt, request.json
+    models/<model id>/report/      the HTML report, built on demand (index.html + PNGs)
 
 Every file is written to a temporary name and renamed into place; a model folder is built
 under a temporary name and renamed as a whole, and only then entered in the catalog, so a
@@ -290,6 +292,14 @@ class Store:
 
     def model_dir(self, model_id: str) -> Path:
         return self.root / "models" / _check_id(model_id)
+
+    def aposteriori_dir(self, model_id: str) -> Path:
+        """A model's latest a posteriori run: les.json, table.txt, request.json."""
+        return self.model_dir(model_id) / "les"
+
+    def report_dir(self, model_id: str) -> Path:
+        """A model's cached HTML report folder (index.html and its PNGs)."""
+        return self.model_dir(model_id) / "report"
 
     def upload_tempfile(self, suffix: str = ".nc") -> Path:
         """A fresh temporary path in the uploads area (same file system as datasets/)."""
