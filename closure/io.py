@@ -18,6 +18,7 @@ import datetime as _dt
 import hashlib
 import os
 import tempfile
+import threading
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -53,12 +54,18 @@ class Snapshot:
     time: float | None
 
 
-def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20) -> str:
-    """Hex SHA-256 of a file's bytes, read in chunks (constant memory)."""
+def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20,
+                cancel: threading.Event | None = None) -> str:
+    """Hex SHA-256 of a file's bytes, read in chunks (constant memory).
+
+    ``cancel``: an event another thread may set to stop early (raises InterruptedError).
+    """
     h = hashlib.sha256()
     try:
         with open(path, "rb") as fh:
             while block := fh.read(chunk_size):
+                if cancel is not None and cancel.is_set():
+                    raise InterruptedError(f"hashing {path} was cancelled")
                 h.update(block)
     except FileNotFoundError:
         raise InputFileError(f"no such file: {path}") from None

@@ -19,11 +19,10 @@ import functools
 import os
 import platform
 import tempfile
-from collections import deque
+import threading
 from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from functools import lru_cache
-from itertools import islice
 from pathlib import Path
 
 import numpy as np
@@ -65,17 +64,13 @@ def _small_blas(function):
 
     @functools.wraps(function)
     def run(*args, **kwargs):
-        with _threadpools().limit(limits=1, user_api="blas"):
+        from threadpoolctl import threadpool_limits  # (scikit-learn's dependency)
+
+        # looked up at each call (under a millisecond), so BLAS libraries loaded later count
+        with threadpool_limits(limits=1, user_api="blas"):
             return function(*args, **kwargs)
 
     return run
-
-
-@lru_cache(maxsize=1)
-def _threadpools():
-    from threadpoolctl import ThreadpoolController
-
-    return ThreadpoolController()
 
 
 # ---------------------------------------------------------------------- shared pieces
@@ -149,12 +144,21 @@ def plan(spec: JobSpec) -> dict:
     """
     from closure.io import sha256_file
 
-    path = _input_path(spec)
     with _open(spec) as src:
-        grid = src.grid
-        n = src.n_snapshots
-        times = None if src.times is None else [float(t) for t in src.times]
-        velocity = list(src.velocity)
+        p = _plan(spec, src, None)
+    p["sha256"] = p["input"]["sha256"] = sha256_file(_input_path(spec))
+    return p
+
+
+def _plan(spec: JobSpec, src, sha: str | None) -> dict:
+    """The plan from an open source; ``sha`` is the input's SHA-256 (None: filled in later)."""
+    from closure.io import sha256_file
+
+    path = _input_path(spec)
+    grid = src.grid
+    n = src.n_snapshots
+    times = None if src.times is None else [float(t) for t in src.times]
+    velocity = list(src.velocity)
     chosen = list(range(n)) if spec.input.snapshots is None else list(spec.input.snapshots)
     bad = [i for i in chosen if not 0 <= i < n]
     if bad:
@@ -185,7 +189,6 @@ def plan(spec: JobSpec) -> dict:
                         "them with --var / input.scalars")
     from closure.library import component_weights
 
-    sha = sha256_file(path)
     library_info = {"name": spec.library, "terms": library.names,
                     "dropped": list(library.dropped)}
     lib_path = Path(spec.library)
@@ -460,49 +463,40 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
 
 
 # ---------------------------------------------------------------------- in process
-#: snapshots mapped at once by discover: the map is mostly numpy and FFT work that runs
-#: outside the GIL, so two in flight keep two cores busy between the multi-threaded FFTs
-MAP_THREADS = 2
-
-
 @_small_blas
 def discover(spec: JobSpec, progress: Progress | None = None):
     """Plan, map every snapshot and reduce, in this process (one file handle throughout).
 
-    Up to MAP_THREADS snapshots are mapped at a time (threads), so memory is that of a few
-    snapshots whatever their number; the statistics are the queued ones, bit for bit.
+    The input's SHA-256 (provenance) is computed in a thread while the snapshots are mapped:
+    hashing is I/O and C code outside the GIL, on a core the map leaves idle between its FFTs.
     """
+    from closure.io import sha256_file
+
     progress = progress or _no_progress
     progress("plan", 0, 1)
-    p = plan(spec)
-    progress("plan", 1, 1)
-    stats = {}
-    indices = sorted(p["snapshots"])
-    test = set(p["test"])
-    with _open(spec) as src, tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
-        held_out = HeldOut(tmp, p["components"])
-
-        def keep(i, result):
-            stats[i], cs = result
-            if i in test:
-                held_out.put(cs)
-
-        progress("map", 0, len(indices))
-        # the first in this thread: it compiles the library's terms once
-        keep(indices[0], _map(spec, p, indices[0], source=src))
-        progress("map", 1, len(indices))
-        rest = iter(indices[1:])
-        threads = max(1, min(MAP_THREADS, os.cpu_count() or 1))
-        with ThreadPoolExecutor(max_workers=threads) as pool:
-            pending = deque((i, pool.submit(_map, spec, p, i, src))
-                            for i in islice(rest, threads))
-            while pending:
-                i, future = pending.popleft()
-                keep(i, future.result())
-                nxt = next(rest, None)
-                if nxt is not None:
-                    pending.append((nxt, pool.submit(_map, spec, p, nxt, src)))
-                progress("map", len(stats), len(indices))
+    with _open(spec) as src, ThreadPoolExecutor(max_workers=1) as pool, \
+            tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
+        p = _plan(spec, src, None)
+        stop = threading.Event()
+        digest = pool.submit(sha256_file, _input_path(spec), cancel=stop)
+        try:
+            progress("plan", 1, 1)
+            stats = {}
+            indices = sorted(p["snapshots"])
+            test = set(p["test"])
+            held_out = HeldOut(tmp, p["components"])
+            for done, i in enumerate(indices):
+                progress("map", done, len(indices))
+                stats[i], cs = _map(spec, p, i, source=src)
+                if i in test:
+                    held_out.put(cs)
+                del cs
+            progress("map", len(indices), len(indices))
+            p["sha256"] = p["input"]["sha256"] = digest.result()
+        except BaseException:
+            stop.set()  # do not wait for the hash of a file whose job failed
+            raise
+        _check_input(p)  # the file hashed is the file read
         return reduce(spec, p, stats, progress, source=src, held_out=held_out)
 
 

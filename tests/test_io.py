@@ -108,6 +108,13 @@ def test_sha256_file_matches_hashlib(tmp_path):
     assert sha256_file(p, chunk_size=1 << 16) == hashlib.sha256(data).hexdigest()
     with pytest.raises(InputFileError, match="no such file"):
         sha256_file(tmp_path / "missing.bin")
+    import threading
+
+    stop = threading.Event()
+    assert sha256_file(p, cancel=stop) == hashlib.sha256(data).hexdigest()
+    stop.set()
+    with pytest.raises(InterruptedError, match="cancelled"):
+        sha256_file(p, cancel=stop)
 
 
 # --- bad inputs give clear messages ------------------------------------------------------------

@@ -284,3 +284,27 @@ def test_job_functions_run_blas_single_threaded(smooth_file, monkeypatch):
         pipeline.map_snapshot(spec, pipeline.plan(spec), 0)
         assert seen == [{1}]
         assert blas_threads() == before  # restored afterwards
+
+
+def test_discover_hashes_while_mapping_and_stops_the_hash_on_failure(smooth_file, monkeypatch):
+    import closure.io
+
+    events = []
+    real = closure.io.sha256_file
+
+    def spy(path, *args, cancel=None, **kwargs):
+        events.append(cancel)
+        return real(path, *args, cancel=cancel, **kwargs)
+
+    monkeypatch.setattr(closure.io, "sha256_file", spy)
+    model = pipeline.discover(_spec(smooth_file, resamples=0))
+    assert model.provenance["sha256"] == real(smooth_file)
+    assert len(events) == 1 and not events[0].is_set()
+
+    def broken(*args, **kwargs):
+        raise UserError("map failed")
+
+    monkeypatch.setattr(pipeline, "_map", broken)
+    with pytest.raises(UserError, match="map failed"):
+        pipeline.discover(_spec(smooth_file, resamples=0))
+    assert len(events) == 2 and events[1].is_set()
