@@ -284,5 +284,11 @@ def test_redis_restart_mid_job_loses_nothing(stack, client, data):
         if not status["reused"]:
             p = status["progress"]
             assert p["snapshots_done"] == p["snapshots_total"] == N_SNAPSHOTS
+    # both workers are still the same processes, and both serve the queue again
     assert all(p.poll() is None for p in stack.worker_procs)
-    assert client.health()["workers"] >= 2
+    deadline = time.monotonic() + 30
+    while client.health()["workers"] < 2:
+        assert time.monotonic() < deadline, client.health()
+        time.sleep(0.2)
+    job2 = client.submit(spec_dict(data, seed=9))
+    wait_ok(client, job2["id"])

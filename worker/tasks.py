@@ -1,8 +1,9 @@
 """rq tasks: thin glue that moves inputs and outputs of closure.pipeline through the store.
 
 Arguments and return values are plain JSON (job ids, snapshot indices, small dicts); arrays go
-through the store's files. Every task is safe to run twice: a map task overwrites its stats
-file atomically, a reduce task that finds its model already stored just reports it.
+through the store's files. Every task is safe to run twice: a map task (a group of snapshots,
+see worker.queue.split_snapshots) overwrites each snapshot's stats file atomically, a reduce
+task that finds its model already stored just reports it.
 Errors a user can fix (closure.errors.UserError) fail the job at once with their message;
 anything else raises, so rq retries the task.
 """
