@@ -19,7 +19,7 @@ from fastapi.responses import JSONResponse
 
 from api.deps import Settings
 from api.errors import AuthError, status_for
-from api.routers import datasets, health, jobs, models
+from api.routers import datasets, health, jobs, models, reports, runs
 from closure import __version__
 from closure.errors import UserError
 
@@ -39,7 +39,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.store = None
     app.state.redis = None
-    for module in (jobs, datasets, models, health):
+    for module in (jobs, datasets, models, runs, reports, health):
         app.include_router(module.router)
     _install_error_handlers(app)
     return app

@@ -282,3 +282,42 @@ class Client:
 
     def dataset(self, dataset_id: str) -> dict:
         return self._json("GET", f"/datasets/{dataset_id}")
+
+    # -- a posteriori runs and reports
+
+    def run_aposteriori(self, model_id: str, spec: dict | None = None, **options) -> dict:
+        """Queue an a posteriori run of a stored model against the baselines (the coarse
+        solver, from its input file by default); returns the job's status (follow it with
+        :meth:`wait`). ``spec``/``options``: fields of :class:`closure.spec.AposterioriSpec`
+        (``time``, ``viscosity``, ``baselines`` ...)."""
+        from closure.spec import parse_aposteriori_spec
+
+        body = {**(spec or {}), **options}
+        parse_aposteriori_spec(body)  # the same message locally as the server would give
+        return self._json("POST", f"/models/{model_id}/les", json=body)
+
+    def aposteriori(self, model_id: str) -> dict:
+        """A model's latest a posteriori result: ``runs`` (status, blow-up time), ``table``
+        (text) and ``result`` (the full comparison)."""
+        return self._json("GET", f"/models/{model_id}/les")
+
+    def report_files(self, model_id: str) -> list[str]:
+        """The files of a model's HTML report (the server builds it when needed)."""
+        return self._json("GET", f"/models/{model_id}/report",
+                          params={"format": "json"})["files"]
+
+    def report_file(self, model_id: str, name: str) -> bytes:
+        """One file of a model's report (``index.html`` or a figure)."""
+        return self._request("GET", f"/models/{model_id}/report/{name}").content
+
+    def download_report(self, model_id: str, out_dir: str | os.PathLike) -> Path:
+        """Write a model's report folder (index.html and its PNGs) to ``out_dir``, replacing
+        an earlier report there (never another folder's contents); returns ``out_dir``."""
+        from closure.report.page import _atomic_folder
+
+        out_dir = Path(out_dir)
+        names = self.report_files(model_id)
+        with _atomic_folder(out_dir) as tmp:
+            for name in names:
+                (tmp / name).write_bytes(self.report_file(model_id, name))
+        return out_dir

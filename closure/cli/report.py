@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import typer
@@ -61,7 +62,8 @@ def _echo_progress():
 
 
 def report(
-    model: Path = typer.Argument(..., help="model file (.json) written by closure discover",
+    model: Path = typer.Argument(..., help="model file (.json) written by closure discover, "
+                                 "or the id of a model stored by the service (m-...)",
                                  show_default=False),
     output: Path = typer.Option(..., "-o", "--output", help="report folder to write "
                                 "(index.html + PNGs; an earlier report there is replaced)",
@@ -78,11 +80,30 @@ def report(
         None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 or 6-9 (default: "
         "the model's held-out snapshots)", show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the folder"),
+    server: str | None = typer.Option(None, "--server", help="service URL, for a stored model "
+                                      "id (default: $CLOSURE_SERVER, the running local "
+                                      "stack, or http://127.0.0.1:8000)", show_default=False),
+    token: str | None = typer.Option(None, "--token", help="bearer token, for a stored model "
+                                     "id (default: $CLOSURE_TOKEN)", show_default=False),
 ) -> None:
     """Write a self-contained HTML report of a model: summary, terms, a priori scores and
-    figures, warnings, and the a posteriori and sweep figures when given."""
+    figures, warnings, and the a posteriori and sweep figures when given.
+
+    Given a stored model's id (not a file), the service builds the report (with the model's
+    latest a posteriori result) and it is downloaded into the folder."""
     from closure.report import build_report
 
+    if not model.exists() and re.fullmatch(r"m-[0-9a-f]{6,64}", str(model)):
+        given = [name for name, v in (("--input", input), ("--les", les), ("--sweep", sweep),
+                                      ("--snapshots", snapshots)) if v is not None]
+        if given:
+            raise OptionError(f"{', '.join(given)} apply to model files; the service builds "
+                              f"the report of stored model {model} from its own files")
+        from closure.cli.service import fetch_report
+
+        out = fetch_report(str(model), output, server, token)
+        typer.echo(str(out / "index.html"))
+        return
     indices = parse_indices(snapshots)
     out = build_report(model, output, input, les=les, sweep=sweep, snapshots=indices,
                        progress=None if quiet else _echo_progress())

@@ -402,6 +402,13 @@ def export(model_id: str = typer.Argument(..., help="model id"),
         typer.echo(f"written: {output}")
 
 
+def fetch_report(model_id: str, output: Path, server: str | None = None,
+                 token: str | None = None) -> Path:
+    """Download a stored model's HTML report (built by the server) into ``output``."""
+    with _client(server, token) as c:
+        return c.download_report(model_id, output)
+
+
 # --------------------------------------------------------------------------- demo
 
 def demo(
