@@ -27,7 +27,6 @@ import math
 import os
 import re
 import shutil
-import tempfile
 import time
 import uuid
 from pathlib import Path
@@ -36,6 +35,7 @@ from typing import Any
 import sqlalchemy as sa
 from sqlalchemy.exc import DBAPIError, IntegrityError, OperationalError, ProgrammingError
 
+from closure.atomic import write_text
 from closure.errors import UserError
 
 JOB_STATES = ("queued", "running", "succeeded", "failed", "canceled")
@@ -133,19 +133,7 @@ def dataset_id_for(sha256: str) -> str:
 
 def write_text_atomic(path: str | os.PathLike, text: str) -> Path:
     """Write ``text`` to ``path`` through a temporary file in the same folder and a rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        with contextlib.suppress(FileNotFoundError):
-            os.unlink(tmp)
-    return path
+    return write_text(path, text)
 
 
 def write_json_atomic(path: str | os.PathLike, obj: Any) -> Path:
