@@ -364,7 +364,7 @@ def test_client_and_cli_fetch_a_stored_models_report(with_result, tmp_path, monk
 @pytest.mark.slow
 def test_demo_ends_with_the_report_path_and_the_aposteriori_table(tmp_path):
     home = tmp_path / "home"
-    r = subprocess.run([*CLI, "demo", "--n", "32"], capture_output=True, text=True,
+    r = subprocess.run([*CLI, "demo"], capture_output=True, text=True,
                        timeout=300, env={**__import__("os").environ, "CLOSURE_HOME": str(home)})
     assert r.returncode == 0, r.stderr[-3000:]
     out = r.stdout

@@ -13,7 +13,6 @@ from __future__ import annotations
 import json
 import os
 import sys
-import tempfile
 import time
 from pathlib import Path
 
@@ -412,8 +411,9 @@ def fetch_report(model_id: str, output: Path, server: str | None = None,
 # --------------------------------------------------------------------------- demo
 
 def demo(
-    state_dir: Path = typer.Option(None, "--state-dir", help="keep the stack's files here "
-                                   "(default: a temporary folder, removed after)"),
+    state_dir: Path = typer.Option(None, "--state-dir", help="the demo's folder: data, stack, "
+                                   "store, report (default: $CLOSURE_HOME/demo or "
+                                   "~/.closure/demo; kept after the demo)"),
     n: int = typer.Option(64, "--n", help="grid points per direction of the demo data"),
     snapshots: int = typer.Option(6, "--snapshots", help="snapshots of demo data"),
     workers: int = typer.Option(2, "--workers", min=1, max=16),
@@ -421,43 +421,65 @@ def demo(
 ) -> None:
     """Discover a closure for generated 2-D turbulence through a local stack, end to end.
 
-    Starts Redis, the API and workers in a temporary folder, submits the job, prints the
-    model and where it is stored, and stops the stack."""
-    from closure.client import Client
-    from closure.localstack import LocalStack
+    Starts Redis, the API and workers in the demo folder, submits the discovery job, queues an
+    a posteriori run of the model against the baselines, has the service build the model's
+    report, prints the model, the report's path and the a posteriori table, and stops the
+    stack. Everything stays in the folder (run it again and the stored results are reused)."""
+    from closure.client import Client, JobFailedError
+    from closure.localstack import LocalStack, default_state_dir
 
     t0 = time.monotonic()
-    keep = state_dir is not None
-    tmp = None if keep else tempfile.TemporaryDirectory(prefix="closure-demo-")
-    root = Path(state_dir) if keep else Path(tmp.name)
-    try:
-        data = root / "data"
-        data.mkdir(parents=True, exist_ok=True)
-        path = data / "turb2d.nc"
-        typer.echo(f"generating demo data: 2-D turbulence, {n}x{n}, {snapshots} snapshots")
-        from closure.synth import turb2d, write
+    root = Path(state_dir) if state_dir is not None else default_state_dir() / "demo"
+    data = root / "data"
+    data.mkdir(parents=True, exist_ok=True)
+    path = data / "turb2d.nc"
+    typer.echo(f"generating demo data: 2-D turbulence, {n}x{n}, {snapshots} snapshots")
+    from closure.synth import turb2d, write
 
-        write(turb2d(n=n, snapshots=snapshots), path)
-        stack = LocalStack(root / "stack", port=0, workers=workers, data_roots=[data])
-        typer.echo("starting a local stack (redis, API, workers) ...")
-        with stack:
-            typer.echo(f"service at {stack.server_url}")
-            with Client(stack.server_url) as c:
-                job = c.submit(str(path), ratio=ratio, name="demo")
-                typer.echo(f"job {job['id']} queued")
+    write(turb2d(n=n, snapshots=snapshots), path)
+    stack = LocalStack(root / "stack", port=0, workers=workers, data_roots=[data])
+    typer.echo("starting a local stack (redis, API, workers) ...")
+    les = les_error = None
+    with stack:
+        typer.echo(f"service at {stack.server_url}")
+        with Client(stack.server_url) as c:
+            job = c.submit(str(path), ratio=ratio, name="demo")
+            typer.echo(f"job {job['id']} queued")
+            with _progress(True) as update:
+                doc = c.wait(job["id"], progress=update, timeout=600)
+            model_id = doc["model_id"]
+            model = c.model(model_id)
+            run = c.run_aposteriori(model_id)
+            typer.echo(f"a posteriori run {run['id']} queued (the model and the baselines "
+                       "in the coarse solver)")
+            try:
                 with _progress(True) as update:
-                    doc = c.wait(job["id"], progress=update, timeout=600)
-                model = c.model(doc["model_id"])
-            typer.echo("")
-            typer.echo(model["summary"])
-            typer.echo("")
-            where = Path(stack.store) / "models" / doc["model_id"]
-            typer.echo(f"model {doc['model_id']} stored in {where}"
-                       + ("" if keep else " (a temporary folder, removed now; keep it with "
-                          "--state-dir DIR)"))
-        typer.echo("A priori skill does not guarantee a stable or accurate coarse simulation: "
-                   "validate the model a posteriori before relying on it.")
-        typer.echo(f"demo finished in {time.monotonic() - t0:.1f} s")
-    finally:
-        if tmp is not None:
-            tmp.cleanup()
+                    c.wait(run["id"], progress=update, timeout=600)
+                les = c.aposteriori(model_id)
+            except JobFailedError as exc:
+                les_error = str(exc)
+            c.report_files(model_id)  # the service builds the report (with the a posteriori runs)
+        where = Path(stack.store) / "models" / model_id
+    typer.echo("")
+    typer.echo(model["summary"])
+    typer.echo("")
+    typer.echo(f"model {model_id} stored in {where}")
+    typer.echo(f"report: {where / 'report' / 'index.html'}")
+    typer.echo("")
+    if les is not None:
+        typer.echo("A posteriori: the model and the baselines in the coarse solver (run on the "
+                   "queue), from the filtered first snapshot, against the filtered DNS:")
+        typer.echo(les["table"])
+        for name, r in (les.get("runs") or {}).items():
+            if r.get("status") == "blew up":
+                typer.echo(f"{name}: {r.get('message')}")
+        dynamic = les["result"]["runs"].get("dynamic", {}).get("diagnostics", {})
+        if dynamic.get("dynamic_constant"):
+            c = dynamic["dynamic_constant"]
+            typer.echo(f"dynamic: Germano-Lilly C = C_s^2 from {min(c):.3g} to {max(c):.3g} "
+                       "(negative values clipped to 0)")
+    else:
+        typer.echo(f"A posteriori: no result ({les_error})")
+    typer.echo("A priori skill does not guarantee a stable or accurate coarse simulation: "
+               "validate the model a posteriori before relying on it.")
+    typer.echo(f"demo finished in {time.monotonic() - t0:.1f} s; its files stay in {root}")
