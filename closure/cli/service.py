@@ -432,11 +432,14 @@ def demo(
     root = Path(state_dir) if state_dir is not None else default_state_dir() / "demo"
     data = root / "data"
     data.mkdir(parents=True, exist_ok=True)
-    path = data / "turb2d.nc"
-    typer.echo(f"generating demo data: 2-D turbulence, {n}x{n}, {snapshots} snapshots")
-    from closure.synth import turb2d, write
+    path = data / f"turb2d-{n}x{n}-{snapshots}.nc"
+    if path.is_file():  # the same data as before: the stored model and results are reused
+        typer.echo(f"demo data: {path} (generated before)")
+    else:
+        typer.echo(f"generating demo data: 2-D turbulence, {n}x{n}, {snapshots} snapshots")
+        from closure.synth import turb2d, write
 
-    write(turb2d(n=n, snapshots=snapshots), path)
+        write(turb2d(n=n, snapshots=snapshots), path)
     stack = LocalStack(root / "stack", port=0, workers=workers, data_roots=[data])
     typer.echo("starting a local stack (redis, API, workers) ...")
     les = les_error = None
