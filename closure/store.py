@@ -8,7 +8,8 @@ Layout under the store root::
     jobs/<job id>/stats/<i>.npz    ... and one SufficientStats file per snapshot
     models/<model id>/             model.json, spec.json, plan.json, diagnostics.json,
                                    summary.txt, stats/
-    models/<model id>/les/         the latest a posteriori run: les.json, table.txt, request.json
+    models/<model id>/les/         a posteriori runs: <run>/les.json, table.txt, request.json
+                                   (one per option set) and latest.json
     models/<model id>/report/      the HTML report, built on demand (index.html + PNGs)
 
 Every file is written to a temporary name and renamed into place; a model folder is built
@@ -282,7 +283,8 @@ class Store:
         return self.root / "models" / _check_id(model_id)
 
     def aposteriori_dir(self, model_id: str) -> Path:
-        """A model's latest a posteriori run: les.json, table.txt, request.json."""
+        """A model's a posteriori runs: ``<run>/`` (les.json, table.txt, request.json) per
+        option set, and ``latest.json`` naming the latest."""
         return self.model_dir(model_id) / "les"
 
     def report_dir(self, model_id: str) -> Path:

@@ -188,16 +188,20 @@ def test_queued_run_stores_every_baseline_and_equals_in_process(service, turb2d_
 
 @pytest.mark.slow
 def test_blow_up_is_reported_with_its_time_and_the_worker_takes_the_next_job(service):
+    # a run the solver refuses (no reference snapshot within 1 ms of the start) ...
+    refused = service.post(f"/models/{service.good}/les", json={"time": 1e-3}).json()
     bad = service.post(f"/models/{service.bad}/les", json={"baselines": ["none"]}).json()
     good = service.post(f"/models/{service.good}/les",
                         json={"baselines": ["smagorinsky"]}).json()
-    run_burst(service)  # one worker process takes both, the unstable one first
+    run_burst(service)  # one worker process takes all three, in order
     conn = q.connect(service.redis_url)
-    tasks = [q.fetch(conn, ap.task_id(j["id"])) for j in (bad, good)]
-    assert [t.get_status() for t in tasks] == ["finished", "finished"]
-    assert tasks[0].worker_name == tasks[1].worker_name  # the same worker, still alive
-    assert tasks[1].started_at >= tasks[0].ended_at
+    tasks = [q.fetch(conn, ap.task_id(j["id"])) for j in (refused, bad, good)]
+    assert [t.get_status() for t in tasks] == ["finished"] * 3
+    assert len({t.worker_name for t in tasks}) == 1  # the same worker, still alive
+    assert tasks[0].ended_at <= tasks[1].started_at and tasks[1].ended_at <= tasks[2].started_at
     conn.close()
+    doc = service.get(f"/jobs/{refused['id']}").json()
+    assert doc["state"] == "failed" and "no snapshot after the initial time" in doc["error"]
     for j in (bad, good):
         assert service.get(f"/jobs/{j['id']}").json()["state"] == "succeeded"
     out = service.get(f"/models/{service.bad}/les").json()
