@@ -241,6 +241,25 @@ def test_unknown_model_bad_options_and_no_result_yet(service, tmp_path):
     assert not service.store.aposteriori_dir(service.good).exists()
 
 
+def test_a_task_lost_on_its_last_attempt_fails_the_run_with_a_reason(service):
+    """A work-horse killed on its last attempt runs no failure callback: reading the result
+    reconciles the job with what the queue recorded."""
+    from rq.job import JobStatus
+
+    job = service.post(f"/models/{service.good}/les", json={}).json()
+    conn = q.connect(service.redis_url)
+    task = q.fetch(conn, ap.task_id(job["id"]))
+    task.set_status(JobStatus.FAILED)  # what rq records for the lost task
+    r = service.get(f"/models/{service.good}/les")
+    assert r.status_code == 404
+    assert f"run {job['id']} failed (the a posteriori run failed after" in r.json()["detail"]
+    assert service.get(f"/jobs/{job['id']}").json()["state"] == "failed"
+    # a new request is a new run, not the failed one
+    again = service.post(f"/models/{service.good}/les", json={})
+    assert again.status_code == 202 and again.json()["id"] != job["id"]
+    conn.close()
+
+
 # --------------------------------------------------------------------------- reports
 
 @pytest.fixture
