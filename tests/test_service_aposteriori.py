@@ -216,6 +216,15 @@ def test_blow_up_is_reported_with_its_time_and_the_worker_takes_the_next_job(ser
     assert ok["runs"]["smagorinsky"]["status"] == "completed"
 
 
+def test_openapi_documents_the_new_routes(service):
+    doc = service.get("/openapi.json").json()
+    for path in ("/models/{model_id}/les", "/models/{model_id}/report",
+                 "/models/{model_id}/report/", "/models/{model_id}/report/{filename}"):
+        assert path in doc["paths"], path
+    assert {"post", "get"} <= set(doc["paths"]["/models/{model_id}/les"])
+    assert "AposterioriSpec" in doc["components"]["schemas"]
+
+
 def test_unknown_model_bad_options_and_no_result_yet(service, tmp_path):
     for method, url in (("GET", "/models/m-nope/les"), ("POST", "/models/m-nope/les"),
                         ("GET", "/models/m-nope/report"), ("GET", "/models/m-nope/report/"),
