@@ -215,8 +215,36 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "library": library_info,
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
-        "warnings": list(cg.warnings()),
+        "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library),
     }
+
+
+#: Relative divergence above which the incompressible-only pruning of the library is doubtful.
+DIVERGENCE_TOLERANCE = 1e-3
+
+
+def _compressibility_warning(src, index: int, library) -> list[str]:
+    """Warn when the library left out terms that are dependent only on incompressible fields
+    and the data's velocity is not divergence-free (rms div u against rms |grad u|)."""
+    pruned = [d.split(":")[0] for d in library.dropped if "on incompressible fields" in d]
+    if not pruned or len(src.velocity) < 2:
+        return []
+    from closure.derivatives import derivative
+    from closure.grid import DIRECTION_OF
+    from closure.residuals import fine_scheme
+
+    snap = src.snapshot(index)
+    grid, scheme = snap.grid, fine_scheme(snap.grid)
+    diagonal = [derivative(snap.fields[c], grid, DIRECTION_OF[c], 1, scheme)
+                for c in src.velocity]
+    gradient_sq = sum(np.mean(derivative(snap.fields[c], grid, d, 1, scheme) ** 2)
+                      for c in src.velocity for d in grid.dims)
+    ratio = float(np.sqrt(np.mean(sum(diagonal) ** 2) / max(gradient_sq, np.finfo(float).tiny)))
+    if ratio <= DIVERGENCE_TOLERANCE:
+        return []
+    return [f"the velocity is not divergence-free (rms div u / rms |grad u| = {ratio:.2g} in "
+            f"snapshot {index}), but the library left out {', '.join(pruned)} as dependent on "
+            "incompressible fields: for compressible data list them in a terms file"]
 
 
 # ---------------------------------------------------------------------- map

@@ -308,3 +308,20 @@ def test_discover_hashes_while_mapping_and_stops_the_hash_on_failure(smooth_file
     with pytest.raises(UserError, match="map failed"):
         pipeline.discover(_spec(smooth_file, resamples=0))
     assert len(events) == 2 and events[1].is_set()
+
+
+def test_compressible_velocity_warns_about_the_incompressible_pruning(smooth_file, tmp_path):
+    # The 2-D default library leaves out S S and R R because, with tr S = 0, S S = (|S|^2/4) I
+    # and R R = -(omega^2/4) I are isotropic (Cayley-Hamilton for 2x2 matrices:
+    # A^2 = tr(A) A - det(A) I).
+    # A divergent velocity breaks that, so the plan must say so; a solenoidal one must not.
+    assert pipeline.plan(_spec(smooth_file))["warnings"] == []
+    with xr.open_dataset(smooth_file) as ds:
+        ds = ds.load()
+    x = ds["x"].values
+    ds["u"] = ds["u"] + 0.5 * np.sin(x)[None, None, :]  # d_x u != 0 with v unchanged
+    divergent = write_netcdf(ds, tmp_path / "divergent.nc")
+    warnings = pipeline.plan(_spec(divergent))["warnings"]
+    assert len(warnings) == 1
+    assert "not divergence-free" in warnings[0]
+    assert "strain_squared" in warnings[0] and "rotation_squared" in warnings[0]
