@@ -276,6 +276,5 @@ def reconcile(store: Store, conn, row: dict) -> dict:
 
 
 def status(store: Store, conn, job_id: str) -> dict:
-    """The status document of a job (closure's usual one), reconciling a posteriori tasks."""
-    reconcile(store, conn, store.get_job(job_id))
+    """The status document of a job (closure's usual one; it reconciles a posteriori tasks)."""
     return q.status(store, conn, job_id)

@@ -178,6 +178,10 @@ def reconcile(store, conn: redis.Redis, row: dict) -> dict:
     Returns the (possibly updated) row."""
     if row["state"] not in ("queued", "running"):
         return row
+    from worker import aposteriori  # imports this module
+
+    if aposteriori.is_aposteriori(row):  # one task of its own, not plan/map/reduce
+        return aposteriori.reconcile(store, conn, row)
     for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting")):
         job = fetch(conn, rq_id)
         if job is None:
