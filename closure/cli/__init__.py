@@ -32,9 +32,9 @@ def version() -> None:
 
 
 # Each module defines ``register(app)``; the order here is the order in --help.
-from closure.cli import synth, coarse, discover, apply, service, les, report  # noqa: E402,I001
+from closure.cli import synth, coarse, discover, terms, apply, service, les, report  # noqa: E402,I001
 
-for _module in (synth, coarse, discover, apply, service, les, report):
+for _module in (synth, coarse, discover, terms, apply, service, les, report):
     _module.register(app)
 
 
