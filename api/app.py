@@ -76,6 +76,14 @@ def _install_error_handlers(app: FastAPI) -> None:
                       "the catalog database is not answering; try again shortly")
 
 
+def ctx_error(err: dict) -> str:
+    """The parser's own reason for a JSON decode error, with its position."""
+    ctx = err.get("ctx") or {}
+    reason = ctx.get("error") or "decode error"
+    loc = err.get("loc") or ()
+    return f"{reason} at character {loc[-1]}" if len(loc) > 1 else str(reason)
+
+
 def _describe(err: dict) -> dict:
     """One validation error as {field, message}: the path without FastAPI's 'body'/'query'
     prefix, and the allowed values for a choice."""
@@ -83,8 +91,11 @@ def _describe(err: dict) -> dict:
     where = loc[0] if loc else ""
     if where in ("body", "query", "path", "header"):
         loc = loc[1:]
-    field = ".".join(loc) or ("request body" if where == "body" else "request")
     message = err.get("msg", "invalid")
+    if err.get("type") == "json_invalid":  # loc is (body, character offset)
+        loc = []
+        message = f"the request body is not valid JSON ({ctx_error(err)}); send the spec as JSON"
+    field = ".".join(loc) or ("request body" if where == "body" else "request")
     ctx = err.get("ctx") or {}
     if err.get("type") == "literal_error" and "expected" in ctx:
         message = f"must be one of {ctx['expected']}"

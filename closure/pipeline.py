@@ -150,6 +150,13 @@ def plan(spec: JobSpec) -> dict:
     return p
 
 
+def check(spec: JobSpec) -> dict:
+    """Check the spec against its input file as :func:`plan` does, without hashing the file
+    (cheap enough to answer a submission at once); returns the plan with ``sha256`` None."""
+    with _open(spec) as src:
+        return _plan(spec, src, None)
+
+
 def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     """The plan from an open source; ``sha`` is the input's SHA-256 (None: filled in later)."""
     from closure.io import sha256_file

@@ -223,6 +223,17 @@ def test_spec_with_unknown_field_or_no_input(client, turb2d_file):  # noqa: F811
         r.json()["detail"]
     r = client.post("/jobs", content=b"{not json", headers={"Content-Type": "application/json"})
     assert r.status_code == 422
+    assert r.json()["detail"].startswith("invalid request: request body: the request body is "
+                                         "not valid JSON")
+
+
+def test_a_ratio_the_grid_cannot_take_is_refused_at_submission(client, turb2d_file):  # noqa: F811
+    spec = spec_for(turb2d_file)
+    spec["filter"] = {"kind": "gaussian", "ratio": 3}  # 128 points do not tile by 3
+    r = client.post("/jobs", json=spec)
+    assert r.status_code in (400, 422)
+    assert "not a multiple of the ratio 3" in r.json()["detail"]
+    assert nothing_kept(client.store_root)
 
 
 def test_target_must_be_known(client, turb2d_file):  # noqa: F811

@@ -182,16 +182,32 @@ def test_cli_client_commands(stack, data, tmp_path):
     model_json = tmp_path / "model.json"
     r = run("wait", job_id, "-o", str(model_json), "-q")
     assert "succeeded" in r.stdout and model_json.exists()
+    # the full model file, as `closure discover` writes it (apply, report and les read it)
+    from closure.model import ClosureModel
+
+    assert ClosureModel.load(model_json).filter["kind"] == "box"
     assert '"state": "succeeded"' in run("status", job_id, "--json").stdout
     listing = run("models", "--filter", "box").stdout
     model_id = [ln.split()[0] for ln in listing.splitlines() if ln.startswith("m-")][0]
     assert "Closure model" in run("show", model_id).stdout
     assert "subroutine" in run("export", model_id, "--lang", "fortran").stdout.lower()
-    # a job that fails: wait exits 1 with the error
-    out = run("submit", str(data), "--snapshots", "3", "--seed", "3").stdout
+    # an option the data cannot take is refused at submission: status 2, nothing queued
+    r = run("submit", str(data), "--snapshots", "3", "--seed", "3", check=False)
+    assert r.returncode == 2 and "at least 2" in r.stderr
+    # a job that fails in a worker (a NaN in a later snapshot, found when it is read): wait
+    # exits 1 with the error
+    import xarray as xr
+
+    with xr.open_dataset(data) as ds:
+        ds = ds.load()
+    ds["u"][-1, 0, 0] = float("nan")
+    from closure.io import write_netcdf
+
+    broken = write_netcdf(ds, data.parent / "broken.nc")
+    out = run("submit", str(broken), "--seed", "3").stdout
     bad = out.strip().splitlines()[-1]
     r = run("wait", bad, "-q", check=False)
-    assert r.returncode == 1 and "at least 2" in r.stderr
+    assert r.returncode == 1 and "NaN" in r.stderr
     # a user error in the options: status 2 and the field named
     r = run("submit", str(data), "--filter", "tophat", check=False)
     assert r.returncode == 2 and "filter.kind" in r.stderr

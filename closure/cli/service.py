@@ -223,7 +223,8 @@ def submit(
                                   "(repeatable)"),
     scalar: list[str] = typer.Option(None, "--scalar", help="passive scalar to carry"),
     snapshots: str = typer.Option(None, "--snapshots", help="time indices, e.g. 0-7 or 0,2,4"),
-    periodic: bool = typer.Option(None, "--periodic/--no-periodic"),
+    non_periodic: bool = typer.Option(False, "--non-periodic",
+                                      help="the data are not periodic (real-space filters)"),
     name: str = typer.Option(None, "--name", help="a label for the job"),
     upload: bool = typer.Option(None, "--upload/--by-path", help="always upload the file, or "
                                 "never (default: by path when under the server's data roots, "
@@ -251,7 +252,8 @@ def submit(
         ratio=ratio, target=target, library=library, method=method, scheme=scheme,
         test_fraction=test_fraction, resamples=resamples, seed=seed,
         variables=_parse_vars(var), scalars=scalar or None,
-        snapshots=_parse_snapshots(snapshots), periodic=periodic, base=base)
+        snapshots=_parse_snapshots(snapshots), periodic=False if non_periodic else None,
+        base=base)
     if input is not None:
         if not input.is_file() and upload:
             raise OptionError(f"{input}: no such file")
@@ -296,9 +298,7 @@ def wait(job_id: str = typer.Argument(..., help="job id"),
             raise typer.Exit(1) from None
         typer.echo(f"job {job_id} succeeded: model {doc['model_id']}")
         if output is not None:
-            from closure.store import write_text_atomic
-
-            write_text_atomic(output, c.export(doc["model_id"], "json"))
+            c.closure_model(doc["model_id"]).save(output)  # the full model file, as discover's
             typer.echo(f"model written to {output}")
 
 
