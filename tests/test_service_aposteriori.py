@@ -374,8 +374,8 @@ def test_client_and_cli_fetch_a_stored_models_report(with_result, tmp_path, monk
     from closure.cli import main
 
     class InProcess(Client):
-        def close(self):  # the test client stays open for the next command
-            pass
+        def close(self):
+            """Keep the test client open for the next command."""
 
     monkeypatch.setattr(cli_service, "_client",
                         lambda server, token: InProcess("http://testserver", http=service))
