@@ -2,12 +2,11 @@
 
 from __future__ import annotations
 
-import contextlib
-import sys
 from pathlib import Path
 
 import typer
 
+from closure.cli.progress import progress_bar
 from closure.errors import OptionError
 
 
@@ -16,26 +15,8 @@ def register(app: typer.Typer) -> None:
     app.command("discover")(discover)
 
 
-@contextlib.contextmanager
-def _progress_bar(enabled: bool):
-    """A rich progress bar on stderr when it is a terminal; None otherwise."""
-    if not (enabled and sys.stderr.isatty()):
-        yield None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeElapsedColumn
-
-    with Progress("[progress.description]{task.description}", BarColumn(),
-                  MofNCompleteColumn(), TimeElapsedColumn(),
-                  console=Console(stderr=True), transient=True) as bar:
-        task = bar.add_task("planning", total=None)
-        labels = {"plan": "planning", "map": "snapshots", "fit": "fitting",
-                  "score": "scoring held-out snapshots"}
-
-        def update(phase: str, done: int, total: int) -> None:
-            bar.update(task, description=labels.get(phase, phase), completed=done, total=total)
-
-        yield update
+_LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
+           "score": "scoring held-out snapshots"}
 
 
 def build_spec(input: Path, *, filter: str, width: float | None, width_units: str, ratio: int,
@@ -137,7 +118,7 @@ def discover(
                       test_fraction=test_fraction, var=var, scalar=scalar,
                       non_periodic=non_periodic, transfer_weight=transfer_weight, seed=seed,
                       resamples=resamples, snapshots=snapshots)
-    with _progress_bar(not quiet) as progress:
+    with progress_bar(not quiet, "planning", _LABELS) as progress:
         model = pipeline.discover(spec, progress=progress)
     path = model.save(output)
     if not quiet:

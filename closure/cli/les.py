@@ -91,7 +91,7 @@ def les(
 ) -> None:
     """Run a closure (and baselines) in the 2-D coarse solver from filtered-DNS initial fields
     and compare with the filtered DNS over time."""
-    from closure.cli.synth import _progress_bar
+    from closure.cli.progress import progress_bar
     from closure.les import simulate, write_run
 
     if width_units not in ("grid", "coordinate"):
@@ -101,7 +101,7 @@ def les(
                           f"{output / 'run.nc'}")
     closure = _load_model(model)
     label = "model" if closure is not None else "none"
-    with _progress_bar(not quiet) as progress:
+    with progress_bar(not quiet) as progress:
         comparison = simulate(
             closure, initial, reference, model_label=label, filter_kind=filter_kind,
             ratio=ratio, width=width, width_units=width_units, initial_index=initial_index,

@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-import contextlib
-import sys
 from pathlib import Path
 
 import numpy as np
 import typer
 
+from closure.cli.progress import progress_bar
 from closure.errors import OptionError
 
 synth_app = typer.Typer(
@@ -25,32 +24,12 @@ def register(app: typer.Typer) -> None:
     app.add_typer(synth_app, name="synth")
 
 
-@contextlib.contextmanager
-def _progress_bar(enabled: bool):
-    """A rich progress bar on a terminal (stderr); a silent callback otherwise."""
-    if not (enabled and sys.stderr.isatty()):
-        yield None
-        return
-    from rich.console import Console
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeElapsedColumn
-
-    with Progress("[progress.description]{task.description}", BarColumn(),
-                  MofNCompleteColumn(), TimeElapsedColumn(),
-                  console=Console(stderr=True), transient=True) as bar:
-        task = bar.add_task("starting", total=None)
-
-        def update(phase: str, done: int, total: int) -> None:
-            bar.update(task, description=phase, completed=done, total=total)
-
-        yield update
-
-
 def _run(solver, out: Path, quiet: bool, **options) -> None:
     from closure.synth import write
 
     if out.exists() and out.is_dir():
         raise OptionError(f"-o {out} is a folder: give a file name such as {out / 'data.nc'}")
-    with _progress_bar(not quiet) as progress:
+    with progress_bar(not quiet) as progress:
         ds = solver(progress=progress, **options)
     path = write(ds, out)
     if not quiet:
