@@ -209,7 +209,12 @@ def last_error(job: Job) -> str:
             text = result.exc_string
     except Exception:  # noqa: BLE001 - a missing result is reported as such
         text = ""
-    text = text or (job.exc_info or "")
+    if not text:
+        import warnings
+
+        with warnings.catch_warnings():  # rq keeps exc_info only for older results
+            warnings.simplefilter("ignore", DeprecationWarning)
+            text = job.exc_info or ""
     lines = [ln for ln in str(text).strip().splitlines() if ln.strip()]
     return lines[-1].strip() if lines else "no error recorded (the worker was lost)"
 
