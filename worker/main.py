@@ -65,6 +65,15 @@ class ClosureWorker(Worker):
         except Exception as exc:  # noqa: BLE001 - an optimisation only
             log.debug("no warm-up for %s: %s", job_id, exc)
 
+    def heartbeat(self, timeout=None, pipeline=None):
+        """rq's heartbeat, and back into the worker registry if an outage dropped us from it
+        (the registry sets, not the worker's own key, are what Worker.count reads)."""
+        super().heartbeat(timeout, pipeline)
+        if not self.stop_asked:
+            from rq import worker_registration
+
+            worker_registration.register(self, pipeline)
+
     def request_stop(self, signum, frame):
         self.stop_asked = True
         super().request_stop(signum, frame)
