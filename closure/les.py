@@ -548,6 +548,12 @@ class Comparison:
     metrics: dict[str, dict]
     settings: dict = field(default_factory=dict)
 
+    def to_json(self) -> str:
+        """:meth:`to_dict` as JSON text; NaN and Inf (a blown-up run) become null."""
+        import json
+
+        return json.dumps(_finite(self.to_dict()), indent=1, allow_nan=False)
+
     def to_dict(self) -> dict:
         """Plain JSON: {"runs": {label: {"time", "energy", "enstrophy", "spectrum": {"k",
         "E"}, "vorticity_pdf": {"x", "density"}, "blowup_time", "status", "message",
@@ -909,3 +915,16 @@ def write_run(comparison: Comparison, path, label: str | None = None):
              "note": "A priori skill does not guarantee a stable or accurate coarse "
                      "simulation; validate a posteriori before relying on a model."}
     return write_netcdf(xr.Dataset(data, coords=coords, attrs=attrs), path)
+
+
+def _finite(obj):
+    """NaN and Inf become null (JSON has no NaN); numpy values become Python ones."""
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if isinstance(obj, dict):
+        return {k: _finite(v) for k, v in obj.items()}
+    if isinstance(obj, list | tuple):
+        return [_finite(v) for v in obj]
+    if hasattr(obj, "tolist"):  # numpy scalars and arrays
+        return _finite(obj.tolist())
+    return obj

@@ -23,7 +23,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import os
 import shutil
 import time
@@ -176,8 +175,7 @@ def save_result(store: Store, model_id: str, comparison, request: dict) -> Path:
     tmp = base / f".tmp-{name}-{uuid.uuid4().hex[:8]}"
     tmp.mkdir()
     try:
-        text = json.dumps(_finite(comparison.to_dict()), indent=1, allow_nan=False,
-                          default=_plain)
+        text = comparison.to_json()
         write_text_atomic(tmp / "les.json", text)
         write_text_atomic(tmp / "table.txt", comparison.table() + "\n")
         write_json_atomic(tmp / "request.json", request)
@@ -219,25 +217,6 @@ def read_result(store: Store, model_id: str, fp: str | None = None) -> dict | No
     return {"run": folder.name, "request": read_json(folder / "request.json"),
             "table": (folder / "table.txt").read_text(encoding="utf-8").rstrip("\n"),
             "result": read_json(folder / "les.json")}
-
-
-def _finite(obj):
-    """NaN and Inf become null (JSON has no NaN)."""
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_finite(v) for v in obj]
-    if hasattr(obj, "tolist"):  # numpy scalars and arrays
-        return _finite(obj.tolist())
-    return obj
-
-
-def _plain(obj):
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    raise TypeError(f"cannot write {type(obj).__name__} to JSON")
 
 
 # --------------------------------------------------------------------------- jobs

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import typer
@@ -22,33 +21,6 @@ def _load_model(spec: str):
     from closure.model import ClosureModel
 
     return ClosureModel.load(spec)
-
-
-def _write_json(data: dict, path: Path) -> None:
-    write_text(path, json.dumps(data, indent=1, allow_nan=False, default=_plain))
-
-
-def _plain(obj):
-    import numpy as np
-
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    raise TypeError(f"cannot write {type(obj).__name__} to JSON")
-
-
-def _finite(obj):
-    """NaN and Inf become null (JSON has no NaN)."""
-    import math
-
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if isinstance(obj, dict):
-        return {k: _finite(v) for k, v in obj.items()}
-    if isinstance(obj, list | tuple):
-        return [_finite(v) for v in obj]
-    return obj
 
 
 def les(
@@ -111,7 +83,7 @@ def les(
             energy_bound=energy_bound, progress=progress)
     path = write_run(comparison, output, label)
     if json_out is not None:
-        _write_json(_finite(comparison.to_dict()), json_out)
+        write_text(json_out, comparison.to_json())
     if quiet:
         return
     s = comparison.settings
