@@ -45,13 +45,15 @@ class Snapshot:
 
     ``fields`` maps our names (``u, v, w`` and scalar names) to float64 arrays of
     ``grid.shape``; ``index`` is the snapshot's position in the file; ``time`` its time
-    coordinate (file units) or None.
+    coordinate (file units) or None. ``mask``: a boolean array of ``grid.shape``, True where
+    the point is fluid (False on land or missing values), or None when every point is fluid.
     """
 
     fields: dict[str, np.ndarray]
     grid: Grid
     index: int
     time: float | None
+    mask: np.ndarray | None = None
 
 
 def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20,

@@ -80,6 +80,9 @@ class CoarseSnapshot:
     coarse_graining: CoarseGraining
     index: int
     time: float | None
+    #: boolean array of the coarse grid's shape, True where the coarse point may enter fits
+    #: and scores (its filter footprint and derivative stencils see no land); None: all valid
+    valid: np.ndarray | None = None
 
     @property
     def velocity(self) -> tuple[str, ...]:
