@@ -97,7 +97,8 @@ def test_output_variables_and_attributes(few_modes, tmp_path, capsys):
                             "--width", 0.9, "--width-units", "coordinate", "--ratio", 2,
                             "--var", "u=U", "--var", "v=V", "--scalar", "theta", "-o", out)
     assert code == 0, err
-    assert err == ""
+    # nothing but progress lines on stderr (no warnings)
+    assert [line for line in err.splitlines() if not line.startswith("progress: ")] == []
     ds = xr.open_dataset(out)
     expected = {"U", "V", "theta", "vorticity", "tau_xx", "tau_xy", "tau_yy", "force_x",
                 "force_y", "flux_theta_x", "flux_theta_y", "pi", "vorticity_forcing",
@@ -150,16 +151,18 @@ def test_3d_and_1d_names(make_netcdf, tmp_path, capsys):
         assert ds.attrs["periodic"] == 0 and "fd4" in ds.attrs["subgrid_derivatives"]
 
 
-def test_progress_bar_only_on_a_terminal(few_modes, tmp_path, capsys, monkeypatch):
+def test_progress_bar_on_a_terminal_lines_in_a_log(few_modes, tmp_path, capsys, monkeypatch):
     import sys
 
     args = ("coarse-grain", few_modes, "--var", "u=U", "--var", "v=V", "--ratio", 2)
-    code, stdout, _ = run(capsys, *args, "-o", tmp_path / "quiet.nc")
+    code, stdout, err = run(capsys, *args, "-o", tmp_path / "log.nc")
     assert code == 0 and stdout.count("\n") == 1 and stdout.startswith("wrote ")
-    monkeypatch.setattr(sys.stdout, "isatty", lambda: True)
+    assert "progress: coarse-graining snapshots 2/2" in err  # plain lines for a batch log
+    monkeypatch.setattr(sys.stderr, "isatty", lambda: True)
     monkeypatch.setenv("FORCE_COLOR", "1")  # rich decides from the stream; make it a terminal
-    code, stdout, _ = run(capsys, *args, "-o", tmp_path / "bar.nc")
-    assert code == 0 and "coarse-graining" in stdout and "2/2" in stdout
+    code, stdout, err = run(capsys, *args, "-o", tmp_path / "bar.nc")
+    assert code == 0 and stdout.count("\n") == 1
+    assert "coarse-graining" in err and "2/2" in err and "progress: " not in err
 
 
 def test_narrow_filter_warns_on_stderr(few_modes, tmp_path, capsys):
@@ -222,6 +225,8 @@ def test_bad_input_gives_a_clear_error_and_leaves_the_input_alone(case, make_net
     out = tmp_path / "out.nc"
     code, _, err = run(capsys, "coarse-grain", path, *extra, "-o", out)
     assert code == 2
+    err = "".join(line for line in err.splitlines(keepends=True)
+                  if not line.startswith("progress: "))
     assert err.startswith("error: ") and err.count("\n") == 1, err
     assert "Traceback" not in err
     assert re.search(pattern, err), err

@@ -18,8 +18,19 @@ app = typer.Typer(
 
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from closure import __version__
+
+        typer.echo(__version__)
+        raise typer.Exit()
+
+
 @app.callback()
-def _root() -> None:
+def _root(
+    version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
+                                 help="Print the closure version and exit."),
+) -> None:
     """Discover subgrid-scale closures from high-resolution simulation data."""
 
 

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import sys
-from contextlib import nullcontext
 from pathlib import Path
 
 import numpy as np
@@ -80,21 +78,25 @@ def coarse_grain(
 
 
 def _progress(total: int):
-    """A rich progress bar on a terminal; nothing otherwise. Yields an ``advance()``."""
-    if not sys.stdout.isatty():
-        return nullcontext(lambda: None)
+    """Progress of the snapshots: a bar on a terminal, plain lines in a batch log. Yields an
+    ``advance()``."""
     from contextlib import contextmanager
 
-    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
+    from closure.cli.progress import progress_bar
 
     @contextmanager
-    def bar():
-        with Progress("coarse-graining", BarColumn(), MofNCompleteColumn(),
-                      TimeRemainingColumn(), transient=True) as p:
-            task = p.add_task("snapshots", total=total)
-            yield lambda: p.advance(task)
+    def counter():
+        with progress_bar(True, "coarse-graining") as update:
+            done = [0]
+            update("coarse-graining snapshots", 0, total)
 
-    return bar()
+            def advance() -> None:
+                done[0] += 1
+                update("coarse-graining snapshots", done[0], total)
+
+            yield advance
+
+    return counter()
 
 
 def register(app: typer.Typer) -> None:

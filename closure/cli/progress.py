@@ -1,22 +1,56 @@
-"""The progress bar that long commands show on a terminal."""
+"""The progress that long commands show: a bar on a terminal, plain lines in batch logs."""
 
 from __future__ import annotations
 
 import contextlib
 import sys
+import time
 from collections.abc import Callable, Iterator, Mapping
 
 Progress = Callable[[str, int, int], None]
+
+#: seconds between two progress lines of the same phase when stderr is not a terminal
+LINE_INTERVAL = 10.0
+
+
+def progress_lines(labels: Mapping[str, str] | None = None, interval: float = LINE_INTERVAL,
+                   stream=None, clock: Callable[[], float] = time.monotonic) -> Progress:
+    """A ``progress(phase, done, total)`` callback writing plain lines for batch logs:
+    ``progress: <phase> <done>/<total> (<elapsed> s)``, one when a phase starts, one when it
+    completes, and at most one per ``interval`` seconds in between."""
+    labels = labels or {}
+    start = clock()
+    state = {"phase": None, "last": -float("inf"), "finished": set()}
+
+    def update(phase: str, done: int, total: int) -> None:
+        now = clock()
+        complete = bool(total) and done >= total
+        if phase == state["phase"] and not complete and now - state["last"] < interval:
+            return
+        if complete and phase in state["finished"]:
+            return
+        if complete:
+            state["finished"].add(phase)
+        state["phase"], state["last"] = phase, now
+        count = f"{done}/{total}" if total else f"{done}"
+        out = stream if stream is not None else sys.stderr
+        print(f"progress: {labels.get(phase, phase)} {count} ({now - start:.1f} s)", file=out,
+              flush=True)
+
+    return update
 
 
 @contextlib.contextmanager
 def progress_bar(enabled: bool, first: str = "starting",
                  labels: Mapping[str, str] | None = None) -> Iterator[Progress | None]:
-    """A rich progress bar on stderr when it is a terminal, as a ``progress(phase, done,
-    total)`` callback (phases shown through ``labels``); None otherwise, so output that goes to
-    a file or a pipe stays clean."""
-    if not (enabled and sys.stderr.isatty()):
+    """Progress on stderr as a ``progress(phase, done, total)`` callback (phases shown
+    through ``labels``): a rich bar on a terminal, plain throttled lines otherwise (batch logs
+    see what a long command is doing); None when disabled. Standard output stays clean."""
+    if not enabled:
         yield None
+        return
+    if not sys.stderr.isatty():
+        yield progress_lines(labels)
         return
     from rich.console import Console
     from rich.progress import BarColumn, MofNCompleteColumn, TimeElapsedColumn
