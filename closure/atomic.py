@@ -20,6 +20,12 @@ def _umask() -> int:
     return mask
 
 
+def ordinary_mode(path: str | os.PathLike) -> None:
+    """Give ``path`` the mode an ordinary ``open()`` would (0666 less the umask), instead of
+    the 0600 that ``mkstemp`` leaves on a temporary file written in place by a library."""
+    os.chmod(path, 0o666 & ~_umask())
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success it is renamed to ``path``.
@@ -33,7 +39,7 @@ def atomic_path(path: str | os.PathLike) -> Iterator[Path]:
     os.close(fd)
     try:
         yield Path(tmp)
-        os.chmod(tmp, 0o666 & ~_umask())
+        ordinary_mode(tmp)
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, path)

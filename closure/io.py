@@ -27,6 +27,7 @@ import netCDF4
 import numpy as np
 import xarray as xr
 
+from closure.atomic import ordinary_mode
 from closure.errors import InputFileError, UserError
 from closure.filters import CoarseGraining
 from closure.grid import DIRECTION_OF, SPATIAL_DIMS, VELOCITY_OF, Grid
@@ -632,6 +633,7 @@ class CoarseWriter:
             self.abort()
             raise UserError("no snapshots to write")
         self._nc.close()
+        ordinary_mode(self._tmp)
         os.replace(self._tmp, self.path)
         self._done = True
         return self.path
@@ -797,6 +799,7 @@ def write_netcdf(ds: xr.Dataset, path: str | os.PathLike, compress: bool = True)
     os.close(fd)
     try:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+        ordinary_mode(tmp)
         os.replace(tmp, path)
     finally:
         with contextlib.suppress(FileNotFoundError):

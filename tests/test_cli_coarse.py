@@ -255,3 +255,21 @@ def test_parse_var_options():
         parse_var_options(["u=A", "u=B"])
     with pytest.raises(OptionError, match="expects"):
         parse_var_options(["u="])
+
+
+def test_output_files_honour_the_umask(few_modes, tmp_path, capsys):
+    import os
+    import stat
+
+    from closure.io import write_netcdf
+
+    old = os.umask(0o022)
+    try:
+        code, _, err = run(capsys, "coarse-grain", few_modes, "--var", "u=U", "--var", "v=V",
+                           "--ratio", 2, "-o", tmp_path / "c.nc")
+        assert code == 0, err
+        written = write_netcdf(xr.Dataset({"a": ("x", np.zeros(4))}), tmp_path / "w.nc")
+    finally:
+        os.umask(old)
+    for path in (tmp_path / "c.nc", written):
+        assert stat.S_IMODE(path.stat().st_mode) == 0o644  # as open() gives under umask 022
