@@ -12,12 +12,16 @@ import uuid
 
 import pytest
 
-POSTGRES_URL = os.environ.get("CLOSURE_TEST_POSTGRES_URL",
-                              "postgresql+psycopg://postgres@127.0.0.1:5432/test")
+#: the PostgreSQL server the catalog tests may create and drop schemas in: only one named on
+#: purpose (``.ci/run`` names CI's own local server), never whatever happens to answer
+POSTGRES_URL = os.environ.get("CLOSURE_TEST_POSTGRES_URL", "")
 
 
 def postgres_reason() -> str | None:
     """None when the test PostgreSQL answers, else why it is skipped."""
+    if not POSTGRES_URL:
+        return ("CLOSURE_TEST_POSTGRES_URL is not set: name a PostgreSQL server the tests may "
+                "create and drop schemas in, e.g. postgresql+psycopg://postgres@127.0.0.1:5432/test")
     try:
         import sqlalchemy as sa
 
