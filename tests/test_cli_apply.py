@@ -59,7 +59,9 @@ def test_apply_writes_the_model_prediction(tmp_path, coarse_file, capsys):
     assert main(["apply", str(mpath), str(path), "-o", str(out)]) == 0
     text = capsys.readouterr().out
     assert "wrote" in text and "2 snapshot(s) of tau_xx, tau_xy, tau_yy" in text
-    assert "a priori on this file" in text and "a posteriori" in text
+    # the file's source checksum is not the model's input: every snapshot is new to it
+    assert "a priori on the snapshots new to the model (2)" in text and "a posteriori" in text
+    assert "fitted on them" not in text
     ds = xr.open_dataset(out)
     try:
         assert set(ds.data_vars) == {"tau_xx", "tau_xy", "tau_yy"}
@@ -95,6 +97,30 @@ def test_apply_a_priori_skill_matches_a_direct_computation(tmp_path, coarse_file
     assert f"correlation {np.corrcoef(y, p)[0, 1]:.4f}" in text
 
 
+def test_apply_scores_training_and_held_out_snapshots_apart(tmp_path, coarse_file, capsys):
+    # a coarse file made from the model's own input (same source checksum): snapshot 0 was
+    # fitted, snapshot 1 held out; each part is scored on its own snapshots only
+    path, cg, coarse = coarse_file
+    model = fitted_model(coarse, cg, "flux:c")
+    model.provenance.update(sha256="0" * 64, snapshots={"train": [0], "test": [1]})
+    mpath = model.save(tmp_path / "m.json")
+    assert main(["apply", str(mpath), str(path), "-o", str(tmp_path / "p.nc")]) == 0
+    text = capsys.readouterr().out
+    assert "1 snapshot(s) were used to fit it, 1 were held out" in text
+
+    def r2_of(cs):  # r2 = 1 - SSE / SST (common practice), Frobenius weights
+        pred = model.evaluate(cs.fields, cs.grid)
+        y = np.concatenate([cs.targets[c].ravel() for c in model.components])
+        p = np.concatenate([pred[c].ravel() for c in model.components])
+        return 1 - np.sum((y - p) ** 2) / np.sum((y - y.mean()) ** 2)
+
+    held = next(line for line in text.splitlines() if "held-out snapshots (1)" in line)
+    train = next(line for line in text.splitlines() if "training snapshots" in line)
+    assert f"r2 {r2_of(coarse[1]):.4f}" in held and "optimistic" in train
+    assert f"r2 {r2_of(coarse[0]):.4f}" in train
+    assert text.index(held) < text.index(train)  # the honest figure first
+
+
 def test_apply_reads_plain_netcdf_fields(tmp_path, coarse_file, make_netcdf, capsys):
     path, cg, coarse = coarse_file
     model = fitted_model(coarse, cg, "force")
@@ -106,7 +132,7 @@ def test_apply_reads_plain_netcdf_fields(tmp_path, coarse_file, make_netcdf, cap
     out = tmp_path / "pred.nc"
     assert main(["apply", str(mpath), str(plain), "-o", str(out), "--var", "u=U",
                  "--var", "v=V"]) == 0
-    assert "a priori on this file" not in capsys.readouterr().out  # no exact targets there
+    assert "a priori on the" not in capsys.readouterr().out  # no exact targets there
     with xr.open_dataset(out) as ds:
         want = model.evaluate(coarse[1].fields, g)
         np.testing.assert_allclose(ds["force_y"].values[1], want["force_y"], rtol=1e-12)

@@ -44,7 +44,8 @@ def apply_model(
         n = src.n_snapshots
         names = model.components
         pred = {c: np.empty((n, *grid.shape)) for c in names}
-        exact_sums = _Skill(model)
+        split = _TrainingSplit(model, src)
+        skill = {part: _Skill(model) for part in ("train", "test", "new")}
         times = []
         for i in range(n):
             snap = src.snapshot(i)
@@ -52,7 +53,7 @@ def apply_model(
             for c in names:
                 pred[c][i] = out[c]
             targets = getattr(snap, "targets", None) or {}
-            exact_sums.add(targets, out)
+            skill[split.part(snap.index)].add(targets, out)
             times.append(float(snap.time) if snap.time is not None else float(snap.index))
         ds = _dataset(model, model_path, src, pred, times)
     from closure.io import write_netcdf
@@ -61,9 +62,8 @@ def apply_model(
     typer.echo(f"wrote {output}: {n} snapshot(s) of {', '.join(names)} from {model.target} "
                f"model ({int(model.active.sum())} active term(s), {model.scheme} derivatives, "
                f"Delta = {model.delta:g})")
-    skill = exact_sums.text()
-    if skill:
-        typer.echo(skill)
+    for line in split.text(skill):
+        typer.echo(line)
     typer.echo("note: a priori skill does not guarantee a stable or accurate coarse simulation; "
                "validate the model a posteriori before relying on it")
 
@@ -95,6 +95,42 @@ def _open_coarse_fields(path: Path, model, variables: dict[str, str]):
         src.close()
 
 
+class _TrainingSplit:
+    """Which snapshots of a coarse file the model was fitted on: the file's source checksum
+    equals the model's input checksum, and the file records each snapshot's source index."""
+
+    def __init__(self, model, src):
+        prov = model.provenance or {}
+        snaps = prov.get("snapshots") or {}
+        source = str(getattr(src, "attrs", {}).get("source_sha256", ""))
+        self.same_data = bool(source) and source == prov.get("sha256")
+        self.train = {int(i) for i in snaps.get("train") or ()} if self.same_data else set()
+        self.test = {int(i) for i in snaps.get("test") or ()} if self.same_data else set()
+        self.counts = {"train": 0, "test": 0, "new": 0}
+
+    def part(self, index: int) -> str:
+        part = ("train" if index in self.train else "test" if index in self.test else "new")
+        self.counts[part] += 1
+        return part
+
+    def text(self, skill: dict) -> list[str]:
+        """Lines saying which snapshots the figures cover, with their a priori skill."""
+        lines = []
+        if self.same_data:
+            lines.append(f"this file is coarse-grained from the model's own input: "
+                         f"{self.counts['train']} snapshot(s) were used to fit it, "
+                         f"{self.counts['test']} were held out"
+                         + (f", {self.counts['new']} were not used" if self.counts["new"]
+                            else ""))
+        labels = {"test": "held-out snapshots", "new": "snapshots new to the model",
+                  "train": "training snapshots (optimistic: the model was fitted on them)"}
+        for part in ("test", "new", "train"):
+            text = skill[part].text()
+            if text:
+                lines.append(f"a priori on the {labels[part]} ({self.counts[part]}): {text}")
+        return lines
+
+
 class _Skill:
     """Weighted a priori r2 and correlation against exact targets, where the file has them."""
 
@@ -122,8 +158,8 @@ class _Skill:
         sse = syy - 2 * syp + spp
         r2 = 1 - sse / vy if vy > 0 else float("nan")
         corr = cyp / np.sqrt(vy * vp) if vy > 0 and vp > 0 else float("nan")
-        return (f"a priori on this file (all components, off-diagonal stress weighted 2): "
-                f"r2 {r2:.4f}, correlation {corr:.4f}")
+        return (f"r2 {r2:.4f}, correlation {corr:.4f} (all components, off-diagonal stress "
+                "weighted 2)")
 
 
 def _units(component: str, units: dict, length: str | None) -> str | None:
