@@ -18,7 +18,6 @@ from closure.library import DELTA, field_symbol, make_library
 from closure.residuals import coarse_grain_snapshot, land_validity, stencil_dilation
 from closure.scores import TransferSums
 from closure.spec import parse_spec
-from closure.stats import SufficientStats
 
 
 def smooth_flow(grid, kmax=2, seed=0, scalar=False):
@@ -313,33 +312,6 @@ def test_land_refuses_the_sharp_filter_and_spectral_derivatives():
 
 # --- statistics and scores --------------------------------------------------------------------
 
-def test_point_weights_equal_repeated_and_dropped_rows():
-    # the definition: integer point weights count a row that many times (0: not at all),
-    # checked against numpy on the rows written out
-    rng = np.random.default_rng(4)
-    X = rng.standard_normal((2, 50, 3))
-    y = rng.standard_normal((2, 50))
-    pw = rng.integers(0, 3, 50)
-    X[:, pw == 0] = np.nan  # excluded points are never read
-    s = SufficientStats.from_design(X, y, [1.0, 2.0], point_weights=pw)
-    rows = np.repeat(np.arange(50), pw)
-    ref = SufficientStats.from_design(X[:, rows], y[:, rows], [1.0, 2.0])
-    for name in ("gram", "xy", "yy", "x_sum", "y_sum", "weight_sum"):
-        np.testing.assert_allclose(getattr(s, name), getattr(ref, name), rtol=1e-12)
-    np.testing.assert_array_equal(s.count, [(pw > 0).sum()] * 2)
-    # additive: two halves with their own weights sum to the whole
-    a = SufficientStats.from_design(X[:, :20], y[:, :20], point_weights=pw[:20], snapshot=0)
-    b = SufficientStats.from_design(X[:, 20:], y[:, 20:], point_weights=pw[20:], snapshot=1)
-    whole = SufficientStats.from_design(X, y, point_weights=pw)
-    np.testing.assert_allclose((a + b).gram, whole.gram, rtol=1e-12)
-    assert (a + b).count[0] == whole.count[0]
-    # all-ones weights are no weights, bit for bit
-    X = rng.standard_normal((1, 30, 2))
-    y = rng.standard_normal((1, 30))
-    assert SufficientStats.from_design(X, y, point_weights=np.ones(30, bool)).equals(
-        SufficientStats.from_design(X, y))
-
-
 def test_transfer_sums_leave_out_excluded_points():
     rng = np.random.default_rng(5)
     m, e = rng.standard_normal((2, 8, 8))
@@ -485,3 +457,23 @@ def test_a_netcdf_file_with_nan_land_gives_nan_land_in_the_coarse_file(tmp_path)
         np.testing.assert_array_equal(np.isnan(ds["tau_xy"].values[0]), ~cs.valid)
         ok = cs.valid
         np.testing.assert_array_equal(ds["tau_xy"].values[0][ok], cs.targets["tau_xy"][ok])
+
+
+# --- command line -----------------------------------------------------------------------------
+
+def test_land_option_reaches_the_spec_and_bad_values_are_named(tmp_path, capsys):
+    from closure.cli import main
+    from closure.cli.discover import build_spec
+
+    path, _ = _basin_file(tmp_path / "b.nc", n=32, snapshots=2)
+    spec = build_spec(path, filter="gaussian", width=None, width_units="grid", ratio=2,
+                      target="stress", library="classic", method="threshold", scheme="fd4",
+                      test_fraction=0.5, var=None, scalar=None, non_periodic=True,
+                      transfer_weight=0.0, seed=0, resamples=0, snapshots=None, land="fluid")
+    assert spec.filter.land == "fluid"
+    assert parse_spec({"input": {"path": "x.nc"}}).filter.land == "zero"  # the default
+    rc = main(["discover", str(path), "--land", "coast", "-o", str(tmp_path / "m.json")])
+    assert rc == 2 and "filter.land: must be one of 'zero' or 'fluid'" in capsys.readouterr().err
+    rc = main(["coarse-grain", str(path), "--land", "coast", "-o", str(tmp_path / "c.nc")])
+    assert rc == 2 and "--land must be one of zero, fluid" in capsys.readouterr().err
+    assert not (tmp_path / "m.json").exists() and not (tmp_path / "c.nc").exists()
