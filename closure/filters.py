@@ -29,12 +29,15 @@ Weighted filtering and land. With a nonnegative weight field ``w`` the weighted 
 :meth:`CoarseGraining.weighted_block_mean`), set to 0 where ``bar(w)`` vanishes (a footprint
 with no weight at all). A fluid mask as the weight gives fluid-only normalised filtering; a
 density gives Favre filtering. The other land convention, land as zero velocity (Aluie, Hecht
-& Vallis 2018, J. Phys. Oceanogr. 48, 225-244, from memory), is the ordinary filter of the
-zero-filled field (:func:`land_as_zero`). Near land every coarse point needs a finite
-footprint, so with a mask the filters run in real space (``real_space=True``: wrap-around on
-periodic grids) with the kernels of the non-periodic path: the Gaussian truncated at
-:data:`GAUSSIAN_TRUNCATE` standard deviations, the box over its support
-(:meth:`CoarseGraining.kernel_radius`, :meth:`CoarseGraining.footprint_touches`).
+& Vallis 2018, "Mapping the energy cascade in the North Atlantic Ocean: the coarse-graining
+approach", J. Phys. Oceanogr. 48(2), doi:10.1175/JPO-D-17-0100.1; its treatment of land from
+memory), is the ordinary filter of the zero-filled field (:func:`land_as_zero`): it keeps the
+filter a convolution (commuting with derivatives, conserving domain means), while the
+normalised filter deforms the kernel near land and gives up both. Near land every coarse
+point needs a finite footprint, so with a mask the filters run in real space
+(``real_space=True``: wrap-around on periodic grids) with the kernels of the non-periodic
+path: the Gaussian truncated at :data:`GAUSSIAN_TRUNCATE` standard deviations, the box over
+its support (:meth:`CoarseGraining.kernel_radius`, :meth:`CoarseGraining.footprint_touches`).
 """
 
 from __future__ import annotations

@@ -43,7 +43,8 @@ with periodic (spectral) filtering it equals ``bar(omega)``. Vorticity terms exi
 
 Land (``snapshot.mask``, True = fluid). Land follows one of two conventions (``land=``):
 ``"zero"`` (default) land is zero velocity and zero scalar, and the ordinary filter acts on the
-zero-filled fields (Aluie, Hecht & Vallis 2018, J. Phys. Oceanogr. 48:225, from memory);
+zero-filled fields (Aluie, Hecht & Vallis 2018, J. Phys. Oceanogr. 48(2),
+doi:10.1175/JPO-D-17-0100.1; its treatment of land from memory);
 ``"fluid"`` fluid-only normalised filtering ``bar_w(f) = bar(w f) / bar(w)`` with the mask as
 ``w``, every product filtered the same way (``tau_ij = bar_w(u_i u_j) - bar_w(u_i) bar_w(u_j)``).
 A coarse point needs a finite footprint, so masked snapshots take the real-space path on every
