@@ -23,6 +23,21 @@ later directions are transformed on arrays already coarse in the earlier ones.
 
 All operations act on the trailing ``grid.ndim`` axes, so a stack of fields (leading axes)
 is filtered in one FFT pass.
+
+Weighted filtering and land. With a nonnegative weight field ``w`` the weighted filter is
+``bar_w(f) = bar(w f) / bar(w)`` (:meth:`CoarseGraining.weighted_filter`,
+:meth:`CoarseGraining.weighted_block_mean`), set to 0 where ``bar(w)`` vanishes (a footprint
+with no weight at all). A fluid mask as the weight gives fluid-only normalised filtering; a
+density gives Favre filtering. The other land convention, land as zero velocity (Aluie, Hecht
+& Vallis 2018, "Mapping the energy cascade in the North Atlantic Ocean: the coarse-graining
+approach", J. Phys. Oceanogr. 48(2), doi:10.1175/JPO-D-17-0100.1; its treatment of land from
+memory), is the ordinary filter of the zero-filled field (:func:`land_as_zero`): it keeps the
+filter a convolution (commuting with derivatives, conserving domain means), while the
+normalised filter deforms the kernel near land and gives up both. Near land every coarse
+point needs a finite footprint, so with a mask the filters run in real space
+(``real_space=True``: wrap-around on periodic grids) with the kernels of the non-periodic
+path: the Gaussian truncated at :data:`GAUSSIAN_TRUNCATE` standard deviations, the box over
+its support (:meth:`CoarseGraining.kernel_radius`, :meth:`CoarseGraining.footprint_touches`).
 """
 
 from __future__ import annotations
@@ -40,6 +55,13 @@ from closure.grid import Grid
 
 FILTER_KINDS = ("box", "gaussian", "spectral", "block")
 WIDTH_UNITS = ("grid", "coordinate")
+#: Land conventions: land as zero velocity, or fluid-only normalised (mask-weighted) filtering.
+LAND_CONVENTIONS = ("zero", "fluid")
+#: Real-space Gaussian kernels stop at this many standard deviations (sigma = D / sqrt(12)),
+#: where the kernel is exp(-18) = 1.5e-8 of its peak and the mass left out is
+#: erfc(6 / sqrt(2)) = 2e-9: below the accuracy of float32 input data, and a footprint of
+#: about 1.7 D each side.
+GAUSSIAN_TRUNCATE = 6.0
 
 
 def transfer_function(kind: str, k: np.ndarray, width: float) -> np.ndarray:
@@ -119,31 +141,113 @@ class CoarseGraining:
             out = out * f
         return out
 
-    def filter(self, f: np.ndarray) -> np.ndarray:
-        """The filtered field on the fine grid (box, Gaussian, sharp spectral)."""
+    def filter(self, f: np.ndarray, real_space: bool = False) -> np.ndarray:
+        """The filtered field on the fine grid (box, Gaussian, sharp spectral).
+
+        Periodic grids are filtered spectrally (exact transfer functions) unless
+        ``real_space``: then, as on non-periodic grids, with the finite real-space kernels of
+        :meth:`kernel` (wrap-around on periodic grids, mirror-symmetric edges otherwise).
+        """
         if self.kind == "block":
             raise UserError("block averaging has no fine-grid filtered field; use coarse_grain")
         f = np.asarray(f, dtype=float)
         g = self.fine
         axes = tuple(range(f.ndim - g.ndim, f.ndim))
-        if g.periodic:
+        if g.periodic and not real_space:
             fh = scipy.fft.rfftn(f, axes=axes, workers=-1)
             fh *= self.spectral_multiplier
             return scipy.fft.irfftn(fh, s=g.shape, axes=axes, workers=-1)
         if self.kind == "spectral":
-            raise UserError("the sharp spectral filter needs periodic data: use --filter box or "
-                            "gaussian, or declare the data periodic")
+            raise UserError("the sharp spectral filter needs periodic data and has no finite "
+                            "footprint: use --filter box or gaussian")
+        mode = "wrap" if g.periodic else "reflect"
         out = f
         for a, ax in zip(range(g.ndim), axes, strict=True):
-            h = g.spacing[a]
-            width_cells = self.widths[a] / h
+            width_cells = self.widths[a] / g.spacing[a]
             if self.kind == "gaussian":
                 out = scipy.ndimage.gaussian_filter1d(out, width_cells / np.sqrt(12.0), axis=ax,
-                                                      mode="reflect", truncate=6.0)
+                                                      mode=mode, truncate=GAUSSIAN_TRUNCATE)
             else:
-                out = scipy.ndimage.convolve1d(out, box_weights(width_cells), axis=ax,
-                                               mode="reflect")
+                out = scipy.ndimage.convolve1d(out, box_weights(width_cells), axis=ax, mode=mode)
         return out
+
+    def kernel(self, dim: str) -> np.ndarray:
+        """Real-space 1-D kernel along ``dim`` on the fine grid (box, Gaussian), odd length,
+        centred, summing to 1: the Gaussian of standard deviation D / sqrt(12) cut at
+        :data:`GAUSSIAN_TRUNCATE` standard deviations (radius ``int(6 sigma + 0.5)`` cells, as
+        ``scipy.ndimage.gaussian_filter1d`` does), the box as :func:`box_weights`."""
+        a = self.fine.axis(dim)
+        width_cells = self.widths[a] / self.fine.spacing[a]
+        if self.kind == "gaussian":
+            sigma = width_cells / np.sqrt(12.0)
+            radius = int(GAUSSIAN_TRUNCATE * sigma + 0.5)
+            j = np.arange(-radius, radius + 1, dtype=float)
+            w = np.exp(-0.5 / sigma**2 * j**2)
+            return w / w.sum()
+        if self.kind == "box":
+            return box_weights(width_cells)
+        raise UserError(f"the {self.kind} filter has no finite real-space kernel: use --filter "
+                        "box or gaussian")
+
+    def kernel_radius(self) -> tuple[int, ...]:
+        """Half-width in fine cells of the real-space kernel per direction (its footprint is
+        the box of these half-widths); 0 for block averaging, whose footprint is its block."""
+        if self.kind == "block":
+            return (0,) * self.fine.ndim
+        return tuple((self.kernel(d).size - 1) // 2 for d in self.fine.dims)
+
+    def footprint_touches(self, land: np.ndarray, extra: int = 0) -> np.ndarray:
+        """Coarse boolean array: True where the footprint of the coarse point meets ``land``
+        (a boolean array of the fine grid's shape).
+
+        Filters: the kernel's support (:meth:`kernel_radius`) widened by ``extra`` fine cells
+        per side, around the fine point the coarse point samples (periodic grids wrap;
+        mirror-reflected points at a non-periodic edge are never nearer than the points they
+        mirror, so no edge rule is needed). Block averaging: the block, after widening ``land``
+        by ``extra`` fine cells.
+        """
+        land = np.asarray(land, dtype=bool)
+        g = self.fine
+        if land.shape != g.shape:
+            raise ValueError(f"land mask of shape {land.shape}, the grid {g.shape}")
+        mode = "wrap" if g.periodic else "constant"
+        if self.kind == "block":
+            if extra:
+                land = scipy.ndimage.maximum_filter(land, size=2 * extra + 1, mode=mode,
+                                                    cval=False)
+            return self.block_mean(land.astype(float)) > 0
+        size = tuple(2 * (r + extra) + 1 for r in self.kernel_radius())
+        touched = scipy.ndimage.maximum_filter(land, size=size, mode=mode, cval=False)
+        return self.sample(touched)
+
+    def weighted_filter(self, f: np.ndarray, weight: np.ndarray,
+                        real_space: bool = False) -> np.ndarray:
+        """``bar_w(f) = bar(w f) / bar(w)`` on the fine grid for a nonnegative ``weight`` of
+        the grid's shape (``f`` may be a stack); 0 where ``bar(w)`` is at most 1e-12 of its
+        largest value (footprints without weight). A fluid mask gives fluid-only normalised
+        filtering, a density Favre filtering. ``real_space`` as in :meth:`filter`."""
+        f, w = self._weighted_inputs(f, weight)
+        both = self.filter(np.concatenate([(f * w).reshape(-1, *w.shape), w[None]]),
+                           real_space)
+        return _divide(both[:-1].reshape(f.shape), both[-1])
+
+    def weighted_block_mean(self, f: np.ndarray, weight: np.ndarray) -> np.ndarray:
+        """``sum(w f) / sum(w)`` over each block of r^d fine cells (0 where the block has no
+        weight): block averaging weighted by ``weight`` (fine grid shape)."""
+        f, w = self._weighted_inputs(f, weight)
+        both = self.block_mean(np.concatenate([(f * w).reshape(-1, *w.shape), w[None]]))
+        return _divide(both[:-1].reshape(*f.shape[:f.ndim - w.ndim], *both.shape[1:]), both[-1])
+
+    def _weighted_inputs(self, f, weight):
+        f = np.asarray(f, dtype=float)
+        w = np.asarray(weight, dtype=float)
+        if w.shape != self.fine.shape or f.shape[f.ndim - w.ndim:] != w.shape:
+            raise ValueError(f"weight of shape {w.shape} and field of shape {f.shape} do not "
+                             f"match the grid {self.fine.shape}")
+        if not (np.isfinite(w).all() and (w >= 0).all()):
+            raise UserError("filter weights must be finite and nonnegative: check the mask or "
+                            "density field")
+        return f, w
 
     def sample(self, f: np.ndarray) -> np.ndarray:
         """Every ``ratio``-th point of a fine-grid field from index 0 (trailing axes)."""
@@ -365,6 +469,22 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int,
     direct += np.conj(mirrored)
     direct *= float(r) ** -d
     return direct
+
+
+def _divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """``num / den`` (den broadcast over leading axes), 0 where ``den`` is at most 1e-12 of
+    its largest value."""
+    top = float(np.max(den)) if den.size else 0.0
+    ok = den > 1e-12 * top
+    safe = np.where(ok, den, 1.0)
+    return np.where(ok, num / safe, 0.0)
+
+
+def land_as_zero(f: np.ndarray, fluid: np.ndarray) -> np.ndarray:
+    """``f`` with every point off the ``fluid`` mask set to 0 (trailing axes of ``f`` are the
+    mask's): the land-as-zero convention (Aluie, Hecht & Vallis 2018, from memory) filters
+    this field with the ordinary filter. NaN on land is replaced too."""
+    return np.where(np.asarray(fluid, dtype=bool), np.asarray(f, dtype=float), 0.0)
 
 
 def box_weights(width_cells: float) -> np.ndarray:

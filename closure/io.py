@@ -521,6 +521,19 @@ def _filter_attrs(cg: CoarseGraining) -> dict:
     return attrs
 
 
+#: global attribute of coarse files written from data with land
+LAND_NOTE = ("land is NaN: filtered fields where the coarse point is land, subgrid terms "
+             "wherever the filter footprint (or a fine-grid derivative stencil) touches land")
+
+
+def _land_as_nan(cs: CoarseSnapshot, ours: str, role: str) -> np.ndarray:
+    """A coarse variable with land as NaN: targets where the point is not valid, fields where
+    the coarse point is land (the CoarseSnapshot itself keeps finite values)."""
+    a = (cs.fields if role == "field" else cs.targets)[ours]
+    keep = cs.fluid if role == "field" else cs.valid
+    return a if keep is None else np.where(keep, a, np.nan)
+
+
 class CoarseWriter:
     """Stream coarse snapshots into a CF-style netCDF file, renamed into place on close.
 
@@ -600,6 +613,9 @@ class CoarseWriter:
             "source": f"closure {_version()}",
         }
         attrs.update(_filter_attrs(cs.coarse_graining))
+        if cs.land is not None:
+            attrs["land_convention"] = cs.land
+            attrs["land_note"] = LAND_NOTE
         attrs["source_file"] = str(self.source.get("file", ""))
         attrs["source_sha256"] = str(self.source.get("sha256", ""))
         if names:
@@ -622,7 +638,7 @@ class CoarseWriter:
         nc[TIME][k] = cs.index if cs.time is None else cs.time
         nc["snapshot"][k] = cs.index
         for ours, theirs, role in self._vars:
-            nc[theirs][k, ...] = (cs.fields if role == "field" else cs.targets)[ours]
+            nc[theirs][k, ...] = _land_as_nan(cs, ours, role)
         self._count += 1
 
     def close(self) -> Path:

@@ -45,6 +45,11 @@ from closure.stats import SufficientStats
 PLAN_VERSION = 1
 Progress = Callable[[str, int, int], None]
 
+#: A snapshot whose land mask leaves fewer valid coarse points than this many per library term
+#: is refused: a fit needs many more points than unknowns, and fewer than ten per coefficient
+#: is the usual rule-of-thumb floor (common practice).
+MIN_POINTS_PER_TERM = 10
+
 #: The reference closure scored beside every model, per target kind (a preset term name).
 BASELINE_TERMS = {"stress": "smagorinsky", "force": "div_smagorinsky",
                   "vorticity": "curl_div_smagorinsky", "flux": "eddy_diffusivity"}
@@ -236,8 +241,21 @@ def _compressibility_warning(src, index: int, library) -> list[str]:
     pruned = [d.split(":")[0] for d in library.dropped if "on incompressible fields" in d]
     if not pruned or len(src.velocity) < 2:
         return []
+    from closure.filters import land_as_zero
+    from closure.residuals import stencil_dilation
+
     snap = src.snapshot(index)
-    ratio = divergence_ratio(snap.fields, snap.grid, list(src.velocity))
+    fields, keep, scheme = snap.fields, None, None
+    mask = getattr(snap, "mask", None)
+    if mask is not None and not np.all(mask):
+        # land: local differences, only where the stencil stays in the fluid (the velocity
+        # jumps to zero at the coast, which is no divergence of the flow)
+        scheme = "fd4"
+        keep = ~stencil_dilation(~np.asarray(mask, dtype=bool), snap.grid, scheme)
+        fields = {c: land_as_zero(fields[c], mask) for c in src.velocity}
+        if not keep.any():
+            return []
+    ratio = divergence_ratio(fields, snap.grid, list(src.velocity), keep=keep, scheme=scheme)
     if ratio <= DIVERGENCE_TOLERANCE:
         return []
     return [f"the velocity is not divergence-free (rms div u / rms |grad u| = {ratio:.2g} in "
@@ -245,33 +263,37 @@ def _compressibility_warning(src, index: int, library) -> list[str]:
             "incompressible fields: for compressible data list them in a terms file"]
 
 
-def divergence_ratio(fields: Mapping[str, np.ndarray], grid: Grid,
-                     velocity: list[str]) -> float:
+def divergence_ratio(fields: Mapping[str, np.ndarray], grid: Grid, velocity: list[str],
+                     keep: np.ndarray | None = None, scheme: str | None = None) -> float:
     """rms div u / rms |grad u| of a fine-grid velocity, the scheme's own error discounted.
 
     Periodic grids: spectral derivatives (exact for resolved fields). Bounded grids: fourth-
     order differences, less twice their error level (estimated as the rms difference from the
     second-order divergence: one-sided edge stencils and barely resolved scales), so exactly
-    solenoidal data do not look divergent."""
+    solenoidal data do not look divergent. ``keep``: the points to average over (default all);
+    ``scheme``: the derivatives (default: spectral when periodic, else fd4)."""
     from closure.derivatives import derivative
     from closure.grid import DIRECTION_OF
     from closure.residuals import fine_scheme
 
-    scheme = fine_scheme(grid)
+    scheme = scheme or fine_scheme(grid)
+
+    def mean(a: np.ndarray) -> float:
+        return float(np.mean(a if keep is None else a[keep]))
 
     def div(s: str) -> np.ndarray:
         return sum(derivative(fields[c], grid, DIRECTION_OF[c], 1, s) for c in velocity)
 
-    gradient_sq = sum(np.mean(derivative(fields[c], grid, d, 1, scheme) ** 2)
+    gradient_sq = sum(mean(derivative(fields[c], grid, d, 1, scheme) ** 2)
                       for c in velocity for d in grid.dims)
     tiny = np.finfo(float).tiny
     divergence = div(scheme)
-    ratio = float(np.sqrt(np.mean(divergence ** 2) / max(gradient_sq, tiny)))
+    ratio = float(np.sqrt(mean(divergence ** 2) / max(gradient_sq, tiny)))
     if scheme == "spectral":
         return ratio
     # fd2's error bounds fd4's on resolved fields, so rms(div_fd4 - div_fd2) estimates the
     # error level of the check; twice that is a common-practice safety factor
-    error = float(np.sqrt(np.mean((divergence - div("fd2")) ** 2) / max(gradient_sq, tiny)))
+    error = float(np.sqrt(mean((divergence - div("fd2")) ** 2) / max(gradient_sq, tiny)))
     return max(ratio - 2 * error, 0.0)
 
 
@@ -303,13 +325,56 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
         if own:
             src.close()
     cg = _coarse_graining(spec, snap.grid)
-    # only the fitted target: the scores' transfers come from the coarse fields
-    cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"])
     library = _library(spec, snap.grid.dims)
     if library.names != list(plan["terms"]):
         raise UserError("the library's terms changed since the job was planned: resubmit the "
                         "job")
+    # only the fitted target: the scores' transfers come from the coarse fields
+    cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"],
+                               land=spec.filter.land, scheme=spec.scheme,
+                               derivative_passes=derivative_passes(library))
     return cs, cg, library
+
+
+def derivative_passes(library) -> int:
+    """Stencil passes the library's derivatives take along one direction at most (a second
+    derivative is one pass of its own stencil, a third a second then a first, ...): how far a
+    design row reaches, in coarse stencils."""
+    from closure.library import symbol_info
+
+    most = 0
+    for sym in library.symbols:
+        info = symbol_info(sym)
+        if info:
+            most = max([most, *((n + 1) // 2 for n in info[1])])
+    return most
+
+
+def transfer_valid(valid, grid: Grid, scheme: str):
+    """Points where the transfers (which differentiate the target again) see no excluded
+    point; None when every point is valid."""
+    if valid is None:
+        return None
+    from closure.residuals import stencil_dilation
+    from closure.scores import TRANSFER_PASSES
+
+    return ~stencil_dilation(~np.asarray(valid, dtype=bool), grid, scheme, TRANSFER_PASSES)
+
+
+def _check_valid_points(spec: JobSpec, cs, cg, n_terms: int) -> None:
+    """A UserError when land leaves too few valid coarse points in a snapshot."""
+    n_valid = int(np.count_nonzero(cs.valid))
+    need = MIN_POINTS_PER_TERM * n_terms
+    if n_valid == 0 or n_valid < need:
+        cells = ", ".join(f"{w / h:g}" for w, h in zip(cg.widths, cg.fine.spacing, strict=True))
+        raise UserError(
+            f"the land mask leaves {n_valid} of {cs.valid.size} coarse points of snapshot "
+            f"{cs.index} clear of land (a fit of {n_terms} terms needs at least {need}: "
+            f"{MIN_POINTS_PER_TERM} per term): points whose {cg.kind} filter footprint (width "
+            f"{cells} grid spacings) or {spec.scheme} derivative stencil touches land are left "
+            "out. Use a narrower filter (--width) or a smaller --ratio, a lower-order --scheme, "
+            "a smaller --library, or check the mask (--mask, NaN or fill values mark land); "
+            "--land does not change which points are left out")
 
 
 @_small_blas
@@ -327,9 +392,13 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
     from closure.library import design
 
     cs, cg, library = _coarse(spec, plan, index, source)
+    if cs.valid is not None:
+        _check_valid_points(spec, cs, cg, len(library.names))
     X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
     comps = list(plan["components"])
     y = np.stack([cs.targets[c].reshape(-1) for c in comps])
+    # land: excluded coarse points weigh 0 (and are never read by the statistics)
+    points = None if cs.valid is None else cs.valid.reshape(-1)
     extra = {}
     blocks = tuple(plan.get("transfers") or ())
     if blocks:
@@ -338,12 +407,14 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
         columns = ctx.transfers({c: X[k].T.reshape(p, *shape) for k, c in enumerate(comps)},
                                 blocks)
         exact = ctx.transfers({c: y[k].reshape(shape) for k, c in enumerate(comps)}, blocks)
+        tv = transfer_valid(cs.valid, cs.grid, spec.scheme)
         for name in blocks:
             T = columns[name].reshape(p, -1).T
-            extra[name] = SufficientStats.from_design(T[None], exact[name].reshape(1, -1), None,
-                                                      library.names, (name,))
+            extra[name] = SufficientStats.from_design(
+                T[None], exact[name].reshape(1, -1), None, library.names, (name,),
+                point_weights=None if tv is None else tv.reshape(-1))
     stats = SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
-                                        snapshot=int(index), extra=extra)
+                                        snapshot=int(index), extra=extra, point_weights=points)
     return stats, cs
 
 
@@ -360,6 +431,8 @@ class HeldOut:
     def put(self, cs) -> None:
         arrays = {f"field:{k}": v for k, v in cs.fields.items()}
         arrays.update({f"target:{c}": cs.targets[c] for c in self.components})
+        if cs.valid is not None:
+            arrays["valid"] = np.asarray(cs.valid, dtype=bool)
         with open(self.folder / f"{int(cs.index)}.npz", "wb") as fh:
             np.savez(fh, **arrays)
         self.indices.add(int(cs.index))
@@ -367,11 +440,13 @@ class HeldOut:
     def __contains__(self, index) -> bool:
         return int(index) in self.indices
 
-    def get(self, index: int) -> tuple[dict, dict]:
+    def get(self, index: int) -> tuple[dict, dict, np.ndarray | None]:
+        """(fields, targets, valid points or None) of a held-out snapshot."""
         with np.load(self.folder / f"{int(index)}.npz", allow_pickle=False) as z:
             fields = {k[6:]: z[k] for k in z.files if k.startswith("field:")}
             targets = {k[7:]: z[k] for k in z.files if k.startswith("target:")}
-        return fields, targets
+            valid = z["valid"] if "valid" in z.files else None
+        return fields, targets, valid
 
 
 # ---------------------------------------------------------------------- reduce
@@ -448,10 +523,11 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
     for done, i in enumerate(sorted(test)):
         progress("score", done, len(test))
         if held_out is not None and i in held_out:
-            fields, targets = held_out.get(i)
+            fields, targets, valid = held_out.get(i)
         else:
             cs, _, _ = _coarse(spec, plan, i, source)
-            fields, targets = cs.fields, cs.targets
+            fields, targets, valid = cs.fields, cs.targets, cs.valid
+        tv = transfer_valid(valid, coarse, spec.scheme)
         ctx = TransferContext(spec.target, fields, coarse, spec.scheme)
         exact = {c: targets[c] for c in comps}
         te = ctx.transfers(exact)
@@ -459,7 +535,7 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
             model = predict(library, coef, fields, coarse, spec.scheme, float(plan["delta"]))
             tm = ctx.transfers({c: model[c] for c in comps})
             for k in te:
-                acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k])
+                acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)
     progress("score", len(test), len(test))
 
     scores = {
@@ -475,7 +551,10 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
                                                       transfer_scores(base_sums))
         details["baseline"] = {"term": base[0],
                                "coefficient_scaled": float(base[1][library.names.index(base[0])])}
+    land = land_record(spec, plan, stats)
     warnings = list(plan.get("warnings") or []) + list(fit.warnings)
+    if land["excluded_points"]:
+        warnings.append(land["note"])
     warnings.append("coefficient standard errors treat every grid point as independent; "
                     "neighbouring points are correlated, so they are optimistic: the selection "
                     "frequencies over snapshot resamples are the better guide")
@@ -483,7 +562,7 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         "method": spec.fit.method, "selection": spec.fit.selection, "folds": spec.fit.folds,
         "resamples": spec.fit.resamples, "seed": spec.fit.seed,
         "transfer_weight": spec.fit.transfer_weight, "test_fraction": spec.fit.test_fraction,
-        "selection_record": fit.to_dict(), "a_priori_details": details,
+        "selection_record": fit.to_dict(), "a_priori_details": details, "land": land,
     }
     from closure.model import ClosureModel
 
@@ -495,6 +574,27 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         target=spec.target, filter=dict(plan["filter"]), grid=plan["coarse_grid"],
         scheme=spec.scheme, delta=float(plan["delta"]), provenance=_provenance(spec, plan),
         method=spec.fit.method, settings=settings, scores=scores, warnings=warnings)
+
+
+def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats]) -> dict:
+    """Coarse points land excluded from the fit and scores, counted from the statistics (a
+    snapshot's excluded points are its coarse points minus those with weight), with the
+    convention and a sentence for the summary."""
+    per = int(np.prod(plan["coarse_grid"]["shape"]))
+
+    def excluded(indices):
+        return int(sum(per - int(stats[i].count[0]) for i in indices))
+
+    train, test = excluded(plan["train"]), excluded(plan["test"])
+    total = per * len(plan["snapshots"])
+    note = (f"land: {train + test} of {total} coarse points ({(train + test) / total:.1%}; "
+            f"{train} fitted, {test} held out) left out of the fit and scores because their "
+            f"filter footprint or {spec.scheme} derivative stencil touches land (convention "
+            f"'{spec.filter.land}')")
+    return {"convention": spec.filter.land, "coarse_points": total,
+            "excluded_points": train + test, "excluded_train": train, "excluded_test": test,
+            "rule": "footprint (Gaussian to 6 standard deviations, box support, block) or "
+                    "derivative stencil touches land", "note": note}
 
 
 def _provenance(spec: JobSpec, plan: Mapping) -> dict:
@@ -556,4 +656,5 @@ def discover(spec: JobSpec, progress: Progress | None = None):
         return reduce(spec, p, stats, progress, source=src, held_out=held_out)
 
 
-__all__ = ["HeldOut", "discover", "map_snapshot", "plan", "reduce"]
+__all__ = ["HeldOut", "derivative_passes", "discover", "land_record", "map_snapshot", "plan",
+           "reduce", "transfer_valid"]

@@ -40,6 +40,21 @@ solver on that grid would see.
 The "vorticity" field is ``d_x bar(v) - d_y bar(u)``, the vorticity of the filtered velocity;
 with periodic (spectral) filtering it equals ``bar(omega)``. Vorticity terms exist only on
 ``(y, x)`` grids.
+
+Land (``snapshot.mask``, True = fluid). Land follows one of two conventions (``land=``):
+``"zero"`` (default) land is zero velocity and zero scalar, and the ordinary filter acts on the
+zero-filled fields (Aluie, Hecht & Vallis 2018, J. Phys. Oceanogr. 48(2),
+doi:10.1175/JPO-D-17-0100.1; its treatment of land from memory);
+``"fluid"`` fluid-only normalised filtering ``bar_w(f) = bar(w f) / bar(w)`` with the mask as
+``w``, every product filtered the same way (``tau_ij = bar_w(u_i u_j) - bar_w(u_i) bar_w(u_j)``).
+A coarse point needs a finite footprint, so masked snapshots take the real-space path on every
+grid (closure.filters: Gaussian cut at 6 standard deviations, box over its support, wrap-around
+when periodic) with 4th-order differences on the fine grid (block averaging: on the coarse
+grid), and the sharp spectral filter is refused. ``CoarseSnapshot.valid`` marks the coarse points
+whose values do not depend on land at all (:func:`land_validity`): at those points fields and
+targets equal the computation on the same data without land, whatever the convention. The
+convention changes only the values at the other points (written to coarse files; never fitted).
+A mask with every point fluid is no mask: the result is bit for bit the unmasked one.
 """
 
 from __future__ import annotations
@@ -51,9 +66,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 import scipy.fft
 
-from closure.derivatives import derivative
+from closure.derivatives import SCHEMES, derivative
 from closure.errors import UserError
-from closure.filters import CoarseGraining
+from closure.filters import LAND_CONVENTIONS, CoarseGraining, land_as_zero
 from closure.grid import VELOCITY_OF, Grid
 
 if TYPE_CHECKING:  # the io module imports this one
@@ -83,6 +98,12 @@ class CoarseSnapshot:
     #: boolean array of the coarse grid's shape, True where the coarse point may enter fits
     #: and scores (its filter footprint and derivative stencils see no land); None: all valid
     valid: np.ndarray | None = None
+    #: boolean array of the coarse grid's shape, True where the coarse point itself is fluid
+    #: (filters: the fine point it samples; block averaging: a block with a fluid cell); land
+    #: points hold 0 in ``fields`` and ``targets``. None: no land
+    fluid: np.ndarray | None = None
+    #: the land convention used ("zero" or "fluid"), None when the snapshot had no land
+    land: str | None = None
 
     @property
     def velocity(self) -> tuple[str, ...]:
@@ -217,26 +238,152 @@ def _wanted(targets, dims, scalars) -> list[str]:
 
 
 def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str] = (),
-                          targets: Sequence[str] | None = None) -> CoarseSnapshot:
+                          targets: Sequence[str] | None = None, land: str = "zero",
+                          scheme: str | None = None,
+                          derivative_passes: int = 1) -> CoarseSnapshot:
     """Filter and coarsen one snapshot and compute its exact subgrid terms (coarse grid).
 
     ``scalars`` names the snapshot's scalar fields to carry (filtered) and whose fluxes may be
     computed. ``targets`` names the target variables to compute (see :func:`target_names`);
     None computes every one. The fields (filtered velocity, scalars, 2-D vorticity) are always
     returned. See the module docstring for the definitions and where derivatives are taken.
+
+    With land in ``snapshot.mask``: ``land`` is the convention (``"zero"`` or ``"fluid"``),
+    and ``valid`` excludes the coarse points whose footprint meets land and, when ``scheme``
+    (the coarse solver's: fd2 or fd4) is given, those whose coarse derivative stencils, applied
+    ``derivative_passes`` times, reach an excluded point (see :func:`land_validity`).
     """
     if isinstance(scalars, str):
         scalars = (scalars,)
     scalars = tuple(dict.fromkeys(scalars))
     _check_inputs(snapshot, cg, scalars)
+    if land not in LAND_CONVENTIONS:
+        raise UserError(f"unknown land convention {land!r}: choose --land "
+                        f"{' or '.join(LAND_CONVENTIONS)}")
     want = _wanted(targets, cg.fine.dims, scalars)
-    if cg.kind != "block" and cg.fine.periodic:
+    mask = _fluid_mask(snapshot, cg, scheme)
+    if mask is not None:
+        fields, out = _grid_terms(snapshot, cg, scalars, set(want), mask, land)
+    elif cg.kind != "block" and cg.fine.periodic:
         fields, out = _spectral_terms(snapshot, cg, scalars, set(want))
     else:
         fields, out = _grid_terms(snapshot, cg, scalars, set(want))
+    valid = fluid = None
+    if mask is not None:
+        valid, fluid = land_validity(mask, cg, want, scheme, derivative_passes)
+        for group in (fields, out):
+            for k in group:
+                group[k] = np.where(fluid, group[k], 0.0)
     fields = {k: np.ascontiguousarray(v) for k, v in fields.items()}
     out = {k: np.ascontiguousarray(out[k]) for k in want}
-    return CoarseSnapshot(fields, out, cg.coarse, cg, snapshot.index, snapshot.time)
+    return CoarseSnapshot(fields, out, cg.coarse, cg, snapshot.index, snapshot.time, valid,
+                          fluid, None if mask is None else land)
+
+
+def _fluid_mask(snapshot: Snapshot, cg: CoarseGraining, scheme: str | None):
+    """The snapshot's fluid mask as booleans, or None when there is no land; refuses the
+    filters and schemes whose footprint or stencil is the whole domain."""
+    mask = getattr(snapshot, "mask", None)
+    if mask is None:
+        return None
+    mask = np.asarray(mask, dtype=bool)
+    if mask.shape != cg.fine.shape:
+        raise UserError(f"the land mask has shape {mask.shape}, the fields {cg.fine.shape}: "
+                        "give a mask variable on the fields' grid")
+    if mask.all():
+        return None
+    if cg.kind == "spectral":
+        raise UserError("the data have land, and the sharp spectral filter's kernel "
+                        "sin(x)/x reaches across the whole domain, so every coarse point would "
+                        "see land: use --filter gaussian or box (or block)")
+    if scheme == "spectral":
+        raise UserError("the data have land, and spectral derivatives use every coarse point "
+                        "of the domain, so every coarse point would see land: use --scheme "
+                        "fd2 or fd4")
+    if scheme is not None and scheme not in SCHEMES:
+        raise UserError(f"unknown derivative scheme {scheme!r}: choose fd2 or fd4")
+    return mask
+
+
+#: Coarse stencils of closure.derivatives per scheme: interior half-width, number of one-sided
+#: rows at a non-periodic edge, and the longest one-sided row (first or second derivative).
+_STENCIL_REACH = {"fd2": (1, 1, 4), "fd4": (2, 2, 6)}
+
+
+def stencil_dilation(bad: np.ndarray, grid: Grid, scheme: str, passes: int = 1) -> np.ndarray:
+    """Points whose derivatives (closure.derivatives stencils of ``scheme``, ``passes`` times
+    along every direction, first or second derivatives) use a ``bad`` point.
+
+    ``bad`` is a boolean array of ``grid.shape``. Interior points use +-1 (fd2) or +-2 (fd4)
+    neighbours; at a non-periodic edge the one-sided rows use the first 4 (fd2) or 6 (fd4)
+    points. A conservative superset when a term takes fewer derivatives along some direction.
+    """
+    if scheme not in _STENCIL_REACH:
+        raise UserError(f"derivative scheme {scheme!r} has no finite stencil: use fd2 or fd4")
+    half, edge, longest = _STENCIL_REACH[scheme]
+    out = np.asarray(bad, dtype=bool).copy()
+    for _ in range(int(passes)):
+        for axis in range(grid.ndim):
+            b = np.moveaxis(out, axis, 0)
+            new = b.copy()
+            n = b.shape[0]
+            for s in range(1, half + 1):
+                if grid.periodic:
+                    new |= np.roll(b, s, axis=0) | np.roll(b, -s, axis=0)
+                elif s < n:
+                    new[s:] |= b[:-s]
+                    new[:-s] |= b[s:]
+            if not grid.periodic:
+                m = min(longest, n)
+                new[:edge] |= b[:m].any(axis=0)
+                new[n - edge:] |= b[n - m:].any(axis=0)
+            out = np.moveaxis(new, 0, axis).copy()
+    return out
+
+
+def _fine_depth(want, dims) -> tuple[int, int]:
+    """(fd4 passes before the filter, fd4 passes after it) in the outputs: the fine vorticity
+    (2-D vorticity flux terms) before; force, strain rate in pi, the vorticity field and the
+    derivatives of the vorticity flux after."""
+    sigma = tuple(dims) == ("y", "x") and bool(set(want) & {"vorticity_forcing",
+                                                             "enstrophy_transfer"})
+    after = (tuple(dims) == ("y", "x")
+             or any(t.startswith("force_") or t == "pi" for t in want))
+    return int(sigma), int(after)
+
+
+def land_validity(mask: np.ndarray, cg: CoarseGraining, targets: Sequence[str],
+                  scheme: str | None = None, derivative_passes: int = 1
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """(valid, fluid) coarse boolean arrays of a fine fluid ``mask`` (True = fluid).
+
+    A coarse point is invalid when anything it is computed from touches land: the fine land
+    widened by the fine-grid fd4 stencil (+-2 cells, one-sided rows at bounded edges) for the
+    2-D vorticity that is filtered, then the filter's footprint (Gaussian: 6 standard
+    deviations; box: its support; block: its block), then the fd4 stencil again for the
+    derivatives taken after filtering (force, pi, vorticity; on the coarse grid for block
+    averaging). With a coarse ``scheme``, a point is also invalid when its coarse stencils,
+    ``derivative_passes`` times, reach an invalid point: then the design's library terms at
+    every valid point are those of the same data without land. ``fluid``: the coarse point
+    itself is fluid.
+    """
+    mask = np.asarray(mask, dtype=bool)
+    fine, coarse = cg.fine, cg.coarse
+    before, after = _fine_depth(targets, fine.dims)
+    bad = stencil_dilation(~mask, fine, "fd4", before) if before else ~mask
+    if cg.kind == "block":
+        touched = cg.footprint_touches(bad)
+        if after:
+            touched = stencil_dilation(touched, coarse, "fd4", after)
+        fluid = cg.block_mean(mask.astype(float)) > 0
+    else:
+        if after:
+            bad = stencil_dilation(bad, fine, "fd4", after)
+        touched = cg.footprint_touches(bad)
+        fluid = cg.sample(mask)
+    if scheme is not None and derivative_passes > 0:
+        touched = stencil_dilation(touched, coarse, scheme, derivative_passes)
+    return ~touched, fluid
 
 
 # ---------------------------------------------------------------------- periodic: spectral
@@ -371,21 +518,28 @@ def _products(stack: np.ndarray, pairs: Sequence[tuple[int, int]]) -> np.ndarray
 
 
 # ---------------------------------------------------------------------- block or non-periodic
-def _grid_terms(snapshot, cg, scalars, want):
+def _grid_terms(snapshot, cg, scalars, want, mask=None, land="zero"):
     """Block averaging, or real-space filters on non-periodic grids: filter on the fine grid (or
-    average onto the coarse one), differentiate there, then sample."""
+    average onto the coarse one), differentiate there, then sample. With a fluid ``mask``:
+    real-space filters on every grid, fd4 derivatives, land zero-filled and filtered as the
+    ``land`` convention says."""
     fine = cg.fine
     dirs = directions(fine.dims)
     vel_names = [VELOCITY_OF[d] for d in dirs]
-    vel = {VELOCITY_OF[d]: np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs}
+
+    def read(name):
+        a = np.asarray(snapshot.fields[name], dtype=float)
+        return a if mask is None else land_as_zero(a, mask)
+
+    vel = {VELOCITY_OF[d]: read(VELOCITY_OF[d]) for d in dirs}
     two_d = fine.dims == ("y", "x")
     need_sigma = two_d and bool(want & {"vorticity_forcing", "enstrophy_transfer"})
     fluxes = [c for c in scalars if any(t.startswith(f"flux_{c}_") for t in want)]
 
     # fine-grid quantities: linear fields and the products whose filters we need
-    linear = {**vel, **{c: np.asarray(snapshot.fields[c], dtype=float) for c in scalars}}
+    linear = {**vel, **{c: read(c) for c in scalars}}
     if need_sigma:
-        scheme = fine_scheme(fine)
+        scheme = fine_scheme(fine) if mask is None else "fd4"
         linear[_OMEGA] = (derivative(vel["v"], fine, "x", 1, scheme)
                           - derivative(vel["u"], fine, "y", 1, scheme))
     products = {}
@@ -398,16 +552,24 @@ def _grid_terms(snapshot, cg, scalars, want):
 
     # one filter pass per stack (block averaging lands on the coarse grid directly)
     lin_keys, prod_keys = list(linear), list(products)
-    if cg.kind == "block":
-        apply, grid = cg.block_mean, cg.coarse
+    grid = cg.coarse if cg.kind == "block" else fine
+    if mask is None:
+        apply = cg.block_mean if cg.kind == "block" else cg.filter
+    elif land == "fluid":
+        def apply(stack):
+            if cg.kind == "block":
+                return cg.weighted_block_mean(stack, mask)
+            return cg.weighted_filter(stack, mask, real_space=True)
     else:
-        apply, grid = cg.filter, fine
+        def apply(stack):
+            return cg.block_mean(stack) if cg.kind == "block" else cg.filter(stack, True)
     bar_lin = dict(zip(lin_keys, apply(np.stack([linear[k] for k in lin_keys])), strict=True))
     bar_prod = (dict(zip(prod_keys, apply(np.stack([products[k] for k in prod_keys])),
                          strict=True)) if prod_keys else {})
     del linear, products
 
-    out_fields, targets = _terms(bar_lin, bar_prod, grid, fine_scheme(grid), dirs, vel_names,
+    scheme = fine_scheme(grid) if mask is None else "fd4"
+    out_fields, targets = _terms(bar_lin, bar_prod, grid, scheme, dirs, vel_names,
                                  scalars, fluxes, two_d, want)
     if cg.kind != "block":
         names_f, names_t = list(out_fields), list(targets)

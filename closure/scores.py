@@ -8,6 +8,11 @@ for a prediction ``p = X c`` with weights ``W``::
     relative L2 error = sqrt(SSE / y^T W y)
     Pearson correlation of p and y from c^T G c, c^T b, y^T W y and the sums.
 
+With a land mask, coarse points that land excludes (closure.residuals.land_validity) have
+point weight 0 in the statistics and are left out of every transfer sum; a transfer, which
+differentiates the target again, uses only points whose stencils stay clear of excluded
+points for :data:`TRANSFER_PASSES` more derivatives.
+
 Transfers need the points: the energy transfer of a stress ``pi = -tau_ij Sbar_ij``
 (Pope 2000, eq. 13.123; positive: resolved energy drained to subgrid scales) is quadratic in
 the resolved fields and its sign matters (backscatter), so a second pass over the held-out
@@ -195,9 +200,15 @@ class TransferSums:
     abs_sum_exact: float = 0.0
 
     @classmethod
-    def from_fields(cls, model: np.ndarray, exact: np.ndarray) -> TransferSums:
+    def from_fields(cls, model: np.ndarray, exact: np.ndarray,
+                    valid: np.ndarray | None = None) -> TransferSums:
+        """Sums over the points of ``model`` and ``exact`` (same shape), only where ``valid``
+        (boolean, same shape) when given: points a land mask excludes count nowhere."""
         m = np.asarray(model, dtype=np.float64).ravel()
         e = np.asarray(exact, dtype=np.float64).ravel()
+        if valid is not None:
+            keep = np.asarray(valid, dtype=bool).ravel()
+            m, e = m[keep], e[keep]
         return cls(float(m.size), float(m.sum()), float(e.sum()), float(m @ m), float(e @ e),
                    float(m @ e), float((m < 0).sum()), float((e < 0).sum()),
                    float(np.minimum(m, 0).sum()), float(np.minimum(e, 0).sum()),
@@ -245,11 +256,18 @@ class TransferSums:
 
 
 def transfer_sums(context: TransferContext, model: Mapping[str, np.ndarray],
-                  exact: Mapping[str, np.ndarray]) -> dict[str, TransferSums]:
-    """Pointwise sums of every transfer of the model and exact target components."""
+                  exact: Mapping[str, np.ndarray],
+                  valid: np.ndarray | None = None) -> dict[str, TransferSums]:
+    """Pointwise sums of every transfer of the model and exact target components (only at
+    the ``valid`` points when given)."""
     tm = context.transfers(model)
     te = context.transfers(exact)
-    return {k: TransferSums.from_fields(tm[k], te[k]) for k in tm}
+    return {k: TransferSums.from_fields(tm[k], te[k], valid) for k in tm}
+
+
+#: Derivative passes the transfer formulas add to the design's: curl(div tau) in the 2-D
+#: enstrophy transfer of a stress is two (the others need at most one).
+TRANSFER_PASSES = 2
 
 
 def transfer_scores(sums: Mapping[str, TransferSums]) -> dict[str, dict]:
@@ -257,5 +275,5 @@ def transfer_scores(sums: Mapping[str, TransferSums]) -> dict[str, dict]:
     return {k: s.scores() for k, s in sums.items()}
 
 
-__all__ = ["TransferContext", "TransferSums", "prediction_scores",
+__all__ = ["TRANSFER_PASSES", "TransferContext", "TransferSums", "prediction_scores",
            "transfer_names", "transfer_scores", "transfer_sums", "vorticity_of"]

@@ -54,6 +54,11 @@ class FilterSpec(_Strict):
         None, description="filter width D (default 2*ratio grid spacings; block: = ratio)")
     width_units: Literal["grid", "coordinate"] = "grid"
     ratio: Annotated[int, Field(ge=1, le=1024)] = 4
+    land: Literal["zero", "fluid"] = Field(
+        "zero", description="land points (a mask, NaN or fill values): 'zero' filters land as "
+        "zero velocity (Aluie, Hecht & Vallis 2018), 'fluid' normalises the filter over fluid "
+        "points only; coarse points whose filter footprint or derivative stencil touches land "
+        "are left out of the fit and scores either way")
 
 
 class FitSpec(_Strict):

@@ -3,16 +3,18 @@
 A closure fit ``y_c ~ X_c @ coef`` (one coefficient per library term, shared by all target
 components ``c``) and most of its scores need only, per component::
 
-    gram[c]       = w_c X_c^T X_c        (p, p)
-    xy[c]         = w_c X_c^T y_c        (p,)
-    yy[c]         = w_c y_c^T y_c
-    x_sum[c]      = w_c sum_i X_c[i]     (p,)     (for centred correlations and R^2)
-    y_sum[c]      = w_c sum_i y_c[i]
-    weight_sum[c] = w_c n_c ;  count[c] = n_c
+    gram[c]       = w_c X_c^T P X_c      (p, p)
+    xy[c]         = w_c X_c^T P y_c      (p,)
+    yy[c]         = w_c y_c^T P y_c
+    x_sum[c]      = w_c sum_i P_i X_c[i] (p,)     (for centred correlations and R^2)
+    y_sum[c]      = w_c sum_i P_i y_c[i]
+    weight_sum[c] = w_c sum_i P_i ;  count[c] = number of points with P_i > 0
 
 where ``w_c`` is the component weight (an off-diagonal tensor component stands for two
-entries and weighs 2). These add up exactly across snapshots, chunks and workers, so a
-snapshot reduces to O(p^2) numbers and the fit never sees a point again.
+entries and weighs 2) and ``P = diag(P_i)`` the nonnegative point weights (default 1; 0 for a
+coarse point a land mask excludes, whose values are then never read). These add up exactly
+across snapshots, chunks and workers, so a snapshot reduces to O(p^2) numbers and the fit
+never sees a point again.
 
 Optional ``extra`` blocks hold the same statistics for other linear rows of the same
 coefficients, e.g. the energy transfer ``pi = sum_k coef_k (-T_k : Sbar)``, for fits that
@@ -85,11 +87,15 @@ class SufficientStats:
                     terms: Sequence[str] | None = None,
                     components: Sequence[str] | None = None,
                     snapshot: int | None = None,
-                    extra: Mapping[str, SufficientStats] | None = None) -> SufficientStats:
+                    extra: Mapping[str, SufficientStats] | None = None,
+                    point_weights: np.ndarray | None = None) -> SufficientStats:
         """Statistics of a design ``X`` (C, n, p) and target ``y`` (C, n).
 
-        ``weights`` (C,) are the component weights (default 1). One BLAS call (``X_c.T @ X_c``)
-        per component, in float64. Non-finite values raise a UserError naming the terms.
+        ``weights`` (C,) are the component weights (default 1). ``point_weights`` (n,) are
+        nonnegative weights of the points (default 1; booleans allowed: False drops a point);
+        points of weight 0 are left out before anything is computed, so their values may be
+        anything. One BLAS call (``X_c.T @ X_c``) per component, in float64. Non-finite values
+        raise a UserError naming the terms.
         """
         X = np.asarray(X)
         y = np.asarray(y)
@@ -110,6 +116,17 @@ class SufficientStats:
         w = np.ones(C) if weights is None else np.asarray(weights, dtype=np.float64)
         if w.shape != (C,):
             raise ValueError(f"component weights must have shape ({C},), got {w.shape}")
+        pw = None
+        if point_weights is not None:
+            pw = np.asarray(point_weights, dtype=np.float64).reshape(-1)
+            if pw.shape != (n,) or not (np.isfinite(pw).all() and (pw >= 0).all()):
+                raise ValueError(f"point weights must be {n} finite nonnegative numbers")
+            keep = pw > 0
+            if not keep.all():
+                X, y, pw = X[:, keep], y[:, keep], pw[keep]
+                n = int(keep.sum())
+            if (pw == 1.0).all():
+                pw = None
         gram = np.empty((C, p, p))
         xy = np.empty((C, p))
         yy = np.empty(C)
@@ -118,13 +135,26 @@ class SufficientStats:
         for c in range(C):
             Xc = np.ascontiguousarray(X[c], dtype=np.float64)
             yc = np.ascontiguousarray(y[c], dtype=np.float64)
-            gram[c] = Xc.T @ Xc  # symmetric rank-k update (syrk) in one BLAS call
+            if pw is None:
+                gram[c] = Xc.T @ Xc  # symmetric rank-k update (syrk) in one BLAS call
+                xy[c] = yc @ Xc
+                yy[c] = yc @ yc
+                x_sum[c] = Xc.sum(axis=0)
+                y_sum[c] = yc.sum()
+            else:
+                Xw = Xc * pw[:, None]
+                gram[c] = Xw.T @ Xc
+                xy[c] = yc @ Xw
+                yy[c] = (yc * pw) @ yc
+                x_sum[c] = Xw.sum(axis=0)
+                y_sum[c] = yc @ pw
             gram[c] *= w[c]
-            xy[c] = w[c] * (yc @ Xc)
-            yy[c] = w[c] * (yc @ yc)
-            x_sum[c] = w[c] * Xc.sum(axis=0)
-            y_sum[c] = w[c] * yc.sum()
-        out = cls(terms, components, gram, xy, yy, x_sum, y_sum, w * n,
+            xy[c] *= w[c]
+            yy[c] *= w[c]
+            x_sum[c] *= w[c]
+            y_sum[c] *= w[c]
+        total = float(n) if pw is None else float(pw.sum())
+        out = cls(terms, components, gram, xy, yy, x_sum, y_sum, w * total,
                   np.full(C, n, dtype=np.int64),
                   () if snapshot is None else (int(snapshot),), dict(extra or {}))
         out.check_finite()

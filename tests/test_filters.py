@@ -322,3 +322,31 @@ def test_sharp_filter_needs_periodic_data():
     cg = CoarseGraining("spectral", 2, (0.2,), non_periodic((16,)))
     with pytest.raises(UserError, match="needs periodic data"):
         cg.filter(np.zeros(16))
+
+
+# --- real-space kernels and footprints (used with land masks) -----------------------------------
+
+@pytest.mark.parametrize("kind", ["gaussian", "box"])
+def test_real_space_filter_on_a_periodic_grid_wraps_around(kind):
+    # reference: scipy.ndimage with wrap-around edges (Gaussian sigma = D / sqrt(12), Pope 2000
+    # Table 13.2, cut at 6 sigma; a box of 5 cells is the uniform 5-point mean)
+    g = Grid.regular((40, 48), 1.0)
+    f = np.random.default_rng(7).standard_normal(g.shape)
+    cg = make_coarse_graining(kind, g, 4, 5.0)
+    if kind == "gaussian":
+        ref = scipy.ndimage.gaussian_filter(f, 5.0 / np.sqrt(12), mode="wrap", truncate=6.0)
+    else:
+        ref = scipy.ndimage.uniform_filter(f, 5, mode="wrap")
+    np.testing.assert_allclose(cg.filter(f, real_space=True), ref, atol=1e-14)
+
+
+def test_block_footprint_is_the_block():
+    g = Grid(("y", "x"), (8, 12), (1.0, 1.0), periodic=False)
+    land = np.zeros(g.shape, bool)
+    land[4, 3] = True  # a corner cell of block (1, 0)
+    cg = make_coarse_graining("block", g, 4)
+    touched = cg.footprint_touches(land)
+    assert touched.shape == (2, 3) and touched.sum() == 1 and touched[1, 0]
+    # widened by one cell the land reaches the three neighbouring blocks at that corner
+    np.testing.assert_array_equal(np.argwhere(cg.footprint_touches(land, 1)),
+                                  [[0, 0], [0, 1], [1, 0], [1, 1]])

@@ -142,3 +142,30 @@ def test_zeros_is_the_identity():
     t = SufficientStats.from_design(*_data(4), WEIGHTS, TERMS, COMPONENTS)
     assert (z + t).equals(t)
     assert s.n_terms == 3 and s.n_components == 3
+
+
+def test_point_weights_equal_repeated_and_dropped_rows():
+    # the definition: integer point weights count a row that many times (0: not at all),
+    # checked against numpy on the rows written out
+    rng = np.random.default_rng(4)
+    X = rng.standard_normal((2, 50, 3))
+    y = rng.standard_normal((2, 50))
+    pw = rng.integers(0, 3, 50)
+    X[:, pw == 0] = np.nan  # excluded points are never read
+    s = SufficientStats.from_design(X, y, [1.0, 2.0], point_weights=pw)
+    rows = np.repeat(np.arange(50), pw)
+    ref = SufficientStats.from_design(X[:, rows], y[:, rows], [1.0, 2.0])
+    for name in ("gram", "xy", "yy", "x_sum", "y_sum", "weight_sum"):
+        np.testing.assert_allclose(getattr(s, name), getattr(ref, name), rtol=1e-12)
+    np.testing.assert_array_equal(s.count, [(pw > 0).sum()] * 2)
+    # additive: two halves with their own weights sum to the whole
+    a = SufficientStats.from_design(X[:, :20], y[:, :20], point_weights=pw[:20], snapshot=0)
+    b = SufficientStats.from_design(X[:, 20:], y[:, 20:], point_weights=pw[20:], snapshot=1)
+    whole = SufficientStats.from_design(X, y, point_weights=pw)
+    np.testing.assert_allclose((a + b).gram, whole.gram, rtol=1e-12)
+    assert (a + b).count[0] == whole.count[0]
+    # all-ones weights are no weights, bit for bit
+    X = rng.standard_normal((1, 30, 2))
+    y = rng.standard_normal((1, 30))
+    assert SufficientStats.from_design(X, y, point_weights=np.ones(30, bool)).equals(
+        SufficientStats.from_design(X, y))

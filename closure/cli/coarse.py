@@ -46,12 +46,20 @@ def coarse_grain(
     non_periodic: bool = typer.Option(False, "--non-periodic",
                                       help="the data are not periodic (finite differences, "
                                            "reflecting filter edges)"),
+    land: str = typer.Option("zero", "--land",
+                             help="land points (mask, NaN or fill values): zero (land as zero "
+                                  "velocity, Aluie, Hecht & Vallis 2018) or fluid (filter "
+                                  "normalised over fluid points); land is NaN in the output, "
+                                  "and so are the subgrid terms wherever the filter footprint "
+                                  "touches land"),
 ) -> None:
     """Filter and coarsen every snapshot; write filtered fields and exact subgrid terms."""
-    from closure.filters import make_coarse_graining
+    from closure.filters import LAND_CONVENTIONS, make_coarse_graining
     from closure.io import CoarseWriter, open_fields
     from closure.residuals import coarse_grain_snapshot
 
+    if land not in LAND_CONVENTIONS:
+        raise OptionError(f"--land must be one of {', '.join(LAND_CONVENTIONS)}, got {land!r}")
     variables = parse_var_options(var)
     with open_fields(input, variables, tuple(scalar or ()), periodic=not non_periodic) as src:
         if output.exists() and output.resolve() == src.path.resolve():
@@ -61,20 +69,27 @@ def coarse_grain(
         for w in cg.warnings():
             typer.echo(f"warning: {w}", err=True)
         n = src.n_snapshots
-        pi_sum, back, count = 0.0, 0, 0
+        pi_sum, back, count, excluded = 0.0, 0, 0, 0
         with CoarseWriter(output, src.describe()) as writer, _progress(n) as advance:
             for i in range(n):
-                cs = coarse_grain_snapshot(src.snapshot(i), cg, src.scalars)
+                cs = coarse_grain_snapshot(src.snapshot(i), cg, src.scalars, land=land)
                 writer.append(cs)
                 pi = cs.targets["pi"]
+                if cs.valid is not None:  # land: only points whose footprint avoids it
+                    excluded += int(cs.valid.size - np.count_nonzero(cs.valid))
+                    pi = pi[cs.valid]
                 pi_sum += float(pi.sum())
                 back += int(np.count_nonzero(pi < 0))  # backscatter: pi < 0
                 count += pi.size
                 advance()
         shape = " x ".join(map(str, cg.coarse.shape))
+        stats = (f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}"
+                 if count else "no coarse point clear of land")
+        land_note = (f"; {excluded} coarse point(s) touched by land (NaN subgrid terms, "
+                     f"convention {land!r})" if excluded else "")
         typer.echo(f"wrote {output}: {n} snapshot(s), coarse grid {shape} "
                    f"({', '.join(cg.coarse.dims)}), {cg.kind} filter, ratio {cg.ratio}, "
-                   f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}")
+                   f"{stats}{land_note}")
 
 
 def _progress(total: int):

@@ -15,6 +15,12 @@ def register(app: typer.Typer) -> None:
     app.command("discover")(discover)
 
 
+#: ``--land`` of discover and coarse-grain (closure.spec.FilterSpec.land)
+LAND_OPTION_DEFAULT = "zero"
+LAND_OPTION_HELP = ("land points (mask, NaN or fill values): zero (land as zero velocity, "
+                    "Aluie, Hecht & Vallis 2018) or fluid (filter normalised over fluid points); "
+                    "points whose footprint or stencil touches land are left out either way")
+
 _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
            "score": "scoring held-out snapshots"}
 
@@ -22,7 +28,8 @@ _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
 def build_spec(input: Path, *, filter: str, width: float | None, width_units: str, ratio: int,
                target: str, library: str, method: str, scheme: str, test_fraction: float,
                var: list[str] | None, scalar: list[str] | None, non_periodic: bool,
-               transfer_weight: float, seed: int, resamples: int, snapshots: str | None):
+               transfer_weight: float, seed: int, resamples: int, snapshots: str | None,
+               land: str = "zero"):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option)."""
     from closure.cli.coarse import parse_var_options
     from closure.spec import parse_spec
@@ -38,7 +45,8 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
         "input": {"path": str(input), "variables": parse_var_options(var),
                   "scalars": list(scalar or []), "periodic": not non_periodic,
                   "snapshots": chosen},
-        "filter": {"kind": filter, "width": width, "width_units": width_units, "ratio": ratio},
+        "filter": {"kind": filter, "width": width, "width_units": width_units, "ratio": ratio,
+                   "land": land},
         "target": target,
         "library": library,
         "scheme": scheme,
@@ -103,6 +111,7 @@ def discover(
                                          help="time indices to use, e.g. 0-9,12 (default all)",
                                          show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
+    land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
 ) -> None:
     """Fit a sparse closure from candidate terms, score it on held-out snapshots, write it."""
     from closure import pipeline
@@ -117,7 +126,7 @@ def discover(
                       target=target, library=library, method=method, scheme=scheme,
                       test_fraction=test_fraction, var=var, scalar=scalar,
                       non_periodic=non_periodic, transfer_weight=transfer_weight, seed=seed,
-                      resamples=resamples, snapshots=snapshots)
+                      resamples=resamples, snapshots=snapshots, land=land)
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         model = pipeline.discover(spec, progress=progress)
     path = model.save(output)
