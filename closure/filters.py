@@ -112,9 +112,15 @@ class CoarseGraining:
 
         D^2/12 for box and Gaussian; (r^2 - 1) h^2 / 12 for block averaging of r points of
         spacing h; None for the sharp spectral filter, whose kernel sin(x)/x has no finite
-        second moment.
+        second moment. On bounded grids the box acts in real space as the discrete kernel
+        :func:`box_weights`, whose moment is (D^2 + 2)/12 for an even and (D^2 - 1)/12 for an
+        odd whole number of cells (in h^2): that is the moment reported there.
         """
         a = self.fine.axis(dim)
+        if self.kind == "box" and not self.fine.periodic:
+            w = box_weights(self.widths[a] / self.fine.spacing[a])
+            j = np.arange(w.size) - (w.size - 1) / 2
+            return float(np.sum(w * j**2)) * self.fine.spacing[a] ** 2
         if self.kind in ("box", "gaussian"):
             return self.widths[a] ** 2 / 12.0
         if self.kind == "block":

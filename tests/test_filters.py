@@ -83,6 +83,25 @@ def test_second_moments_box_and_gaussian_are_d2_over_12():
         assert cg.second_moment("x") == pytest.approx(D**2 / 12, rel=1e-14)
 
 
+@pytest.mark.parametrize("cells, want", [(4, (16 + 2) / 12), (5, (25 - 1) / 12),
+                                         (8, (64 + 2) / 12)])
+def test_bounded_box_reports_its_discrete_kernels_moment(cells, want):
+    # On bounded grids the box is the discrete kernel box_weights: even widths put half weights
+    # at the ends, so sum w j^2 = (D^2 + 2)/12; odd widths are D uniform weights, whose
+    # variance is (D^2 - 1)/12 (the discrete uniform distribution; common practice).
+    h = 0.25
+    g = Grid(dims=("x",), shape=(64,), spacing=(h,), periodic=False)
+    cg = make_coarse_graining("box", g, 4, cells * h, "coordinate")
+    w = box_weights(cells)
+    j = np.arange(w.size) - (w.size - 1) / 2
+    assert np.sum(w * j**2) == pytest.approx(want, rel=1e-14)
+    assert cg.second_moment("x") == pytest.approx(want * h**2, rel=1e-14)
+    # the same box on periodic data is applied through its continuous transfer function
+    periodic = make_coarse_graining("box", Grid.regular((64,), 64 * h), 4, cells * h,
+                                    "coordinate")
+    assert periodic.second_moment("x") == pytest.approx((cells * h) ** 2 / 12, rel=1e-14)
+
+
 def test_second_moments_from_the_kernels():
     # kernels of Pope (2000), Table 13.2: box 1/D on |r| < D/2; Gaussian
     # sqrt(6 / (pi D^2)) exp(-6 r^2 / D^2). Their variances, integrated numerically, are D^2/12,
