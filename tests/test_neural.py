@@ -264,3 +264,41 @@ def test_cli_prints_the_model_and_the_network_side_by_side(smooth_file, tmp_path
         and "reference_net_test" in header
     assert "trained 10 of 10 epochs" in text
     assert ClosureModel.load(out).reference_net["training"]["epochs_run"] == 10
+
+
+# ---------------------------------------------------------------------- the report
+@pytest.fixture(scope="module")
+def net_model(smooth_file):
+    pytest.importorskip("torch", reason=NEEDS_TORCH)
+    return pipeline.discover(_spec(smooth_file, net={"epochs": 30}, transfer_weight=0.0))
+
+
+def test_report_shows_the_network_beside_the_model(net_model, smooth_file, tmp_path):
+    from closure.report.gather import build_report
+
+    out = build_report(net_model, tmp_path / "report", smooth_file)
+    page = (out / "index.html").read_text()
+    assert "reference_net_test" in page and "network correlation" in page
+    assert (out / "apriori_hexbin_network.png").stat().st_size > 0
+    numbers = json.loads((out / "report.json").read_text())
+    details = net_model.settings["a_priori_details"]
+    # pooled moments (the report) and sufficient statistics (the pipeline) agree
+    for c, s in numbers["apriori"]["network_agreement"].items():
+        assert s["correlation"] == pytest.approx(
+            details["reference_net_components"][c]["correlation"], rel=1e-8)
+    # the shell sums of the transfer spectrum add up to the domain mean of the pointwise
+    # energy transfer (Parseval; DEVELOPERS.md "Transfer spectra")
+    energy = next(t for t in numbers["apriori"]["transfers"] if t["name"] == "energy")
+    assert energy["network_total"] == pytest.approx(
+        details["reference_net_transfers"]["energy_transfer"]["mean_model"], rel=1e-6)
+
+
+def test_report_without_torch_leaves_the_network_figures_out(net_model, smooth_file, tmp_path,
+                                                            no_torch):
+    from closure.report.gather import build_report
+
+    out = build_report(net_model.to_dict(), tmp_path / "report", smooth_file)
+    page = (out / "index.html").read_text()
+    assert "reference_net_test" in page  # the stored scores need no torch
+    assert "left out of the figures" in page and "pip install torch==2.13.0" in page
+    assert not (out / "apriori_hexbin_network.png").exists()
