@@ -18,9 +18,10 @@ stress ``bar(u_i u_j) - bar(u_i) bar(u_j)`` loses the ratio ``rms bar(u_i u_j) /
 (10-1000 on turbulence data), so expect 1e-6 to 1e-4 relative RMS error on tau and its
 derivatives (measured in tests/test_backend.py and bench/gpu_pass.py).
 
-The periodic pass computes each output on the fine grid and samples every ``ratio``-th point;
-closure.residuals folds spectra onto the coarse grid instead (less memory, same values to
-rounding). Only periodic data with a box, Gaussian or sharp spectral filter take this path.
+Only periodic data with a box, Gaussian or sharp spectral filter take this path; the folding
+onto the coarse grid is done on every axis but the last (an inverse transform on the coarse
+points of those axes, then every r-th point of the last one), where closure.residuals folds
+every axis; the values agree to rounding.
 """
 
 from __future__ import annotations
@@ -209,8 +210,14 @@ def coarse_grain_periodic(fields: Mapping[str, np.ndarray], cg: CoarseGraining,
     arrays ``(fields, targets)``.
 
     ``fields``: fine-grid ``u, v[, w]`` and the ``scalars``; ``targets``: names from
-    :func:`periodic_target_names` (None: all). Memory on the backend's device: the velocity,
-    its spectra and a few fine-grid work arrays (about 12 fine fields for a 3-D stress).
+    :func:`periodic_target_names` (None: all). As in closure.residuals, one forward transform
+    per field or product; a filtered (differentiated) field sampled on the coarse grid is its
+    spectrum folded onto the coarse wavenumbers of every axis but the last, then an inverse
+    transform of r^(d-1) times fewer points and every r-th point of the last axis; the stress
+    and fluxes are differences of sampled fields; the force and the vorticity forcing are
+    fine-grid derivatives of the filtered terms, which need the filtered velocity (and
+    vorticity) on the fine grid. Memory on the backend's device: the velocity, its spectra
+    and a few fine-grid work arrays.
     """
     fine = cg.fine
     if not fine.periodic or cg.kind == "block":
@@ -224,14 +231,12 @@ def coarse_grain_periodic(fields: Mapping[str, np.ndarray], cg: CoarseGraining,
                         f"{', '.join(every)}")
     be = backend or NumpyBackend()
     nd, shape, r = fine.ndim, fine.shape, cg.ratio
-    dims, dirs, pairs = fine.dims, _directions(fine.dims), _pairs(fine.dims)
-    two_d = tuple(dims) == ("y", "x")
+    dirs, pairs = _directions(fine.dims), _pairs(fine.dims)
+    two_d = tuple(fine.dims) == ("y", "x")
     T = be.asarray(cg.spectral_multiplier)
     ik = {d: be.asarray(v) for d, v in _ik(fine).items()}
-    index = (Ellipsis,) + (slice(None, None, r),) * nd
-
-    def sample(a):
-        return be.numpy(a[index])
+    foldable = all(n % r == 0 for n in shape[:-1])
+    coarse_shape = tuple(n // r for n in shape[:-1]) + (shape[-1],)
 
     def spectrum(a):
         return be.rfftn(a, nd)
@@ -239,62 +244,75 @@ def coarse_grain_periodic(fields: Mapping[str, np.ndarray], cg: CoarseGraining,
     def back(h):
         return be.irfftn(h, shape)
 
+    def coarse(h):
+        """The field of spectrum ``h`` at every r-th fine point, float64 numpy."""
+        if not foldable:
+            return be.numpy(back(h)[(Ellipsis,) + (slice(None, None, r),) * nd])
+        for a in range(nd - 1):  # alias the full-FFT axes onto the coarse wavenumbers
+            n, ax = shape[a], h.ndim - nd + a
+            h = h.reshape(*h.shape[:ax], r, n // r, *h.shape[ax + 1:]).sum(ax)
+        g = be.irfftn(h, coarse_shape) / float(r ** (nd - 1))
+        return be.numpy(g[..., ::r])
+
     vel = {i: be.asarray(fields[VELOCITY_OF[i]]) for i in dirs}
     U = {i: spectrum(vel[i]) for i in dirs}
-    ubar = {i: back(T * U[i]) for i in dirs}
-    out_fields = {VELOCITY_OF[i]: sample(ubar[i]) for i in dirs}
+    ubar = {i: coarse(T * U[i]) for i in dirs}
+    out_fields = {VELOCITY_OF[i]: ubar[i] for i in dirs}
     cbar = {}
     for c in scalars:
-        cbar[c] = back(T * spectrum(be.asarray(fields[c])))
-        out_fields[c] = sample(cbar[c])
-    need_grad = "pi" in want or two_d
-    grad = ({(i, j): back(ik[j] * T * U[i]) for i in dirs for j in dirs} if need_grad else {})
+        cbar[c] = out_fields[c] = coarse(T * spectrum(be.asarray(fields[c])))
+    grad = {}
+    if "pi" in want or two_d:
+        grad = {(i, j): coarse(ik[j] * T * U[i]) for i in dirs for j in dirs
+                if "pi" in want or i != j}
     if two_d:
-        out_fields["vorticity"] = sample(grad["y", "x"] - grad["x", "y"])
+        out_fields["vorticity"] = grad["y", "x"] - grad["x", "y"]
 
     out = {}
     need_force = any(t.startswith("force_") for t in want)
+    need_vf = two_d and "vorticity_forcing" in want
+    fine_ubar = ({i: back(T * U[i]) for i in dirs} if need_force or need_vf else {})
     if want & {*(f"tau_{i}{j}" for i, j in pairs), "pi"} or need_force:
-        tau, force = {}, {}
+        force = {}
         for i, j in pairs:
-            t = back(T * spectrum(vel[i] * vel[j])) - ubar[i] * ubar[j]
+            bar_p = T * spectrum(vel[i] * vel[j])
+            out[f"tau_{i}{j}"] = coarse(bar_p) - ubar[i] * ubar[j]
             if need_force:
-                th = spectrum(t)
+                th = bar_p - spectrum(fine_ubar[i] * fine_ubar[j])  # tau_ij on the fine grid
                 force[i] = force.get(i, 0) + ik[j] * th
                 if i != j:
                     force[j] = force.get(j, 0) + ik[i] * th
                 del th
-            if f"tau_{i}{j}" in want:
-                out[f"tau_{i}{j}"] = sample(t)
-            if "pi" in want:
-                tau[i, j] = t
-            del t
-        if need_force:
-            for i in dirs:
-                out[f"force_{i}"] = sample(back(force[i]))
+            del bar_p
+        for i in dirs if need_force else ():
+            out[f"force_{i}"] = coarse(force.pop(i))
         if "pi" in want:
-            total = 0
+            total = 0.0
             for i, j in pairs:
                 strain = 0.5 * (grad[i, j] + grad[j, i])
-                total = total + (1.0 if i == j else 2.0) * tau[i, j] * strain
-            out["pi"] = sample(-total)
+                total = total + (1.0 if i == j else 2.0) * out[f"tau_{i}{j}"] * strain
+            out["pi"] = -total
     for c in scalars:
         if not want & {f"flux_{c}_{j}" for j in dirs}:
             continue
         field = be.asarray(fields[c])
         for j in dirs:
-            out[f"flux_{c}_{j}"] = sample(back(T * spectrum(vel[j] * field)) - ubar[j] * cbar[c])
+            out[f"flux_{c}_{j}"] = coarse(T * spectrum(vel[j] * field)) - ubar[j] * cbar[c]
     if two_d and want & {"vorticity_forcing", "enstrophy_transfer"}:
         W = ik["x"] * U["y"] - ik["y"] * U["x"]  # omega = d_x v - d_y u
-        omega, Wbar = back(W), T * W
-        omega_bar = back(Wbar)
-        sigma = {j: back(T * spectrum(vel[j] * omega)) - ubar[j] * omega_bar for j in dirs}
-        if "vorticity_forcing" in want:
-            out["vorticity_forcing"] = sample(back(sum(ik[j] * spectrum(sigma[j])
-                                                       for j in dirs)))
+        omega = back(W)
+        omega_bar = coarse(T * W)
+        fine_omega_bar = back(T * W) if need_vf else None
+        sigma, vf = {}, 0
+        for j in dirs:
+            bar_s = T * spectrum(vel[j] * omega)
+            sigma[j] = coarse(bar_s) - ubar[j] * omega_bar
+            if need_vf:
+                vf = vf + ik[j] * (bar_s - spectrum(fine_ubar[j] * fine_omega_bar))
+        if need_vf:
+            out["vorticity_forcing"] = coarse(vf)
         if "enstrophy_transfer" in want:
-            out["enstrophy_transfer"] = sample(-sum(sigma[j] * back(ik[j] * Wbar)
-                                                    for j in dirs))
+            out["enstrophy_transfer"] = -sum(sigma[j] * coarse(ik[j] * T * W) for j in dirs)
     return out_fields, {k: out[k] for k in every if k in want}
 
 
