@@ -118,10 +118,10 @@ def discover(
         False, "--reference-net", help="also train a small convolutional network (needs "
         "torch==2.13.0) on the same snapshots and score it beside the model"),
     net_epochs: int | None = typer.Option(
-        None, "--net-epochs", help="training budget of --reference-net in epochs [default: 300]",
+        None, "--net-epochs", help="training budget of --reference-net in epochs (default 300)",
         show_default=False),
     net_seconds: float | None = typer.Option(
-        None, "--net-seconds", help="training time limit of --reference-net, s [default: 120]",
+        None, "--net-seconds", help="training time limit of --reference-net, s (default 120)",
         show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
 ) -> None:
