@@ -32,6 +32,10 @@ Model file, schema version 1 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Sche
 ``scores``            ``{train: {...}, test: {r2, corr, ...}}`` a priori scores
 ``warnings``          list of text
 ``caution``           a priori skill does not guarantee a stable or accurate coarse simulation
+``reference_net``     optional: the neural reference closure trained and scored beside the
+                      model (``closure.neural.ReferenceNet.to_dict``: architecture, inputs,
+                      normalization, training settings and record, state dict as base64
+                      float32); its held-out scores are ``scores.reference_net_test``
 
 ``coefficient = coefficient_scaled * delta ** delta_power``. The model evaluates
 ``sum_k coefficient_scaled_k * term_k`` with the model's own scheme and Delta on whatever grid it
@@ -159,6 +163,20 @@ MODEL_SCHEMA = {
         "scores": {"type": "object", "additionalProperties": {"type": "object"}},
         "warnings": _STRINGS,
         "caution": {"type": "string", "minLength": 1},
+        "reference_net": {
+            "type": "object",
+            "required": ["architecture", "target", "components", "dims", "scheme", "inputs",
+                         "normalization", "training", "state"],
+            "properties": {
+                "architecture": {"type": "object", "required": ["kind", "ndim"]},
+                "components": {**_STRINGS, "minItems": 1},
+                "inputs": _STRINGS,
+                "normalization": {"type": "object",
+                                  "required": ["input_scale", "output_mean", "output_scale"]},
+                "training": {"type": "object"},
+                "state": {"type": "object", "required": ["dtype", "tensors", "sha256"]},
+            },
+        },
     },
 }
 
@@ -324,7 +342,8 @@ class ClosureModel:
                  filter: Mapping | CoarseGraining, grid: Grid | Mapping, scheme: str,
                  delta: float, provenance: Mapping | None = None, method: str | None = None,
                  settings: Mapping | None = None, scores: Mapping | None = None,
-                 warnings: Sequence[str] = (), caution: str = CAUTION):
+                 warnings: Sequence[str] = (), caution: str = CAUTION,
+                 reference_net: Mapping | None = None):
         n = len(library.terms)
         cs = np.asarray(coefficients_scaled, dtype=float).reshape(-1)
         if cs.size != n:
@@ -360,6 +379,8 @@ class ClosureModel:
         # what the library says about its terms (a user term repeating others) comes first
         self.warnings = [w for w in library.warnings if w not in given] + given
         self.caution = caution or CAUTION
+        #: the neural reference closure's stored form (closure.neural), or None
+        self.reference_net = None if reference_net is None else _plain(dict(reference_net))
 
     # -- construction ------------------------------------------------------------------------
 
@@ -371,7 +392,8 @@ class ClosureModel:
                  grid: Grid | Mapping, scheme: str, delta: float,
                  provenance: Mapping | None = None, method: str | None = None,
                  settings: Mapping | None = None, scores: Mapping | None = None,
-                 warnings: Sequence[str] = ()) -> ClosureModel:
+                 warnings: Sequence[str] = (),
+                 reference_net: Mapping | None = None) -> ClosureModel:
         """A model from a fit of ``design(library, ..., scheme, delta)`` columns.
 
         ``coefficients`` and ``std_errors`` are those of the design columns, one per library
@@ -382,7 +404,8 @@ class ClosureModel:
             raise ValueError(f"target {target!r} differs from the library's {library.target!r}")
         return cls(library, coefficients, std_errors, selection_frequency, filter=filter,
                    grid=grid, scheme=scheme, delta=delta, provenance=provenance, method=method,
-                   settings=settings, scores=scores, warnings=warnings)
+                   settings=settings, scores=scores, warnings=warnings,
+                   reference_net=reference_net)
 
     # -- properties --------------------------------------------------------------------------
 
@@ -464,6 +487,16 @@ class ClosureModel:
         return predict(self.library, self.coefficients_scaled, fields, grid, self.scheme,
                        self.delta)
 
+    def reference_network(self):
+        """The stored neural reference closure as a :class:`closure.neural.ReferenceNet`
+        (needs torch; UserError when the model has none or torch is missing)."""
+        if self.reference_net is None:
+            raise UserError("this model has no reference network: rediscover it with "
+                            "--reference-net")
+        from closure.neural import ReferenceNet
+
+        return ReferenceNet.from_dict(self.reference_net)
+
     def grid_warnings(self, grid: Grid) -> list[str]:
         """Differences between ``grid`` and the training grid worth telling the user."""
         out = []
@@ -493,7 +526,7 @@ class ClosureModel:
                 "active": bool(self.active[k]),
             })
             terms.append(rec)
-        return _plain({
+        out = _plain({
             "format": MODEL_FORMAT,
             "schema_version": MODEL_SCHEMA_VERSION,
             "target": self.target,
@@ -514,6 +547,9 @@ class ClosureModel:
             "warnings": self.warnings,
             "caution": self.caution,
         })
+        if self.reference_net is not None:
+            out["reference_net"] = self.reference_net
+        return out
 
     @classmethod
     def from_dict(cls, d: Mapping, source: str = "model") -> ClosureModel:
@@ -554,7 +590,8 @@ class ClosureModel:
                    [t["selection_frequency"] for t in d["terms"]],
                    filter=d["filter"], grid=d["grid"], scheme=d["scheme"], delta=delta,
                    provenance=d["provenance"], method=d["method"], settings=d["settings"],
-                   scores=d["scores"], warnings=d["warnings"], caution=d["caution"])
+                   scores=d["scores"], warnings=d["warnings"], caution=d["caution"],
+                   reference_net=d.get("reference_net"))
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), indent=2, allow_nan=False) + "\n"
@@ -635,6 +672,8 @@ class ClosureModel:
         scores = _scores_lines(self.scores, self.components)
         if scores:
             lines += ["", *scores]
+        if self.reference_net is not None:
+            lines += ["", *_reference_net_lines(self.reference_net)]
         lines.append("")
         if self.warnings:
             lines.append("Warnings:")
@@ -712,6 +751,9 @@ def _scores_lines(scores: Mapping, components: Sequence[str]) -> list[str]:
         if m:
             out.append(f"  {s} = the {m['term']} term alone, least squares on train, scored "
                        f"on {m['split']}")
+        elif s == "reference_net_test":
+            out.append(f"  {s} = the neural reference network, trained on train, scored on "
+                       "test")
     first = next((s for s in splits if parsed[s][1]), None)
     if first is not None:
         per = parsed[first][1]
@@ -720,6 +762,21 @@ def _scores_lines(scores: Mapping, components: Sequence[str]) -> list[str]:
         table += [[c, *(_fmt(per[m][c]) if c in per[m] else "-" for m in per)] for c in comps]
         out += ["", *_aligned(table)]
     return out
+
+
+def _reference_net_lines(net: Mapping) -> list[str]:
+    """What the summary says of the stored reference network."""
+    a, t = net.get("architecture", {}), net.get("training", {})
+    lines = [f"Reference network: {a.get('depth')} convolutions of {a.get('width')} channels, "
+             f"kernel {a.get('kernel')}, {a.get('padding')} padding, "
+             f"{net.get('parameters', '?')} parameters; inputs {', '.join(net.get('inputs', []))}",
+             f"  trained {t.get('epochs_run')} of {t.get('epochs')} epochs (stopped by "
+             f"{t.get('stopped_by')}, {t.get('elapsed_seconds')} s), seed {t.get('seed')}, "
+             f"final loss {_fmt(t.get('final_loss'))}",
+             "  its scores (reference_net_test) show how much skill the closed form leaves on "
+             "the table; a priori skill of either does not guarantee a stable coarse "
+             "simulation"]
+    return lines
 
 
 def _aligned(table: list[list[str]]) -> list[str]:

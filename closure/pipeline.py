@@ -512,6 +512,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
     grid = Grid.from_dict(plan["grid"])
     library = _library(spec, grid.dims)
     base = _baseline(library, spec, train_stats)
+    net = _reference_net(spec, plan, train, progress, source, held_out)
+    net_stats, net_sums = [], {}
 
     # second pass over the held-out snapshots: pointwise transfers of model and baseline
     from closure.library import predict
@@ -536,6 +538,9 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
             tm = ctx.transfers({c: model[c] for c in comps})
             for k in te:
                 acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)
+        if net is not None:
+            net_stats.append(_score_network(net, fields, exact, coarse, plan, i, ctx, te,
+                                            net_sums, valid, tv))
     progress("score", len(test), len(test))
 
     scores = {
@@ -552,6 +557,14 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         details["baseline"] = {"term": base[0],
                                "coefficient_scaled": float(base[1][library.names.index(base[0])])}
     land = land_record(spec, plan, stats)
+    if net is not None:
+        from closure.neural import SCORES_KEY
+
+        net_test = SufficientStats.merge(net_stats)
+        scores[SCORES_KEY] = _flat_scores(prediction_scores(net_test, np.ones(1)),
+                                          transfer_scores(net_sums))
+        details["reference_net_components"] = prediction_scores(net_test, np.ones(1))
+        details["reference_net_transfers"] = transfer_scores(net_sums)
     warnings = list(plan.get("warnings") or []) + list(fit.warnings)
     if land["excluded_points"]:
         warnings.append(land["note"])
@@ -573,7 +586,56 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         None if fit.selection_frequency is None else list(fit.selection_frequency),
         target=spec.target, filter=dict(plan["filter"]), grid=plan["coarse_grid"],
         scheme=spec.scheme, delta=float(plan["delta"]), provenance=_provenance(spec, plan),
-        method=spec.fit.method, settings=settings, scores=scores, warnings=warnings)
+        method=spec.fit.method, settings=settings, scores=scores, warnings=warnings,
+        reference_net=None if net is None else net.to_dict())
+
+
+def _reference_net(spec: JobSpec, plan: Mapping, train, progress: Progress, source=None,
+                   held_out: HeldOut | None = None):
+    """The neural reference closure trained on the training snapshots (None when the spec
+    does not ask for it); their coarse fields come from ``held_out`` when kept there."""
+    if not spec.reference_net.enabled:
+        return None
+    from closure.neural import train_reference_net
+
+    comps = list(plan["components"])
+
+    def snapshots():
+        for i in sorted(train):
+            if held_out is not None and i in held_out:
+                fields, targets, valid = held_out.get(i)
+            else:
+                cs, _, _ = _coarse(spec, plan, i, source)
+                fields, targets, valid = cs.fields, cs.targets, cs.valid
+            if valid is not None and not np.all(valid):
+                raise OptionError("the reference network is trained on whole coarse fields and "
+                                  "does not take land masks yet: leave out --reference-net "
+                                  "(reference_net.enabled) for data with land")
+            yield fields, {c: targets[c] for c in comps}
+
+    return train_reference_net(snapshots(), Grid.from_dict(plan["coarse_grid"]), spec.target,
+                               spec.scheme, comps, plan["weights"], spec.reference_net,
+                               progress)
+
+
+def _score_network(net, fields, exact, coarse: Grid, plan: Mapping, index: int,
+                   ctx: TransferContext, exact_transfers, sums: dict,
+                   valid: np.ndarray | None = None,
+                   transfer_points: np.ndarray | None = None) -> SufficientStats:
+    """Statistics of the network's prediction on one held-out snapshot as a one-term design
+    (so the scores are those of the sparse model, from the same formulas, on the same valid
+    points), and its transfer sums added to ``sums``."""
+    comps = list(plan["components"])
+    pred = net.predict(fields, coarse)
+    tm = ctx.transfers({c: pred[c] for c in comps})
+    for k in exact_transfers:
+        sums[k] = sums.get(k, 0) + TransferSums.from_fields(tm[k], exact_transfers[k],
+                                                            transfer_points)
+    X = np.stack([pred[c].reshape(-1) for c in comps])[:, :, None]
+    y = np.stack([np.asarray(exact[c]).reshape(-1) for c in comps])
+    return SufficientStats.from_design(X, y, plan["weights"], ["reference_net"], comps,
+                                       snapshot=int(index),
+                                       point_weights=None if valid is None else valid.reshape(-1))
 
 
 def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats]) -> dict:
@@ -629,6 +691,10 @@ def discover(spec: JobSpec, progress: Progress | None = None):
     from closure.io import sha256_file
 
     progress = progress or _no_progress
+    if spec.reference_net.enabled:  # fail before the long pass, not after it
+        from closure.neural import require_torch
+
+        require_torch()
     progress("plan", 0, 1)
     with _open(spec) as src, ThreadPoolExecutor(max_workers=1) as pool, \
             tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
@@ -644,7 +710,7 @@ def discover(spec: JobSpec, progress: Progress | None = None):
             for done, i in enumerate(indices):
                 progress("map", done, len(indices))
                 stats[i], cs = _map(spec, p, i, source=src)
-                if i in test:
+                if i in test or spec.reference_net.enabled:  # the network trains on them
                     held_out.put(cs)
                 del cs
             progress("map", len(indices), len(indices))

@@ -76,6 +76,33 @@ class FitSpec(_Strict):
         "held-out error, or the best")
 
 
+class ReferenceNetSpec(_Strict):
+    """The optional neural reference closure (closure.neural): a small convolutional network
+    trained on the same coarse training snapshots and scored on the same held-out ones.
+
+    Training stops at ``epochs`` or after ``seconds``, whichever comes first; only a run
+    stopped by ``epochs`` is reproducible (same seed and threads, same weights on CPU)."""
+
+    enabled: bool = False
+    epochs: Annotated[int, Field(ge=1, le=100_000)] = 300
+    seconds: Annotated[float, Field(gt=0)] = 120.0
+    width: Annotated[int, Field(ge=1, le=512)] = Field(32, description="channels per layer")
+    depth: Annotated[int, Field(ge=2, le=16)] = Field(4, description="convolution layers")
+    kernel: Annotated[int, Field(ge=1, le=9)] = Field(3, description="odd kernel size")
+    learning_rate: Annotated[float, Field(gt=0, le=1)] = 2e-3
+    batch: Annotated[int, Field(ge=1, le=4096)] = Field(4, description="snapshots per step")
+    seed: int = 0
+    threads: Annotated[int, Field(ge=1, le=256)] = Field(
+        1, description="torch CPU threads (fixed, so the weights do not depend on the machine)")
+
+    @field_validator("kernel")
+    @classmethod
+    def _odd(cls, v: int) -> int:
+        if v % 2 == 0:
+            raise ValueError("kernel must be odd (3, 5, ...) so the output keeps the grid")
+        return v
+
+
 class JobSpec(_Strict):
     """A closure-discovery job: read, coarse-grain, fit, score, store."""
 
@@ -87,6 +114,7 @@ class JobSpec(_Strict):
     library: str = Field("default", description="a preset name or a path to a terms file")
     scheme: Scheme = "spectral"
     fit: FitSpec = FitSpec()
+    reference_net: ReferenceNetSpec = ReferenceNetSpec()
 
     @field_validator("target")
     @classmethod
@@ -99,6 +127,8 @@ class JobSpec(_Strict):
         """The fields that determine the result (for identical-resubmission detection)."""
         d = self.model_dump(mode="json")
         d["input"] = {k: v for k, v in d["input"].items() if k not in ("path", "dataset_id")}
+        if not d["reference_net"]["enabled"]:
+            del d["reference_net"]  # jobs without a network keep their earlier fingerprint
         return d
 
 

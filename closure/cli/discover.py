@@ -22,6 +22,7 @@ LAND_OPTION_HELP = ("land points (mask, NaN or fill values): zero (land as zero 
                     "points whose footprint or stencil touches land are left out either way")
 
 _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
+           "network": "training the reference network (epochs)",
            "score": "scoring held-out snapshots"}
 
 
@@ -29,7 +30,8 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
                target: str, library: str, method: str, scheme: str, test_fraction: float,
                var: list[str] | None, scalar: list[str] | None, non_periodic: bool,
                transfer_weight: float, seed: int, resamples: int, snapshots: str | None,
-               land: str = "zero"):
+               land: str = "zero", reference_net: bool = False, net_epochs: int | None = None,
+               net_seconds: float | None = None):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option)."""
     from closure.cli.coarse import parse_var_options
     from closure.spec import parse_spec
@@ -41,6 +43,14 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
         except ValueError:
             raise OptionError(f"--snapshots expects indices like 0,2,5-9, got {snapshots!r}") \
                 from None
+    if not reference_net and (net_epochs is not None or net_seconds is not None):
+        raise OptionError("--net-epochs and --net-seconds set the budget of --reference-net: "
+                          "add --reference-net, or leave them out")
+    net = {"enabled": reference_net, "seed": seed}
+    if net_epochs is not None:
+        net["epochs"] = net_epochs
+    if net_seconds is not None:
+        net["seconds"] = net_seconds
     return parse_spec({
         "input": {"path": str(input), "variables": parse_var_options(var),
                   "scalars": list(scalar or []), "periodic": not non_periodic,
@@ -52,6 +62,7 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
         "scheme": scheme,
         "fit": {"method": method, "test_fraction": test_fraction, "resamples": resamples,
                 "transfer_weight": transfer_weight, "seed": seed},
+        "reference_net": net,
     })
 
 
@@ -110,6 +121,15 @@ def discover(
     snapshots: str | None = typer.Option(None, "--snapshots",
                                          help="time indices to use, e.g. 0-9,12 (default all)",
                                          show_default=False),
+    reference_net: bool = typer.Option(
+        False, "--reference-net", help="also train a small convolutional network (needs "
+        "torch==2.13.0) on the same snapshots and score it beside the model"),
+    net_epochs: int | None = typer.Option(
+        None, "--net-epochs", help="training budget of --reference-net in epochs (default 300)",
+        show_default=False),
+    net_seconds: float | None = typer.Option(
+        None, "--net-seconds", help="training time limit of --reference-net, s (default 120)",
+        show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
     land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
 ) -> None:
@@ -126,7 +146,9 @@ def discover(
                       target=target, library=library, method=method, scheme=scheme,
                       test_fraction=test_fraction, var=var, scalar=scalar,
                       non_periodic=non_periodic, transfer_weight=transfer_weight, seed=seed,
-                      resamples=resamples, snapshots=snapshots, land=land)
+                      resamples=resamples, snapshots=snapshots, land=land,
+                      reference_net=reference_net, net_epochs=net_epochs,
+                      net_seconds=net_seconds)
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         model = pipeline.discover(spec, progress=progress)
     path = model.save(output)

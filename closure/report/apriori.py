@@ -22,11 +22,15 @@ class TransferSpectrum:
     k: np.ndarray
     exact: np.ndarray
     model: np.ndarray
+    network: np.ndarray | None = None  # the neural reference closure's, when it was given
 
     def to_dict(self) -> dict:
-        return {"name": self.name, "label": self.label, "k": self.k.tolist(),
-                "exact": self.exact.tolist(), "model": self.model.tolist(),
-                "exact_total": float(self.exact.sum()), "model_total": float(self.model.sum())}
+        out = {"name": self.name, "label": self.label, "k": self.k.tolist(),
+               "exact": self.exact.tolist(), "model": self.model.tolist(),
+               "exact_total": float(self.exact.sum()), "model_total": float(self.model.sum())}
+        if self.network is not None:
+            out.update(network=self.network.tolist(), network_total=float(self.network.sum()))
+        return out
 
 
 @dataclass
@@ -86,6 +90,15 @@ class AprioriData:
     notes: list[str] = field(default_factory=list)
     moments: dict[str, Moments] | None = None
     stride: int = 1
+    #: the neural reference closure on the same points (None: not given)
+    network: dict[str, np.ndarray] | None = None
+    network_moments: dict[str, Moments] | None = None
+
+    def network_agreement(self) -> dict[str, dict[str, float]] | None:
+        """R^2 and correlation of the reference network per component (None: no network)."""
+        if self.network_moments is None:
+            return None
+        return {n: m.agreement() for n, m in self.network_moments.items()}
 
     def agreement(self) -> dict[str, dict[str, float]]:
         """R^2 and correlation per component over every point (see
@@ -95,10 +108,13 @@ class AprioriData:
         return {n: agreement(self.exact[n], self.modelled[n]) for n in self.exact}
 
     def to_dict(self) -> dict:
-        return {"snapshots": self.snapshot_indices, "agreement": self.agreement(),
-                "points": {n: int(m.n) for n, m in (self.moments or {}).items()},
-                "scatter_stride": self.stride,
-                "transfers": [t.to_dict() for t in self.transfers], "notes": self.notes}
+        out = {"snapshots": self.snapshot_indices, "agreement": self.agreement(),
+               "points": {n: int(m.n) for n, m in (self.moments or {}).items()},
+               "scatter_stride": self.stride,
+               "transfers": [t.to_dict() for t in self.transfers], "notes": self.notes}
+        if self.network_moments is not None:
+            out["network_agreement"] = self.network_agreement()
+        return out
 
 
 def _dirs_field(fields, grid, prefix):
@@ -146,12 +162,27 @@ def _transfers(target: str, fields: dict, exact: dict, modelled: dict, grid,
     return out
 
 
+def reference_network_of(model, notes: list[str]):
+    """The model's neural reference closure for the figures, or None (no network stored, or
+    torch missing: then a note in ``notes`` says why it is left out)."""
+    if getattr(model, "reference_net", None) is None or not hasattr(model,
+                                                                    "reference_network"):
+        return None
+    from closure.errors import UserError
+
+    try:
+        return model.reference_network()
+    except UserError as exc:
+        notes.append(f"the model's reference network is left out of the figures: {exc}")
+        return None
+
+
 #: Most points per component kept for the scatter figure (statistics use every point).
 MAX_SCATTER_POINTS = 1_000_000
 
 
 def apriori_data(model, snapshots: Iterable, transfer: bool = True,
-                 max_points: int = MAX_SCATTER_POINTS) -> AprioriData:
+                 max_points: int = MAX_SCATTER_POINTS, network=None) -> AprioriData:
     """Evaluate ``model`` on each coarse snapshot (``.fields``, ``.targets``, ``.grid``,
     ``.index``) and compare exact and modelled values of every component the model predicts.
 
@@ -159,7 +190,9 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
     ``max_points`` per component (a regular stride, doubled whenever the cap is passed).
     Transfer spectra are computed on periodic grids only (a note says when they are skipped);
     stress targets are turned into forces with the model's own derivative scheme, applied
-    alike to the exact and the modelled stress.
+    alike to the exact and the modelled stress. ``network``: the model's neural reference
+    closure (anything with ``predict(fields, grid)``, e.g. :class:`closure.neural.ReferenceNet`),
+    compared on the same points and in the same spectra.
     """
     exact: dict[str, list] = {}
     modelled: dict[str, list] = {}
@@ -170,8 +203,11 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
     target = model.target
     scheme = getattr(model, "scheme", "spectral")
     count, stride, kept = 0, 1, 0
+    net_values: dict[str, list] | None = None if network is None else {}
+    net_moments: dict[str, Moments] = {}
     for snap in snapshots:
         pred = model.evaluate(snap.fields, snap.grid)
+        net_pred = None if network is None else network.predict(snap.fields, snap.grid)
         names = [n for n in pred if n in snap.targets]
         if not names:
             raise ValueError(f"the model predicts {sorted(pred)}, none of which is among the "
@@ -182,10 +218,14 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
             moments[n] = moments.get(n, Moments()) + Moments.of(y, p)
             exact.setdefault(n, []).append(y[::stride])
             modelled.setdefault(n, []).append(p[::stride])
+            if net_pred is not None:
+                q = np.asarray(net_pred[n], dtype=float).ravel()
+                net_moments[n] = net_moments.get(n, Moments()) + Moments.of(y, q)
+                net_values.setdefault(n, []).append(q[::stride])
         kept += exact[names[0]][-1].size
         while kept > max_points:  # thin what is kept so far, and what comes, by 2
             stride *= 2
-            for store in (exact, modelled):
+            for store in (exact, modelled) + ((net_values,) if net_values is not None else ()):
                 for n in store:
                     store[n] = [a[::2] for a in store[n]]
             kept = sum(a.size for a in exact[names[0]])
@@ -193,9 +233,13 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
         if transfer and snap.grid.periodic:
             for name, (label, k, te, tm) in _transfers(target, snap.fields, snap.targets, pred,
                                                        snap.grid, scheme).items():
-                acc = sums.setdefault(name, [label, k, 0.0, 0.0])
+                acc = sums.setdefault(name, [label, k, 0.0, 0.0, None])
                 acc[2] = acc[2] + te
                 acc[3] = acc[3] + tm
+            if net_pred is not None:
+                for name, (_, _, _, tn) in _transfers(target, snap.fields, snap.targets,
+                                                      net_pred, snap.grid, scheme).items():
+                    sums[name][4] = tn if sums[name][4] is None else sums[name][4] + tn
         count += 1
     if not count:
         raise ValueError("no snapshots to compare the model against")
@@ -205,8 +249,12 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
     if stride > 1:
         notes.append(f"the scatter figure shows every {stride}-th point; the scores use all "
                      "of them")
-    transfers = [TransferSpectrum(name, label, k, te / count, tm / count)
-                 for name, (label, k, te, tm) in sums.items()]
+    transfers = [TransferSpectrum(name, label, k, te / count, tm / count,
+                                  None if tn is None else tn / count)
+                 for name, (label, k, te, tm, tn) in sums.items()]
     return AprioriData({n: np.concatenate(v) for n, v in exact.items()},
                        {n: np.concatenate(v) for n, v in modelled.items()},
-                       indices, transfers, notes, moments, stride)
+                       indices, transfers, notes, moments, stride,
+                       None if net_values is None else
+                       {n: np.concatenate(v) for n, v in net_values.items()},
+                       None if network is None else net_moments)

@@ -152,7 +152,7 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
     ``sweep``: sweep result (SweepResult, dict or JSON path from ``closure sweep``).
     """
     from closure.report.aposteriori import as_runs
-    from closure.report.apriori import apriori_data
+    from closure.report.apriori import apriori_data, reference_network_of
     from closure.report.page import _sweep_dict, write_report
 
     model_file = Path(model) if isinstance(model, str | os.PathLike) else None
@@ -182,7 +182,7 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
     if input_path is not None:
         snaps, more = held_out_snapshots(model, input_path, snapshots, progress)
         notes += more
-        apriori = apriori_data(model, snaps)
+        apriori = apriori_data(model, snaps, network=reference_network_of(model, notes))
     if progress is not None:
         progress("write", 0, 1)
     out = write_report(model, out_dir, les_result=les, sweep=sweep, apriori=apriori,

@@ -23,11 +23,19 @@ import numpy as np
 from closure.errors import UserError
 from closure.report import plots
 from closure.report.aposteriori import AposterioriRuns, as_runs
-from closure.report.apriori import AprioriData, apriori_data
+from closure.report.apriori import AprioriData, apriori_data, reference_network_of
 
 #: The caution every report carries, verbatim.
 CAUTION = ("A priori skill does not guarantee a stable or accurate coarse simulation: "
            "validate the model a posteriori in your own solver before relying on it.")
+
+#: What the report says under the scores when the model carries a reference network.
+_NETWORK_NOTE = ("<p><code>reference_net_test</code>: a small convolutional network trained "
+                 "on the same training snapshots and inputs (resolved velocity gradients) and "
+                 "scored on the same held-out snapshots. It has no closed form; the gap "
+                 "between its scores and the model's is how much skill the closed form leaves "
+                 "on the table. A priori skill of either does not guarantee a stable or "
+                 "accurate coarse simulation.</p>")
 
 #: Name of the marker file that says a folder is a report we may replace.
 MARKER = ".closure-report"
@@ -313,12 +321,14 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
     out_dir = Path(out_dir)
     mdict = _model_dict(model)
     rows = term_rows(model)
+    note_items = list(notes)
     if apriori is None and coarse_test_snapshots is not None:
         if not callable(getattr(model, "evaluate", None)):
             from closure.model import ClosureModel
 
             model = ClosureModel.from_dict(mdict)
-        apriori = apriori_data(model, coarse_test_snapshots)
+        apriori = apriori_data(model, coarse_test_snapshots,
+                               network=reference_network_of(model, note_items))
     runs = as_runs(les_result) if les_result is not None else None
     sweep_dict = _sweep_dict(sweep) if sweep is not None else None
     warnings = _collect_warnings(model, mdict, extra_warnings)
@@ -326,7 +336,6 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
                      "terms": rows, "scores": _get(model, "scores", None) or {},
                      "warnings": warnings, "caution": CAUTION}
     sections: list[str] = []
-    note_items = list(notes)
 
     with _atomic_folder(out_dir) as tmp:
         sections.append(_summary_section(model, mdict))
@@ -344,6 +353,8 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
                                     "often each term was selected"))
 
         sections.append("<h2>A priori scores</h2>" + _scores_table(numbers["scores"]))
+        if isinstance(numbers["scores"], Mapping) and "reference_net_test" in numbers["scores"]:
+            sections.append(_NETWORK_NOTE)
         if apriori is not None:
             sections.append(_apriori_section(apriori, tmp))
             numbers["apriori"] = apriori.to_dict()
@@ -405,20 +416,38 @@ def _apriori_section(data: AprioriData, tmp: Path) -> str:
            f"<p>Snapshots {', '.join(str(i) for i in data.snapshot_indices)}, all points "
            "pooled.</p>"]
     stats = data.agreement()
-    out.append(_table(["component", "R^2", "correlation"],
-                      [[n, s["r2"], s["correlation"]] for n, s in stats.items()]))
+    net = data.network_agreement()
+    if net is None:
+        out.append(_table(["component", "R^2", "correlation"],
+                          [[n, s["r2"], s["correlation"]] for n, s in stats.items()]))
+    else:
+        out.append(_table(["component", "R^2", "correlation", "network R^2",
+                           "network correlation"],
+                          [[n, s["r2"], s["correlation"], net.get(n, {}).get("r2"),
+                            net.get(n, {}).get("correlation")] for n, s in stats.items()]))
     plots.save_png(plots.apriori_hexbin(data.exact, data.modelled, stats=stats),
                    tmp / "apriori_hexbin.png")
     out.append(_figure("apriori_hexbin.png", "Exact vs modelled subgrid term per component "
                        "(hexbin of point counts, log scale; red: 1:1 line)"))
+    if net is not None:
+        plots.save_png(plots.apriori_hexbin(data.exact, data.network, stats=net),
+                       tmp / "apriori_hexbin_network.png")
+        out.append(_figure("apriori_hexbin_network.png", "The same for the neural reference "
+                           "network (trained on the same snapshots): how much skill the closed "
+                           "form leaves on the table"))
     for t in data.transfers:
         name = f"transfer_{t.name}.png"
-        fig = plots.transfer_spectra(t.k, {"exact": t.exact, "model": t.model},
-                                     f"Subgrid {t.label}: exact vs model", t.label)
+        curves = {"exact": t.exact, "model": t.model}
+        totals = f"exact {t.exact.sum():.4g}, model {t.model.sum():.4g}"
+        if t.network is not None:
+            curves["reference network"] = t.network
+            totals += f", reference network {t.network.sum():.4g}"
+        fig = plots.transfer_spectra(t.k, curves, f"Subgrid {t.label}: exact vs model",
+                                     t.label)
         plots.save_png(fig, tmp / name)
         out.append(_figure(name, f"Subgrid {t.label} by shell, averaged over the held-out "
-                           f"snapshots; positive: drained to the subgrid scales. Totals: exact "
-                           f"{t.exact.sum():.4g}, model {t.model.sum():.4g}"))
+                           f"snapshots; positive: drained to the subgrid scales. Totals: "
+                           f"{totals}"))
     if data.transfers:
         out.append("<p>Transfer spectra are shell sums of Re(conj(u&#770;<sub>i</sub>) "
                    "f&#770;<sub>i</sub>)/N<sup>2</sup> between the resolved velocity and the "
