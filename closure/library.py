@@ -623,6 +623,11 @@ _TARGET_UNITS = {"stress": (2, 0), "force": (2, -1), "flux": (1, 0), "vorticity"
 def _scaled_units(term: Term, target: str, k: Kinematics) -> dict[str, float] | None:
     """Units of coefficient_scaled, by scaling velocity, length and scalar units."""
     kind, scalar = parse_target(target)
+    if kind in ("heat_flux", "pressure_dilatation") or (
+            kind == "stress" and any(_INFO[s.name][0] == "rho" for s in term.symbols)):
+        from closure.library_compressible import coefficient_units  # mass, length, time, K
+
+        return coefficient_units(term, target)
     syms = term.symbols
     base = _probe_values(syms)
     delta = 0.7
@@ -1130,8 +1135,7 @@ def make_library(name_or_path: str, target: str, dims: Iterable[str],
     from closure import library_compressible as compressible
 
     if name_or_path in compressible.PRESETS:
-        return compressible.compressible_library(str(name_or_path), target, directions(dims),
-                                                 bool(prune))
+        return compressible.compressible_library(str(name_or_path), target, dims, bool(prune))
     if kind in compressible.TARGETS and kind != "stress":
         raise UserError(f"the target {target} needs a compressible library: choose "
                         f"{', '.join(compressible.PRESETS)}")
