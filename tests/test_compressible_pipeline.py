@@ -92,3 +92,22 @@ def test_cli_synth_then_discover_in_3d(tmp_path, capsys):
     model = ClosureModel.load(out)
     assert model.components == ["tau_xx", "tau_xy", "tau_yy", "tau_xz", "tau_yz", "tau_zz"]
     assert set(model.library.fields) == {"rho", "u", "v", "w"}
+
+
+def test_queued_functions_give_the_in_process_model(demo, tmp_path):
+    # the queue runs plan, one map per snapshot (statistics saved to files) and reduce: the
+    # model must be the in-process one (same statistics, same fit)
+    from closure import pipeline
+    from closure.stats import SufficientStats
+
+    spec = _spec(demo, "heat_flux", "compressible")
+    p = json.loads(json.dumps(pipeline.plan(spec)))  # the queue carries JSON
+    stats = {}
+    for i in p["snapshots"]:
+        path = pipeline.map_snapshot(spec, p, i).save(tmp_path / f"{i}.npz")
+        stats[i] = SufficientStats.load(path)
+    queued = pipeline.reduce(spec, p, stats)
+    local = discover(spec)
+    np.testing.assert_allclose(queued.coefficients_scaled, local.coefficients_scaled,
+                               rtol=1e-10, atol=0)
+    assert queued.settings.get("equivalent_terms") == local.settings.get("equivalent_terms")
