@@ -239,7 +239,24 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
         "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library),
+        **({"gas": _gas_constants(src)} if _compressible(spec) else {}),
     }
+
+
+#: Global attributes of a compressible file recorded in the model (closure synth writes them).
+GAS_ATTRIBUTES = ("gamma", "gas_constant", "prandtl", "specific_heat_pressure",
+                  "viscosity_reference", "viscosity_reference_temperature", "viscosity_exponent")
+
+
+def _gas_constants(src) -> dict:
+    """The gas constants among the file's global attributes (numbers only)."""
+    out, attrs = {}, getattr(src, "attrs", None) or {}
+    for k in GAS_ATTRIBUTES:
+        try:
+            out[k] = float(attrs[k])
+        except (KeyError, TypeError, ValueError):
+            continue
+    return out
 
 
 #: Relative divergence above which the incompressible-only pruning of the library is doubtful.
@@ -549,6 +566,7 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
         "times": plan.get("times"),
         "fine_grid": plan["grid"],
         "library": plan["library"],
+        **({"gas": plan["gas"]} if "gas" in plan else {}),
         "spec": spec_dict,
         "software": {"numpy": np.__version__, "scipy": scipy.__version__,
                      "scikit-learn": sklearn.__version__, "python": platform.python_version()},

@@ -38,6 +38,10 @@ def test_discover_fits_the_favre_stress_with_the_density_weighted_gradient_model
     assert 0.7 < coef["favre_gradient_model"] < 1.6
     assert model.scores["test"]["r2"] > 0.7
     assert "favre_smagorinsky_only_test" in model.scores
+    # the gas constants of the file are recorded in the model
+    assert model.provenance["gas"]["gamma"] == 1.4
+    assert model.provenance["gas"]["gas_constant"] == 287.05
+    assert model.provenance["gas"]["prandtl"] == 0.72
     # the model file reads back identically and exports code taking bar(rho)
     again = ClosureModel.from_dict(json.loads(model.to_json()))
     assert again.summary() == model.summary()
