@@ -154,21 +154,26 @@ def favre_coarse_grain(snapshot: Snapshot, cg: CoarseGraining,
     rho = np.asarray(snapshot.fields[DENSITY], dtype=float)
     vel = {i: np.asarray(snapshot.fields[VELOCITY_OF[i]], dtype=float) for i in dirs}
     p, T = thermodynamic_fields(snapshot.fields, gas_constant)
-    dilatation = sum(derivative(vel[i], fine, i, 1, scheme) for i in dirs)
 
-    # every filtered quantity in one stack: linear ones, then the products
-    keys = ["rho", *(("m", i) for i in dirs), "p", "rhoT",
-            *(("uu", i, j) for i, j in stress_pairs(fine.dims)),
-            *(("uT", j) for j in dirs), "pdiv"]
-    arrays = [rho, *(rho * vel[i] for i in dirs), p, rho * T,
-              *(rho * vel[i] * vel[j] for i, j in stress_pairs(fine.dims)),
-              *(rho * vel[j] * T for j in dirs), p * dilatation]
+    # the filtered quantities the wanted targets need, one at a time (peak memory: a few
+    # fine-grid fields, not all products at once)
+    quantities = {"rho": lambda: rho, "p": lambda: p, "rhoT": lambda: rho * T}
+    for i in dirs:
+        quantities[("m", i)] = lambda i=i: rho * vel[i]
+    if any(t.startswith(("tau_", "force_")) or t == "pi" for t in want):
+        for i, j in stress_pairs(fine.dims):
+            quantities[("uu", i, j)] = lambda i=i, j=j: rho * vel[i] * vel[j]
+    if any(t.startswith("heat_flux_") for t in want):
+        for j in dirs:
+            quantities[("uT", j)] = lambda j=j: rho * vel[j] * T
+    if "pressure_dilatation" in want:
+        quantities["pdiv"] = lambda: p * sum(derivative(vel[i], fine, i, 1, scheme)
+                                             for i in dirs)
     if cg.kind == "block":
-        grid, filtered = cg.coarse, cg.block_mean(np.stack(arrays))
+        grid, apply = cg.coarse, cg.block_mean
     else:
-        grid, filtered = fine, cg.filter(np.stack(arrays))
-    bar = dict(zip(keys, filtered, strict=True))
-    del arrays, filtered
+        grid, apply = fine, cg.filter
+    bar = {key: apply(make()) for key, make in quantities.items()}
 
     fields, out = favre_terms(bar, grid, dirs, want, fine_scheme(grid))
     if cg.kind != "block":
@@ -187,11 +192,12 @@ def favre_terms(bar: Mapping, grid: Grid, dirs: Sequence[str], want: Sequence[st
     Tt = bar["rhoT"] / rho_bar
     fields = {DENSITY: rho_bar, **{VELOCITY_OF[i]: ut[i] for i in dirs},
               PRESSURE: bar["p"], TEMPERATURE: Tt}
-    stress = {f"tau_{i}{j}": bar[("uu", i, j)] - rho_bar * ut[i] * ut[j]
-              for i, j in stress_pairs(grid.dims)}
+    stress = ({f"tau_{i}{j}": bar[("uu", i, j)] - rho_bar * ut[i] * ut[j]
+               for i, j in stress_pairs(grid.dims)} if ("uu", dirs[0], dirs[0]) in bar else {})
     out = dict(stress)
     for j in dirs:
-        out[f"heat_flux_{j}"] = bar[("uT", j)] - rho_bar * ut[j] * Tt
+        if ("uT", j) in bar:
+            out[f"heat_flux_{j}"] = bar[("uT", j)] - rho_bar * ut[j] * Tt
     want = set(want)
     if want & {"pi", "pressure_dilatation"}:
         grad = {}
@@ -200,8 +206,11 @@ def favre_terms(bar: Mapping, grid: Grid, dirs: Sequence[str], want: Sequence[st
             for a, i in enumerate(dirs):
                 grad[(i, j)] = dj[a]
         strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in stress_pairs(grid.dims)}
-        out["pi"] = energy_transfer(stress, strain, grid.dims)
-        out["pressure_dilatation"] = bar["pdiv"] - bar["p"] * sum(grad[(i, i)] for i in dirs)
+        if "pi" in want:
+            out["pi"] = energy_transfer(stress, strain, grid.dims)
+        if "pressure_dilatation" in want:
+            out["pressure_dilatation"] = bar["pdiv"] - bar["p"] * sum(grad[(i, i)]
+                                                                      for i in dirs)
     if any(t.startswith("force_") for t in want):
         for i in dirs:
             out[f"force_{i}"] = sum(derivative(stress_component(stress, i, j), grid, j, 1,

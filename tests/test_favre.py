@@ -289,3 +289,20 @@ def test_backscatter_share():
     assert out["points"] == pytest.approx(np.mean(pi < 0))
     assert out["share"] == pytest.approx(-pi[pi < 0].sum() / np.abs(pi).sum())
     assert 0 < out["share"] < 0.5  # forward transfer dominates for these fields
+
+
+@pytest.mark.parametrize("kind", ["gaussian", "block"])
+def test_asking_for_some_targets_gives_the_same_values(kind):
+    grid = Grid.regular((32, 32), TWO_PI, dims=("y", "x"))
+    snap = compressible_snapshot(grid, np.random.default_rng(9), top_mode=8, density_rms=0.3)
+    cg = make_coarse_graining(kind, grid, 2)
+    full = favre_coarse_grain(snap, cg)
+    for subset in (["heat_flux_x", "heat_flux_y"], ["pressure_dilatation"], ["pi"],
+                   ["force_y", "tau_xy"]):
+        part = favre_coarse_grain(snap, cg, targets=subset)
+        assert set(part.targets) == set(subset)  # (in output order)
+        for name in subset:
+            np.testing.assert_allclose(part.targets[name], full.targets[name], rtol=1e-13,
+                                       atol=1e-13 * np.max(np.abs(full.targets[name])))
+        for name, value in full.fields.items():
+            np.testing.assert_allclose(part.fields[name], value, rtol=1e-13)
