@@ -127,3 +127,16 @@ def test_report_compares_against_the_favre_targets(demo, tmp_path):
     for c in ("heat_flux_x", "heat_flux_y"):
         assert report["apriori"]["agreement"][c]["r2"] == pytest.approx(
             model.scores["test"][f"r2_{c}"], rel=1e-9)
+
+
+def test_apply_writes_favre_units_and_names(demo, tmp_path):
+    import xarray as xr
+
+    model = discover(_spec(demo, "heat_flux", "compressible_classic"))
+    path = model.save(tmp_path / "m.json")
+    out = tmp_path / "pred.nc"
+    # any netCDF of filtered fields rho, u, v, p, T works as the coarse input
+    assert main(["apply", str(path), str(demo), "-o", str(out)]) == 0
+    with xr.open_dataset(out) as ds:
+        assert ds["heat_flux_x"].attrs["units"] == "(kg m-3) (m s-1) (K)"
+        assert "heat flux" in ds["heat_flux_x"].attrs["long_name"]
