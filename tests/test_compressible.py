@@ -180,3 +180,17 @@ def test_cli_synth_compressible(tmp_path):
         assert ds["rho"].dims == ("time", "z", "y", "x")
         assert float(ds.attrs["gamma"]) == 1.4
     assert main(["synth", "compressible", "-o", str(tmp_path / "x.nc"), "--mach", "2"]) == 2
+
+
+def test_mach_range_and_density_fluctuations_grow_like_mach_squared():
+    # for near-incompressible turbulence the density fluctuation scales as M^2 (pressure
+    # fluctuations ~ rho u'^2 and rho' ~ p' / c^2; common practice); from 0.1 to 0.6 that is
+    # a factor 36: require more than 10
+    rms = {}
+    for mach in (0.1, 0.6):
+        ds = compressible(n=16, dims=2, snapshots=2, mach=mach, peak_wavenumber=2.0, seed=4)
+        u2 = np.mean(ds["u"].values[0] ** 2 + ds["v"].values[0] ** 2)
+        assert np.sqrt(u2) / ds.attrs["sound_speed"] == pytest.approx(mach, rel=1e-9)
+        assert all(np.all(np.isfinite(ds[n].values)) for n in ds.data_vars)
+        rms[mach] = float(np.std(ds["rho"].values[1])) / 1.2
+    assert rms[0.6] > 10 * rms[0.1]
