@@ -53,10 +53,14 @@ dilatation_strain_squared).
 
 Exact dependencies are pruned as in closure.library, but *without* assuming a divergence-free
 velocity (compressible fields have dilatation) and treating rho, p and T as independent
-fields: ``favre_rotation_squared`` is dropped (``R R = S S - (S R - R S) - 12 A A^T / 12``
-holds on any field), and ``rotation_temperature_gradient`` (``A = S + R``). Relations that
-hold only on some data, such as ``d p = c^2 d rho`` for isentropic fluctuations, are not exact
-identities and are left to the fit's collinearity diagnostics.
+fields: ``favre_rotation_squared`` is dropped (``R R = S S - (S R - R S) - A A^T`` on any
+field, so it is ``favre_strain_squared - favre_strain_rotation - 12 favre_gradient_model``),
+and ``rotation_temperature_gradient`` (``A = S + R``: it is ``12 favre_heat_gradient_model -
+strain_temperature_gradient``). In 2-D ``favre_strain_squared`` stays: ``S S = S_kk S -
+det(S) I`` is not in the span when ``S_kk`` is not zero (the incompressible library drops its
+``strain_squared`` as ``|S|^2 / 4 I``). Relations that hold only on some data, such as
+``d p = c^2 d rho`` for isentropic fluctuations, are not identities: closure.equivalence finds
+them on the training data and the fit keeps one term of each group.
 """
 
 from __future__ import annotations
