@@ -288,6 +288,9 @@ def _target_words(target: str) -> str:
         return "force d_j tau_ij"
     if target == "vorticity":
         return "vorticity forcing"
+    if target in ("heat_flux", "pressure_dilatation"):
+        return {"heat_flux": "Favre heat flux q_j",
+                "pressure_dilatation": "pressure-dilatation"}[target]
     return f"flux of {target.split(':', 1)[1]}"
 
 

@@ -119,7 +119,8 @@ PRESETS = ("default", "classic", "minimal")
 DELTA = sympy.Symbol("Delta", positive=True)
 
 _NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]{0,39}$")
-_TARGET = re.compile(r"^(stress|force|vorticity|flux:([A-Za-z][A-Za-z0-9_]*))$")
+_TARGET = re.compile(r"^(stress|force|vorticity|heat_flux|pressure_dilatation|"
+                     r"flux:([A-Za-z][A-Za-z0-9_]*))$")
 _DERIVATIVE = re.compile(r"^d(\d*)([A-Za-z][A-Za-z0-9_]*?)_d([xyz]+)$")
 _MAX_ORDER = 8
 _MAX_TEXT = 20000
@@ -149,15 +150,18 @@ def parse_target(target: str) -> tuple[str, str | None]:
     """``"flux:c"`` -> ``("flux", "c")``; ``"stress"`` -> ``("stress", None)``."""
     m = _TARGET.match(str(target))
     if not m:
-        raise UserError(f"unknown target {target!r}: choose stress, force, vorticity or "
-                        "flux:NAME (NAME a scalar, e.g. flux:c)")
+        raise UserError(f"unknown target {target!r}: choose stress, force, vorticity, "
+                        "flux:NAME (NAME a scalar, e.g. flux:c), or for compressible data "
+                        "heat_flux or pressure_dilatation")
     kind = m.group(1).split(":")[0]
     return kind, m.group(2)
 
 
 def target_rank(target: str) -> int:
-    """2 for stress, 1 for force and flux, 0 for vorticity forcing."""
-    return {"stress": 2, "force": 1, "flux": 1, "vorticity": 0}[parse_target(target)[0]]
+    """2 for stress, 1 for force, flux and heat flux, 0 for vorticity forcing and
+    pressure-dilatation."""
+    return {"stress": 2, "force": 1, "flux": 1, "vorticity": 0, "heat_flux": 1,
+            "pressure_dilatation": 0}[parse_target(target)[0]]
 
 
 def component_keys(target: str, dims: Iterable[str]) -> list[str]:
@@ -166,6 +170,8 @@ def component_keys(target: str, dims: Iterable[str]) -> list[str]:
     dirs = directions(dims)
     if kind == "stress":
         return [dirs[i] + dirs[j] for j in range(len(dirs)) for i in range(j + 1)]
+    if kind == "pressure_dilatation":
+        return [""]
     if kind == "vorticity":
         if dirs != ("x", "y"):
             raise UserError(f"the vorticity target needs a 2-D (y, x) grid; this grid has "
@@ -185,6 +191,8 @@ def target_components(target: str, dims: Iterable[str]) -> list[str]:
         return [f"force_{k}" for k in keys]
     if kind == "flux":
         return [f"flux_{scalar}_{k}" for k in keys]
+    if kind in ("heat_flux", "pressure_dilatation"):
+        return [f"{kind}_{k}" for k in keys] if keys != [""] else [kind]
     return ["vorticity_forcing"]
 
 
@@ -615,6 +623,11 @@ _TARGET_UNITS = {"stress": (2, 0), "force": (2, -1), "flux": (1, 0), "vorticity"
 def _scaled_units(term: Term, target: str, k: Kinematics) -> dict[str, float] | None:
     """Units of coefficient_scaled, by scaling velocity, length and scalar units."""
     kind, scalar = parse_target(target)
+    if kind in ("heat_flux", "pressure_dilatation") or (
+            kind == "stress" and any(_INFO[s.name][0] == "rho" for s in term.symbols)):
+        from closure.library_compressible import coefficient_units  # mass, length, time, K
+
+        return coefficient_units(term, target)
     syms = term.symbols
     base = _probe_values(syms)
     delta = 0.7
@@ -750,9 +763,9 @@ def _monomial_bound(e: sympy.Basic, limit: int) -> int:
 class _DependencyCheck:
     """Exact rank test of terms on one set of directions (see the comment above)."""
 
-    def __init__(self, dirs: tuple[str, ...]):
+    def __init__(self, dirs: tuple[str, ...], incompressible: bool = True):
         self.dirs = dirs
-        self.incompressible = len(dirs) >= 2
+        self.incompressible = incompressible and len(dirs) >= 2
         last = dirs[-1]
         self._last_field, self._last_axis = VELOCITY_OF[last], AXES.index(last)
         self._atoms: dict[tuple, sympy.Dummy] = {}
@@ -989,12 +1002,13 @@ def _reduce(r: dict, taken: dict, basis) -> None:
 
 
 def find_dependencies(terms: Sequence[Term], dims: Iterable[str],
-                      independent: int = 0) -> list[Dependency | None]:
+                      independent: int = 0, *, incompressible: bool = True
+                      ) -> list[Dependency | None]:
     """Exact linear dependencies of each term on the earlier independent terms (greedy, in
-    order), on divergence-free fields for 2-D and 3-D grids: ``None`` for a term that raises
-    the rank, else its :class:`Dependency`. The first ``independent`` terms are assumed
-    independent."""
-    return _DependencyCheck(directions(dims)).run(list(terms), independent)
+    order), on divergence-free fields for 2-D and 3-D grids unless ``incompressible`` is False
+    (compressible libraries): ``None`` for a term that raises the rank, else its
+    :class:`Dependency`. The first ``independent`` terms are assumed independent."""
+    return _DependencyCheck(directions(dims), incompressible).run(list(terms), independent)
 
 
 def _prune(terms: list[Term], dims) -> tuple[list[Term], list[Dependency]]:
@@ -1102,12 +1116,15 @@ class Library:
 
 def make_library(name_or_path: str, target: str, dims: Iterable[str],
                  scalars: Iterable[str] = (), *, prune: bool = True) -> Library:
-    """A preset (``default``, ``classic``, ``minimal``) or a terms file, for ``target`` on a
-    grid with ``dims``. ``scalars`` are the scalar fields available (the target's own scalar is
-    added). Preset terms that depend exactly on earlier ones (on incompressible fields in 2-D
-    and 3-D) are left out and listed in ``Library.dropped``, unless ``prune`` is False; user
-    terms are kept and their dependencies reported in ``Library.warnings``. Presets are cached
-    per (preset, target, dims, scalars). Raises UserError naming the problem."""
+    """A preset (``default``, ``classic``, ``minimal``; for Favre-filtered compressible data
+    ``compressible``, ``compressible_classic``, ``compressible_minimal`` from
+    closure.library_compressible) or a terms file, for ``target`` on a grid with ``dims``.
+    ``scalars`` are the scalar fields available (the target's own scalar is added). Preset
+    terms that depend exactly on earlier ones (on incompressible fields in 2-D and 3-D; on any
+    field for the compressible presets) are left out and listed in ``Library.dropped``, unless
+    ``prune`` is False; user terms are kept and their dependencies reported in
+    ``Library.warnings``. Presets are cached per (preset, target, dims, scalars). Raises
+    UserError naming the problem."""
     kind, scalar = parse_target(target)
     dims = tuple(dims)
     component_keys(target, dims)  # checks vorticity needs (y, x)
@@ -1115,6 +1132,13 @@ def make_library(name_or_path: str, target: str, dims: Iterable[str],
     if scalar is not None and scalar not in scalars:
         scalars = (*scalars, scalar)
     scalars = check_scalar_names(scalars)
+    from closure import library_compressible as compressible
+
+    if name_or_path in compressible.PRESETS:
+        return compressible.compressible_library(str(name_or_path), target, dims, bool(prune))
+    if kind in compressible.TARGETS and kind != "stress":
+        raise UserError(f"the target {target} needs a compressible library: choose "
+                        f"{', '.join(compressible.PRESETS)}")
     if name_or_path in PRESETS:
         return _preset(str(name_or_path), target, directions(dims), scalars, dims, bool(prune))
     path = Path(str(name_or_path))

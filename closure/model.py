@@ -5,7 +5,8 @@ Model file, schema version 1 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Sche
 
 ``format``            ``"closure-model"``
 ``schema_version``    1 (bumped when a field changes meaning; older readers refuse newer files)
-``target``            ``stress``, ``force``, ``vorticity`` or ``flux:NAME``
+``target``            ``stress``, ``force``, ``vorticity``, ``flux:NAME``, ``heat_flux`` or
+                      ``pressure_dilatation`` (compressible)
 ``components``        the target variables modelled, e.g. ``["tau_xx", "tau_xy", "tau_yy"]``
 ``dims``              grid directions in array order, e.g. ``["y", "x"]``
 ``scalars``           scalar fields the terms may use
@@ -113,7 +114,8 @@ MODEL_SCHEMA = {
         "format": {"const": MODEL_FORMAT},
         "schema_version": {"const": MODEL_SCHEMA_VERSION},
         "target": {"type": "string",
-                   "pattern": r"^(stress|force|vorticity|flux:[A-Za-z][A-Za-z0-9_]*)$"},
+                   "pattern": r"^(stress|force|vorticity|heat_flux|pressure_dilatation|"
+                              r"flux:[A-Za-z][A-Za-z0-9_]*)$"},
         "components": {**_STRINGS, "minItems": 1},
         "dims": {"type": "array", "items": {"enum": ["z", "y", "x"]}, "minItems": 1},
         "scalars": _STRINGS,

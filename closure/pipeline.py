@@ -53,6 +53,10 @@ MIN_POINTS_PER_TERM = 10
 #: The reference closure scored beside every model, per target kind (a preset term name).
 BASELINE_TERMS = {"stress": "smagorinsky", "force": "div_smagorinsky",
                   "vorticity": "curl_div_smagorinsky", "flux": "eddy_diffusivity"}
+#: The same for the compressible presets (closure.library_compressible).
+COMPRESSIBLE_BASELINE_TERMS = {"stress": "favre_smagorinsky",
+                               "heat_flux": "favre_eddy_diffusivity",
+                               "pressure_dilatation": "dilatation_strain_squared"}
 
 
 def _no_progress(phase: str, done: int, total: int) -> None:
@@ -86,11 +90,23 @@ def _input_path(spec: JobSpec) -> Path:
     return Path(spec.input.path)
 
 
+def _compressible(spec: JobSpec) -> bool:
+    """Compressible mode: a compressible library preset (Favre coarse-graining, closure.favre)."""
+    from closure.library_compressible import PRESETS
+
+    return spec.library in PRESETS
+
+
 def _scalars(spec: JobSpec) -> tuple[str, ...]:
-    """Scalars to read: the spec's, and the flux target's own."""
+    """Scalars to read: the spec's, the flux target's own, and in compressible mode the
+    density, pressure and temperature."""
     names = list(spec.input.scalars)
     if spec.target.startswith("flux:"):
         names.append(spec.target.split(":", 1)[1])
+    if _compressible(spec):
+        from closure.library_compressible import THERMO
+
+        names += THERMO
     return tuple(dict.fromkeys(names))
 
 
@@ -228,7 +244,24 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
         "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library),
+        **({"gas": _gas_constants(src)} if _compressible(spec) else {}),
     }
+
+
+#: Global attributes of a compressible file recorded in the model (closure synth writes them).
+GAS_ATTRIBUTES = ("gamma", "gas_constant", "prandtl", "specific_heat_pressure",
+                  "viscosity_reference", "viscosity_reference_temperature", "viscosity_exponent")
+
+
+def _gas_constants(src) -> dict:
+    """The gas constants among the file's global attributes (numbers only)."""
+    out, attrs = {}, getattr(src, "attrs", None) or {}
+    for k in GAS_ATTRIBUTES:
+        try:
+            out[k] = float(attrs[k])
+        except (KeyError, TypeError, ValueError):
+            continue
+    return out
 
 
 #: Relative divergence above which the incompressible-only pruning of the library is doubtful.
@@ -330,9 +363,14 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
         raise UserError("the library's terms changed since the job was planned: resubmit the "
                         "job")
     # only the fitted target: the scores' transfers come from the coarse fields
-    cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"],
-                               land=spec.filter.land, scheme=spec.scheme,
-                               derivative_passes=derivative_passes(library))
+    if _compressible(spec):
+        from closure.favre import favre_coarse_grain
+
+        cs = favre_coarse_grain(snap, cg, targets=plan["components"])
+    else:
+        cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"],
+                                   land=spec.filter.land, scheme=spec.scheme,
+                                   derivative_passes=derivative_passes(library))
     return cs, cg, library
 
 
@@ -473,7 +511,8 @@ def _flat_scores(pred: Mapping[str, Mapping], transfers: Mapping[str, Mapping] |
 
 def _baseline(library, spec: JobSpec, train_stats: SufficientStats):
     """Least-squares coefficient of the Smagorinsky-form term alone on the training data."""
-    name = BASELINE_TERMS[spec.target.split(":")[0]]
+    kind = spec.target.split(":")[0]
+    name = (COMPRESSIBLE_BASELINE_TERMS if _compressible(spec) else BASELINE_TERMS).get(kind)
     if name not in library.names:
         return None
     support = np.array([t == name for t in library.names])
@@ -502,15 +541,18 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
                             "than this plan: resubmit the job")
     train, test = list(plan["train"]), list(plan["test"])
     progress("fit", 0, 1)
-    fit = fit_closure(stats, train, spec.fit.method, transfer_weight=spec.fit.transfer_weight,
-                      n_folds=spec.fit.folds, resamples=spec.fit.resamples, seed=spec.fit.seed,
-                      rule=spec.fit.selection)
+    grid = Grid.from_dict(plan["grid"])
+    library = _library(spec, grid.dims)
+    groups = []
+    if _compressible(spec):  # terms the data cannot separate: keep one of each group
+        from closure.equivalence import equivalent_groups
+
+        groups = equivalent_groups(SufficientStats.merge([stats[i] for i in sorted(train)]),
+                                   library)
+    fit = _fit_without(stats, train, spec, {t for g in groups for t in g.dropped})
     progress("fit", 1, 1)
     train_stats = SufficientStats.merge([stats[i] for i in sorted(train)])
     test_stats = SufficientStats.merge([stats[i] for i in sorted(test)])
-
-    grid = Grid.from_dict(plan["grid"])
-    library = _library(spec, grid.dims)
     base = _baseline(library, spec, train_stats)
     net = _reference_net(spec, plan, train, progress, source, held_out)
     net_stats, net_sums = [], {}
@@ -565,7 +607,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
                                           transfer_scores(net_sums))
         details["reference_net_components"] = prediction_scores(net_test, np.ones(1))
         details["reference_net_transfers"] = transfer_scores(net_sums)
-    warnings = list(plan.get("warnings") or []) + list(fit.warnings)
+    warnings = list(plan.get("warnings") or []) + [g.describe() for g in groups] + list(
+        fit.warnings)
     if land["excluded_points"]:
         warnings.append(land["note"])
     warnings.append("coefficient standard errors treat every grid point as independent; "
@@ -577,6 +620,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         "transfer_weight": spec.fit.transfer_weight, "test_fraction": spec.fit.test_fraction,
         "selection_record": fit.to_dict(), "a_priori_details": details, "land": land,
     }
+    if groups:
+        settings["equivalent_terms"] = [g.to_dict() for g in groups]
     from closure.model import ClosureModel
 
     std_errors = [float(e) if s else None
@@ -659,6 +704,36 @@ def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStat
                     "derivative stencil touches land", "note": note}
 
 
+def _fit_without(stats: Mapping[int, SufficientStats], train, spec: JobSpec, left_out: set):
+    """fit_closure on the terms not in ``left_out``; the result spans every term again (the
+    left-out ones with coefficient 0, not selected, no error bar)."""
+    import dataclasses
+
+    def run(s):
+        f = spec.fit
+        return fit_closure(s, train, f.method, transfer_weight=f.transfer_weight,
+                           n_folds=f.folds, resamples=f.resamples, seed=f.seed, rule=f.selection)
+
+    if not left_out:
+        return run(stats)
+    terms = next(iter(stats.values())).terms
+    keep = [t for t in terms if t not in left_out]
+    fit = run({i: s.select(keep) for i, s in stats.items()})
+    index = [terms.index(t) for t in keep]
+
+    def spread(values, fill):
+        if values is None:
+            return None
+        out = np.full(len(terms), fill, dtype=np.asarray(values).dtype)
+        out[index] = values
+        return out
+
+    return dataclasses.replace(
+        fit, terms=tuple(terms), coefficients=spread(fit.coefficients, 0.0),
+        support=spread(fit.support, False), standard_errors=spread(fit.standard_errors, 0.0),
+        selection_frequency=spread(fit.selection_frequency, 0.0))
+
+
 def _provenance(spec: JobSpec, plan: Mapping) -> dict:
     """Where the model came from: input file and hash, snapshots, spec, software versions."""
     import scipy
@@ -674,6 +749,7 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
         "times": plan.get("times"),
         "fine_grid": plan["grid"],
         "library": plan["library"],
+        **({"gas": plan["gas"]} if "gas" in plan else {}),
         "spec": spec_dict,
         "software": {"numpy": np.__version__, "scipy": scipy.__version__,
                      "scikit-learn": sklearn.__version__, "python": platform.python_version()},

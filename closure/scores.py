@@ -176,7 +176,7 @@ def transfer_names(target: str, dims: tuple[str, ...]) -> tuple[str, ...]:
     """Names of the transfers scored for a target on a grid of these dimensions."""
     kind = target.split(":")[0]
     names = {"stress": ("energy_transfer",), "force": ("energy_transfer",),
-             "flux": ("scalar_variance_transfer",), "vorticity": ()}[kind]
+             "flux": ("scalar_variance_transfer",), "vorticity": ()}.get(kind, ())
     if len(dims) == 2 and kind in ("stress", "force", "vorticity"):
         names += ("enstrophy_transfer",)
     return names

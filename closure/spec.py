@@ -18,7 +18,8 @@ SPEC_VERSION = 1
 FilterKind = Literal["box", "gaussian", "spectral", "block"]
 Scheme = Literal["spectral", "fd2", "fd4"]
 Method = Literal["threshold", "lasso", "ard"]
-_TARGET = re.compile(r"^(stress|force|vorticity|flux:[A-Za-z_][A-Za-z0-9_]*)$")
+_TARGET = re.compile(r"^(stress|force|vorticity|heat_flux|pressure_dilatation|"
+                     r"flux:[A-Za-z_][A-Za-z0-9_]*)$")
 
 
 class _Strict(BaseModel):
@@ -120,7 +121,8 @@ class JobSpec(_Strict):
     @classmethod
     def _target(cls, v: str) -> str:
         if not _TARGET.match(v):
-            raise ValueError("target must be stress, force, vorticity or flux:NAME")
+            raise ValueError("target must be stress, force, vorticity, flux:NAME, or with a "
+                             "compressible library heat_flux or pressure_dilatation")
         return v
 
     def fingerprint(self) -> dict:

@@ -13,7 +13,9 @@ from closure.atomic import write_text
 from closure.errors import InputFileError, OptionError
 
 _LONG = {"tau": "modelled subgrid stress", "force": "modelled subgrid force",
-         "flux": "modelled subgrid flux", "vorticity_forcing": "modelled subgrid vorticity forcing"}
+         "flux": "modelled subgrid flux", "vorticity_forcing": "modelled subgrid vorticity forcing",
+         "heat_flux": "modelled subgrid (Favre) heat flux",
+         "pressure_dilatation": "modelled subgrid pressure-dilatation"}
 
 
 def apply_model(
@@ -177,6 +179,18 @@ def _units(component: str, units: dict, length: str | None) -> str | None:
     return None
 
 
+def _compressible_units(component: str, units: dict) -> str | None:
+    """Units of a Favre target from the input's: rho u u, rho u T (None where unknown)."""
+    vel = {units.get(c) for c in ("u", "v", "w") if units.get(c)}
+    U = vel.pop() if len(vel) == 1 else None
+    rho, T = units.get("rho"), units.get("T")
+    if component.startswith("tau_"):
+        return f"({rho}) ({U})^2" if rho and U else None
+    if component.startswith("heat_flux_"):
+        return f"({rho}) ({U}) ({T})" if rho and U and T else None
+    return None
+
+
 def _long_name(component: str) -> str:
     if component.startswith("tau_"):
         return f"{_LONG['tau']} {component} (closure model, a priori prediction)"
@@ -184,6 +198,9 @@ def _long_name(component: str) -> str:
         return f"{_LONG['force']} {component}, d_j tau_ij (closure model, a priori prediction)"
     if component.startswith("flux_"):
         return f"{_LONG['flux']} {component} (closure model, a priori prediction)"
+    if component.startswith("heat_flux") or component == "pressure_dilatation":
+        key = "heat_flux" if component.startswith("heat_flux") else component
+        return f"{_LONG[key]} {component} (closure model, a priori prediction)"
     return f"{_LONG['vorticity_forcing']} (closure model, a priori prediction)"
 
 
@@ -200,11 +217,14 @@ def _dataset(model, model_path, src, pred, times):
               for d in grid.dims}
     coords["time"] = ("time", np.asarray(times, dtype=float), {"long_name": "time" if getattr(
         src, "times", None) is not None else "snapshot index", "axis": "T"})
+    from closure.library_compressible import PRESETS as COMPRESSIBLE_PRESETS
+
     units = dict(getattr(src, "units", {}) or {})
     data = {}
     for c, a in pred.items():
         attrs = {"long_name": _long_name(c), "closure_name": c, "closure_role": "prediction"}
-        un = _units(c, units, grid.units)
+        un = (_compressible_units(c, units) if model.library.name in COMPRESSIBLE_PRESETS
+              else _units(c, units, grid.units))
         if un:
             attrs["units"] = un
         data[c] = (dims, a, attrs)

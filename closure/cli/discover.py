@@ -92,10 +92,14 @@ def discover(
                                     help="units of --width: grid (spacings) or coordinate"),
     ratio: int = typer.Option(4, "--ratio", help="coarsening ratio (keep every ratio-th point)"),
     target: str = typer.Option("stress", "--target",
-                               help="what to model: stress, force, vorticity or flux:NAME"),
+                               help="what to model: stress, force, vorticity or flux:NAME; "
+                                    "with a compressible library also heat_flux or "
+                                    "pressure_dilatation"),
     library: str = typer.Option("default", "--library",
                                 help="candidate terms: default, classic, minimal, or a terms "
-                                     "file (.yaml/.json)"),
+                                     "file (.yaml/.json); for compressible data (rho, u, v[, "
+                                     "w], p, T; Favre filtering) compressible, "
+                                     "compressible_classic or compressible_minimal"),
     method: str = typer.Option("threshold", "--method",
                                help="sparse fit: threshold, lasso or ard"),
     scheme: str = typer.Option("spectral", "--scheme",

@@ -1,4 +1,5 @@
-"""CLI commands: ``closure synth {burgers,turb2d,turb3d}``, demo data from our own solvers."""
+"""CLI commands: ``closure synth {burgers,turb2d,turb3d,compressible}``, demo data from our own
+solvers."""
 
 from __future__ import annotations
 
@@ -132,3 +133,38 @@ def turb3d(
     _run(solver, output, quiet, n=n, snapshots=snapshots, interval=interval, spinup=spinup,
          viscosity=viscosity, peak_wavenumber=peak_wavenumber, initial_energy=initial_energy,
          seed=seed, cfl=cfl)
+
+
+@synth_app.command()
+def compressible(
+    output: Path = OUTPUT,
+    dims: int = typer.Option(2, "--dims", help="2 or 3 space dimensions"),
+    n: int = typer.Option(64, "--n", help="grid points per direction"),
+    snapshots: int = typer.Option(4, help="number of stored snapshots"),
+    interval: float | None = typer.Option(None, help="time between snapshots (s; default: "
+                                                     "half the eddy time L/(2 pi u'))"),
+    spinup: float = typer.Option(0.0, help="time before the first snapshot (s)"),
+    mach: float = typer.Option(0.3, help="initial turbulent Mach number sqrt(<u_i u_i>)/c"),
+    reynolds: float = typer.Option(100.0, help="u' L / (2 pi nu); ignored with --viscosity"),
+    viscosity: float | None = typer.Option(None, help="kinematic viscosity at the mean state "
+                                                      "(m2 s-1)"),
+    viscosity_exponent: float = typer.Option(0.76, help="n in mu ~ T^n (0: constant)"),
+    temperature: float = typer.Option(300.0, help="mean temperature (K)"),
+    density: float = typer.Option(1.2, help="mean density (kg m-3)"),
+    gamma: float = typer.Option(1.4, help="ratio of specific heats"),
+    gas_constant: float = typer.Option(287.05, help="specific gas constant (J kg-1 K-1)"),
+    prandtl: float = typer.Option(0.72, help="Prandtl number"),
+    peak_wavenumber: float = typer.Option(3.0, help="peak mode number of the initial spectrum"),
+    forcing_rate: float = typer.Option(0.0, help="linear forcing rate A (s-1; 0: decaying)"),
+    seed: int = typer.Option(0, help="random seed of the initial field"),
+    cfl: float = typer.Option(0.5, help="acoustic CFL number of the time step"),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress bar or summary"),
+) -> None:
+    """Compressible ideal-gas turbulence: rho, u, v[, w], p, T (pseudo-spectral, RK4)."""
+    from closure.synth import compressible as solver
+
+    _run(solver, output, quiet, n=n, dims=dims, snapshots=snapshots, interval=interval,
+         spinup=spinup, mach=mach, reynolds=reynolds, viscosity=viscosity,
+         viscosity_exponent=viscosity_exponent, temperature=temperature, density=density,
+         gamma=gamma, gas_constant=gas_constant, prandtl=prandtl,
+         peak_wavenumber=peak_wavenumber, forcing_rate=forcing_rate, seed=seed, cfl=cfl)

@@ -10,10 +10,12 @@ _DIMS = {"1": ("x",), "2": ("y", "x"), "3": ("z", "y", "x")}
 
 
 def terms(
-    target: str = typer.Option("stress", help="stress, force, vorticity or flux:NAME"),
+    target: str = typer.Option("stress", help="stress, force, vorticity or flux:NAME; with a "
+                               "compressible library also heat_flux or pressure_dilatation"),
     dims: str = typer.Option("2", help="number of space dimensions: 1, 2 or 3"),
-    library: str = typer.Option("default", help="a preset (default, classic, minimal) or a "
-                                "terms file"),
+    library: str = typer.Option("default", help="a preset (default, classic, minimal; "
+                                "compressible, compressible_classic, compressible_minimal) "
+                                "or a terms file"),
     scalar: list[str] = typer.Option([], help="scalar fields the terms may use (repeatable)"),
     latex: bool = typer.Option(False, help="print each component as LaTeX"),
     syntax: bool = typer.Option(False, help="print the terms-file syntax and exit"),

@@ -125,12 +125,23 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
         src.close()
         raise
 
+    from closure.library_compressible import PRESETS
+
+    if model.library.name in PRESETS:  # compressible models: Favre targets
+        from closure.favre import favre_coarse_grain
+
+        def coarse(snap):
+            return favre_coarse_grain(snap, cg, targets=model.components)
+    else:
+        def coarse(snap):
+            return coarse_grain_snapshot(snap, cg, info["scalars"])
+
     def iterate():
         try:
             for done, i in enumerate(indices):
                 if progress is not None:
                     progress("snapshots", done, len(indices))
-                yield coarse_grain_snapshot(src.snapshot(i), cg, info["scalars"])
+                yield coarse(src.snapshot(i))
             if progress is not None:
                 progress("snapshots", len(indices), len(indices))
         finally:

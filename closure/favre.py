@@ -1,0 +1,230 @@
+"""Density-weighted (Favre) coarse-graining and the exact subgrid terms of compressible flow.
+
+With ``bar`` the filter of a CoarseGraining (closure.filters) and fine-grid density ``rho``,
+velocity ``u_i``, pressure ``p`` and temperature ``T``:
+
+    bar(rho)                                                    filtered density
+    u~_i = bar(rho u_i) / bar(rho)                              Favre velocity
+    T~   = bar(rho T) / bar(rho)                                Favre temperature
+    bar(p)                                                      filtered pressure
+
+    tau_ij      = bar(rho u_i u_j) - bar(rho) u~_i u~_j         subgrid stress (i <= j)
+    force_i     = d_j tau_ij                                    subgrid force
+    heat_flux_j = bar(rho u_j T) - bar(rho) u~_j T~             subgrid heat flux
+    pressure_dilatation = bar(p d_k u_k) - bar(p) d_k u~_k      subgrid pressure-dilatation
+    pi          = -tau_ij S~_ij                                 energy transfer (all i, j)
+
+with ``S~_ij = (d_j u~_i + d_i u~_j) / 2``, dilatation included (``S~_kk = d_k u~_k``). The
+filtered equations read ``d_t (bar(rho) u~_i) + d_j (bar(rho) u~_i u~_j + bar(p) delta_ij)
+= ... - force_i`` (Favre 1983; Garnier, Adams & Sagaut 2009, Large Eddy Simulation for
+Compressible Flows, ch. 3, from memory); the trace ``tau_kk`` is twice the subgrid kinetic
+energy times ``bar(rho)``, and a positive ``pi`` drains resolved kinetic energy to the subgrid
+scales. With constant density every term is the density times its incompressible counterpart
+in closure.residuals (and the heat flux is ``rho`` times the scalar flux of ``T``).
+
+Where the work is done: box, Gaussian and sharp spectral filters act on the fine grid
+(``CoarseGraining.filter``: spectral on periodic grids, ``scipy.ndimage`` with mirror edges on
+bounded ones), quotients and derivatives are formed there (spectral on periodic grids, fd4
+otherwise, as in closure.residuals) and every output is sampled every ``ratio``-th point. Block
+averaging forms the block means on the coarse grid and takes the derivatives of ``u~`` there;
+``d_k u_k`` inside ``bar(p d_k u_k)`` is always the fine-grid dilatation.
+
+The density-weighted filter ``bar(rho f) / bar(rho)`` is the same operation as a mask-weighted
+filter ``bar(w f) / bar(w)``; masks (land points) are not supported here yet.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+from closure.derivatives import derivative
+from closure.errors import UserError
+from closure.filters import CoarseGraining
+from closure.grid import VELOCITY_OF, Grid
+from closure.residuals import (
+    CoarseSnapshot,
+    backscatter_fraction,
+    directions,
+    energy_transfer,
+    fine_scheme,
+    stress_component,
+    stress_names,
+    stress_pairs,
+)
+
+if TYPE_CHECKING:
+    from closure.io import Snapshot
+
+#: Fine-grid fields a compressible snapshot must carry (besides the velocity).
+DENSITY = "rho"
+PRESSURE = "p"
+TEMPERATURE = "T"
+
+
+def favre_target_names(dims: Sequence[str]) -> list[str]:
+    """Every target favre_coarse_grain can compute on a grid of ``dims``, in output order."""
+    dirs = directions(dims)
+    return (stress_names(dims) + [f"force_{i}" for i in dirs]
+            + [f"heat_flux_{j}" for j in dirs] + ["pressure_dilatation", "pi"])
+
+
+def favre_field_names(dims: Sequence[str]) -> list[str]:
+    """Coarse fields of a Favre snapshot: ``rho`` (filtered), ``u, v[, w]`` (Favre), ``p``
+    (filtered), ``T`` (Favre)."""
+    return [DENSITY, *(VELOCITY_OF[d] for d in directions(dims)), PRESSURE, TEMPERATURE]
+
+
+def thermodynamic_fields(fields: Mapping[str, np.ndarray],
+                         gas_constant: float | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """``(p, T)`` from a snapshot's fields; the missing one from the ideal-gas law
+    ``p = rho R T`` when ``gas_constant`` (J kg^-1 K^-1) is given."""
+    have_p, have_t = PRESSURE in fields, TEMPERATURE in fields
+    if have_p and have_t:
+        return (np.asarray(fields[PRESSURE], dtype=float),
+                np.asarray(fields[TEMPERATURE], dtype=float))
+    if (have_p or have_t) and gas_constant is not None:
+        if not (np.isfinite(gas_constant) and gas_constant > 0):
+            raise UserError(f"the gas constant must be a positive number (J kg-1 K-1), got "
+                            f"{gas_constant!r}")
+        rho = np.asarray(fields[DENSITY], dtype=float)
+        if have_p:
+            p = np.asarray(fields[PRESSURE], dtype=float)
+            return p, p / (rho * gas_constant)
+        T = np.asarray(fields[TEMPERATURE], dtype=float)
+        return rho * gas_constant * T, T
+    missing = " and ".join(n for n, h in ((PRESSURE, have_p), (TEMPERATURE, have_t)) if not h)
+    raise UserError(f"compressible coarse-graining needs pressure 'p' and temperature 'T': the "
+                    f"snapshot has no {missing}; map them with --var, or give the gas "
+                    "constant so that one follows from p = rho R T")
+
+
+def _check(snapshot: Snapshot, cg: CoarseGraining) -> None:
+    g, f = snapshot.grid, cg.fine
+    if g.dims != f.dims or g.shape != f.shape or g.periodic != f.periodic or \
+            not np.allclose(g.spacing, f.spacing, rtol=1e-9, atol=0.0):
+        raise UserError(f"the snapshot's grid {g.dims} {g.shape} does not match the "
+                        f"coarse-graining's fine grid {f.dims} {f.shape}: build the "
+                        "coarse-graining from this file's grid")
+    if snapshot.mask is not None:
+        raise UserError("compressible (Favre) coarse-graining does not support masked (land) "
+                        "points yet: give data without missing values")
+    needed = [DENSITY, *(VELOCITY_OF[d] for d in directions(g.dims))]
+    missing = [c for c in needed if c not in snapshot.fields]
+    if missing:
+        raise UserError(f"the snapshot has no field {', '.join(map(repr, missing))} (it has "
+                        f"{', '.join(snapshot.fields)}): compressible data need the density "
+                        "'rho' and the velocity; map them with --var")
+    rho = np.asarray(snapshot.fields[DENSITY])
+    if not np.all(np.isfinite(rho)) or float(np.min(rho)) <= 0:
+        raise UserError("the density 'rho' must be positive and finite everywhere: check the "
+                        "variable mapped to rho")
+
+
+def _wanted(targets, dims) -> list[str]:
+    every = favre_target_names(dims)
+    if targets is None:
+        return every
+    if isinstance(targets, str):
+        targets = (targets,)
+    unknown = sorted(set(targets) - set(every))
+    if unknown:
+        raise UserError(f"unknown compressible target variable(s) {', '.join(unknown)} on "
+                        f"this {len(dims)}-D grid: choose from {', '.join(every)}")
+    return [t for t in every if t in set(targets)]
+
+
+def favre_coarse_grain(snapshot: Snapshot, cg: CoarseGraining,
+                       targets: Sequence[str] | None = None,
+                       gas_constant: float | None = None) -> CoarseSnapshot:
+    """Favre-filter and coarsen one compressible snapshot; exact subgrid terms on the coarse grid.
+
+    The snapshot carries ``rho``, ``u, v[, w]`` and ``p`` and/or ``T`` (the other from
+    ``p = rho R T`` with ``gas_constant``). ``targets`` restricts the computed targets (see
+    :func:`favre_target_names`); None computes all. Returns a CoarseSnapshot whose fields are
+    :func:`favre_field_names` and whose targets are named as in the module docstring.
+    """
+    _check(snapshot, cg)
+    fine = cg.fine
+    want = _wanted(targets, fine.dims)
+    dirs = directions(fine.dims)
+    scheme = fine_scheme(fine)
+    rho = np.asarray(snapshot.fields[DENSITY], dtype=float)
+    vel = {i: np.asarray(snapshot.fields[VELOCITY_OF[i]], dtype=float) for i in dirs}
+    p, T = thermodynamic_fields(snapshot.fields, gas_constant)
+
+    # the filtered quantities the wanted targets need, one at a time (peak memory: a few
+    # fine-grid fields, not all products at once)
+    quantities = {"rho": lambda: rho, "p": lambda: p, "rhoT": lambda: rho * T}
+    for i in dirs:
+        quantities[("m", i)] = lambda i=i: rho * vel[i]
+    if any(t.startswith(("tau_", "force_")) or t == "pi" for t in want):
+        for i, j in stress_pairs(fine.dims):
+            quantities[("uu", i, j)] = lambda i=i, j=j: rho * vel[i] * vel[j]
+    if any(t.startswith("heat_flux_") for t in want):
+        for j in dirs:
+            quantities[("uT", j)] = lambda j=j: rho * vel[j] * T
+    if "pressure_dilatation" in want:
+        quantities["pdiv"] = lambda: p * sum(derivative(vel[i], fine, i, 1, scheme)
+                                             for i in dirs)
+    if cg.kind == "block":
+        grid, apply = cg.coarse, cg.block_mean
+    else:
+        grid, apply = fine, cg.filter
+    bar = {key: apply(make()) for key, make in quantities.items()}
+
+    fields, out = favre_terms(bar, grid, dirs, want, fine_scheme(grid))
+    if cg.kind != "block":
+        fields = {k: cg.sample(v) for k, v in fields.items()}
+        out = {k: cg.sample(v) for k, v in out.items()}
+    fields = {k: np.ascontiguousarray(v) for k, v in fields.items()}
+    out = {k: np.ascontiguousarray(out[k]) for k in want}
+    return CoarseSnapshot(fields, out, cg.coarse, cg, snapshot.index, snapshot.time)
+
+
+def favre_terms(bar: Mapping, grid: Grid, dirs: Sequence[str], want: Sequence[str],
+                scheme: str) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """Fields and wanted targets from the filtered quantities ``bar`` (all on ``grid``)."""
+    rho_bar = bar["rho"]
+    ut = {i: bar[("m", i)] / rho_bar for i in dirs}
+    Tt = bar["rhoT"] / rho_bar
+    fields = {DENSITY: rho_bar, **{VELOCITY_OF[i]: ut[i] for i in dirs},
+              PRESSURE: bar["p"], TEMPERATURE: Tt}
+    stress = ({f"tau_{i}{j}": bar[("uu", i, j)] - rho_bar * ut[i] * ut[j]
+               for i, j in stress_pairs(grid.dims)} if ("uu", dirs[0], dirs[0]) in bar else {})
+    out = dict(stress)
+    for j in dirs:
+        if ("uT", j) in bar:
+            out[f"heat_flux_{j}"] = bar[("uT", j)] - rho_bar * ut[j] * Tt
+    want = set(want)
+    if want & {"pi", "pressure_dilatation"}:
+        grad = {}
+        for j in dirs:
+            dj = derivative(np.stack([ut[i] for i in dirs]), grid, j, 1, scheme)
+            for a, i in enumerate(dirs):
+                grad[(i, j)] = dj[a]
+        strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in stress_pairs(grid.dims)}
+        if "pi" in want:
+            out["pi"] = energy_transfer(stress, strain, grid.dims)
+        if "pressure_dilatation" in want:
+            out["pressure_dilatation"] = bar["pdiv"] - bar["p"] * sum(grad[(i, i)]
+                                                                      for i in dirs)
+    if any(t.startswith("force_") for t in want):
+        for i in dirs:
+            out[f"force_{i}"] = sum(derivative(stress_component(stress, i, j), grid, j, 1,
+                                               scheme) for j in dirs)
+    return fields, {k: v for k, v in out.items() if k in want}
+
+
+def backscatter_fractions(coarse: CoarseSnapshot) -> dict[str, float]:
+    """Backscatter of a Favre snapshot's energy transfer ``pi``: ``points`` the fraction of
+    coarse points with ``pi < 0`` (energy returned to the resolved scales) and ``share`` the
+    backscattered part of the total transfer, sum(|pi| where pi < 0) / sum(|pi|)."""
+    if "pi" not in coarse.targets:
+        raise UserError("backscatter needs the energy transfer: compute the target 'pi'")
+    pi = np.asarray(coarse.targets["pi"])
+    total = float(np.sum(np.abs(pi)))
+    share = float(np.sum(np.abs(pi[pi < 0]))) / total if total > 0 else float("nan")
+    return {"points": backscatter_fraction(pi), "share": share}
