@@ -1331,6 +1331,10 @@ class CoarseWriter:
         attrs.update(_filter_attrs(cs.coarse_graining))
         attrs["source_file"] = str(self.source.get("file", ""))
         attrs["source_sha256"] = str(self.source.get("sha256", ""))
+        if self.source.get("group"):
+            attrs["source_group"] = str(self.source["group"])
+        if self.source.get("level") is not None:
+            attrs["source_level"] = np.int32(self.source["level"])
         if names:
             attrs["source_variables"] = " ".join(f"{k}={v}" for k, v in names.items())
         nc.setncatts(attrs)

@@ -191,7 +191,14 @@ BAD = {
                     [], "coordinate 'x' .* is not uniformly spaced"),
     "NaN": (lambda mk, tmp: mk({"u": np.where(np.arange(24).reshape(3, 8) == 17, np.nan, 0.0)},
                                dims=("time", "x")), ["--ratio", "2"],
-            r"variable 'u' has 1 NaN or Inf value\(s\) at snapshot 2 of .*fill or remove"),
+            r"snapshot 2 has 1 land or missing point\(s\) \(NaN, fill values or --mask\): land "
+            r"masks need .*select snapshots \(--snapshots\)"),
+    "Inf": (lambda mk, tmp: mk({"u": np.where(np.arange(24).reshape(3, 8) == 17, np.inf, 0.0)},
+                               dims=("time", "x")), ["--ratio", "2"],
+            r"variable 'u' has 1 Inf value\(s\) at snapshot 2 of .*replace it with NaN"),
+    "snapshot out of range": (lambda mk, tmp: mk({"u": np.zeros((2, 8))}, dims=("time", "x")),
+                              ["--ratio", "2", "--snapshots", "0,5"],
+                              r"--snapshots \[5\] out of range: the input has 2 snapshot"),
     "too few points": (lambda mk, tmp: mk({"u": np.zeros((1, 8))}, dims=("time", "x")),
                        ["--ratio", "16"], "8 points in x, fewer than the ratio 16: use a "
                                           "smaller --ratio"),
