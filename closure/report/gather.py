@@ -53,8 +53,16 @@ def provenance_input(model) -> dict:
     target = getattr(model, "target", "")
     if target.startswith("flux:") and target[5:] not in scalars:
         scalars.append(target[5:])
+    path = inp.get("path") or spec_in.get("path")
+    paths = prov.get("inputs") if isinstance(prov.get("inputs"), list) else None
+    if not paths or (isinstance(path, str) and paths[0] != path):  # "input" edited by hand
+        paths = [path] if isinstance(path, str) else path
+    options = prov.get("input_options") if isinstance(prov.get("input_options"), Mapping) \
+        else {k: spec_in.get(k) for k in ("group", "mask", "levels", "spacing")}
     return {
-        "path": inp.get("path") or spec_in.get("path"),
+        "path": paths[0] if paths else None,
+        "paths": list(paths or []),
+        "options": {k: options.get(k) for k in ("group", "mask", "levels", "spacing")},
         "sha256": inp.get("sha256") or prov.get("sha256") or spec_in.get("sha256"),
         "variables": dict(prov.get("variables") or spec_in.get("variables") or {}),
         "scalars": scalars,
@@ -98,12 +106,15 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
     one at a time as the iterator is consumed.
     """
     from closure.io import open_fields
+    from closure.pipeline import refuse_land_mask
     from closure.residuals import coarse_grain_snapshot
 
     info = provenance_input(model)
     notes: list[str] = []
+    opts = info["options"]
     src = open_fields(input_path, info["variables"] or None, info["scalars"],
-                      bool(info["periodic"]))
+                      bool(info["periodic"]), group=opts["group"], mask=opts["mask"],
+                      levels=opts["levels"], spacing=opts["spacing"])
     try:
         cg = coarse_graining_of(model, src.grid)
         if indices is None:
@@ -130,7 +141,10 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
             for done, i in enumerate(indices):
                 if progress is not None:
                     progress("snapshots", done, len(indices))
-                yield coarse_grain_snapshot(src.snapshot(i), cg, info["scalars"])
+                for level in ([None] if src.levels is None else src.levels):
+                    snap = src.snapshot(i, level)
+                    refuse_land_mask(snap)
+                    yield coarse_grain_snapshot(snap, cg, info["scalars"])
             if progress is not None:
                 progress("snapshots", len(indices), len(indices))
         finally:
@@ -168,13 +182,20 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
         _sweep_dict(sweep)
     notes: list[str] = []
     if input_path is None:
-        recorded = provenance_input(model)["path"]
-        candidates = [Path(recorded)] if recorded else []
-        if recorded and model_file is not None and not Path(recorded).is_absolute():
-            candidates.append(model_file.parent / recorded)  # a folder moved as a whole
-        found = next((c for c in candidates if c.is_file()), None)
-        if found is not None:
-            input_path = found
+        paths = provenance_input(model)["paths"]
+        recorded = " ".join(map(str, paths)) if paths else None
+        found = []
+        for r in paths:
+            candidates = [Path(r)]
+            if model_file is not None and not Path(r).is_absolute():
+                candidates.append(model_file.parent / r)  # a folder moved as a whole
+            hit = next((c for c in candidates if c.is_file() or c.is_dir()), None)
+            if hit is None:
+                found = []
+                break
+            found.append(hit)
+        if found:
+            input_path = found if len(found) > 1 else found[0]
         elif recorded:
             notes.append(f"the model's input file {recorded} is not available here: give it "
                          "with --input to include the a priori comparison")
