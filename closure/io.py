@@ -24,6 +24,7 @@ import hashlib
 import os
 import tempfile
 import threading
+import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -285,9 +286,13 @@ def _open_zarr(path: Path, group: str | None) -> xr.Dataset:
         raise InputFileError(f"{path} is a Zarr store, which needs the zarr package: "
                              "pip install zarr") from None
     try:
-        # chunks=None: lazy backend arrays without dask; a read loads just the slice asked
-        return xr.open_zarr(path, group=group, chunks=None, decode_times=False,
-                            decode_timedelta=False)
+        # chunks=None: lazy backend arrays without dask; a read loads just the slice asked.
+        # Stores without consolidated metadata are common and open fine without it.
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*consolidated metadata",
+                                    category=RuntimeWarning)
+            return xr.open_zarr(path, group=group, chunks=None, decode_times=False,
+                                decode_timedelta=False)
     except Exception as exc:
         where = f" group {group!r}" if group else ""
         raise InputFileError(f"{path}{where} could not be read as a Zarr store ({exc}): check "

@@ -518,7 +518,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         levels = _levels(plan)
         if held_out is not None and i in held_out:
             fields, targets = held_out.get(i)
-            pairs = [(fields, targets)] if levels == [None] else \
+            # one level is kept as it is; several as a _LevelStack
+            pairs = [(fields, targets)] if len(levels) == 1 else \
                 _unstack(fields, targets, len(levels))
         else:
             parts, _, _ = _coarse(spec, plan, i, source)
