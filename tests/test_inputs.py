@@ -470,3 +470,12 @@ def test_cli_coarse_grain_writes_one_file_per_level(stack, tmp_path, capsys):
     with xr.open_dataset(tmp_path / "c_level2.nc") as c:
         assert int(c.attrs["source_level"]) == 2 and c["tau_xy"].dims == ("time", "y", "x")
     assert not (tmp_path / "c_level0.nc").exists()
+
+
+def test_service_refuses_several_paths_with_a_user_error(tmp_path):
+    # a UserError is a 4xx answer (api.app); several paths wait for per-file containment
+    from api.inputs import resolve_input
+
+    s = parse_spec({"input": {"path": [str(tmp_path / "a.nc"), str(tmp_path / "b.nc")]}})
+    with pytest.raises(InputFileError, match="this server takes one file per job"):
+        resolve_input(s, None, [tmp_path])
