@@ -479,3 +479,36 @@ def test_service_refuses_several_paths_with_a_user_error(tmp_path):
     s = parse_spec({"input": {"path": [str(tmp_path / "a.nc"), str(tmp_path / "b.nc")]}})
     with pytest.raises(InputFileError, match="this server takes one file per job"):
         resolve_input(s, None, [tmp_path])
+
+
+def test_level_stack_through_the_queue_functions_equals_in_process(stack, tmp_path):
+    # plan -> map per snapshot -> reduce, as the workers run it (held-out level stacks kept
+    # in HeldOut's files, and without them), gives the in-process model
+    s = spec(str(stack[0]), levels=[0, 2])
+    in_process = pipeline.discover(s)
+    p = pipeline.plan(s)
+    held = pipeline.HeldOut(tmp_path, p["components"])
+    stats = {}
+    for i in p["snapshots"]:
+        stats[i], coarse = pipeline._map(s, p, i)
+        if i in p["test"]:
+            held.put(coarse)
+    for kept in (held, None):
+        queued = pipeline.reduce(s, json.loads(json.dumps(p)), stats, held_out=kept)
+        np.testing.assert_allclose(queued.coefficients_scaled, in_process.coefficients_scaled,
+                                   rtol=1e-12, atol=1e-14)
+        assert queued.scores == in_process.scores
+
+
+def test_report_rereads_a_models_several_inputs_and_levels(dns, stack, tmp_path):
+    from closure.report import build_report
+
+    _, ds = dns
+    split(ds, tmp_path / "run")
+    for given, kw in ((str(tmp_path / "run" / "snap_*.nc"), {}), (str(stack[0]),
+                                                                 {"levels": [0, 2]})):
+        model = pipeline.discover(spec(given, **kw))
+        out = build_report(model, tmp_path / f"rep{len(kw)}")
+        page = (out / "index.html").read_text()
+        assert "held-out snapshots" in page and "not available here" not in page
+        assert (out / "apriori_hexbin.png").exists()
