@@ -706,14 +706,29 @@ class _Part:
     """One opened input (a netCDF file, a group of one, or a Zarr store) of a FieldSource."""
 
     def __init__(self, path: Path, ds: xr.Dataset, names: dict[str, str], layout: _Layout,
-                 mask: str | None):
+                 mask: str | None, reopen):
         self.path = path
-        self.ds = ds
+        self._ds: xr.Dataset | None = ds
+        self._reopen = reopen
         self.names = names
         self.layout = layout
         self.mask = mask
         self.units = _units(ds, names, (TIME, *layout.dims))
         self.time_attrs = _time_attrs(ds)
+        self.attrs = dict(ds.attrs)
+
+    @property
+    def ds(self) -> xr.Dataset:
+        """The open dataset (reopened after :meth:`release`)."""
+        if self._ds is None:
+            self._ds = self._reopen()
+        return self._ds
+
+    def release(self) -> None:
+        """Close the file; the next read reopens it (many inputs, few open handles)."""
+        if self._ds is not None:
+            self._ds.close()
+            self._ds = None
 
     def read(self, theirs: str, j: int, level: int | None, dims: Sequence[str]) -> np.ndarray:
         """The file's variable at local snapshot ``j`` (and level) as float64 of ``dims``."""
@@ -765,7 +780,7 @@ class FieldSource:
         self.notes: list[str] = list(notes)
         self.warnings: list[str] = list(dict.fromkeys(w for p in parts for w in p.layout.warnings))
         self.spacing_from = first.layout.spacing_from
-        self.attrs = dict(first.ds.attrs)
+        self.attrs = dict(first.attrs)
         self.time_attrs = dict(first.time_attrs)
         self.units = dict(first.units)
         self.levels: tuple[int, ...] | None = None if levels is None else tuple(levels)
@@ -851,6 +866,14 @@ class FieldSource:
     def time_of(self, i: int) -> float | None:
         return None if self.times is None else float(self.times[i])
 
+    def _use(self, k: int) -> _Part:
+        """Input ``k``, opened; the other inputs are closed (one open file at a time)."""
+        if len(self._parts) > 1:
+            for q, p in enumerate(self._parts):
+                if q != k:
+                    p.release()
+        return self._parts[k]
+
     def file_of(self, i: int) -> tuple[Path, int]:
         """(input, index in that input) of snapshot ``i``."""
         k, j = self._index[self._check_index(i)]
@@ -860,7 +883,7 @@ class FieldSource:
         """Our variable ``name`` at snapshot ``i`` as float64 of ``grid.shape``; missing
         values (NaN, fill values) stay NaN; Inf is refused."""
         k, j = self._index[self._check_index(i)]
-        part = self._parts[k]
+        part = self._use(k)
         theirs = part.names[name]
         a = part.read(theirs, j, self._check_level(level), self.grid.dims)
         inf = np.isinf(a)
@@ -889,7 +912,7 @@ class FieldSource:
         for a in fields.values():
             fluid &= ~np.isnan(a)
         k, j = self._index[i]
-        part = self._parts[k]
+        part = self._use(k)
         if part.mask is not None:
             m = part.read(part.mask, j, level, self.grid.dims)
             with np.errstate(invalid="ignore"):
@@ -963,7 +986,7 @@ class FieldSource:
 
     def close(self) -> None:
         for p in self._parts:
-            p.ds.close()
+            p.release()
 
     def __enter__(self):
         return self
@@ -1052,7 +1075,11 @@ def _open_part(path: Path, variables: dict[str, str], scalars: tuple[str, ...], 
         for ours, std in std_used.items():
             notes.append(f"{ours} read from {names[ours]!r} (standard_name {std}); "
                          f"--var {ours}=NAME overrides")
-        return _Part(path, ds, names, layout, mask), velocity, std_used, notes
+        def reopen():
+            again = _rename_dims(_open_dataset(path, group), path, variables)
+            return _auto_dims(again, variables)[0]
+
+        return _Part(path, ds, names, layout, mask, reopen), velocity, std_used, notes
     except BaseException:
         ds.close()
         raise
@@ -1119,6 +1146,8 @@ def open_fields(path: str | os.PathLike | Sequence[str | os.PathLike],
                 velocity, std_used, notes = vel, std, nt
             else:
                 _same_grid(parts[0], part)
+            if len(files) > 1:
+                part.release()  # thousands of files must not hold thousands of handles
         chosen = None
         if levels is not None:
             n = parts[0].layout.n_levels
@@ -1140,7 +1169,7 @@ def open_fields(path: str | os.PathLike | Sequence[str | os.PathLike],
                            standard_names=std_used, notes=notes, periodic=periodic)
     except BaseException:
         for p in parts:
-            p.ds.close()
+            p.release()
         raise
 
 

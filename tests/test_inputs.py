@@ -83,6 +83,25 @@ def test_several_files_are_read_lazily_in_time_order(dns, tmp_path):
             np.testing.assert_array_equal(src.snapshot(i).fields["u"], ds["u"].values[i])
         assert src.file_of(4) == (paths[4], 0)
         assert src.sha256 == input_sha256(paths)
+        assert sum(p._ds is not None for p in src._parts) == 1  # one open file at a time
+
+
+def test_many_files_hold_one_file_handle(dns, tmp_path):
+    import os
+
+    _, ds = dns
+    one = ds.isel(time=slice(0, 1))
+    paths = []
+    for i in range(40):
+        p = tmp_path / f"s{i:03d}.nc"
+        one.assign_coords(time=[float(i)]).to_netcdf(p)
+        paths.append(p)
+    before = len(os.listdir("/proc/self/fd"))
+    with open_fields(str(tmp_path / "s*.nc")) as src:
+        for i in (0, 39, 7):
+            src.snapshot(i)
+        assert len(os.listdir("/proc/self/fd")) - before <= 2
+        assert src.n_snapshots == 40 and src.time_of(39) == 39.0
 
 
 def test_overlapping_times_mixed_grids_and_names_are_refused_naming_the_files(dns, tmp_path):
