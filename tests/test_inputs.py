@@ -531,3 +531,30 @@ def test_report_rereads_a_models_several_inputs_and_levels(dns, stack, tmp_path)
         page = (out / "index.html").read_text()
         assert "held-out snapshots" in page and "not available here" not in page
         assert (out / "apriori_hexbin.png").exists()
+
+
+def test_cli_submit_carries_the_input_options_and_one_job_per_level(dns, tmp_path, capsys,
+                                                                     monkeypatch):
+    from closure.client import Client
+
+    sent = []
+
+    def fake_submit(self, spec, name=None, upload=None):
+        sent.append(spec)
+        return {"id": f"j-{len(sent)}", "state": "queued"}
+
+    monkeypatch.setattr(Client, "submit", fake_submit)
+    code, out, err = run(capsys, "submit", dns[0], "--group", "g", "--mask", "sea", "--levels",
+                         "0,2", "--per-level", "--spacing", "100", "--var", "u=U",
+                         "--server", "http://127.0.0.1:9")
+    assert code == 0, err
+    assert out.split() == ["j-1", "j-2"]
+    assert [s["input"]["levels"] for s in sent] == [[0], [2]]
+    for s in sent:
+        parse_spec(s)
+        assert s["input"]["path"] == str(dns[0].resolve())
+        assert (s["input"]["group"], s["input"]["mask"], s["input"]["spacing"],
+                s["input"]["variables"]) == ("g", "sea", [100.0], {"u": "U"})
+    code, _, err = run(capsys, "submit", dns[0], "--levels", "all", "--per-level",
+                       "--server", "http://127.0.0.1:9")
+    assert code == 2 and "list the levels, e.g. --levels 0,5,10" in err
