@@ -807,6 +807,17 @@ class FieldSource:
                         f"{times[a + 1].max():g}): give each snapshot once (drop one of the "
                         "files)")
             self.times = np.concatenate(times)
+            if parts[0].time_attrs != self.time_attrs:  # in the earliest input's units
+                import cftime
+
+                ref, new = self.time_attrs, parts[0].time_attrs
+                dates = cftime.num2date(self.times, ref["units"], ref.get("calendar", "standard"))
+                self.times = np.asarray(cftime.date2num(dates, new["units"],
+                                                        new.get("calendar", "standard")),
+                                        dtype=float)
+                self.time_attrs = dict(new)
+                if "units" in new:
+                    self.units[TIME] = new["units"]
         elif len(parts) > 1:
             self.times = None
             self.notes.append("the inputs have no time coordinate: snapshots are ordered by "

@@ -558,3 +558,40 @@ def test_cli_submit_carries_the_input_options_and_one_job_per_level(dns, tmp_pat
     code, _, err = run(capsys, "submit", dns[0], "--levels", "all", "--per-level",
                        "--server", "http://127.0.0.1:9")
     assert code == 2 and "list the levels, e.g. --levels 0,5,10" in err
+
+
+def test_cli_report_takes_several_inputs_and_overrides_the_recorded_options(dns, stack,
+                                                                             tmp_path, capsys):
+    _, ds = dns
+    paths = split(ds, tmp_path / "run")
+    model = pipeline.discover(spec(str(tmp_path / "run")))
+    model.save(tmp_path / "m.json")
+    args = ["report", tmp_path / "m.json", "-o", tmp_path / "rep", "-q"]
+    for p in paths:
+        args += ["--input", p]
+    code, out, err = run(capsys, *args)
+    assert code == 0, err
+    assert "not available here" not in (tmp_path / "rep" / "index.html").read_text()
+    lv = pipeline.discover(spec(str(stack[0]), levels=[0]))
+    lv.save(tmp_path / "lv.json")
+    code, _, err = run(capsys, "report", tmp_path / "lv.json", "-o", tmp_path / "rl", "-q",
+                       "--levels", "9")
+    assert code == 2 and "--levels [9] out of range: the input has 3 level(s)" in err
+
+
+def test_files_with_different_cf_time_units_are_converted(dns, tmp_path):
+    _, ds = dns
+    a = ds.isel(time=slice(0, 2)).assign_coords(
+        time=("time", [0.0, 1.0], {"units": "days since 2000-01-01"}))
+    b = ds.isel(time=slice(2, 4)).assign_coords(
+        time=("time", [0.0, 24.0], {"units": "hours since 2000-01-03"}))
+    a.to_netcdf(tmp_path / "a.nc")
+    b.to_netcdf(tmp_path / "b.nc")
+    with open_fields([tmp_path / "b.nc", tmp_path / "a.nc"]) as src:
+        np.testing.assert_allclose(src.times, [0.0, 1.0, 2.0, 3.0])  # days since 2000-01-01
+        np.testing.assert_array_equal(src.snapshot(2).fields["u"], ds["u"].values[2])
+    c = ds.isel(time=slice(4, 6)).assign_coords(time=("time", [5.0, 6.0], {"units": "s"}))
+    c.to_netcdf(tmp_path / "c.nc")
+    with pytest.raises(InputFileError, match=r"c.nc has time units .*'s'.* give files with one "
+                                             r"time unit"):
+        open_fields([tmp_path / "a.nc", tmp_path / "c.nc"])

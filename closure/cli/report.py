@@ -72,6 +72,11 @@ def report(
     snapshots: str | None = typer.Option(
         None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 or 6-9 (default: "
         "the model's held-out snapshots)", show_default=False),
+    var: list[str] | None = VAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    spacing: str | None = SPACING,
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the folder"),
     server: str | None = typer.Option(None, "--server", help="service URL, for a stored model "
                                       "id (default: $CLOSURE_SERVER, the running local "
@@ -84,11 +89,15 @@ def report(
 
     Given a stored model's id (not a file), the service builds the report (with the model's
     latest a posteriori result) and it is downloaded into the folder."""
+    from closure.cli.inputs import input_dict
     from closure.report import build_report
 
     if not model.exists() and re.fullmatch(r"m-[0-9a-f]{6,64}", str(model)):
         given = [name for name, v in (("--input", input), ("--les", les), ("--sweep", sweep),
-                                      ("--snapshots", snapshots)) if v is not None]
+                                      ("--snapshots", snapshots), ("--var", var),
+                                      ("--group", group), ("--mask", mask),
+                                      ("--levels", levels), ("--spacing", spacing))
+                 if v is not None]
         if given:
             raise OptionError(f"{', '.join(given)} apply to model files; the service builds "
                               f"the report of stored model {model} from its own files")
@@ -99,7 +108,10 @@ def report(
         return
     indices = parse_indices(snapshots)
     given = None if not input else (input[0] if len(input) == 1 else list(input))
+    options = input_dict(None, var=var, group=group, mask=mask, levels=levels,
+                         spacing=spacing)  # the model's recorded options, unless given here
     out = build_report(model, output, given, les=les, sweep=sweep, snapshots=indices,
+                       input_options=options,
                        progress=None if quiet else _echo_progress())
     typer.echo(str(out / "index.html"))
 

@@ -97,10 +97,12 @@ def coarse_graining_of(model, fine: Grid) -> CoarseGraining:
     return cg
 
 
-def held_out_snapshots(model, input_path, indices=None, progress: Progress | None = None
-                       ) -> tuple[Iterator, list[str]]:
+def held_out_snapshots(model, input_path, indices=None, progress: Progress | None = None,
+                       input_options: Mapping | None = None) -> tuple[Iterator, list[str]]:
     """Coarse snapshots of ``indices`` (default: the model's held-out ones) of the input,
-    coarse-grained with the model's filter; returns ``(iterator, notes)``.
+    coarse-grained with the model's filter; returns ``(iterator, notes)``. The input is read
+    with the model's recorded input options (variables, group, mask, levels, spacing), each
+    replaced by ``input_options``' where given.
 
     The file is opened and checked now (UserError naming the problem); snapshots are read
     one at a time as the iterator is consumed.
@@ -111,7 +113,11 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
     info = provenance_input(model)
     notes: list[str] = []
-    opts = info["options"]
+    opts = dict(info["options"])
+    overrides = {k: v for k, v in dict(input_options or {}).items() if v is not None}
+    if "variables" in overrides:
+        info["variables"] = dict(overrides.pop("variables"))
+    opts.update(overrides)
     src = open_fields(input_path, info["variables"] or None, info["scalars"],
                       bool(info["periodic"]), group=opts["group"], mask=opts["mask"],
                       levels=opts["levels"], spacing=opts["spacing"])
@@ -155,7 +161,8 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
 def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLike | None = None,
                  *, les=None, sweep=None, snapshots=None,
-                 progress: Progress | None = None) -> Path:
+                 progress: Progress | None = None, input_options: Mapping | None = None
+                 ) -> Path:
     """Build the report folder of a model from files and return its path.
 
     ``model``: a ClosureModel, its dict, or a model file path. ``input_path``: the fine-grid
@@ -164,6 +171,7 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
     model's filter and compared with the model. Without an input the a priori figures are left
     out. ``les``: a posteriori result (object, dict or JSON path from ``closure les``);
     ``sweep``: sweep result (SweepResult, dict or JSON path from ``closure sweep``).
+    ``input_options``: see :func:`held_out_snapshots`.
     """
     from closure.report.aposteriori import as_runs
     from closure.report.apriori import apriori_data
@@ -201,7 +209,8 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
                          "with --input to include the a priori comparison")
     apriori = None
     if input_path is not None:
-        snaps, more = held_out_snapshots(model, input_path, snapshots, progress)
+        snaps, more = held_out_snapshots(model, input_path, snapshots, progress,
+                                         input_options)
         notes += more
         apriori = apriori_data(model, snaps)
     if progress is not None:
