@@ -21,7 +21,7 @@ def apply_model(
     model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
                                       show_default=False),
     inputs: list[str] = typer.Argument(
-        ..., metavar="COARSE...", show_default=False,
+        ..., metavar="COARSE", show_default=False,
         help="filtered fields on a coarse grid, read only: a file as `closure coarse-grain` "
              "writes it, or any netCDF file(s), quoted glob, folder or Zarr store of them"),
     output: Path = typer.Option(..., "-o", "--output", help="netCDF file to write",

@@ -14,7 +14,7 @@ import typer
 
 from closure.errors import OptionError
 
-INPUTS = typer.Argument(..., metavar="INPUTS...", show_default=False,
+INPUTS = typer.Argument(..., metavar="INPUTS", show_default=False,
                         help="fine-grid input(s), read only: netCDF files, a quoted glob "
                              "('run/snap_*.nc'), a folder of netCDF files or a Zarr store")
 VAR = typer.Option(None, "--var", show_default=False,

@@ -185,7 +185,7 @@ def worker(
 
 def submit(
     inputs: list[str] = typer.Argument(
-        None, metavar="[INPUTS]...", help="fine-grid input(s): netCDF files, a quoted glob, a "
+        None, metavar="INPUTS", help="fine-grid input(s): netCDF files, a quoted glob, a "
         "folder or a Zarr store (omit with --dataset); several inputs go by path only"),
     dataset: str = typer.Option(None, "--dataset", help="an uploaded dataset id instead"),
     spec_file: Path = typer.Option(None, "--spec", help="a job-spec JSON file; options below "
