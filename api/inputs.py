@@ -40,13 +40,14 @@ def resolve_under_roots(raw: str, roots: Sequence[Path]) -> Path:
 
 
 def describe_fields(path: Path, variables: dict | None = None, scalars: Sequence[str] = (),
-                    periodic: bool = True) -> dict:
+                    periodic: bool = True, **options) -> dict:
     """Open ``path`` with closure.io.open_fields (raising InputFileError with what is wrong)
-    and describe it: grid, number of snapshots, velocity components and scalars."""
+    and describe it: grid, number of snapshots, velocity components and scalars.
+    ``options``: open_fields' group, mask, levels and spacing."""
     from closure.io import open_fields
 
     with open_fields(path, variables=variables or None, scalars=tuple(scalars),
-                     periodic=periodic) as src:
+                     periodic=periodic, **options) as src:
         return {"grid": src.grid.to_dict(), "n_snapshots": int(src.n_snapshots),
                 "velocity": list(src.velocity), "scalars": list(src.scalars)}
 
@@ -56,16 +57,23 @@ def resolve_input(spec: JobSpec, store: Store, roots: Sequence[Path]) -> tuple[J
     record of its input. The file is checked with the spec's variable mapping here, so a
     missing variable is answered at submission."""
     inp = spec.input
+    options = {"group": inp.group, "mask": inp.mask, "levels": inp.levels,
+               "spacing": inp.spacing}
+    if inp.path is not None and not isinstance(inp.path, str):
+        # several inputs need every path checked against the roots (closure.io.input_files
+        # expands them); until then one file per job
+        raise InputFileError("input.path: this server takes one file per job; give one path "
+                             "(or upload the data as one file)")
     if inp.dataset_id is not None:
         ds = store.get_dataset(inp.dataset_id)
         path = Path(ds["path"])
         if not path.is_file():
             raise InputFileError(f"dataset {inp.dataset_id}: its file is gone from the store; "
                                  "upload it again")
-        info = describe_fields(path, inp.variables, inp.scalars, inp.periodic)
+        info = describe_fields(path, inp.variables, inp.scalars, inp.periodic, **options)
     else:
         path = resolve_under_roots(inp.path, roots)
-        info = describe_fields(path, inp.variables, inp.scalars, inp.periodic)
+        info = describe_fields(path, inp.variables, inp.scalars, inp.periodic, **options)
         st = path.stat()
         ds = store.dataset_by_path(path, st.st_size, st.st_mtime_ns)
         if ds is None:

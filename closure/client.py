@@ -191,6 +191,8 @@ class Client:
             spec_dict = spec_from_options(spec, **options)
         params = {"name": name} if name else None
         local = spec_dict.get("input", {}).get("path")
+        if isinstance(local, list):  # several inputs go by path (no upload of several files)
+            local = None
         if local is not None and upload is not False and (upload or Path(local).is_file()):
             if not upload:
                 try:

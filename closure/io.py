@@ -4,21 +4,27 @@ This is the only module that knows file formats. Input files are opened read-onl
 written; every file we write goes to a temporary name in the target folder and is renamed into
 place, so a reader never sees a half-written file.
 
-Input layout: netCDF variables with dimensions ``(time, [z,] [y,] x)`` (a file without a
-``time`` dimension holds one snapshot). Velocity components are read as ``u, v, w`` (or the
-names given in ``variables``); scalars by name. Grid spacing comes from the coordinate
-variables, which must be uniformly spaced; a dimension without a coordinate variable has
-spacing 1 (grid index). Fields are loaded one snapshot at a time (no dask).
+Input layout: netCDF (or Zarr) variables with dimensions ``(time, [z,] [y,] x)`` (an input
+without a ``time`` dimension holds one snapshot), in one file, several files (a list, a glob or
+a folder; ordered by time), a netCDF-4 group or a Zarr store. Velocity components are read as
+``u, v, w``, the names given in ``variables``, or by CF standard name; scalars by name.
+Dimensions are ours by name, by mapping or by their coordinate's CF ``axis``. Grid spacing
+comes from the coordinate variables, which must be uniformly spaced to the precision they are
+stored in, or from ``spacing``; without either the spacing is 1 (grid index) with a warning.
+A level stack (``levels``) reads each z level as a grid of its own. NaN, fill values and a mask
+variable mark land (``Snapshot.mask``). Fields are loaded one snapshot at a time (no dask).
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as _dt
+import glob
 import hashlib
 import os
 import tempfile
 import threading
+import warnings
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -55,6 +61,8 @@ class Snapshot:
     index: int
     time: float | None
     mask: np.ndarray | None = None
+    #: the z level of a level stack (``open_fields(..., levels=...)``), else None
+    level: int | None = None
 
 
 def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20,
@@ -85,20 +93,162 @@ def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20,
 #: number of snapshots until the caches fill. Chunks larger than this bypass the cache.
 CHUNK_CACHE_BYTES = 1 << 20
 
+#: file name endings taken as netCDF when a folder or glob is given
+NETCDF_SUFFIXES = (".nc", ".nc4", ".netcdf", ".cdf", ".h5", ".hdf5")
+
+#: CF standard names of velocity components (CF standard name table), by our name. Looked up
+#: only when the short name (or --var) does not find the variable.
+STANDARD_NAMES = {
+    "u": ("sea_water_x_velocity", "eastward_sea_water_velocity",
+          "baroclinic_eastward_sea_water_velocity", "barotropic_eastward_sea_water_velocity",
+          "x_wind", "eastward_wind", "x_velocity"),
+    "v": ("sea_water_y_velocity", "northward_sea_water_velocity",
+          "baroclinic_northward_sea_water_velocity", "barotropic_northward_sea_water_velocity",
+          "y_wind", "northward_wind", "y_velocity"),
+    "w": ("upward_sea_water_velocity", "sea_water_z_velocity", "upward_air_velocity",
+          "z_wind", "upward_wind", "z_velocity"),
+}
+#: coordinate ``axis`` attributes and standard names that identify our dimensions
+_AXIS_OF = {"X": "x", "Y": "y", "Z": "z", "T": TIME}
+_DIM_STANDARD_NAMES = {
+    "projection_x_coordinate": "x", "grid_longitude": "x",
+    "projection_y_coordinate": "y", "grid_latitude": "y",
+    "depth": "z", "height": "z", "altitude": "z", "height_above_reference_ellipsoid": "z",
+    "model_level_number": "z", "time": TIME,
+}
+
+
+def _is_zarr(path: Path) -> bool:
+    return path.is_dir() and (path.suffix == ".zarr" or any(
+        (path / m).exists() for m in (".zgroup", ".zarray", ".zmetadata", "zarr.json")))
+
+
+def input_files(paths: str | os.PathLike | Sequence[str | os.PathLike],
+                base: str | os.PathLike | None = None) -> list[Path]:
+    """The inputs a path option names, in order: files, Zarr stores (folders) and the
+    netCDF files (``*.nc``, ``*.nc4``, ...) of a plain folder, globs expanded (sorted).
+
+    ``paths`` is one string or a list; relative entries are taken from ``base`` (default: the
+    working folder). InputFileError when an entry matches nothing. A service must check that
+    every returned path lies under its data roots before opening them.
+    """
+    items = [paths] if isinstance(paths, str | os.PathLike) else list(paths)
+    if not items:
+        raise InputFileError("no input given: give a netCDF file, several files, a glob, a "
+                             "folder or a Zarr store")
+    out: list[Path] = []
+    for item in items:
+        if not isinstance(item, str | os.PathLike) or not str(item):
+            raise InputFileError(f"an input path must be a non-empty string, got {item!r}")
+        p = Path(item).expanduser()
+        if base is not None and not p.is_absolute():
+            p = Path(base) / p
+        if glob.has_magic(str(p)):
+            found = sorted(Path(m) for m in glob.glob(str(p)))
+            found = [m for m in found if m.is_file() or _is_zarr(m)]
+            if not found:
+                raise InputFileError(f"no file matches {item!r}: check the pattern (quote it "
+                                     "so the shell does not expand it)")
+            out += found
+        elif _is_zarr(p) or p.is_file():
+            out.append(p)
+        elif p.is_dir():
+            found = sorted(m for m in p.iterdir()
+                           if m.is_file() and m.suffix.lower() in NETCDF_SUFFIXES)
+            if not found:
+                raise InputFileError(f"the folder {p} holds no netCDF files "
+                                     f"({', '.join('*' + s for s in NETCDF_SUFFIXES)}) and is "
+                                     "not a Zarr store: give the files or a glob")
+            out += found
+        else:
+            raise InputFileError(f"no such file: {p}: check the path")
+    unique = list(dict.fromkeys(out))
+    return unique
+
+
+def _store_files(path: Path) -> list[Path]:
+    """The files of one input (itself, or every file of a Zarr store), sorted."""
+    if path.is_dir():
+        return sorted(p for p in path.rglob("*") if p.is_file())
+    return [path]
+
+
+def input_sha256(paths: Sequence[str | os.PathLike],
+                 cancel: threading.Event | None = None) -> str:
+    """SHA-256 of an input. One file: the file's own SHA-256 (``sha256sum``). Several files
+    or a Zarr store: the SHA-256 of the sorted lines ``<sha256 of a file>`` (one per file;
+    for files inside a Zarr store ``<store name>/<relative path> <sha256>``, since chunk names
+    carry positions), joined by newlines. Renaming or reordering plain files keeps it; any
+    byte changed in any file changes it."""
+    paths = [Path(p) for p in paths]
+    if len(paths) == 1 and not paths[0].is_dir():
+        return sha256_file(paths[0], cancel=cancel)
+    lines = []
+    for p in paths:
+        if p.is_dir():
+            for f in _store_files(p):
+                lines.append(f"{p.name}/{f.relative_to(p).as_posix()} "
+                             f"{sha256_file(f, cancel=cancel)}")
+        else:
+            lines.append(sha256_file(p, cancel=cancel))
+    return hashlib.sha256("\n".join(sorted(lines)).encode()).hexdigest()
+
+
+def input_stamps(paths: Sequence[str | os.PathLike]) -> list[dict]:
+    """Size and modification time of every file of an input (to detect changes cheaply)."""
+    out = []
+    for p in paths:
+        for f in _store_files(Path(p)):
+            st = f.stat()
+            out.append({"path": str(f), "size": int(st.st_size), "mtime_ns": int(st.st_mtime_ns)})
+    return out
+
 
 def _open_netcdf(path: Path) -> netCDF4.Dataset:
     """The file opened read-only with a small chunk cache on every variable."""
     nc = netCDF4.Dataset(path, "r")
     if nc.data_model.startswith("NETCDF4"):  # classic files have no chunk cache
-        for var in nc.variables.values():
-            with contextlib.suppress(RuntimeError):
-                var.set_var_chunk_cache(size=CHUNK_CACHE_BYTES)
+        for g in _walk_groups(nc):
+            for var in g.variables.values():
+                with contextlib.suppress(RuntimeError):
+                    var.set_var_chunk_cache(size=CHUNK_CACHE_BYTES)
     return nc
 
 
-def _open_dataset(path: Path) -> xr.Dataset:
+def _walk_groups(g):
+    yield g
+    for child in g.groups.values():
+        yield from _walk_groups(child)
+
+
+def _group_paths(nc) -> list[str]:
+    return [g.path for g in _walk_groups(nc) if g.path != "/" and g.variables]
+
+
+def _parent_coords(nc, group: str, ds: xr.Dataset) -> xr.Dataset:
+    """Coordinate variables of the group's dimensions defined in a parent group (netCDF-4
+    groups inherit their parents' dimensions; xarray reads only the group itself)."""
+    g = nc[group.strip("/")]
+    found = {}
+    parent = g.parent
+    while parent is not None:
+        for d in ds.dims:
+            d = str(d)
+            if d in ds.variables or d in found or d not in parent.variables:
+                continue
+            var = parent.variables[d]
+            if var.dimensions == (d,):
+                found[d] = (d, np.asarray(var[:]), {k: var.getncattr(k) for k in var.ncattrs()
+                                                    if k != "_FillValue"})
+        parent = parent.parent
+    return ds.assign_coords(found) if found else ds
+
+
+def _open_dataset(path: Path, group: str | None = None) -> xr.Dataset:
     if not path.exists():
         raise InputFileError(f"no such file: {path}: check the path")
+    if _is_zarr(path):
+        return _open_zarr(path, group)
     if path.is_dir():
         raise InputFileError(f"{path} is a folder: give a netCDF file")
     nc = None
@@ -106,13 +256,48 @@ def _open_dataset(path: Path) -> xr.Dataset:
         # our own handle (closed with the dataset), so xarray never reopens the file with the
         # default caches; cache=False keeps only the requested slice in memory
         nc = _open_netcdf(path)
+        if group is not None:
+            key = group.strip("/")
+            try:
+                nc[key] if key else nc
+            except (IndexError, KeyError, OSError):
+                known = ", ".join(_group_paths(nc)) or "none"
+                nc.close()
+                raise InputFileError(f"{path} has no group {group!r}; its groups with variables "
+                                     f"are: {known}. Fix --group") from None
+            ds = xr.open_dataset(xr.backends.NetCDF4DataStore(nc, group=key or None),
+                                 decode_times=False, decode_timedelta=False, cache=False)
+            return _parent_coords(nc, key, ds) if key else ds
         return xr.open_dataset(xr.backends.NetCDF4DataStore(nc), decode_times=False,
                                decode_timedelta=False, cache=False)
+    except InputFileError:
+        raise
     except Exception as exc:  # the netCDF library's OSError, or xarray's decoding errors
         if nc is not None and nc.isopen():
             nc.close()
         raise InputFileError(f"{path} could not be read as netCDF ({exc}): give a netCDF-3 or "
-                             "netCDF-4 file (convert other formats, e.g. with xarray)") from None
+                             "netCDF-4 file or a Zarr store (convert other formats, e.g. with "
+                             "xarray)") from None
+
+
+def _open_zarr(path: Path, group: str | None) -> xr.Dataset:
+    try:
+        import zarr  # noqa: F401
+    except ImportError:
+        raise InputFileError(f"{path} is a Zarr store, which needs the zarr package: "
+                             "pip install zarr") from None
+    try:
+        # chunks=None: lazy backend arrays without dask; a read loads just the slice asked.
+        # Stores without consolidated metadata are common and open fine without it.
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*consolidated metadata",
+                                    category=RuntimeWarning)
+            return xr.open_zarr(path, group=group, chunks=None, decode_times=False,
+                                decode_timedelta=False)
+    except Exception as exc:
+        where = f" group {group!r}" if group else ""
+        raise InputFileError(f"{path}{where} could not be read as a Zarr store ({exc}): check "
+                             "the path (and --group)") from None
 
 
 def _rename_dims(ds: xr.Dataset, path: Path, variables: Mapping[str, str]) -> xr.Dataset:
@@ -132,6 +317,26 @@ def _rename_dims(ds: xr.Dataset, path: Path, variables: Mapping[str, str]) -> xr
     return ds.rename(rename) if rename else ds
 
 
+def _auto_dims(ds: xr.Dataset, variables: Mapping[str, str]) -> tuple[xr.Dataset, list[str]]:
+    """Rename dimensions whose coordinate variable says what it is (CF ``axis`` X/Y/Z/T, or a
+    standard name such as projection_x_coordinate or depth); explicit mappings come first."""
+    rename, notes = {}, []
+    taken = {str(d) for d in ds.dims} | {str(v) for v in ds.variables}
+    for d in map(str, ds.dims):
+        if d in (TIME, *SPATIAL_DIMS) or d in variables.values() or d not in ds.variables:
+            continue
+        attrs = ds[d].attrs
+        ours = _AXIS_OF.get(str(attrs.get("axis", "")).upper()) or \
+            _DIM_STANDARD_NAMES.get(str(attrs.get("standard_name", "")))
+        if ours is None or ours in variables or ours in taken or ours in rename.values():
+            continue
+        rename[d] = ours
+        how = (f"axis {attrs['axis']}" if "axis" in attrs
+               else f"standard_name {attrs['standard_name']}")
+        notes.append(f"dimension {d!r} read as {ours} ({how}); --var {ours}=NAME overrides")
+    return (ds.rename(rename) if rename else ds), notes
+
+
 def _file_name(ds: xr.Dataset, ours: str, variables: Mapping[str, str]) -> str | None:
     """The file's variable for our name: explicit mapping, same name, or a variable that a
     coarse file marked with ``closure_name``."""
@@ -143,15 +348,48 @@ def _file_name(ds: xr.Dataset, ours: str, variables: Mapping[str, str]) -> str |
     return str(marked[0]) if len(marked) == 1 else None
 
 
+def _by_standard_name(ds: xr.Dataset, path: Path, ours: str) -> tuple[str, str] | None:
+    """(file's name, standard name) of the velocity component ``ours`` found by its CF
+    standard name; InputFileError when several variables match."""
+    for std in STANDARD_NAMES.get(ours, ()):
+        hits = [str(n) for n, v in ds.data_vars.items() if v.attrs.get("standard_name") == std]
+        if len(hits) > 1:
+            raise InputFileError(f"{path} has several variables with standard_name {std!r} "
+                                 f"({', '.join(hits)}): choose one with --var {ours}=NAME")
+        if hits:
+            return hits[0], std
+    return None
+
+
 def _missing(path: Path, ds: xr.Dataset, ours: str, what: str,
-             variables: Mapping[str, str]) -> InputFileError:
+             variables: Mapping[str, str], groups: Sequence[str] = ()) -> InputFileError:
     names = ", ".join(map(str, ds.data_vars)) or "none"
+    hint = ""
+    if not ds.data_vars and groups:
+        hint = (f" (the file keeps its variables in groups: {', '.join(groups)}; choose one "
+                "with --group PATH)")
     if ours in variables:
         return InputFileError(f"variable {variables[ours]!r} (given for {ours}, {what}) not "
-                              f"found in {path}; the file's variables are: {names}. Fix "
+                              f"found in {path}; the file's variables are: {names}{hint}. Fix "
                               f"--var {ours}=NAME")
-    return InputFileError(f"variable {ours!r} ({what}) not found in {path}; the file's variables "
-                          f"are: {names}. Map it with --var {ours}=NAME")
+    std = STANDARD_NAMES.get(ours)
+    by_std = f" (nor a variable with standard_name {' / '.join(std[:2])}, ...)" if std else ""
+    return InputFileError(f"variable {ours!r} ({what}) not found in {path}{by_std}; the file's "
+                          f"variables are: {names}{hint}. Map it with --var {ours}=NAME")
+
+
+def _uniform_tolerance(x: np.ndarray, h: float, dtype: np.dtype) -> float:
+    """Allowed deviation of one coordinate step from the mean step.
+
+    A step is the difference of two stored values, each rounded to the coordinate's own
+    precision (half an ulp, ``eps/2 * |x|``), so round-off alone moves a step by up to
+    ``eps * max|x|``; the mean step from the end points errs by ``eps * max|x| / (n - 1)``.
+    Twice that budget covers the rounding of float32 coordinates written from float64 ones;
+    below it, UNIFORM_RTOL of the step is kept for float64 coordinates.
+    """
+    eps = float(np.finfo(dtype).eps) if np.dtype(dtype).kind == "f" else 0.0
+    n = x.size
+    return max(UNIFORM_RTOL * abs(h), 2.0 * eps * float(np.max(np.abs(x))) * (1 + 1 / (n - 1)))
 
 
 def _spacing(ds: xr.Dataset, path: Path, dim: str, n: int) -> tuple[float, float, str | None]:
@@ -176,15 +414,48 @@ def _spacing(ds: xr.Dataset, path: Path, dim: str, n: int) -> tuple[float, float
     if h <= 0 or np.any(steps <= 0):
         raise InputFileError(f"coordinate {dim!r} in {path} is not increasing: reverse that "
                              f"dimension (e.g. ds.isel({dim}=slice(None, None, -1))) first")
-    bad = np.abs(steps - h) > UNIFORM_RTOL * abs(h)
+    tol = _uniform_tolerance(x, h, coord.dtype)
+    bad = np.abs(steps - h) > tol
     if np.any(bad):
         i = int(np.argmax(bad))
         raise InputFileError(
             f"coordinate {dim!r} in {path} is not uniformly spaced (step {steps[i]:g} at index "
-            f"{i}, mean step {h:g}, steps from {steps.min():g} to {steps.max():g}): closure needs "
-            "a uniform grid; interpolate the data to uniform spacing first")
+            f"{i}, mean step {h:g}, steps from {steps.min():g} to {steps.max():g}, tolerance "
+            f"{tol:.3g} for {coord.dtype} values): closure needs a uniform rectilinear grid; "
+            "interpolate the data to uniform spacing first, or give --spacing DX[,DY[,DZ]] "
+            "to use the grid as uniform with that spacing")
     units = coord.attrs.get("units")
     return float(h), float(x[0]), (str(units) if units is not None else None)
+
+
+def _is_degrees(units: str | None) -> bool:
+    return units is not None and units.strip().lower().startswith("degree")
+
+
+def _curvilinear(ds: xr.Dataset, dims: Sequence[str]) -> list[str]:
+    """Names of multi-dimensional coordinate variables over the fields' spatial dims (the
+    latitude/longitude arrays of a curvilinear grid)."""
+    spatial = set(dims) - {TIME}
+    out = []
+    for name, var in ds.variables.items():
+        if var.ndim < 2 or not set(map(str, var.dims)) <= spatial:
+            continue
+        std = str(var.attrs.get("standard_name", ""))
+        units = str(var.attrs.get("units", ""))
+        if std in ("latitude", "longitude") or _is_degrees(units) or \
+                str(name).lower() in ("lat", "lon", "latitude", "longitude", "nav_lat",
+                                      "nav_lon", "xlat", "xlong"):
+            out.append(f"{name}({', '.join(map(str, var.dims))})")
+    return out
+
+
+def _curvilinear_error(path: Path, found: list[str]) -> InputFileError:
+    return InputFileError(
+        f"{path} has 2-D coordinates {', '.join(found)}: a curvilinear grid. closure supports "
+        "rectilinear grids with uniform spacing only (latitude/longitude metrics are not "
+        "supported yet): regrid the data to a uniform Cartesian grid first, or, where the grid "
+        "spacing is close to uniform in metres, map the index dimensions with --var x=NAME "
+        "--var y=NAME and give --spacing DX,DY (metres)")
 
 
 @dataclass
@@ -193,25 +464,58 @@ class _Layout:
     grid: Grid
     n_snapshots: int
     times: np.ndarray | None
+    warnings: tuple[str, ...] = ()
+    spacing_from: str = "coordinates"
+    n_levels: int = 0
+    level_values: np.ndarray | None = None
+
+
+def _spacing_for(dims: Sequence[str], spacing: Sequence[float]) -> dict[str, float]:
+    """--spacing DX[,DY[,DZ]] (x, y, z order) for the grid's dims; one value serves all."""
+    order = [d for d in ("x", "y", "z") if d in dims]
+    values = [float(h) for h in spacing]
+    if len(values) == 1:
+        values = values * len(order)
+    if len(values) != len(order):
+        raise InputFileError(
+            f"--spacing gives {len(spacing)} value(s) but the grid has {len(order)} direction(s) "
+            f"({', '.join(order)}): give one value for all, or one per direction in the order "
+            f"{', '.join('d' + d for d in order)}")
+    if any(not np.isfinite(h) or h <= 0 for h in values):
+        raise InputFileError(f"--spacing values must be positive numbers, got {list(spacing)}")
+    return dict(zip(order, values, strict=True))
 
 
 def _layout(ds: xr.Dataset, path: Path, names: Mapping[str, str], periodic: bool,
-            need_spacing: bool = True) -> _Layout:
-    """Check that the variables ``names`` (ours -> file's) share dims and build the grid."""
+            need_spacing: bool = True, spacing: Sequence[float] | None = None,
+            levels: bool = False) -> _Layout:
+    """Check that the variables ``names`` (ours -> file's) share dims and build the grid.
+
+    ``spacing`` (x, y, z order) replaces the coordinates; ``levels``: the z dimension is a
+    stack of levels, each a grid of the other spatial dims."""
     first_ours, first = next(iter(names.items()))
     dims = tuple(map(str, ds[first].dims))
     known = (TIME, *SPATIAL_DIMS)
     unknown = [d for d in dims if d not in known]
     if unknown:
+        curvy = _curvilinear(ds, dims)
+        if curvy:
+            raise _curvilinear_error(path, curvy)
         raise InputFileError(
             f"variable {first!r} in {path} has dims ({', '.join(dims)}); closure reads dims "
-            f"named time, z, y, x: rename {', '.join(map(repr, unknown))} in the file or map "
-            f"them with --var x=NAME (y=, z=, time= likewise)")
-    spatial = tuple(d for d in SPATIAL_DIMS if d in dims)
+            f"named time, z, y, x: the dimension(s) {', '.join(map(repr, unknown))} are not "
+            "understood: rename them in the file or map them with --var x=NAME (y=, z=, time= "
+            "likewise)")
+    spatial_all = tuple(d for d in SPATIAL_DIMS if d in dims)
+    if levels and "z" not in spatial_all:
+        raise InputFileError(f"--levels needs a z dimension, but {first!r} in {path} has dims "
+                             f"({', '.join(dims)}): drop --levels (or map the level dimension "
+                             "with --var z=NAME)")
+    spatial = tuple(d for d in spatial_all if not (levels and d == "z"))
     if "x" not in spatial:
         raise InputFileError(f"variable {first!r} in {path} has no x dimension (dims: "
                              f"{', '.join(dims) or 'none'}): closure needs dims "
-                             "(time, [z,] [y,] x)")
+                             "(time, [z,] [y,] x); map another dimension with --var x=NAME")
     for ours, theirs in names.items():
         other = tuple(map(str, ds[theirs].dims))
         if set(other) != set(dims):
@@ -223,28 +527,61 @@ def _layout(ds: xr.Dataset, path: Path, names: Mapping[str, str], periodic: bool
             raise InputFileError(f"variable {theirs!r} ({ours}) in {path} is not numeric "
                                  f"({ds[theirs].dtype})")
     shape = tuple(int(ds.sizes[d]) for d in spatial)
-    spacing, origin, units = [], [], []
-    for d, n in zip(spatial, shape, strict=True):
-        if need_spacing:
-            h, o, u = _spacing(ds, path, d, n)
-        else:
-            h, o, u = 1.0, 0.0, None
-        spacing.append(h)
-        origin.append(o)
-        units.append(u)
+    warnings: list[str] = []
+    given = _spacing_for(spatial, spacing) if spacing else None
+    origin, units, steps = [], [], []
     has_coord = [d in ds.variables for d in spatial]
-    if need_spacing and any(has_coord) and not all(has_coord):
-        missing = [d for d, c in zip(spatial, has_coord, strict=True) if not c]
-        raise InputFileError(f"{path} has coordinates for some directions but not for "
-                             f"{', '.join(missing)}: give every direction a coordinate variable")
-    given = {u for u in units if u is not None}
-    if len(given) > 1:
+    spacing_from = "coordinates"
+    if not need_spacing:
+        steps, origin, units = [1.0] * len(spatial), [0.0] * len(spatial), [None] * len(spatial)
+    elif given is not None:
+        for d, n in zip(spatial, shape, strict=True):
+            if n < 2:
+                raise InputFileError(f"dimension {d!r} in {path} has {n} point; a grid "
+                                     "direction needs at least 2 points")
+            steps.append(given[d])
+            origin.append(0.0)
+            units.append(None)
+        spacing_from = "--spacing"
+        replaced = [d for d, c in zip(spatial, has_coord, strict=True) if c]
+        if replaced:
+            warnings.append(f"--spacing {','.join(f'{given[d]:g}' for d in given)} replaces the "
+                            f"coordinates of {', '.join(replaced)} in {path.name}")
+    else:
+        curvy = _curvilinear(ds, dims)
+        if curvy and not all(has_coord):
+            raise _curvilinear_error(path, curvy)
+        if any(has_coord) and not all(has_coord):
+            missing = [d for d, c in zip(spatial, has_coord, strict=True) if not c]
+            raise InputFileError(f"{path} has coordinates for some directions but not for "
+                                 f"{', '.join(missing)}: give every direction a coordinate "
+                                 "variable, or give --spacing DX[,DY[,DZ]]")
+        for d, n in zip(spatial, shape, strict=True):
+            h, o, u = _spacing(ds, path, d, n)
+            if _is_degrees(u):
+                raise InputFileError(
+                    f"coordinate {d!r} in {path} is in {u}: closure needs lengths on a uniform "
+                    "rectilinear grid (latitude/longitude metrics are not supported yet): "
+                    "regrid to a Cartesian grid, or give --spacing DX,DY in metres to treat the "
+                    "grid as uniform (an approximation for a small domain)")
+            steps.append(h)
+            origin.append(o)
+            units.append(u)
+        if not any(has_coord):
+            spacing_from = "grid index"
+            warnings.append(
+                f"{path.name} has no coordinate variables for {', '.join(spatial)}: the grid "
+                "spacing is 1 (grid-index units), so Delta, the dimensional coefficients and "
+                "every derivative are per grid spacing; give --spacing DX[,DY[,DZ]] for "
+                "physical lengths")
+    given_units = {u for u in units if u is not None}
+    if len(given_units) > 1:
         raise InputFileError(
             f"the coordinates in {path} have different units "
             f"({', '.join(f'{d}: {u}' for d, u in zip(spatial, units, strict=True))}): "
             "convert them to one length unit")
-    grid = Grid(spatial, shape, tuple(spacing), tuple(origin), periodic,
-                given.pop() if given else None)
+    grid = Grid(spatial, shape, tuple(steps), tuple(origin), periodic,
+                given_units.pop() if given_units else None)
     times = None
     if TIME in dims:
         n_snapshots = int(ds.sizes[TIME])
@@ -256,7 +593,13 @@ def _layout(ds: xr.Dataset, path: Path, names: Mapping[str, str], periodic: bool
             times = np.asarray([float(ds[TIME].values)])
     if n_snapshots < 1:
         raise InputFileError(f"{path} has no snapshots (the time dimension is empty)")
-    return _Layout(dims, grid, n_snapshots, times)
+    n_levels, level_values = 0, None
+    if levels:
+        n_levels = int(ds.sizes["z"])
+        if "z" in ds.variables and ds["z"].dtype.kind in "fiu" and ds["z"].ndim == 1:
+            level_values = np.asarray(ds["z"].values, dtype=float)
+    return _Layout(dims, grid, n_snapshots, times, tuple(warnings), spacing_from, n_levels,
+                   level_values)
 
 
 class _Reader:
@@ -272,15 +615,8 @@ class _Reader:
         self.n_snapshots = layout.n_snapshots
         self.times = layout.times
         self.attrs = dict(ds.attrs)
-        self.units: dict[str, str] = {}
-        for ours, theirs in names.items():
-            if "units" in ds[theirs].attrs:
-                self.units[ours] = str(ds[theirs].attrs["units"])
-        for d in (TIME, *self.grid.dims):
-            if d in ds.variables and "units" in ds[d].attrs:
-                self.units[d] = str(ds[d].attrs["units"])
-        self.time_attrs = ({k: str(ds[TIME].attrs[k]) for k in ("units", "calendar")
-                            if k in ds[TIME].attrs} if TIME in ds.variables else {})
+        self.units: dict[str, str] = _units(ds, names, (TIME, *self.grid.dims))
+        self.time_attrs = _time_attrs(ds)
         self._sha256: str | None = None
 
     def __len__(self) -> int:
@@ -294,8 +630,9 @@ class _Reader:
                             f"{self.n_snapshots} snapshot(s), indices 0..{self.n_snapshots - 1}")
         return int(i)
 
-    def read(self, name: str, i: int) -> np.ndarray:
-        """Our variable ``name`` at snapshot ``i`` as float64 of ``grid.shape`` (checked finite)."""
+    def read(self, name: str, i: int, missing_ok: bool = False) -> np.ndarray:
+        """Our variable ``name`` at snapshot ``i`` as float64 of ``grid.shape``, checked finite
+        (``missing_ok``: NaN is allowed, Inf is not)."""
         i = self._check_index(i)
         theirs = self.names[name]
         var = self._ds[theirs]
@@ -304,7 +641,7 @@ class _Reader:
         var = var.transpose(*self.grid.dims)
         with np.errstate(all="ignore"):
             a = np.asarray(var.values, dtype=np.float64)
-        bad = ~np.isfinite(a)
+        bad = np.isinf(a) if missing_ok else ~np.isfinite(a)
         if bad.any():
             where = np.unravel_index(int(np.argmax(bad)), a.shape)
             at = ", ".join(f"{d}={j}" for d, j in zip(self.grid.dims, where, strict=True))
@@ -335,34 +672,340 @@ class _Reader:
         self.close()
 
 
-class FieldSource(_Reader):
-    """Fine-grid fields in a netCDF file, read one snapshot at a time.
+def _units(ds: xr.Dataset, names: Mapping[str, str], dims: Sequence[str]) -> dict[str, str]:
+    out = {}
+    for ours, theirs in names.items():
+        if "units" in ds[theirs].attrs:
+            out[ours] = str(ds[theirs].attrs["units"])
+    for d in dims:
+        if d in ds.variables and "units" in ds[d].attrs:
+            out[d] = str(ds[d].attrs["units"])
+    return out
 
-    Attributes: ``path``, ``grid`` (the fine Grid), ``n_snapshots``, ``times`` (time
-    coordinate values in file units, or None), ``velocity`` (our names present, e.g.
-    ``("u", "v")``), ``scalars``, ``names`` (our name -> the file's), ``units`` (our names and
-    coordinate dims -> the file's units attribute, where given), ``attrs`` (global attributes).
+
+def _time_attrs(ds: xr.Dataset) -> dict[str, str]:
+    if TIME not in ds.variables:
+        return {}
+    return {k: str(ds[TIME].attrs[k]) for k in ("units", "calendar") if k in ds[TIME].attrs}
+
+
+def decode_time(value: float, time_attrs: Mapping[str, str]) -> str | None:
+    """A numeric CF time (``units`` like ``days since 2000-01-01``, optional ``calendar``) as
+    ISO text; None when the units are not CF ``<unit> since <date>``."""
+    units = time_attrs.get("units", "")
+    if " since " not in units:
+        return None
+    try:
+        import cftime
+
+        d = cftime.num2date(value, units, time_attrs.get("calendar", "standard"))
+        return d.isoformat()
+    except Exception:  # cftime's own errors for malformed units: the numbers still serve
+        return None
+
+
+class _Part:
+    """One opened input (a netCDF file, a group of one, or a Zarr store) of a FieldSource."""
+
+    def __init__(self, path: Path, ds: xr.Dataset, names: dict[str, str], layout: _Layout,
+                 mask: str | None, reopen):
+        self.path = path
+        self._ds: xr.Dataset | None = ds
+        self._reopen = reopen
+        self.names = names
+        self.layout = layout
+        self.mask = mask
+        self.units = _units(ds, names, (TIME, *layout.dims))
+        self.time_attrs = _time_attrs(ds)
+        self.attrs = dict(ds.attrs)
+
+    @property
+    def ds(self) -> xr.Dataset:
+        """The open dataset (reopened after :meth:`release`)."""
+        if self._ds is None:
+            self._ds = self._reopen()
+        return self._ds
+
+    def release(self) -> None:
+        """Close the file; the next read reopens it (many inputs, few open handles)."""
+        if self._ds is not None:
+            self._ds.close()
+            self._ds = None
+
+    def read(self, theirs: str, j: int, level: int | None, dims: Sequence[str]) -> np.ndarray:
+        """The file's variable at local snapshot ``j`` (and level) as float64 of ``dims``."""
+        var = self.ds[theirs]
+        sel = {}
+        if TIME in var.dims:
+            sel[TIME] = j
+        if level is not None and "z" in var.dims:
+            sel["z"] = level
+        if sel:
+            var = var.isel(sel)
+        present = [d for d in dims if d in var.dims]
+        var = var.transpose(*present)
+        with np.errstate(all="ignore"):
+            a = np.asarray(var.values, dtype=np.float64)
+        for k, d in enumerate(dims):  # a mask without some spatial dims applies along them
+            if d not in present:
+                a = np.expand_dims(a, k)
+        return a
+
+
+class FieldSource:
+    """Fine-grid fields in one or more netCDF files (or a Zarr store), read one snapshot at a
+    time.
+
+    Attributes: ``path`` (the first input), ``paths`` (every input, in time order),
+    ``grid`` (the fine Grid; per level in a level stack), ``n_snapshots`` (time steps over all
+    inputs), ``times`` (time coordinate values in the first input's units, or None),
+    ``velocity`` (our names present, e.g. ``("u", "v")``), ``scalars``, ``names`` (our name ->
+    the file's), ``units`` (our names and coordinate dims -> the file's units attribute, where
+    given), ``time_attrs`` (CF time units and calendar), ``attrs`` (global attributes of the
+    first input), ``levels`` (level indices of a level stack, else None), ``level_values``,
+    ``mask_name``, ``standard_names`` (our name -> the CF standard name that found it),
+    ``notes`` (how names and dims were found) and ``warnings`` (to keep with any result).
     """
 
-    def __init__(self, path, ds, names, layout, velocity, scalars):
-        super().__init__(path, ds, names, layout)
+    def __init__(self, parts: list[_Part], velocity, scalars, *, group: str | None,
+                 levels: Sequence[int] | None, standard_names: Mapping[str, str],
+                 notes: Sequence[str], periodic: bool):
+        self._parts = parts
+        first = parts[0]
+        self.grid: Grid = first.layout.grid
         self.velocity: tuple[str, ...] = tuple(velocity)
         self.scalars: tuple[str, ...] = tuple(scalars)
+        self.names: dict[str, str] = dict(first.names)
+        self.group = group
+        self.mask_name = first.mask
+        self.standard_names = dict(standard_names)
+        self.notes: list[str] = list(notes)
+        self.warnings: list[str] = list(dict.fromkeys(w for p in parts for w in p.layout.warnings))
+        self.spacing_from = first.layout.spacing_from
+        self.attrs = dict(first.attrs)
+        self.time_attrs = dict(first.time_attrs)
+        self.units = dict(first.units)
+        self.levels: tuple[int, ...] | None = None if levels is None else tuple(levels)
+        lv = first.layout.level_values
+        self.level_values = (None if levels is None or lv is None
+                             else [float(lv[k]) for k in levels])
+        self._order(parts)
+        self.path = self._parts[0].path
+        self.paths = [p.path for p in self._parts]
+        self._sha256: str | None = None
 
-    def snapshot(self, i: int) -> Snapshot:
-        """Snapshot ``i`` (0-based), every field loaded and checked finite."""
+    def _order(self, parts: list[_Part]) -> None:
+        """Order the inputs by time; refuse overlapping times (naming the files)."""
+        if len(parts) > 1 and all(p.layout.times is not None for p in parts):
+            times = [self._common_times(p) for p in parts]
+            order = sorted(range(len(parts)), key=lambda k: (times[k].min(), k))
+            parts[:] = [parts[k] for k in order]
+            times = [times[k] for k in order]
+            for a in range(len(parts) - 1):
+                if times[a].max() >= times[a + 1].min():
+                    raise InputFileError(
+                        f"{parts[a].path} and {parts[a + 1].path} overlap in time (times "
+                        f"{times[a].min():g}..{times[a].max():g} and {times[a + 1].min():g}.."
+                        f"{times[a + 1].max():g}): give each snapshot once (drop one of the "
+                        "files)")
+            self.times = np.concatenate(times)
+            if parts[0].time_attrs != self.time_attrs:  # in the earliest input's units
+                import cftime
+
+                ref, new = self.time_attrs, parts[0].time_attrs
+                dates = cftime.num2date(self.times, ref["units"], ref.get("calendar", "standard"))
+                self.times = np.asarray(cftime.date2num(dates, new["units"],
+                                                        new.get("calendar", "standard")),
+                                        dtype=float)
+                self.time_attrs = dict(new)
+                if "units" in new:
+                    self.units[TIME] = new["units"]
+        elif len(parts) > 1:
+            self.times = None
+            self.notes.append("the inputs have no time coordinate: snapshots are ordered by "
+                              "file name")
+        else:
+            self.times = parts[0].layout.times
+        self._index = [(k, j) for k, p in enumerate(parts) for j in range(p.layout.n_snapshots)]
+        self.n_snapshots = len(self._index)
+        if self.times is not None and len(parts) == 1:
+            self.times = np.asarray(self.times, dtype=float)
+
+    def _common_times(self, part: _Part) -> np.ndarray:
+        """The part's times in the first input's time units (CF ``since`` units converted)."""
+        t = np.asarray(part.layout.times, dtype=float)
+        ref = self.time_attrs
+        if part.time_attrs == ref:
+            return t
+        try:
+            import cftime
+
+            dates = cftime.num2date(t, part.time_attrs["units"],
+                                    part.time_attrs.get("calendar", "standard"))
+            return np.asarray(cftime.date2num(dates, ref["units"],
+                                              ref.get("calendar", "standard")), dtype=float)
+        except Exception:
+            raise InputFileError(
+                f"{part.path} has time units {part.time_attrs or 'none'} but {self._parts[0].path}"
+                f" has {ref or 'none'}: give files with one time unit (CF 'UNIT since DATE' "
+                "units of one calendar are converted)") from None
+
+    def __len__(self) -> int:
+        return self.n_snapshots
+
+    def _check_index(self, i) -> int:
+        if isinstance(i, bool) or not isinstance(i, int | np.integer):
+            raise UserError(f"snapshot index must be a whole number, got {i!r}")
+        if not 0 <= i < self.n_snapshots:
+            where = self.path if len(self.paths) == 1 else f"the {len(self.paths)} inputs"
+            raise UserError(f"snapshot index {i} is out of range: {where} has "
+                            f"{self.n_snapshots} snapshot(s), indices 0..{self.n_snapshots - 1}")
+        return int(i)
+
+    def _check_level(self, level) -> int | None:
+        if self.levels is None:
+            if level is not None:
+                raise UserError("this input was not opened as a level stack: open it with "
+                                "levels (--levels) to read a level")
+            return None
+        if level is None:
+            raise UserError(f"a level stack needs a level: one of {list(self.levels)}")
+        n = self._parts[0].layout.n_levels
+        if isinstance(level, bool) or not isinstance(level, int | np.integer) or \
+                not 0 <= level < n:
+            raise UserError(f"level {level!r} is out of range: the inputs have {n} level(s)")
+        return int(level)
+
+    def time_of(self, i: int) -> float | None:
+        return None if self.times is None else float(self.times[i])
+
+    def _use(self, k: int) -> _Part:
+        """Input ``k``, opened; the other inputs are closed (one open file at a time)."""
+        if len(self._parts) > 1:
+            for q, p in enumerate(self._parts):
+                if q != k:
+                    p.release()
+        return self._parts[k]
+
+    def file_of(self, i: int) -> tuple[Path, int]:
+        """(input, index in that input) of snapshot ``i``."""
+        k, j = self._index[self._check_index(i)]
+        return self._parts[k].path, j
+
+    def read(self, name: str, i: int, level: int | None = None) -> np.ndarray:
+        """Our variable ``name`` at snapshot ``i`` as float64 of ``grid.shape``; missing
+        values (NaN, fill values) stay NaN; Inf is refused."""
+        k, j = self._index[self._check_index(i)]
+        part = self._use(k)
+        theirs = part.names[name]
+        a = part.read(theirs, j, self._check_level(level), self.grid.dims)
+        inf = np.isinf(a)
+        if inf.any():
+            where = np.unravel_index(int(np.argmax(inf)), a.shape)
+            at = ", ".join(f"{d}={q}" for d, q in zip(self.grid.dims, where, strict=True))
+            label = theirs if theirs == name else f"{theirs} ({name})"
+            lv = "" if level is None else f", level {level}"
+            raise InputFileError(
+                f"variable {label!r} has {int(inf.sum())} Inf value(s) at snapshot {j}{lv} of "
+                f"{part.path} (first at {at}): Inf is not a missing value; replace it with NaN "
+                "(or the variable's _FillValue) to mark land, or select other snapshots "
+                "(--snapshots)")
+        return a
+
+    def snapshot(self, i: int, level: int | None = None) -> Snapshot:
+        """Snapshot ``i`` (0-based over all inputs, in time order), every field loaded.
+
+        Land: NaN or fill values in any field, or zero in the mask variable (``--mask``);
+        ``Snapshot.mask`` is True on fluid points (None when every point is fluid) and land
+        values are 0.0 in the fields, never NaN."""
         i = self._check_index(i)
-        fields = {name: self.read(name, i) for name in (*self.velocity, *self.scalars)}
-        return Snapshot(fields, self.grid, i, self.time_of(i))
+        level = self._check_level(level)
+        fields = {name: self.read(name, i, level) for name in (*self.velocity, *self.scalars)}
+        fluid = np.ones(self.grid.shape, dtype=bool)
+        for a in fields.values():
+            fluid &= ~np.isnan(a)
+        k, j = self._index[i]
+        part = self._use(k)
+        if part.mask is not None:
+            m = part.read(part.mask, j, level, self.grid.dims)
+            with np.errstate(invalid="ignore"):
+                fluid &= np.broadcast_to(np.isfinite(m) & (m != 0), self.grid.shape)
+        mask = None
+        if not fluid.all():
+            if not fluid.any():
+                lv = "" if level is None else f", level {level}"
+                raise InputFileError(
+                    f"snapshot {j}{lv} of {part.path} has no fluid point (every value is NaN, "
+                    "a fill value or masked out): select other snapshots (--snapshots) or "
+                    "levels (--levels), or check --mask")
+            mask = fluid
+            for name, a in fields.items():
+                fields[name] = np.where(fluid, a, 0.0)
+        fields = {n: np.ascontiguousarray(a) for n, a in fields.items()}
+        snap = Snapshot(fields, self.grid, i, self.time_of(i), mask)
+        if level is not None:
+            snap.level = level
+        return snap
 
     def __iter__(self) -> Iterator[Snapshot]:
         for i in range(self.n_snapshots):
-            yield self.snapshot(i)
+            if self.levels is None:
+                yield self.snapshot(i)
+            else:
+                for level in self.levels:
+                    yield self.snapshot(i, level)
+
+    @property
+    def sha256(self) -> str:
+        """SHA-256 of the input (computed once; see :func:`input_sha256`)."""
+        if self._sha256 is None:
+            self._sha256 = input_sha256(self.paths)
+        return self._sha256
 
     def describe(self) -> dict:
-        """Provenance for files we write: path, sha256, names, units (plain types)."""
-        return {"file": str(self.path), "sha256": self.sha256, "names": dict(self.names),
-                "units": dict(self.units), "time_attrs": dict(self.time_attrs)}
+        """Provenance for files we write: path(s), sha256, names, units (plain types)."""
+        out = {"file": str(self.path) if len(self.paths) == 1
+               else " ".join(str(p) for p in self.paths),
+               "files": [str(p) for p in self.paths], "sha256": self.sha256,
+               "names": dict(self.names), "units": dict(self.units),
+               "time_attrs": dict(self.time_attrs)}
+        if self.group:
+            out["group"] = self.group
+        return out
+
+    def info(self) -> dict:
+        """How the input was read, for a model's provenance (plain types)."""
+        out = {
+            "files": [str(p) for p in self.paths],
+            "group": self.group,
+            "names": dict(self.names),
+            "standard_names": dict(self.standard_names),
+            "units": dict(self.units),
+            "velocity_units": {c: self.units[c] for c in self.velocity if c in self.units},
+            "length_units": self.grid.units,
+            "spacing_from": self.spacing_from,
+            "time": dict(self.time_attrs),
+            "mask": self.mask_name,
+            "levels": None if self.levels is None else list(self.levels),
+            "level_values": self.level_values,
+            "notes": list(self.notes),
+        }
+        if self.times is not None and len(self.times):
+            first = decode_time(float(self.times[0]), self.time_attrs)
+            if first is not None:
+                out["time"]["first"] = first
+                out["time"]["last"] = decode_time(float(self.times[-1]), self.time_attrs)
+        return out
+
+    def close(self) -> None:
+        for p in self._parts:
+            p.release()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
 
 
 def _check_mapping(variables: Mapping[str, str] | None) -> dict[str, str]:
@@ -374,36 +1017,44 @@ def _check_mapping(variables: Mapping[str, str] | None) -> dict[str, str]:
     return out
 
 
-def open_fields(path: str | os.PathLike, variables: Mapping[str, str] | None = None,
-                scalars: Sequence[str] = (), periodic: bool = True) -> FieldSource:
-    """Open a netCDF file of fine-grid fields lazily and check its layout.
-
-    ``variables`` maps our names to the file's (``{"u": "U"}``; dims too: ``{"x": "lon"}``);
-    ``scalars`` are extra fields to carry, by our name. The grid is periodic with period
-    ``n * spacing`` unless ``periodic=False``. Raises InputFileError naming the problem.
-    Values are checked finite when each snapshot is loaded.
-    """
-    path = Path(path)
-    variables = _check_mapping(variables)
-    if isinstance(scalars, str):
-        scalars = (scalars,)
-    scalars = tuple(dict.fromkeys(scalars))
-    for c in scalars:
-        if c in VELOCITY_OF.values():
-            raise UserError(f"{c!r} is a velocity component, not a scalar: drop --scalar {c}")
-    ds = _open_dataset(path)
+def _open_part(path: Path, variables: dict[str, str], scalars: tuple[str, ...], periodic: bool,
+               group: str | None, mask: str | None, levels: bool,
+               spacing: Sequence[float] | None):
+    """(part, velocity, standard names used, notes) of one input."""
+    ds = _open_dataset(path, group)
     try:
+        groups: list[str] = []
+        if not ds.data_vars and group is None and not _is_zarr(path):
+            with contextlib.suppress(Exception):
+                with netCDF4.Dataset(path, "r") as nc:
+                    groups = _group_paths(nc)
         ds = _rename_dims(ds, path, variables)
-        u = _file_name(ds, "u", variables)
+        ds, notes = _auto_dims(ds, variables)
+        std_used: dict[str, str] = {}
+
+        def find(ours: str) -> str | None:
+            theirs = _file_name(ds, ours, variables)
+            if theirs is None and ours not in variables:
+                hit = _by_standard_name(ds, path, ours)
+                if hit is not None:
+                    theirs, std_used[ours] = hit
+            return theirs
+
+        u = find("u")
         if u is None:
-            raise _missing(path, ds, "u", "x velocity", variables)
-        spatial = [d for d in SPATIAL_DIMS if d in ds[u].dims]
+            raise _missing(path, ds, "u", "x velocity", variables, groups)
+        spatial = [d for d in SPATIAL_DIMS if d in ds[u].dims and not (levels and d == "z")]
         velocity = [VELOCITY_OF[d] for d in ("x", "y", "z") if d in spatial] or ["u"]
         names = {}
         for ours in velocity:
-            theirs = _file_name(ds, ours, variables)
+            theirs = u if ours == "u" else find(ours)
             if theirs is None:
-                raise _missing(path, ds, ours, f"{DIRECTION_OF[ours]} velocity", variables)
+                err = _missing(path, ds, ours, f"{DIRECTION_OF[ours]} velocity", variables)
+                if ours == "w" and "z" in spatial:
+                    err = InputFileError(
+                        f"{err} - or, for layered output with horizontal velocity only, analyse "
+                        "each level as a 2-D field with --levels all (or --levels 0,5,10)")
+                raise err
             names[ours] = theirs
         for c in scalars:
             theirs = _file_name(ds, c, variables)
@@ -418,11 +1069,132 @@ def open_fields(path: str | os.PathLike, variables: Mapping[str, str] | None = N
                 f"--var {unused[0]}={variables[unused[0]]} maps a name that is neither a velocity "
                 f"component of this {len(spatial)}-D grid ({', '.join(velocity)}), a dimension, "
                 f"nor a scalar: add --scalar {unused[0]} or drop the mapping")
-        layout = _layout(ds, path, names, periodic)
-        return FieldSource(path, ds, names, layout, velocity, scalars)
+        layout = _layout(ds, path, names, periodic, spacing=spacing, levels=levels)
+        if mask is not None:
+            if mask not in ds.data_vars:
+                names_ = ", ".join(map(str, ds.data_vars)) or "none"
+                raise InputFileError(f"mask variable {mask!r} (--mask) not found in {path}; the "
+                                     f"file's variables are: {names_}. Fix --mask NAME")
+            mdims = tuple(map(str, ds[mask].dims))
+            extra = [d for d in mdims if d not in layout.dims]
+            if extra:
+                raise InputFileError(
+                    f"mask variable {mask!r} in {path} has dims ({', '.join(mdims)}); the "
+                    f"dimension(s) {', '.join(map(repr, extra))} are not the fields' "
+                    f"({', '.join(layout.dims)}): give a mask over (y, x) or the fields' dims")
+            if ds[mask].dtype.kind not in "fiub":
+                raise InputFileError(f"mask variable {mask!r} in {path} is not numeric "
+                                     f"({ds[mask].dtype}): nonzero marks fluid")
+        for ours, std in std_used.items():
+            notes.append(f"{ours} read from {names[ours]!r} (standard_name {std}); "
+                         f"--var {ours}=NAME overrides")
+        def reopen():
+            again = _rename_dims(_open_dataset(path, group), path, variables)
+            return _auto_dims(again, variables)[0]
+
+        return _Part(path, ds, names, layout, mask, reopen), velocity, std_used, notes
     except BaseException:
         ds.close()
         raise
+
+
+def _same_grid(a: _Part, b: _Part) -> None:
+    ga, gb = a.layout.grid, b.layout.grid
+    same = (ga.dims == gb.dims and ga.shape == gb.shape and ga.units == gb.units
+            and np.allclose(ga.spacing, gb.spacing, rtol=UNIFORM_RTOL, atol=0)
+            and np.allclose(ga.origin, gb.origin, rtol=UNIFORM_RTOL,
+                            atol=UNIFORM_RTOL * min(ga.spacing))
+            and a.layout.n_levels == b.layout.n_levels)
+    if not same:
+        def text(p):
+            g = p.layout.grid
+            lv = f", {p.layout.n_levels} levels" if p.layout.n_levels else ""
+            return (f"{' x '.join(map(str, g.shape))} ({', '.join(g.dims)}), spacing "
+                    f"{', '.join(f'{h:g}' for h in g.spacing)}, origin "
+                    f"{', '.join(f'{o:g}' for o in g.origin)}{lv}")
+        raise InputFileError(f"{a.path} and {b.path} are on different grids ({text(a)} vs "
+                             f"{text(b)}): give files of one grid")
+    if a.names != b.names:
+        raise InputFileError(f"{a.path} and {b.path} name the fields differently ({a.names} vs "
+                             f"{b.names}): give files with the same variables")
+
+
+def open_fields(path: str | os.PathLike | Sequence[str | os.PathLike],
+                variables: Mapping[str, str] | None = None, scalars: Sequence[str] = (),
+                periodic: bool = True, *, group: str | None = None, mask: str | None = None,
+                levels: str | Sequence[int] | None = None,
+                spacing: Sequence[float] | None = None) -> FieldSource:
+    """Open fine-grid fields lazily and check their layout.
+
+    ``path``: a netCDF file, a Zarr store, a folder of netCDF files, a glob, or a list of
+    these (see :func:`input_files`); the inputs must share the grid and the variables, and are
+    ordered by their time coordinate. ``variables`` maps our names to the file's
+    (``{"u": "U"}``; dims too: ``{"x": "lon"}``); velocity components not found by name are
+    looked up by CF standard name. ``scalars`` are extra fields to carry, by our name.
+    ``group``: a netCDF-4 group path (or Zarr group). ``mask``: a variable, nonzero on fluid
+    points (NaN and fill values are land too). ``levels``: ``"all"`` or level indices: each z
+    level is a separate grid of the other spatial dims. ``spacing``: DX[,DY[,DZ]] for inputs
+    without coordinate variables (it replaces coordinates where they exist). The grid is
+    periodic with period ``n * spacing`` unless ``periodic=False``. Raises InputFileError
+    naming the problem.
+    """
+    files = input_files(path)
+    variables = _check_mapping(variables)
+    if isinstance(scalars, str):
+        scalars = (scalars,)
+    scalars = tuple(dict.fromkeys(scalars))
+    for c in scalars:
+        if c in VELOCITY_OF.values():
+            raise UserError(f"{c!r} is a velocity component, not a scalar: drop --scalar {c}")
+    if group is not None and not str(group).strip("/"):
+        group = None
+    parts: list[_Part] = []
+    try:
+        velocity, std_used, notes = None, {}, []
+        for f in files:
+            part, vel, std, nt = _open_part(f, variables, scalars, periodic, group, mask,
+                                            levels is not None, spacing)
+            parts.append(part)
+            if velocity is None:
+                velocity, std_used, notes = vel, std, nt
+            else:
+                _same_grid(parts[0], part)
+            if len(files) > 1:
+                part.release()  # thousands of files must not hold thousands of handles
+        chosen = None
+        if levels is not None:
+            n = parts[0].layout.n_levels
+            if isinstance(levels, str):
+                if levels.strip().lower() != "all":
+                    raise UserError(f"levels must be 'all' or a list of level indices, got "
+                                    f"{levels!r}")
+                chosen = list(range(n))
+            else:
+                chosen = [int(k) for k in levels]
+                bad = [k for k in chosen if not 0 <= k < n]
+                if bad:
+                    raise UserError(f"--levels {bad} out of range: the input has {n} level(s) "
+                                    f"along z, indices 0..{n - 1}")
+                if not chosen or len(set(chosen)) != len(chosen):
+                    raise UserError("--levels must list each level once: e.g. --levels 0,5,10 "
+                                    "or --levels all")
+        return FieldSource(parts, velocity, scalars, group=group, levels=chosen,
+                           standard_names=std_used, notes=notes, periodic=periodic)
+    except BaseException:
+        for p in parts:
+            p.release()
+        raise
+
+
+def open_input(inp, scalars: Sequence[str] | None = None) -> FieldSource:
+    """Open the input of a job spec's ``InputSpec`` (closure.spec) with every option it holds;
+    ``scalars`` replaces its scalar list (the pipeline adds a flux target's scalar)."""
+    if inp.path is None:
+        raise UserError("input.dataset_id names an uploaded dataset, which only the service "
+                        "resolves: give input.path")
+    return open_fields(inp.path, inp.variables or None,
+                       tuple(inp.scalars if scalars is None else scalars), inp.periodic,
+                       group=inp.group, mask=inp.mask, levels=inp.levels, spacing=inp.spacing)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -546,10 +1318,14 @@ class CoarseWriter:
     def __init__(self, path: str | os.PathLike, source: Mapping | None = None, title: str = ""):
         self.path = Path(path)
         self.source = dict(source or {})
-        src = self.source.get("file")
-        if src and self.path.exists() and os.path.samefile(src, self.path):
-            raise UserError(f"the output {self.path} is the input file: choose another output "
-                            "path (input files are never written)")
+        inputs = list(self.source.get("files") or [])
+        if not inputs and self.source.get("file"):
+            inputs = [self.source["file"]]
+        for src in inputs:
+            if self.path.exists() and Path(src).exists() and os.path.samefile(src, self.path):
+                which = "the input file" if len(inputs) == 1 else "an input file"
+                raise UserError(f"the output {self.path} is {which}: choose another output "
+                                "path (input files are never written)")
         self.title = title
         self.path.parent.mkdir(parents=True, exist_ok=True)
         fd, self._tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".tmp",
@@ -618,6 +1394,10 @@ class CoarseWriter:
             attrs["land_note"] = LAND_NOTE
         attrs["source_file"] = str(self.source.get("file", ""))
         attrs["source_sha256"] = str(self.source.get("sha256", ""))
+        if self.source.get("group"):
+            attrs["source_group"] = str(self.source["group"])
+        if self.source.get("level") is not None:
+            attrs["source_level"] = np.int32(self.source["level"])
         if names:
             attrs["source_variables"] = " ".join(f"{k}={v}" for k, v in names.items())
         nc.setncatts(attrs)
@@ -714,11 +1494,22 @@ class CoarseSource(_Reader):
         self._has_time = TIME in ds.variables and ds[TIME].attrs.get("long_name") == "time"
 
     def snapshot(self, i: int) -> CoarseSnapshot:
+        """Snapshot ``i``. In a file with land (``land_convention`` attribute) NaN marks land
+        in the fields and excluded points in the subgrid terms: they read as 0, and ``valid``
+        is True where every field and term is finite."""
         i = self._check_index(i)
-        fields = {n: self.read(n, i) for n in self.field_names}
-        targets = {n: self.read(n, i) for n in self.target_names}
+        land = "land_convention" in self.attrs
+        fields = {n: self.read(n, i, missing_ok=land) for n in self.field_names}
+        targets = {n: self.read(n, i, missing_ok=land) for n in self.target_names}
+        valid = None
+        if land:
+            valid = np.ones(self.grid.shape, dtype=bool)
+            for a in (*fields.values(), *targets.values()):
+                valid &= np.isfinite(a)
+                np.nan_to_num(a, copy=False, nan=0.0)
+            valid = None if valid.all() else valid
         return CoarseSnapshot(fields, targets, self.grid, self.coarse_graining,
-                              int(self.source_index[i]), self._time(i))
+                              int(self.source_index[i]), self._time(i), valid=valid)
 
     def _time(self, i: int) -> float | None:
         if self.times is None or not self._has_time:
@@ -824,6 +1615,7 @@ def write_netcdf(ds: xr.Dataset, path: str | os.PathLike, compress: bool = True)
 
 
 __all__ = [
-    "COARSE_FILE_KIND", "CoarseSource", "CoarseWriter", "FieldSource", "Snapshot",
-    "open_coarse", "open_fields", "sha256_file", "write_coarse", "write_netcdf",
+    "COARSE_FILE_KIND", "STANDARD_NAMES", "CoarseSource", "CoarseWriter", "FieldSource",
+    "Snapshot", "decode_time", "input_files", "input_sha256", "input_stamps", "open_coarse",
+    "open_fields", "open_input", "sha256_file", "write_coarse", "write_netcdf",
 ]

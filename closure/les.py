@@ -666,18 +666,35 @@ class CoarseData:
     indices: list[int]
 
 
-def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | None = None,
-                width_units: str = "grid", indices: Sequence[int] | None = None) -> CoarseData:
-    """Read 2-D fine fields from ``path`` (closure.io) and coarse-grain them as the discovery
-    pipeline does (closure.residuals); ``kind="none"`` keeps the fields as they are (ratio 1),
-    and the baselines then use the grid spacing as their width."""
-    from closure.filters import make_coarse_graining
+def _open_input(path, input_options: Mapping | None):
+    """closure.io.open_fields of ``path`` with the input options (``variables``, ``group``,
+    ``mask``, ``levels`` (one level), ``spacing``) and the level to read."""
     from closure.io import open_fields
+
+    opts = dict(input_options or {})
+    levels = opts.get("levels")
+    if levels is not None and (isinstance(levels, str) or len(levels) != 1):
+        raise OptionError("the coarse solver runs one 2-D level: give one level, e.g. --levels 0")
+    src = open_fields(path, opts.get("variables") or None, group=opts.get("group"),
+                      mask=opts.get("mask"), levels=levels, spacing=opts.get("spacing"))
+    return src, (None if levels is None else int(levels[0]))
+
+
+def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | None = None,
+                width_units: str = "grid", indices: Sequence[int] | None = None,
+                input_options: Mapping | None = None) -> CoarseData:
+    """Read 2-D fine fields from ``path`` (closure.io; ``input_options`` as in
+    :func:`simulate`) and coarse-grain them as the discovery pipeline does
+    (closure.residuals); ``kind="none"`` keeps the fields as they are (ratio 1), and the
+    baselines then use the grid spacing as their width."""
+    from closure.filters import make_coarse_graining
+    from closure.pipeline import refuse_land_mask
     from closure.residuals import coarse_grain_snapshot
 
     if kind not in FILTER_CHOICES:
         raise OptionError(f"unknown filter {kind!r}: choose one of {', '.join(FILTER_CHOICES)}")
-    with open_fields(path) as src:
+    src, level = _open_input(path, input_options)
+    with src:
         grid = src.grid
         if grid.dims != ("y", "x"):
             raise UserError(f"{path} holds {grid.dims} fields: the coarse solver runs 2-D "
@@ -701,7 +718,8 @@ def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | Non
         chosen = list(range(len(src))) if indices is None else [int(i) for i in indices]
         fields, times = [], []
         for i in chosen:
-            snap = src.snapshot(i)
+            snap = src.snapshot(i, level)
+            refuse_land_mask(snap)
             if cg is None:
                 u, v = snap.fields["u"], snap.fields["v"]
                 f = {"u": u, "v": v, "vorticity": vorticity_from_velocity(u, v, grid)}
@@ -766,10 +784,14 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
              duration: float | None = None, interval: float | None = None,
              baselines: Sequence[str] = (), smagorinsky_constant: float = SMAGORINSKY_CONSTANT,
              dealias: bool | None = None, cfl: float = 0.5, energy_bound: float = 10.0,
-             progress: Callable[[str, int, int], None] | None = None) -> Comparison:
+             progress: Callable[[str, int, int], None] | None = None,
+             input_options: Mapping | None = None) -> Comparison:
     """Run ``model`` (None: no model) and ``baselines`` from snapshot ``initial_index`` of the
     file ``initial``, coarse-grained, and score them against the coarse-grained ``reference``
     file (default: the initial file when it has later snapshots).
+
+    ``input_options`` (both files): ``variables`` (our name -> the file's), ``group``,
+    ``mask``, ``levels`` (one level of a level stack) and ``spacing``, as closure.io reads them.
 
     The coarse-graining defaults to the model's own (its ``filter``), else Gaussian, ratio 4,
     width 2 x ratio. Viscosity (m^2 s^-1), drag (s^-1), hyperviscosity order, forcing and
@@ -790,20 +812,21 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
                         f"; this run uses {filter_kind} ratio {ratio}")
     if ratio is None:
         ratio = 1 if filter_kind == "none" else 4
-    init = coarse_data(initial, filter_kind, ratio, width, width_units, [initial_index])
+    init = coarse_data(initial, filter_kind, ratio, width, width_units, [initial_index],
+                       input_options)
     attrs = init.attrs
     t_start = init.times[0] if init.times[0] is not None else 0.0
 
     ref_data = None
     if reference is None:
-        from closure.io import open_fields
-
-        with open_fields(initial) as src:
+        src, _ = _open_input(initial, input_options)
+        with src:
             later = len(src) > initial_index + 1
         if later:
             reference = initial
     if reference is not None:
-        ref_data = coarse_data(reference, filter_kind, ratio, width, width_units)
+        ref_data = coarse_data(reference, filter_kind, ratio, width, width_units,
+                               input_options=input_options)
         if ref_data.grid.shape != init.grid.shape:
             raise UserError(f"the reference {reference} coarse-grains to {ref_data.grid.shape},"
                             f" the initial file to {init.grid.shape}: use files on the same grid")

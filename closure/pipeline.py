@@ -15,6 +15,7 @@ least one) are held out for scoring and never seen by the fit or its model selec
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import os
 import platform
@@ -83,11 +84,26 @@ def _small_blas(function):
 
 
 # ---------------------------------------------------------------------- shared pieces
-def _input_path(spec: JobSpec) -> Path:
+def _input_files(spec: JobSpec) -> list[Path]:
+    """Every input the spec names (globs and folders expanded; closure.io.input_files)."""
+    from closure.io import input_files
+
     if spec.input.path is None:
         raise UserError("input.dataset_id names an uploaded dataset, which only the service "
                         "resolves: give input.path")
-    return Path(spec.input.path)
+    return input_files(spec.input.path)
+
+
+def refuse_land_mask(snap) -> None:
+    """Refuse a snapshot with land points (Snapshot.mask) where land cannot be taken: the
+    a posteriori coarse solver runs periodic domains without land."""
+    if snap.mask is not None:
+        where = "" if snap.level is None else f", level {snap.level}"
+        raise UserError(
+            f"snapshot {snap.index}{where} has {int((~snap.mask).sum())} land or missing "
+            "point(s) (NaN, fill values or --mask): the a posteriori coarse solver runs "
+            "periodic domains without land; start it from snapshots (--snapshots) or levels "
+            "(--levels) without missing values")
 
 
 def _compressible(spec: JobSpec) -> bool:
@@ -111,10 +127,21 @@ def _scalars(spec: JobSpec) -> tuple[str, ...]:
 
 
 def _open(spec: JobSpec):
+    from closure.io import open_input
+
+    return open_input(spec.input, _scalars(spec))
+
+
+def open_planned(plan: Mapping):
+    """The planned input, opened with the options the plan read it with (for workers)."""
     from closure.io import open_fields
 
-    return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
-                       spec.input.periodic)
+    inp = plan["input"]
+    opts = inp.get("options") or {}
+    return open_fields(inp.get("paths") or inp["path"], inp.get("variables") or None,
+                       tuple(inp.get("scalars") or ()), bool(inp.get("periodic", True)),
+                       group=opts.get("group"), mask=opts.get("mask"),
+                       levels=opts.get("levels"), spacing=opts.get("spacing"))
 
 
 def _coarse_graining(spec: JobSpec, grid: Grid):
@@ -156,6 +183,12 @@ def _stamp(path: Path) -> dict:
     return {"size": int(st.st_size), "mtime_ns": int(st.st_mtime_ns)}
 
 
+def _levels(plan: Mapping) -> list[int | None]:
+    """The levels a snapshot's statistics pool (``[None]`` without a level stack)."""
+    levels = (plan["input"].get("options") or {}).get("levels")
+    return [None] if levels is None else [int(k) for k in levels]
+
+
 # ---------------------------------------------------------------------- plan
 def plan(spec: JobSpec) -> dict:
     """Resolve the input and everything the maps and the reduce need (plain JSON types).
@@ -163,11 +196,11 @@ def plan(spec: JobSpec) -> dict:
     Checks the file, variables, snapshot selection, filter, ratio, scheme and library against
     the data now, so a bad option fails before any work is queued.
     """
-    from closure.io import sha256_file
+    from closure.io import input_sha256
 
     with _open(spec) as src:
         p = _plan(spec, src, None)
-    p["sha256"] = p["input"]["sha256"] = sha256_file(_input_path(spec))
+    p["sha256"] = p["input"]["sha256"] = input_sha256(src.paths)
     return p
 
 
@@ -180,11 +213,16 @@ def check(spec: JobSpec) -> dict:
 
 def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     """The plan from an open source; ``sha`` is the input's SHA-256 (None: filled in later)."""
-    from closure.io import sha256_file
+    from closure.io import input_stamps, sha256_file
 
-    path = _input_path(spec)
+    path = src.path if len(src.paths) == 1 else f"the {len(src.paths)} inputs"
     grid = src.grid
     n = src.n_snapshots
+    levels = None if src.levels is None else list(src.levels)
+    if spec.input.per_level and levels is not None and len(levels) > 1:
+        raise UserError(f"input.per_level with {len(levels)} levels gives one model per level: "
+                        "run `closure discover --per-level` (or pipeline.discover_levels), or "
+                        "submit one job per level (input.levels: [K])")
     times = None if src.times is None else [float(t) for t in src.times]
     velocity = list(src.velocity)
     chosen = list(range(n)) if spec.input.snapshots is None else list(spec.input.snapshots)
@@ -222,12 +260,20 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     lib_path = Path(spec.library)
     if lib_path.suffix and lib_path.exists():
         library_info["sha256"] = sha256_file(lib_path)
+    first = src.paths[0]
     return {
         "version": PLAN_VERSION,
         "sha256": sha,
-        "input": {"path": str(path), "sha256": sha, **_stamp(path),
+        "input": {"path": str(first), "paths": [str(q) for q in src.paths], "sha256": sha,
+                  **(_stamp(first) if first.is_file() else {}),
+                  "files": input_stamps(src.paths),
                   "variables": dict(spec.input.variables), "scalars": list(_scalars(spec)),
-                  "periodic": bool(spec.input.periodic), "n_snapshots": int(n)},
+                  "periodic": bool(spec.input.periodic), "n_snapshots": int(n),
+                  "options": {"group": spec.input.group, "mask": spec.input.mask,
+                              "levels": levels,
+                              "spacing": None if spec.input.spacing is None
+                              else list(spec.input.spacing)},
+                  "read": src.info()},
         "snapshots": [int(i) for i in chosen],
         "train": [int(i) for i in train],
         "test": [int(i) for i in test],
@@ -243,7 +289,9 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "library": library_info,
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
-        "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library),
+        "warnings": list(src.warnings) + list(cg.warnings()) +
+        _compressibility_warning(src, chosen[0], library, levels),
+        "notes": list(src.notes),
         **({"gas": _gas_constants(src)} if _compressible(spec) else {}),
     }
 
@@ -268,7 +316,7 @@ def _gas_constants(src) -> dict:
 DIVERGENCE_TOLERANCE = 1e-3
 
 
-def _compressibility_warning(src, index: int, library) -> list[str]:
+def _compressibility_warning(src, index: int, library, levels=None) -> list[str]:
     """Warn when the library left out terms that are dependent only on incompressible fields
     and the data's velocity is not divergence-free (rms div u against rms |grad u|)."""
     pruned = [d.split(":")[0] for d in library.dropped if "on incompressible fields" in d]
@@ -277,7 +325,7 @@ def _compressibility_warning(src, index: int, library) -> list[str]:
     from closure.filters import land_as_zero
     from closure.residuals import stencil_dilation
 
-    snap = src.snapshot(index)
+    snap = src.snapshot(index, None if not levels else levels[0])
     fields, keep, scheme = snap.fields, None, None
     mask = getattr(snap, "mask", None)
     if mask is not None and not np.all(mask):
@@ -332,46 +380,76 @@ def divergence_ratio(fields: Mapping[str, np.ndarray], grid: Grid, velocity: lis
 
 # ---------------------------------------------------------------------- map
 def _check_input(plan: Mapping) -> None:
-    path = Path(plan["input"]["path"])
-    try:
-        now = _stamp(path)
-    except FileNotFoundError:
-        raise InputFileError(f"the input file {path} is gone since the job was planned") from None
-    then = {k: plan["input"][k] for k in ("size", "mtime_ns")}
-    if now != then:
-        raise InputFileError(f"the input file {path} changed since the job was planned: "
-                             "resubmit the job")
+    files = plan["input"].get("files")
+    if files is None:  # a plan of one file written before inputs could be several
+        files = [{"path": plan["input"]["path"], "size": plan["input"]["size"],
+                  "mtime_ns": plan["input"]["mtime_ns"]}]
+    for f in files:
+        path = Path(f["path"])
+        try:
+            now = _stamp(path)
+        except FileNotFoundError:
+            raise InputFileError(f"the input file {path} is gone since the job was planned") \
+                from None
+        if now != {"size": f["size"], "mtime_ns": f["mtime_ns"]}:
+            raise InputFileError(f"the input file {path} changed since the job was planned: "
+                                 "resubmit the job")
 
 
 def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
-    """Snapshot ``index`` coarse-grained, with its coarse-graining and library."""
+    """Snapshot ``index`` coarse-grained, with its coarse-graining and library: a list of
+    coarse snapshots, one per planned level (one without a level stack)."""
     from closure.residuals import coarse_grain_snapshot
 
     if int(index) not in set(plan["snapshots"]):
         raise UserError(f"snapshot {index} is not part of this job's plan")
     _check_input(plan)
     own = source is None
-    src = _open(spec) if own else source
+    src = open_planned(plan) if own else source
+    out, cg, library = [], None, None
     try:
-        snap = src.snapshot(int(index))
+        for level in _levels(plan):
+            snap = src.snapshot(int(index), level)
+            cg = _coarse_graining(spec, snap.grid)
+            if library is None:
+                library = _library(spec, snap.grid.dims)
+                if library.names != list(plan["terms"]):
+                    raise UserError("the library's terms changed since the job was planned: "
+                                    "resubmit the job")
+            # only the fitted target: the scores' transfers come from the coarse fields
+            if _compressible(spec):
+                from closure.favre import favre_coarse_grain
+
+                out.append(favre_coarse_grain(snap, cg, targets=plan["components"]))
+            else:
+                out.append(coarse_grain_snapshot(
+                    snap, cg, _scalars(spec), targets=plan["components"],
+                    land=spec.filter.land, scheme=spec.scheme,
+                    derivative_passes=derivative_passes(library)))
+            del snap
     finally:
         if own:
             src.close()
-    cg = _coarse_graining(spec, snap.grid)
-    library = _library(spec, snap.grid.dims)
-    if library.names != list(plan["terms"]):
-        raise UserError("the library's terms changed since the job was planned: resubmit the "
-                        "job")
-    # only the fitted target: the scores' transfers come from the coarse fields
-    if _compressible(spec):
-        from closure.favre import favre_coarse_grain
+    return out, cg, library
 
-        cs = favre_coarse_grain(snap, cg, targets=plan["components"])
-    else:
-        cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"],
-                                   land=spec.filter.land, scheme=spec.scheme,
-                                   derivative_passes=derivative_passes(library))
-    return cs, cg, library
+
+class _LevelStack:
+    """The coarse snapshots of every level of one time step, stacked along a leading axis
+    (what HeldOut keeps for a level stack; ``unstack`` splits them again)."""
+
+    def __init__(self, parts):
+        self.index = parts[0].index
+        self.fields = {k: np.stack([p.fields[k] for p in parts]) for k in parts[0].fields}
+        self.targets = {k: np.stack([p.targets[k] for p in parts]) for k in parts[0].targets}
+        self.valid = (None if all(p.valid is None for p in parts) else
+                      np.stack([np.ones(p.grid.shape, dtype=bool) if p.valid is None
+                                else p.valid for p in parts]))
+
+
+def _unstack(fields: Mapping, targets: Mapping, valid, n_levels: int) -> list[tuple]:
+    """(fields, targets, valid) per level of a _LevelStack's arrays."""
+    return [({k: a[j] for k, a in fields.items()}, {k: a[j] for k, a in targets.items()},
+             None if valid is None else valid[j]) for j in range(n_levels)]
 
 
 def derivative_passes(library) -> int:
@@ -426,10 +504,23 @@ def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> Suffi
 
 
 def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
-    """(statistics, coarse snapshot) of snapshot ``index``."""
+    """(statistics, coarse snapshot) of snapshot ``index``. A level stack's statistics are
+    the sum over its levels (SufficientStats are additive), its coarse snapshot a
+    _LevelStack."""
+    parts, cg, library = _coarse(spec, plan, index, source)
+    if len(parts) == 1:
+        return _level_stats(spec, plan, parts[0], cg, library, int(index)), parts[0]
+    total = None
+    for cs in parts:
+        s = _level_stats(spec, plan, cs, cg, library, None)
+        total = s if total is None else total + s
+    return dataclasses.replace(total, snapshots=(int(index),)), _LevelStack(parts)
+
+
+def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | None):
+    """Statistics of one coarse snapshot (one level)."""
     from closure.library import design
 
-    cs, cg, library = _coarse(spec, plan, index, source)
     if cs.valid is not None:
         _check_valid_points(spec, cs, cg, len(library.names))
     X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
@@ -451,9 +542,8 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
             extra[name] = SufficientStats.from_design(
                 T[None], exact[name].reshape(1, -1), None, library.names, (name,),
                 point_weights=None if tv is None else tv.reshape(-1))
-    stats = SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
-                                        snapshot=int(index), extra=extra, point_weights=points)
-    return stats, cs
+    return SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
+                                       snapshot=index, extra=extra, point_weights=points)
 
 
 class HeldOut:
@@ -566,23 +656,29 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
     coarse = Grid.from_dict(plan["coarse_grid"])
     for done, i in enumerate(sorted(test)):
         progress("score", done, len(test))
+        levels = _levels(plan)
         if held_out is not None and i in held_out:
             fields, targets, valid = held_out.get(i)
+            # one level is kept as it is; several as a _LevelStack
+            parts = [(fields, targets, valid)] if len(levels) == 1 else \
+                _unstack(fields, targets, valid, len(levels))
         else:
-            cs, _, _ = _coarse(spec, plan, i, source)
-            fields, targets, valid = cs.fields, cs.targets, cs.valid
-        tv = transfer_valid(valid, coarse, spec.scheme)
-        ctx = TransferContext(spec.target, fields, coarse, spec.scheme)
-        exact = {c: targets[c] for c in comps}
-        te = ctx.transfers(exact)
-        for coef, acc in ((fit.coefficients, sums),) + (((base[1], base_sums),) if base else ()):
-            model = predict(library, coef, fields, coarse, spec.scheme, float(plan["delta"]))
-            tm = ctx.transfers({c: model[c] for c in comps})
-            for k in te:
-                acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)
-        if net is not None:
-            net_stats.append(_score_network(net, fields, exact, coarse, plan, i, ctx, te,
-                                            net_sums, valid, tv))
+            coarse_parts, _, _ = _coarse(spec, plan, i, source)
+            parts = [(cs.fields, cs.targets, cs.valid) for cs in coarse_parts]
+        for fields, targets, valid in parts:
+            tv = transfer_valid(valid, coarse, spec.scheme)
+            ctx = TransferContext(spec.target, fields, coarse, spec.scheme)
+            exact = {c: targets[c] for c in comps}
+            te = ctx.transfers(exact)
+            for coef, acc in ((fit.coefficients, sums),) + \
+                    (((base[1], base_sums),) if base else ()):
+                model = predict(library, coef, fields, coarse, spec.scheme, float(plan["delta"]))
+                tm = ctx.transfers({c: model[c] for c in comps})
+                for k in te:
+                    acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)
+            if net is not None:
+                net_stats.append(_score_network(net, fields, exact, coarse, plan, i, ctx, te,
+                                                net_sums, valid, tv))
     progress("score", len(test), len(test))
 
     scores = {
@@ -611,6 +707,9 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
         fit.warnings)
     if land["excluded_points"]:
         warnings.append(land["note"])
+    if _levels(plan) != [None]:
+        warnings.append(f"statistics of {len(_levels(plan))} z levels pooled into one model "
+                        "(2-D fields per level, no derivatives across levels)")
     warnings.append("coefficient standard errors treat every grid point as independent; "
                     "neighbouring points are correlated, so they are optimistic: the selection "
                     "frequencies over snapshot resamples are the better guide")
@@ -649,14 +748,18 @@ def _reference_net(spec: JobSpec, plan: Mapping, train, progress: Progress, sour
         for i in sorted(train):
             if held_out is not None and i in held_out:
                 fields, targets, valid = held_out.get(i)
+                parts = [(fields, targets, valid)] if len(_levels(plan)) == 1 else \
+                    _unstack(fields, targets, valid, len(_levels(plan)))
             else:
-                cs, _, _ = _coarse(spec, plan, i, source)
-                fields, targets, valid = cs.fields, cs.targets, cs.valid
-            if valid is not None and not np.all(valid):
-                raise OptionError("the reference network is trained on whole coarse fields and "
-                                  "does not take land masks yet: leave out --reference-net "
-                                  "(reference_net.enabled) for data with land")
-            yield fields, {c: targets[c] for c in comps}
+                coarse_parts, _, _ = _coarse(spec, plan, i, source)
+                parts = [(cs.fields, cs.targets, cs.valid) for cs in coarse_parts]
+            for fields, targets, valid in parts:
+                if valid is not None and not np.all(valid):
+                    raise OptionError("the reference network is trained on whole coarse fields "
+                                      "and does not take land masks yet: leave out "
+                                      "--reference-net (reference_net.enabled) for data with "
+                                      "land")
+                yield fields, {c: targets[c] for c in comps}
 
     return train_reference_net(snapshots(), Grid.from_dict(plan["coarse_grid"]), spec.target,
                                spec.scheme, comps, plan["weights"], spec.reference_net,
@@ -687,7 +790,7 @@ def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStat
     """Coarse points land excluded from the fit and scores, counted from the statistics (a
     snapshot's excluded points are its coarse points minus those with weight), with the
     convention and a sentence for the summary."""
-    per = int(np.prod(plan["coarse_grid"]["shape"]))
+    per = int(np.prod(plan["coarse_grid"]["shape"])) * len(_levels(plan))
 
     def excluded(indices):
         return int(sum(per - int(stats[i].count[0]) for i in indices))
@@ -741,10 +844,18 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
 
     spec_dict = spec.model_dump(mode="json")
     spec_dict["input"]["sha256"] = plan["sha256"]
+    read = dict(plan["input"].get("read") or {})
     return {
         "input": plan["input"]["path"],
+        "inputs": list(plan["input"].get("paths") or [plan["input"]["path"]]),
         "sha256": plan["sha256"],
+        "sha256_policy": "one file: its SHA-256; several files or a Zarr store: SHA-256 of the "
+                         "sorted per-file SHA-256 lines (closure.io.input_sha256)",
         "variables": dict(plan["input"].get("variables") or {}),
+        "input_options": dict(plan["input"].get("options") or {}),
+        "input_read": read,
+        "units": dict(read.get("units") or {}),
+        "notes": list(plan.get("notes") or []),
         "snapshots": {"train": list(plan["train"]), "test": list(plan["test"])},
         "times": plan.get("times"),
         "fine_grid": plan["grid"],
@@ -764,7 +875,7 @@ def discover(spec: JobSpec, progress: Progress | None = None):
     The input's SHA-256 (provenance) is computed in a thread while the snapshots are mapped:
     hashing is I/O and C code outside the GIL, on a core the map leaves idle between its FFTs.
     """
-    from closure.io import sha256_file
+    from closure.io import input_sha256
 
     progress = progress or _no_progress
     if spec.reference_net.enabled:  # fail before the long pass, not after it
@@ -776,7 +887,7 @@ def discover(spec: JobSpec, progress: Progress | None = None):
             tempfile.TemporaryDirectory(prefix="closure-held-out-") as tmp:
         p = _plan(spec, src, None)
         stop = threading.Event()
-        digest = pool.submit(sha256_file, _input_path(spec), cancel=stop)
+        digest = pool.submit(input_sha256, src.paths, cancel=stop)
         try:
             progress("plan", 1, 1)
             stats = {}
@@ -798,5 +909,22 @@ def discover(spec: JobSpec, progress: Progress | None = None):
         return reduce(spec, p, stats, progress, source=src, held_out=held_out)
 
 
-__all__ = ["HeldOut", "derivative_passes", "discover", "land_record", "map_snapshot", "plan",
-           "reduce", "transfer_valid"]
+def discover_levels(spec: JobSpec, progress: Progress | None = None) -> list[tuple[int, object]]:
+    """One model per level of a level stack (``input.per_level``): ``[(level, model), ...]``,
+    each fitted and scored on that level alone (its provenance lists the one level)."""
+    if spec.input.levels is None:
+        raise UserError("one model per level needs levels: give --levels all or --levels 0,5,10")
+    if spec.input.levels == "all":
+        with _open(spec) as src:
+            levels = list(src.levels)
+    else:
+        levels = list(spec.input.levels)
+    out = []
+    for k in levels:
+        one = spec.model_copy(update={"input": spec.input.model_copy(update={"levels": [k]})})
+        out.append((k, discover(one, progress)))
+    return out
+
+
+__all__ = ["HeldOut", "derivative_passes", "discover", "discover_levels", "land_record",
+           "map_snapshot", "open_planned", "plan", "reduce", "transfer_valid"]

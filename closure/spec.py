@@ -27,9 +27,17 @@ class _Strict(BaseModel):
 
 
 class InputSpec(_Strict):
-    """Where the fine-grid fields are and how to read them."""
+    """Where the fine-grid fields are and how to read them (the one set of input options of
+    every command and of the service; closure.io.open_input opens it).
 
-    path: str | None = Field(None, description="netCDF file (under a data root for the service)")
+    ``path`` is one string (a netCDF file, a glob such as ``run/snap_*.nc``, a folder of
+    netCDF files, or a Zarr store) or a list of such strings; the inputs are ordered by their
+    time coordinate. A plain string keeps specs written before lists were accepted valid.
+    """
+
+    path: str | list[str] | None = Field(
+        None, description="netCDF file, glob, folder or Zarr store, or a list of them "
+        "(under a data root for the service)")
     dataset_id: str | None = Field(None, description="id of an uploaded dataset (service only)")
     variables: dict[str, str] = Field(
         default_factory=dict,
@@ -38,13 +46,61 @@ class InputSpec(_Strict):
     periodic: bool = True
     snapshots: list[Annotated[int, Field(ge=0)]] | None = Field(
         None, description="time indices to use (default: all)")
+    group: str | None = Field(None, description="netCDF-4 (or Zarr) group path, e.g. 'ocean'")
+    mask: str | None = Field(None, description="variable whose nonzero values mark fluid points "
+                             "(NaN and fill values are land too)")
+    levels: Literal["all"] | list[Annotated[int, Field(ge=0)]] | None = Field(
+        None, description="analyse these z levels (indices, or 'all') as 2-D fields")
+    per_level: bool = Field(False, description="one model per level instead of one pooled "
+                            "model (needs levels)")
+    spacing: list[Annotated[float, Field(gt=0)]] | None = Field(
+        None, min_length=1, max_length=3,
+        description="grid spacing DX[,DY[,DZ]] for inputs without coordinate variables")
     sha256: str | None = Field(None, description="filled in by the pipeline; ignored on input")
+
+    @field_validator("path")
+    @classmethod
+    def _paths(cls, v):
+        if isinstance(v, list):
+            if not v:
+                raise ValueError("input.path is an empty list: give at least one file")
+            if any(not p for p in v):
+                raise ValueError("input.path lists an empty string")
+        elif v is not None and not v:
+            raise ValueError("input.path is empty")
+        return v
+
+    @field_validator("group", "mask")
+    @classmethod
+    def _names(cls, v):
+        if v is not None and not v.strip():
+            raise ValueError("must be a non-empty name")
+        return v
+
+    @field_validator("levels")
+    @classmethod
+    def _levels(cls, v):
+        if isinstance(v, list):
+            if not v:
+                raise ValueError("levels is empty: give level indices or 'all'")
+            if len(set(v)) != len(v):
+                raise ValueError("levels lists a level more than once")
+        return v
 
     @model_validator(mode="after")
     def _one_source(self):
         if (self.path is None) == (self.dataset_id is None):
             raise ValueError("give exactly one of input.path or input.dataset_id")
+        if self.per_level and self.levels is None:
+            raise ValueError("input.per_level needs input.levels ('all' or level indices)")
         return self
+
+    @property
+    def paths(self) -> list[str]:
+        """``path`` as a list (empty for a dataset id)."""
+        if self.path is None:
+            return []
+        return [self.path] if isinstance(self.path, str) else list(self.path)
 
 
 class FilterSpec(_Strict):

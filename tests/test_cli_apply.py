@@ -172,3 +172,28 @@ def test_show_model_and_export_model(tmp_path, coarse_file, capsys):
     assert "void closure_model(" in capsys.readouterr().out
     assert main(["export-model", str(mpath), "--lang", "cobol"]) == 2
     assert "unknown export language 'cobol'" in capsys.readouterr().err
+
+
+def test_apply_on_a_coarse_file_with_land_leaves_land_out(tmp_path, make_netcdf, capsys):
+    # a coarse file written with land holds NaN where subgrid terms see land: the prediction
+    # is NaN exactly there, and the a priori figures use only the other points
+    g, snaps = fine_snapshots(n=4, size=64)
+    fluid = np.ones(g.shape, dtype=bool)
+    fluid[:, :10] = False  # a straight coast
+    u = np.stack([np.where(fluid, s.fields["u"], np.nan) for s in snaps])
+    v = np.stack([np.where(fluid, s.fields["v"], np.nan) for s in snaps])
+    fine = make_netcdf({"u": u, "v": v}, name="coast.nc")
+    coarse, model = tmp_path / "c.nc", tmp_path / "m.json"
+    assert main(["coarse-grain", str(fine), "--ratio", "2", "--width", "4", "-o",
+                 str(coarse)]) == 0
+    assert main(["discover", str(fine), "--ratio", "2", "--width", "4", "--scheme", "fd4",
+                 "--library", "classic", "--resamples", "0", "-q", "-o", str(model)]) == 0
+    capsys.readouterr()
+    out = tmp_path / "p.nc"
+    assert main(["apply", str(model), str(coarse), "-o", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "r2 " in text and "nan" not in text.lower()
+    with xr.open_dataset(coarse) as c, xr.open_dataset(out) as p:
+        excluded = np.isnan(c["tau_xx"].values)
+        assert excluded.any() and not excluded.all()
+        np.testing.assert_array_equal(np.isnan(p["tau_xx"].values), excluded)

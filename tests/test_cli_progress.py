@@ -24,16 +24,17 @@ def test_progress_lines_without_a_terminal():
     now = [0.0]
     update = progress.progress_lines({"map": "snapshots"}, interval=10.0, stream=out,
                                      clock=lambda: now[0])
-    update("map", 0, 8)          # a phase starts: one line
+    update("map", 0, 8)          # nothing done yet: no line
+    update("map", 1, 8)          # the first step: one line
     now[0] = 1.0
-    update("map", 1, 8)          # within the interval: nothing
+    update("map", 2, 8)          # within the interval: nothing
     now[0] = 12.0
     update("map", 5, 8)          # interval passed: one line
     update("map", 8, 8)          # complete: one line, once
     update("map", 8, 8)
     update("reduce", 1, 1)       # another phase, complete at once
     lines = out.getvalue().splitlines()
-    assert lines == ["progress: snapshots 0/8 (0.0 s)", "progress: snapshots 5/8 (12.0 s)",
+    assert lines == ["progress: snapshots 1/8 (0.0 s)", "progress: snapshots 5/8 (12.0 s)",
                      "progress: snapshots 8/8 (12.0 s)", "progress: reduce 1/1 (12.0 s)"]
 
 

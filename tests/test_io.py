@@ -126,8 +126,14 @@ def test_missing_and_non_netcdf_files(tmp_path):
     text.write_text("not a netCDF file\n")
     with pytest.raises(InputFileError, match="could not be read as netCDF.*give a netCDF"):
         open_fields(text)
-    with pytest.raises(InputFileError, match="is a folder"):
-        open_fields(tmp_path)
+    with pytest.raises(InputFileError, match="could not be read as netCDF"):
+        open_fields(tmp_path)  # a folder: its *.nc files are the input
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    with pytest.raises(InputFileError, match="holds no netCDF files .* and is not a Zarr store"):
+        open_fields(empty)
+    with pytest.raises(InputFileError, match=r"no file matches '.*snap_\*.nc'.*quote it"):
+        open_fields(str(tmp_path / "snap_*.nc"))
 
 
 def test_missing_variable_lists_the_file_variables(make_netcdf):
@@ -161,7 +167,8 @@ def test_mismatched_and_unknown_dims(make_netcdf, tmp_path):
         open_fields(path)
     odd = make_netcdf({"u": rand(2, 8, 8), "v": rand(2, 8, 8)}, dims=("time", "lat", "lon"),
                       name="odd.nc")
-    with pytest.raises(InputFileError, match="rename 'lat', 'lon'.*--var x=NAME"):
+    with pytest.raises(InputFileError, match=r"dimension\(s\) 'lat', 'lon' are not "
+                                             r"understood.*--var x=NAME"):
         open_fields(odd)
     with pytest.raises(InputFileError, match="dimension 'longitude' \\(given for x\\)"):
         open_fields(odd, {"x": "longitude"})
@@ -193,26 +200,67 @@ def test_coordinate_units_must_agree(make_netcdf):
         open_fields(path)
 
 
-@pytest.mark.parametrize("bad", [np.nan, np.inf])
-def test_nan_or_inf_named_with_variable_and_snapshot(make_netcdf, bad):
+def test_inf_is_refused_naming_variable_snapshot_and_point(make_netcdf):
     V = rand(3, 8, 8)
-    V[1, 2, 5] = bad
+    V[1, 2, 5] = np.inf
     path = make_netcdf({"u": rand(3, 8, 8), "V": V})
     with open_fields(path, {"v": "V"}) as src:
         src.snapshot(0)
-        with pytest.raises(InputFileError, match=r"variable 'V \(v\)' has 1 NaN or Inf value\(s\) "
-                                                 r"at snapshot 1 of .* \(first at y=2, x=5"):
+        with pytest.raises(InputFileError, match=r"variable 'V \(v\)' has 1 Inf value\(s\) "
+                                                 r"at snapshot 1 of .* \(first at y=2, x=5\): "
+                                                 r"Inf is not a missing value.*--snapshots"):
             src.snapshot(1)
 
 
-def test_fill_values_count_as_missing(make_netcdf, tmp_path):
+def test_nan_marks_land_filled_with_zero_in_every_field(make_netcdf):
+    u, V = rand(3, 8, 8), rand(3, 8, 8, seed=1)
+    V[1, 2, 5] = np.nan
+    u[1, 0, 0] = np.nan
+    path = make_netcdf({"u": u, "V": V})
+    with open_fields(path, {"v": "V"}) as src:
+        assert src.snapshot(0).mask is None  # every point fluid
+        s = src.snapshot(1)
+        expected = np.ones((8, 8), dtype=bool)
+        expected[2, 5] = expected[0, 0] = False
+        np.testing.assert_array_equal(s.mask, expected)
+        for f in s.fields.values():
+            assert np.all(np.isfinite(f)) and f[2, 5] == 0.0 and f[0, 0] == 0.0
+        np.testing.assert_array_equal(s.fields["u"][expected], u[1][expected])
+
+
+def test_fill_values_count_as_land(make_netcdf, tmp_path):
     u = rand(2, 8)
     ds = xr.Dataset({"u": (("time", "x"), u)}, coords={"x": np.arange(8) * np.pi / 4})
     ds["u"].encoding["_FillValue"] = -999.0
     ds["u"][0, 3] = np.nan
     path = tmp_path / "fill.nc"
     ds.to_netcdf(path)
-    with open_fields(path) as src, pytest.raises(InputFileError, match="at snapshot 0"):
+    # xarray is the independent reader: it maps _FillValue to NaN (CF conventions, sec. 2.5.1)
+    raw = xr.open_dataset(path, mask_and_scale=False)["u"].values
+    assert raw[0, 3] == -999.0
+    with open_fields(path) as src:
+        s = src.snapshot(0)
+        assert s.mask.tolist() == [True, True, True, False, True, True, True, True]
+        assert s.fields["u"][3] == 0.0
+
+
+def test_mask_variable_nonzero_is_fluid(make_netcdf):
+    sea = np.ones((8, 8))
+    sea[:, :2] = 0  # a coast along x = 0, 1
+    path = make_netcdf({"u": rand(2, 8, 8), "v": rand(2, 8, 8), "sea": sea},
+                       var_dims={"sea": ("y", "x")})
+    with open_fields(path, mask="sea") as src:
+        s = src.snapshot(1)
+        np.testing.assert_array_equal(s.mask, sea != 0)
+        assert np.all(s.fields["u"][:, :2] == 0)
+        assert src.info()["mask"] == "sea"
+    with pytest.raises(InputFileError, match=r"mask variable 'land' \(--mask\) not found .*"
+                                             r"variables are: u, v, sea. Fix --mask NAME"):
+        open_fields(path, mask="land")
+    allland = make_netcdf({"u": rand(2, 8, 8), "v": rand(2, 8, 8), "sea": 0 * sea},
+                          var_dims={"sea": ("y", "x")}, name="land.nc")
+    with open_fields(allland, mask="sea") as src, \
+            pytest.raises(InputFileError, match="has no fluid point.*check --mask"):
         src.snapshot(0)
 
 

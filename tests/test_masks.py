@@ -332,8 +332,8 @@ class MaskedSource:
         self.fluid = fluid
         self.velocity, self.grid = self.src.velocity, self.src.grid
 
-    def snapshot(self, i):
-        s = self.src.snapshot(i)
+    def snapshot(self, i, level=None):
+        s = self.src.snapshot(i, level)
         return Snapshot(with_land(s.fields, self.fluid), s.grid, s.index, s.time, self.fluid)
 
     def close(self):
@@ -509,8 +509,8 @@ def test_the_divergence_check_of_the_plan_ignores_the_coast(tmp_path):
         y, x = grid.mesh()
 
         class Divergent(MaskedSource):
-            def snapshot(self, i):
-                s = super().snapshot(i)
+            def snapshot(self, i, level=None):
+                s = super().snapshot(i, level)
                 s.fields["u"] = s.fields["u"] + 0.5 * np.sin(x)  # d_x u = 0.5 cos x
                 return s
 

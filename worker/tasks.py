@@ -133,12 +133,10 @@ def plan_task(job_id: str) -> dict:
 
 
 def _open_planned(plan: dict):
-    """The planned input file, opened as the plan read it (closure.io.open_fields)."""
-    from closure.io import open_fields
+    """The planned input, opened as the plan read it (closure.pipeline.open_planned)."""
+    from closure.pipeline import open_planned
 
-    inp = plan["input"]
-    return open_fields(inp["path"], inp.get("variables") or None, tuple(inp.get("scalars") or ()),
-                       bool(inp.get("periodic", True)))
+    return open_planned(plan)
 
 
 def _keep_held_out(work: Path, plan: dict, coarse) -> None:

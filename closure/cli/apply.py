@@ -10,6 +10,7 @@ import numpy as np
 import typer
 
 from closure.atomic import write_text
+from closure.cli.inputs import GROUP, LEVELS, MASK, SPACING, VAR
 from closure.errors import InputFileError, OptionError
 
 _LONG = {"tau": "modelled subgrid stress", "force": "modelled subgrid force",
@@ -21,43 +22,55 @@ _LONG = {"tau": "modelled subgrid stress", "force": "modelled subgrid force",
 def apply_model(
     model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
                                       show_default=False),
-    input: Path = typer.Argument(..., metavar="COARSE",
-                                 help="netCDF file of filtered fields on a coarse grid (as "
-                                      "`closure coarse-grain` writes it; read only)",
-                                 show_default=False),
+    inputs: list[str] = typer.Argument(
+        ..., metavar="COARSE", show_default=False,
+        help="filtered fields on a coarse grid, read only: a file as `closure coarse-grain` "
+             "writes it, or any netCDF file(s), quoted glob, folder or Zarr store of them"),
     output: Path = typer.Option(..., "-o", "--output", help="netCDF file to write",
                                 show_default=False),
-    var: list[str] | None = typer.Option(
-        None, "--var", help="map our name to the file's, e.g. --var u=U (files not written by "
-                            "closure)", show_default=False),
+    var: list[str] | None = VAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    spacing: str | None = SPACING,
 ) -> None:
     """Evaluate a model on every snapshot of a coarse file; write its predicted subgrid terms."""
-    from closure.cli.coarse import parse_var_options
+    from closure.cli.discover import check_output
+    from closure.cli.inputs import input_dict
     from closure.model import ClosureModel
 
+    check_output(output, inputs)
+    options = input_dict(inputs, var=var, group=group, mask=mask, levels=levels,
+                         spacing=spacing)
     model = ClosureModel.load(model_path)
-    with _open_coarse_fields(input, model, parse_var_options(var)) as src:
-        if output.exists() and output.resolve() == Path(src.path).resolve():
-            raise OptionError(f"the output {output} is the input file: choose another -o "
-                              "(input files are never written)")
+    with _open_coarse_fields(options, model) as src:
         grid = src.grid
         for w in model.grid_warnings(grid):
             typer.echo(f"warning: {w}", err=True)
         n = src.n_snapshots
         names = model.components
-        pred = {c: np.empty((n, *grid.shape)) for c in names}
+        stack = [None] if getattr(src, "levels", None) is None else list(src.levels)
+        shape = grid.shape if stack == [None] else (len(stack), *grid.shape)
+        pred = {c: np.empty((n, *shape)) for c in names}
         split = _TrainingSplit(model, src)
         skill = {part: _Skill(model) for part in ("train", "test", "new")}
         times = []
         for i in range(n):
-            snap = src.snapshot(i)
-            out = model.evaluate(snap.fields, grid)
-            for c in names:
-                pred[c][i] = out[c]
-            targets = getattr(snap, "targets", None) or {}
-            skill[split.part(snap.index)].add(targets, out)
+            for k, level in enumerate(stack):
+                snap = src.snapshot(i) if level is None else src.snapshot(i, level)
+                out = model.evaluate(snap.fields, grid)
+                invalid = _invalid_points(model, snap, grid)
+                if invalid is not None:  # land: no prediction where its stencils reach land
+                    out = {c: np.where(invalid, np.nan, v) for c, v in out.items()}
+                for c in names:
+                    if level is None:
+                        pred[c][i] = out[c]
+                    else:
+                        pred[c][i, k] = out[c]
+                targets = getattr(snap, "targets", None) or {}
+                skill[split.part(snap.index)].add(targets, out)
             times.append(float(snap.time) if snap.time is not None else float(snap.index))
-        ds = _dataset(model, model_path, src, pred, times)
+        ds = _dataset(model, model_path, src, pred, times, stack)
     from closure.io import write_netcdf
 
     write_netcdf(ds, output)
@@ -71,19 +84,25 @@ def apply_model(
 
 
 @contextlib.contextmanager
-def _open_coarse_fields(path: Path, model, variables: dict[str, str]):
-    """A coarse file written by closure (CoarseSource), or any netCDF file of filtered fields
-    on a coarse grid (FieldSource)."""
+def _open_coarse_fields(options: dict, model):
+    """A coarse file written by closure (CoarseSource), or any input of filtered fields on a
+    coarse grid (FieldSource) opened with the shared input options."""
     from closure.io import open_coarse, open_fields
 
     needed = model.library.subset([t.name for t in model.active_terms]).fields
     scalars = tuple(f for f in needed if f in model.scalars)
+    path = options["path"]
+    plain = isinstance(path, str) and not any(options.get(k) for k in (
+        "variables", "group", "mask", "levels", "spacing"))
     try:
-        src = open_coarse(path) if not variables else None
+        src = open_coarse(Path(path)) if plain else None
     except InputFileError:
         src = None
     if src is None:
-        src = open_fields(path, variables, scalars, periodic=model.grid.periodic)
+        src = open_fields(path, options.get("variables"), scalars,
+                          periodic=model.grid.periodic, group=options.get("group"),
+                          mask=options.get("mask"), levels=options.get("levels"),
+                          spacing=options.get("spacing"))
     try:
         if tuple(src.grid.dims) != model.dims:
             raise InputFileError(f"the model is for a grid with dims {model.dims}; {path} has "
@@ -95,6 +114,26 @@ def _open_coarse_fields(path: Path, model, variables: dict[str, str]):
         yield src
     finally:
         src.close()
+
+
+def _invalid_points(model, snap, grid):
+    """Coarse points where a prediction would see land (None: none do): excluded points of a
+    coarse file with land, or land of a plain input widened by the model's derivative
+    stencils (closure.residuals.stencil_dilation, as the fit excluded them)."""
+    from closure.pipeline import derivative_passes
+    from closure.residuals import stencil_dilation
+
+    valid = getattr(snap, "valid", None)
+    if valid is not None:
+        return ~np.asarray(valid, dtype=bool)
+    mask = getattr(snap, "mask", None)
+    if mask is None or np.all(mask):
+        return None
+    if model.scheme == "spectral":
+        raise OptionError("the model uses spectral derivatives, which reach across land: apply "
+                          "a model fitted with --scheme fd2 or fd4 to data with land")
+    return stencil_dilation(~np.asarray(mask, dtype=bool), grid, model.scheme,
+                            max(1, derivative_passes(model.library)))
 
 
 class _TrainingSplit:
@@ -150,6 +189,8 @@ class _Skill:
             return
         for c in self.names:
             y, p, w = np.asarray(targets[c]).ravel(), pred[c].ravel(), self.w[c]
+            keep = np.isfinite(p)  # NaN: points land excludes
+            y, p = y[keep], p[keep]
             self.s += w * np.array([y.size, y.sum(), p.sum(), y @ y, p @ p, y @ p])
 
     def text(self) -> str:
@@ -204,17 +245,23 @@ def _long_name(component: str) -> str:
     return f"{_LONG['vorticity_forcing']} (closure model, a priori prediction)"
 
 
-def _dataset(model, model_path, src, pred, times):
+def _dataset(model, model_path, src, pred, times, stack=(None,)):
     import xarray as xr
 
     from closure import __version__
     from closure.io import sha256_file
 
     grid = src.grid
-    dims = ("time", *grid.dims)
+    levels = list(stack) != [None]
+    dims = ("time", *(("z",) if levels else ()), *grid.dims)
     coords = {d: (d, grid.coords(d), {"long_name": f"{d} coordinate", "axis": d.upper(),
                                       **({"units": grid.units} if grid.units else {})})
               for d in grid.dims}
+    if levels:
+        values = getattr(src, "level_values", None)
+        coords["z"] = ("z", np.asarray(values if values is not None else stack, dtype=float),
+                       {"long_name": "level" if values is not None else "level index",
+                        "axis": "Z"})
     coords["time"] = ("time", np.asarray(times, dtype=float), {"long_name": "time" if getattr(
         src, "times", None) is not None else "snapshot index", "axis": "T"})
     from closure.library_compressible import PRESETS as COMPRESSIBLE_PRESETS
@@ -240,7 +287,7 @@ def _dataset(model, model_path, src, pred, times):
         "model_scheme": model.scheme,
         "model_delta": float(model.delta),
         "model_terms": " ".join(t.name for t in model.active_terms),
-        "input_file": str(src.path),
+        "input_file": " ".join(str(p) for p in getattr(src, "paths", [src.path])),
         "caution": model.caution,
     }
     return xr.Dataset(data, coords=coords, attrs=attrs)

@@ -7,27 +7,30 @@ from pathlib import Path
 import numpy as np
 import typer
 
+from closure.cli.inputs import (
+    GROUP,
+    INPUTS,
+    LEVELS,
+    MASK,
+    NON_PERIODIC,
+    SCALAR,
+    SNAPSHOTS,
+    SPACING,
+    VAR,
+    echo_notes,
+    open_options,
+    parse_indices,
+    parse_var_options,
+)
 from closure.errors import OptionError
 
-
-def parse_var_options(items: list[str] | None) -> dict[str, str]:
-    """``["u=U", "v=V"]`` -> ``{"u": "U", "v": "V"}``; OptionError on a malformed item."""
-    out = {}
-    for item in items or []:
-        ours, sep, theirs = item.partition("=")
-        ours, theirs = ours.strip(), theirs.strip()
-        if not sep or not ours or not theirs:
-            raise OptionError(f"--var expects OURS=FILE_NAME (e.g. --var u=U), got {item!r}")
-        if ours in out and out[ours] != theirs:
-            raise OptionError(f"--var gives {ours!r} twice ({out[ours]!r} and {theirs!r})")
-        out[ours] = theirs
-    return out
+__all__ = ["coarse_grain", "parse_var_options", "register"]
 
 
 def coarse_grain(
-    input: Path = typer.Argument(..., help="fine-grid netCDF file (read only)",
-                                 show_default=False),
-    output: Path = typer.Option(..., "-o", "--output", help="coarse netCDF file to write",
+    inputs: list[str] = INPUTS,
+    output: Path = typer.Option(..., "-o", "--output", help="coarse netCDF file to write (with "
+                                "--levels: one file per level, NAME_levelK.nc)",
                                 show_default=False),
     filter: str = typer.Option("gaussian", "--filter",
                                help="filter kind: box, gaussian, spectral or block"),
@@ -37,15 +40,14 @@ def coarse_grain(
     width_units: str = typer.Option("grid", "--width-units",
                                     help="units of --width: grid (spacings) or coordinate"),
     ratio: int = typer.Option(4, "--ratio", help="coarsening ratio (keep every ratio-th point)"),
-    var: list[str] | None = typer.Option(
-        None, "--var", help="map our name to the file's, e.g. --var u=U (also x=lon)",
-        show_default=False),
-    scalar: list[str] | None = typer.Option(
-        None, "--scalar", help="passive scalar to carry and compute fluxes of (repeatable)",
-        show_default=False),
-    non_periodic: bool = typer.Option(False, "--non-periodic",
-                                      help="the data are not periodic (finite differences, "
-                                           "reflecting filter edges)"),
+    var: list[str] | None = VAR,
+    scalar: list[str] | None = SCALAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    spacing: str | None = SPACING,
+    snapshots: str | None = SNAPSHOTS,
+    non_periodic: bool = NON_PERIODIC,
     land: str = typer.Option("zero", "--land",
                              help="land points (mask, NaN or fill values): zero (land as zero "
                                   "velocity, Aluie, Hecht & Vallis 2018) or fluid (filter "
@@ -54,42 +56,60 @@ def coarse_grain(
                                   "touches land"),
 ) -> None:
     """Filter and coarsen every snapshot; write filtered fields and exact subgrid terms."""
+    from closure.cli.discover import check_output, level_output
     from closure.filters import LAND_CONVENTIONS, make_coarse_graining
-    from closure.io import CoarseWriter, open_fields
+    from closure.io import CoarseWriter
     from closure.residuals import coarse_grain_snapshot
 
     if land not in LAND_CONVENTIONS:
         raise OptionError(f"--land must be one of {', '.join(LAND_CONVENTIONS)}, got {land!r}")
-    variables = parse_var_options(var)
-    with open_fields(input, variables, tuple(scalar or ()), periodic=not non_periodic) as src:
-        if output.exists() and output.resolve() == src.path.resolve():
-            raise OptionError(f"the output {output} is the input file: choose another -o "
-                              "(input files are never written)")
+
+    check_output(output, inputs)
+    with open_options(inputs, var=var, scalar=scalar, group=group, mask=mask, levels=levels,
+                      spacing=spacing, snapshots=snapshots, non_periodic=non_periodic) as src:
+        for p in src.paths:
+            if output.exists() and output.resolve() == p.resolve():
+                raise OptionError(f"the output {output} is the input file: choose another -o "
+                                  "(input files are never written)")
+        echo_notes(src.notes, src.warnings)
         cg = make_coarse_graining(filter, src.grid, ratio, width, width_units)
         for w in cg.warnings():
             typer.echo(f"warning: {w}", err=True)
-        n = src.n_snapshots
-        pi_sum, back, count, excluded = 0.0, 0, 0, 0
-        with CoarseWriter(output, src.describe()) as writer, _progress(n) as advance:
-            for i in range(n):
-                cs = coarse_grain_snapshot(src.snapshot(i), cg, src.scalars, land=land)
-                writer.append(cs)
-                pi = cs.targets["pi"]
-                if cs.valid is not None:  # land: only points whose footprint avoids it
-                    excluded += int(cs.valid.size - np.count_nonzero(cs.valid))
-                    pi = pi[cs.valid]
-                pi_sum += float(pi.sum())
-                back += int(np.count_nonzero(pi < 0))  # backscatter: pi < 0
-                count += pi.size
-                advance()
-        shape = " x ".join(map(str, cg.coarse.shape))
-        stats = (f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}"
-                 if count else "no coarse point clear of land")
-        land_note = (f"; {excluded} coarse point(s) touched by land (NaN subgrid terms, "
-                     f"convention {land!r})" if excluded else "")
-        typer.echo(f"wrote {output}: {n} snapshot(s), coarse grid {shape} "
-                   f"({', '.join(cg.coarse.dims)}), {cg.kind} filter, ratio {cg.ratio}, "
-                   f"{stats}{land_note}")
+        chosen = parse_indices(snapshots)
+        indices = list(range(src.n_snapshots)) if chosen is None else chosen
+        bad = [i for i in indices if not 0 <= i < src.n_snapshots]
+        if bad:
+            raise OptionError(f"--snapshots {bad} out of range: the input has "
+                              f"{src.n_snapshots} snapshot(s), indices 0..{src.n_snapshots - 1}")
+        stack = [None] if src.levels is None else list(src.levels)
+        n = len(indices)
+        for level in stack:
+            target = output if level is None else level_output(output, level)
+            pi_sum, back, count, excluded = 0.0, 0, 0, 0
+            source = src.describe()
+            if level is not None:
+                source["level"] = level
+            with CoarseWriter(target, source) as writer, _progress(n) as advance:
+                for i in indices:
+                    cs = coarse_grain_snapshot(src.snapshot(i, level), cg, src.scalars,
+                                               land=land)
+                    writer.append(cs)
+                    pi = cs.targets["pi"]
+                    if cs.valid is not None:  # land: only points whose footprint avoids it
+                        excluded += int(cs.valid.size - np.count_nonzero(cs.valid))
+                        pi = pi[cs.valid]
+                    pi_sum += float(pi.sum())
+                    back += int(np.count_nonzero(pi < 0))  # backscatter: pi < 0
+                    count += pi.size
+                    advance()
+            shape = " x ".join(map(str, cg.coarse.shape))
+            stats = (f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}"
+                     if count else "no coarse point clear of land")
+            land_note = (f"; {excluded} coarse point(s) touched by land (NaN subgrid terms, "
+                         f"convention {land!r})" if excluded else "")
+            typer.echo(f"wrote {target}: {n} snapshot(s), coarse grid {shape} "
+                       f"({', '.join(cg.coarse.dims)}), {cg.kind} filter, ratio {cg.ratio}, "
+                       f"{stats}{land_note}")
 
 
 def _progress(total: int):

@@ -6,6 +6,19 @@ from pathlib import Path
 
 import typer
 
+from closure.cli.inputs import (
+    GROUP,
+    INPUTS,
+    LEVELS,
+    MASK,
+    NON_PERIODIC,
+    PER_LEVEL,
+    SCALAR,
+    SNAPSHOTS,
+    SPACING,
+    VAR,
+    echo_notes,
+)
 from closure.cli.progress import progress_bar
 from closure.errors import OptionError
 
@@ -26,23 +39,20 @@ _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
            "score": "scoring held-out snapshots"}
 
 
-def build_spec(input: Path, *, filter: str, width: float | None, width_units: str, ratio: int,
+def build_spec(input, *, filter: str, width: float | None, width_units: str, ratio: int,
                target: str, library: str, method: str, scheme: str, test_fraction: float,
                var: list[str] | None, scalar: list[str] | None, non_periodic: bool,
                transfer_weight: float, seed: int, resamples: int, snapshots: str | None,
-               land: str = "zero", reference_net: bool = False, net_epochs: int | None = None,
+               group: str | None = None, mask: str | None = None, levels: str | None = None,
+               per_level: bool = False, spacing: str | None = None, land: str = "zero",
+               reference_net: bool = False, net_epochs: int | None = None,
                net_seconds: float | None = None):
-    """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option)."""
-    from closure.cli.coarse import parse_var_options
+    """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option).
+
+    ``input``: one path or a list of them (files, globs, a folder, a Zarr store)."""
+    from closure.cli.inputs import input_dict
     from closure.spec import parse_spec
 
-    chosen = None
-    if snapshots:
-        try:
-            chosen = _index_list(snapshots)
-        except ValueError:
-            raise OptionError(f"--snapshots expects indices like 0,2,5-9, got {snapshots!r}") \
-                from None
     if not reference_net and (net_epochs is not None or net_seconds is not None):
         raise OptionError("--net-epochs and --net-seconds set the budget of --reference-net: "
                           "add --reference-net, or leave them out")
@@ -51,10 +61,11 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
         net["epochs"] = net_epochs
     if net_seconds is not None:
         net["seconds"] = net_seconds
+    inputs = [str(input)] if isinstance(input, str | Path) else [str(p) for p in input]
     return parse_spec({
-        "input": {"path": str(input), "variables": parse_var_options(var),
-                  "scalars": list(scalar or []), "periodic": not non_periodic,
-                  "snapshots": chosen},
+        "input": input_dict(inputs, var=var, scalar=scalar, group=group, mask=mask,
+                            levels=levels, per_level=per_level, spacing=spacing,
+                            snapshots=snapshots, non_periodic=non_periodic),
         "filter": {"kind": filter, "width": width, "width_units": width_units, "ratio": ratio,
                    "land": land},
         "target": target,
@@ -66,21 +77,25 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
     })
 
 
-def _index_list(text: str) -> list[int]:
-    out: list[int] = []
-    for part in text.split(","):
-        part = part.strip()
-        if "-" in part:
-            a, b = part.split("-", 1)
-            out += list(range(int(a), int(b) + 1))
-        elif part:
-            out.append(int(part))
-    return out
+def check_output(output: Path, inputs, what: str = "-o") -> None:
+    """Refuse an output that is one of the input files (input files are never written)."""
+    if not output.exists():
+        return
+    for p in inputs:
+        p = Path(p)
+        if p.exists() and output.resolve() == p.resolve():
+            which = "the input file" if len(inputs) == 1 else "one of the input files"
+            raise OptionError(f"the output {output} is {which}: choose another {what} "
+                              "(input files are never written)")
+
+
+def level_output(output: Path, level: int) -> Path:
+    """``model.json`` -> ``model_level5.json`` (the file of one level's model)."""
+    return output.with_name(f"{output.stem}_level{level}{output.suffix}")
 
 
 def discover(
-    input: Path = typer.Argument(..., help="fine-grid netCDF file (read only)",
-                                 show_default=False),
+    inputs: list[str] = INPUTS,
     output: Path = typer.Option(..., "-o", "--output", help="model file to write (.json)",
                                 show_default=False),
     filter: str = typer.Option("gaussian", "--filter",
@@ -107,14 +122,14 @@ def discover(
     test_fraction: float = typer.Option(0.25, "--test-fraction",
                                         help="last fraction of the snapshots in time held out "
                                              "for scoring"),
-    var: list[str] | None = typer.Option(
-        None, "--var", help="map our name to the file's, e.g. --var u=U (also x=lon)",
-        show_default=False),
-    scalar: list[str] | None = typer.Option(
-        None, "--scalar", help="passive scalar to read (repeatable; flux:NAME adds its own)",
-        show_default=False),
-    non_periodic: bool = typer.Option(False, "--non-periodic",
-                                      help="the data are not periodic (finite differences)"),
+    var: list[str] | None = VAR,
+    scalar: list[str] | None = SCALAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    per_level: bool = PER_LEVEL,
+    spacing: str | None = SPACING,
+    non_periodic: bool = NON_PERIODIC,
     transfer_weight: float = typer.Option(
         0.0, "--transfer-weight", help="also fit the energy (and 2-D enstrophy) transfer, "
                                        "with this weight relative to the target"),
@@ -122,9 +137,7 @@ def discover(
     resamples: int = typer.Option(20, "--resamples",
                                   help="fits on random halves of the training snapshots for "
                                        "the selection frequencies (0: none)"),
-    snapshots: str | None = typer.Option(None, "--snapshots",
-                                         help="time indices to use, e.g. 0-9,12 (default all)",
-                                         show_default=False),
+    snapshots: str | None = SNAPSHOTS,
     reference_net: bool = typer.Option(
         False, "--reference-net", help="also train a small convolutional network (needs "
         "torch==2.13.0) on the same snapshots and score it beside the model"),
@@ -143,19 +156,25 @@ def discover(
     if output.exists() and output.is_dir():
         raise OptionError(f"-o {output} is a folder: give a file name such as "
                           f"{output / 'model.json'}")
-    if output.exists() and input.exists() and output.resolve() == input.resolve():
-        raise OptionError(f"the output {output} is the input file: choose another -o "
-                          "(input files are never written)")
-    spec = build_spec(input, filter=filter, width=width, width_units=width_units, ratio=ratio,
+    check_output(output, inputs)
+    spec = build_spec(inputs, filter=filter, width=width, width_units=width_units, ratio=ratio,
                       target=target, library=library, method=method, scheme=scheme,
                       test_fraction=test_fraction, var=var, scalar=scalar,
                       non_periodic=non_periodic, transfer_weight=transfer_weight, seed=seed,
-                      resamples=resamples, snapshots=snapshots, land=land,
+                      resamples=resamples, snapshots=snapshots, group=group, mask=mask,
+                      levels=levels, per_level=per_level, spacing=spacing, land=land,
                       reference_net=reference_net, net_epochs=net_epochs,
                       net_seconds=net_seconds)
     with progress_bar(not quiet, "planning", _LABELS) as progress:
-        model = pipeline.discover(spec, progress=progress)
-    path = model.save(output)
-    if not quiet:
-        typer.echo(model.summary())
-    typer.echo(f"written: {path}")
+        if spec.input.per_level:
+            results = pipeline.discover_levels(spec, progress=progress)
+        else:
+            results = [(None, pipeline.discover(spec, progress=progress))]
+    for level, model in results:
+        echo_notes(model.provenance.get("notes") or [])
+        path = model.save(output if level is None else level_output(output, level))
+        if not quiet:
+            if level is not None:
+                typer.echo(f"--- level {level}")
+            typer.echo(model.summary())
+        typer.echo(f"written: {path}")

@@ -7,6 +7,7 @@ from pathlib import Path
 import typer
 
 from closure.atomic import write_text
+from closure.cli.inputs import GROUP, MASK, SPACING, VAR, input_dict
 from closure.errors import OptionError
 
 
@@ -25,11 +26,18 @@ def _load_model(spec: str):
 
 def les(
     model: str = typer.Argument(..., help="model file (.json) or 'none' for no closure"),
-    initial: Path = typer.Option(..., "--initial", help="fine (DNS) netCDF file to start from"),
+    initial: str = typer.Option(..., "--initial", help="fine (DNS) input to start from: a "
+                                "netCDF file, a quoted glob, a folder or a Zarr store"),
     output: Path = typer.Option(..., "-o", "--output", help="netCDF file for the coarse run"),
-    reference: Path | None = typer.Option(
-        None, "--reference", help="fine netCDF file to compare with (default: the initial "
-                                  "file, when it has later snapshots)"),
+    reference: str | None = typer.Option(
+        None, "--reference", help="fine input to compare with (default: the initial "
+                                  "input, when it has later snapshots)"),
+    var: list[str] | None = VAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = typer.Option(None, "--levels", show_default=False,
+                                      help="the z level to run, of a level stack (one index)"),
+    spacing: str | None = SPACING,
     initial_index: int = typer.Option(0, "--initial-index", help="snapshot to start from"),
     filter_kind: str | None = typer.Option(
         None, "--filter", help="none, box, gaussian, spectral or block (default: the model's, "
@@ -71,6 +79,9 @@ def les(
     if output.exists() and output.is_dir():
         raise OptionError(f"-o {output} is a folder: give a file name such as "
                           f"{output / 'run.nc'}")
+    options = input_dict(initial, var=var, group=group, mask=mask, levels=levels,
+                         spacing=spacing)
+    options.pop("path", None)
     closure = _load_model(model)
     label = "model" if closure is not None else "none"
     with progress_bar(not quiet) as progress:
@@ -80,7 +91,7 @@ def les(
             viscosity=viscosity, drag=drag, hyperviscosity_order=hyperviscosity_order,
             forcing=forcing, duration=duration, interval=interval, baselines=baselines,
             smagorinsky_constant=smagorinsky_constant, dealias=dealias, cfl=cfl,
-            energy_bound=energy_bound, progress=progress)
+            energy_bound=energy_bound, progress=progress, input_options=options)
     path = write_run(comparison, output, label)
     if json_out is not None:
         write_text(json_out, comparison.to_json())

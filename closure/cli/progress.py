@@ -16,13 +16,16 @@ LINE_INTERVAL = 10.0
 def progress_lines(labels: Mapping[str, str] | None = None, interval: float = LINE_INTERVAL,
                    stream=None, clock: Callable[[], float] = time.monotonic) -> Progress:
     """A ``progress(phase, done, total)`` callback writing plain lines for batch logs:
-    ``progress: <phase> <done>/<total> (<elapsed> s)``, one when a phase starts, one when it
-    completes, and at most one per ``interval`` seconds in between."""
+    ``progress: <phase> <done>/<total> (<elapsed> s)``: one at a phase's first step, one when
+    it completes, and at most one per ``interval`` seconds in between (nothing before the first
+    step, so an error at once is the only line)."""
     labels = labels or {}
     start = clock()
     state = {"phase": None, "last": -float("inf"), "finished": set()}
 
     def update(phase: str, done: int, total: int) -> None:
+        if done <= 0:
+            return
         now = clock()
         complete = bool(total) and done >= total
         if phase == state["phase"] and not complete and now - state["last"] < interval:

@@ -9,6 +9,18 @@ from pathlib import Path
 
 import typer
 
+from closure.cli.inputs import (
+    GROUP,
+    INPUTS,
+    LEVELS,
+    MASK,
+    NON_PERIODIC,
+    SCALAR,
+    SNAPSHOTS,
+    SPACING,
+    VAR,
+    parse_indices,
+)
 from closure.errors import OptionError
 
 
@@ -33,26 +45,6 @@ def parse_number_list(text: str | None, what: str, kind=float) -> list | None:
     return out
 
 
-def parse_indices(text: str | None, what: str = "--snapshots") -> list[int] | None:
-    """``"0,2,5-7"`` -> ``[0, 2, 5, 6, 7]``; None stays None."""
-    if text is None:
-        return None
-    out: list[int] = []
-    try:
-        for part in text.split(","):
-            part = part.strip()
-            if "-" in part.lstrip("-"):
-                a, b = part.split("-", 1)
-                out += list(range(int(a), int(b) + 1))
-            elif part:
-                out.append(int(part))
-    except ValueError:
-        raise OptionError(f"{what} expects indices like 0,2,5-9, got {text!r}") from None
-    if not out:
-        raise OptionError(f"{what} is empty: give indices like 0,2,5-9")
-    return out
-
-
 def _echo_progress():
     """A progress callback printing one line per finished phase to stderr."""
     def progress(phase: str, done: int, total: int) -> None:
@@ -68,10 +60,11 @@ def report(
     output: Path = typer.Option(..., "-o", "--output", help="report folder to write "
                                 "(index.html + PNGs; an earlier report there is replaced)",
                                 show_default=False),
-    input: Path | None = typer.Option(
-        None, "--input", help="the fine-grid netCDF the model was fitted on (default: the "
-        "path recorded in the model, if it exists); its held-out snapshots are compared "
-        "with the model", show_default=False),
+    input: list[str] | None = typer.Option(
+        None, "--input", help="the fine-grid input(s) the model was fitted on, repeatable "
+        "(default: the paths recorded in the model, if they exist; read with the model's "
+        "recorded --group, --mask, --levels and --spacing); its held-out snapshots are "
+        "compared with the model", show_default=False),
     les: Path | None = typer.Option(None, "--les", help="a posteriori result JSON written by "
                                     "closure les", show_default=False),
     sweep: Path | None = typer.Option(None, "--sweep", help="filter-width sweep JSON written "
@@ -79,6 +72,11 @@ def report(
     snapshots: str | None = typer.Option(
         None, "--snapshots", help="snapshot indices to compare against, e.g. 6,7 or 6-9 (default: "
         "the model's held-out snapshots)", show_default=False),
+    var: list[str] | None = VAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    spacing: str | None = SPACING,
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the folder"),
     server: str | None = typer.Option(None, "--server", help="service URL, for a stored model "
                                       "id (default: $CLOSURE_SERVER, the running local "
@@ -91,11 +89,15 @@ def report(
 
     Given a stored model's id (not a file), the service builds the report (with the model's
     latest a posteriori result) and it is downloaded into the folder."""
+    from closure.cli.inputs import input_dict
     from closure.report import build_report
 
     if not model.exists() and re.fullmatch(r"m-[0-9a-f]{6,64}", str(model)):
         given = [name for name, v in (("--input", input), ("--les", les), ("--sweep", sweep),
-                                      ("--snapshots", snapshots)) if v is not None]
+                                      ("--snapshots", snapshots), ("--var", var),
+                                      ("--group", group), ("--mask", mask),
+                                      ("--levels", levels), ("--spacing", spacing))
+                 if v is not None]
         if given:
             raise OptionError(f"{', '.join(given)} apply to model files; the service builds "
                               f"the report of stored model {model} from its own files")
@@ -105,14 +107,17 @@ def report(
         typer.echo(str(out / "index.html"))
         return
     indices = parse_indices(snapshots)
-    out = build_report(model, output, input, les=les, sweep=sweep, snapshots=indices,
+    given = None if not input else (input[0] if len(input) == 1 else list(input))
+    options = input_dict(None, var=var, group=group, mask=mask, levels=levels,
+                         spacing=spacing)  # the model's recorded options, unless given here
+    out = build_report(model, output, given, les=les, sweep=sweep, snapshots=indices,
+                       input_options=options,
                        progress=None if quiet else _echo_progress())
     typer.echo(str(out / "index.html"))
 
 
 def sweep(
-    input: Path = typer.Argument(..., help="fine-grid netCDF file (read only)",
-                                 show_default=False),
+    inputs: list[str] = INPUTS,
     widths: str = typer.Option(..., "--widths", help="filter widths D, comma-separated, in "
                                "--width-units (fine-grid spacings by default), e.g. 4,8,16",
                                show_default=False),
@@ -147,14 +152,14 @@ def sweep(
                                                  show_default=False),
     seed: int | None = typer.Option(None, "--seed", help="random seed of the resamples",
                                     show_default=False),
-    var: list[str] | None = typer.Option(None, "--var", help="map our name to the file's, "
-                                         "e.g. --var u=U", show_default=False),
-    scalar: list[str] | None = typer.Option(None, "--scalar", help="passive scalar to carry "
-                                            "(repeatable)", show_default=False),
-    snapshots: str | None = typer.Option(None, "--snapshots", help="snapshot indices to use, "
-                                         "e.g. 0-9,12 (default: all)", show_default=False),
-    non_periodic: bool = typer.Option(False, "--non-periodic", help="the data are not "
-                                      "periodic"),
+    var: list[str] | None = VAR,
+    scalar: list[str] | None = SCALAR,
+    group: str | None = GROUP,
+    mask: str | None = MASK,
+    levels: str | None = LEVELS,
+    spacing: str | None = SPACING,
+    snapshots: str | None = SNAPSHOTS,
+    non_periodic: bool = NON_PERIODIC,
     report_dir: Path | None = typer.Option(
         None, "--report", help="also write the HTML report of the first width's model, with "
         "the sweep figures, to this folder", show_default=False),
@@ -162,7 +167,8 @@ def sweep(
 ) -> None:
     """Fit the same closure at several filter widths and record the scaled coefficients and
     held-out scores per width (a scale-invariant closure has flat scaled coefficients)."""
-    from closure.cli.coarse import parse_var_options
+    from closure.cli.discover import check_output
+    from closure.cli.inputs import input_dict
     from closure.spec import parse_spec
     from closure.sweep import run_sweep
 
@@ -176,17 +182,9 @@ def sweep(
             raise OptionError(f"{spec} is not JSON ({exc})") from None
         if not isinstance(base, dict):
             raise OptionError(f"{spec} must hold a JSON object (a job spec)")
-    base.setdefault("input", {})
-    base["input"] = {k: v for k, v in base["input"].items() if k != "dataset_id"}
-    base["input"]["path"] = str(input)
-    if var:
-        base["input"]["variables"] = parse_var_options(var)
-    if scalar:
-        base["input"]["scalars"] = list(scalar)
-    if snapshots is not None:
-        base["input"]["snapshots"] = parse_indices(snapshots)
-    if non_periodic:
-        base["input"]["periodic"] = False
+    base["input"] = input_dict(inputs, var=var, scalar=scalar, group=group, mask=mask,
+                               levels=levels, spacing=spacing, snapshots=snapshots,
+                               non_periodic=non_periodic, defaults=base.get("input") or {})
     filt = dict(base.get("filter") or {})
     for key, value in (("kind", filter), ("width_units", width_units)):
         if value is not None:
@@ -203,8 +201,7 @@ def sweep(
             fit[key] = value
     base["fit"] = fit
     job = parse_spec(base)
-    if output.exists() and output.resolve() == input.resolve():
-        raise OptionError(f"the output {output} is the input file: choose another -o")
+    check_output(output, inputs)
     result = run_sweep(job, parse_number_list(widths, "--widths"),
                        parse_number_list(ratios, "--ratios", int),
                        progress=None if quiet else _sweep_progress())
@@ -218,7 +215,8 @@ def sweep(
         from closure.report import build_report
 
         first = result.entries[0].model
-        out = build_report(first, report_dir, input, sweep=result)
+        out = build_report(first, report_dir, inputs[0] if len(inputs) == 1 else list(inputs),
+                           sweep=result)
         typer.echo(str(out / "index.html"))
 
 

@@ -18,6 +18,16 @@ from pathlib import Path
 
 import typer
 
+from closure.cli.inputs import (
+    GROUP,
+    LEVELS,
+    MASK,
+    NON_PERIODIC,
+    SCALAR,
+    SNAPSHOTS,
+    SPACING,
+    VAR,
+)
 from closure.errors import OptionError, UserError
 
 SERVER = typer.Option(None, "--server", help="service URL (default: $CLOSURE_SERVER, the "
@@ -59,35 +69,6 @@ def _client(server: str | None, token: str | None):
     from closure.client import Client
 
     return Client(_server(server), token=token)
-
-
-def _parse_vars(pairs: list[str] | None) -> dict[str, str] | None:
-    if not pairs:
-        return None
-    out = {}
-    for pair in pairs:
-        ours, sep, theirs = pair.partition("=")
-        if not sep or not ours.strip() or not theirs.strip():
-            raise OptionError(f"--var {pair!r}: write OURS=THEIRS, e.g. --var u=U")
-        out[ours.strip()] = theirs.strip()
-    return out
-
-
-def _parse_snapshots(text: str | None) -> list[int] | None:
-    if text is None:
-        return None
-    out: list[int] = []
-    try:
-        for part in text.split(","):
-            part = part.strip()
-            if "-" in part:
-                lo, hi = part.split("-")
-                out.extend(range(int(lo), int(hi) + 1))
-            elif part:
-                out.append(int(part))
-    except ValueError:
-        raise OptionError(f"--snapshots {text!r}: give indices like 0,1,2 or 0-7") from None
-    return out
 
 
 def _echo_status(doc: dict) -> None:
@@ -203,8 +184,9 @@ def worker(
 # --------------------------------------------------------------------------- client
 
 def submit(
-    input: Path = typer.Argument(None, help="netCDF file of fine-grid fields (omit with "
-                                 "--dataset)"),
+    inputs: list[str] = typer.Argument(
+        None, metavar="INPUTS", help="fine-grid input(s): netCDF files, a quoted glob, a "
+        "folder or a Zarr store (omit with --dataset); several inputs go by path only"),
     dataset: str = typer.Option(None, "--dataset", help="an uploaded dataset id instead"),
     spec_file: Path = typer.Option(None, "--spec", help="a job-spec JSON file; options below "
                                    "override its fields"),
@@ -219,12 +201,16 @@ def submit(
     test_fraction: float = typer.Option(None, "--test-fraction", help="held-out fraction"),
     resamples: int = typer.Option(None, "--resamples", help="resamples for uncertainty"),
     seed: int = typer.Option(None, "--seed"),
-    var: list[str] = typer.Option(None, "--var", help="OURS=THEIRS name mapping, e.g. u=U "
-                                  "(repeatable)"),
-    scalar: list[str] = typer.Option(None, "--scalar", help="passive scalar to carry"),
-    snapshots: str = typer.Option(None, "--snapshots", help="time indices, e.g. 0-7 or 0,2,4"),
-    non_periodic: bool = typer.Option(False, "--non-periodic",
-                                      help="the data are not periodic (real-space filters)"),
+    var: list[str] = VAR,
+    scalar: list[str] = SCALAR,
+    group: str = GROUP,
+    mask: str = MASK,
+    levels: str = LEVELS,
+    per_level: bool = typer.Option(False, "--per-level", help="one job (one model) per level "
+                                   "of --levels (a list of indices)"),
+    spacing: str = SPACING,
+    snapshots: str = SNAPSHOTS,
+    non_periodic: bool = NON_PERIODIC,
     name: str = typer.Option(None, "--name", help="a label for the job"),
     upload: bool = typer.Option(None, "--upload/--by-path", help="always upload the file, or "
                                 "never (default: by path when under the server's data roots, "
@@ -237,34 +223,55 @@ def submit(
     A local file is handed to the server by path when it lies under one of the server's data
     roots; otherwise it is uploaded first (use --upload / --by-path to choose).
     """
+    from closure.cli.inputs import input_dict
     from closure.client import spec_from_options
 
-    if (input is None) == (dataset is None):
+    if bool(inputs) == (dataset is not None):
         raise OptionError("give an input file or --dataset ID (one of them)")
-    base = None
+    base: dict = {}
     if spec_file is not None:
         try:
             base = json.loads(spec_file.read_text())
         except (OSError, ValueError) as exc:
             raise OptionError(f"--spec {spec_file}: cannot read a JSON spec ({exc})") from None
+        if not isinstance(base, dict):
+            raise OptionError(f"--spec {spec_file} must hold a JSON object (a job spec)")
+    inp = input_dict(inputs or None, var=var, scalar=scalar, group=group, mask=mask,
+                     levels=levels, per_level=per_level, spacing=spacing, snapshots=snapshots,
+                     non_periodic=non_periodic, defaults=base.get("input") or {})
+    if dataset is not None:
+        inp.pop("path", None)
     spec = spec_from_options(
-        input, dataset_id=dataset, filter=filter, width=width, width_units=width_units,
+        None, dataset_id=dataset, filter=filter, width=width, width_units=width_units,
         ratio=ratio, target=target, library=library, method=method, scheme=scheme,
-        test_fraction=test_fraction, resamples=resamples, seed=seed,
-        variables=_parse_vars(var), scalars=scalar or None,
-        snapshots=_parse_snapshots(snapshots), periodic=False if non_periodic else None,
-        base=base)
-    if input is not None:
-        if not input.is_file() and upload:
-            raise OptionError(f"{input}: no such file")
-        if input.is_file():
-            spec["input"]["path"] = str(input.resolve())
+        test_fraction=test_fraction, resamples=resamples, seed=seed, base={**base, "input": inp})
+    if inputs:
+        single = Path(inputs[0])
+        if len(inputs) == 1 and single.is_file():
+            spec["input"]["path"] = str(single.resolve())
+        else:
+            if upload:
+                raise OptionError("several inputs (or a glob, folder or Zarr store) go to the "
+                                  "server by path: put them under one of its data roots and "
+                                  "drop --upload")
+            from closure.io import input_files
+
+            files = [str(p.resolve()) for p in input_files(inputs)]
+            spec["input"]["path"] = files[0] if len(files) == 1 else files
+    specs = [spec]
+    if spec["input"].get("per_level"):
+        chosen = spec["input"].get("levels")
+        if not isinstance(chosen, list):
+            raise OptionError("--per-level on the service submits one job per level: list the "
+                              "levels, e.g. --levels 0,5,10 (not all)")
+        specs = [{**spec, "input": {**spec["input"], "levels": [k]}} for k in chosen]
     with _client(server, token) as c:
-        doc = c.submit(spec, name=name, upload=upload)
-    if doc.get("reused"):
-        typer.echo(f"an identical job exists ({doc['state']}"
-                   + (f", model {doc['model_id']}" if doc.get("model_id") else "") + ")")
-    typer.echo(doc["id"])
+        for one in specs:
+            doc = c.submit(one, name=name, upload=upload)
+            if doc.get("reused"):
+                typer.echo(f"an identical job exists ({doc['state']}"
+                           + (f", model {doc['model_id']}" if doc.get("model_id") else "") + ")")
+            typer.echo(doc["id"])
 
 
 def status(job_id: str = typer.Argument(..., help="job id"),

@@ -209,17 +209,22 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
         pred = model.evaluate(snap.fields, snap.grid)
         net_pred = None if network is None else network.predict(snap.fields, snap.grid)
         names = [n for n in pred if n in snap.targets]
+        valid = getattr(snap, "valid", None)  # land: only points clear of it are compared
+        keep = None if valid is None else np.asarray(valid, dtype=bool).ravel()
         if not names:
             raise ValueError(f"the model predicts {sorted(pred)}, none of which is among the "
                              f"snapshot's targets {sorted(snap.targets)}")
         for n in names:
             y = np.asarray(snap.targets[n], dtype=float).ravel()
             p = np.asarray(pred[n], dtype=float).ravel()
+            if keep is not None:
+                y, p = y[keep], p[keep]
             moments[n] = moments.get(n, Moments()) + Moments.of(y, p)
             exact.setdefault(n, []).append(y[::stride])
             modelled.setdefault(n, []).append(p[::stride])
             if net_pred is not None:
                 q = np.asarray(net_pred[n], dtype=float).ravel()
+                q = q if keep is None else q[keep]
                 net_moments[n] = net_moments.get(n, Moments()) + Moments.of(y, q)
                 net_values.setdefault(n, []).append(q[::stride])
         kept += exact[names[0]][-1].size
@@ -230,7 +235,11 @@ def apriori_data(model, snapshots: Iterable, transfer: bool = True,
                     store[n] = [a[::2] for a in store[n]]
             kept = sum(a.size for a in exact[names[0]])
         indices.append(int(getattr(snap, "index", count)))
-        if transfer and snap.grid.periodic:
+        if transfer and snap.grid.periodic and keep is not None:
+            if "land" not in " ".join(notes):
+                notes.append("transfer spectra leave out snapshots with land (a spectrum needs "
+                             "the whole periodic field)")
+        elif transfer and snap.grid.periodic:
             for name, (label, k, te, tm) in _transfers(target, snap.fields, snap.targets, pred,
                                                        snap.grid, scheme).items():
                 acc = sums.setdefault(name, [label, k, 0.0, 0.0, None])

@@ -53,8 +53,16 @@ def provenance_input(model) -> dict:
     target = getattr(model, "target", "")
     if target.startswith("flux:") and target[5:] not in scalars:
         scalars.append(target[5:])
+    path = inp.get("path") or spec_in.get("path")
+    paths = prov.get("inputs") if isinstance(prov.get("inputs"), list) else None
+    if not paths or (isinstance(path, str) and paths[0] != path):  # "input" edited by hand
+        paths = [path] if isinstance(path, str) else path
+    options = prov.get("input_options") if isinstance(prov.get("input_options"), Mapping) \
+        else {k: spec_in.get(k) for k in ("group", "mask", "levels", "spacing")}
     return {
-        "path": inp.get("path") or spec_in.get("path"),
+        "path": paths[0] if paths else None,
+        "paths": list(paths or []),
+        "options": {k: options.get(k) for k in ("group", "mask", "levels", "spacing")},
         "sha256": inp.get("sha256") or prov.get("sha256") or spec_in.get("sha256"),
         "variables": dict(prov.get("variables") or spec_in.get("variables") or {}),
         "scalars": scalars,
@@ -89,21 +97,30 @@ def coarse_graining_of(model, fine: Grid) -> CoarseGraining:
     return cg
 
 
-def held_out_snapshots(model, input_path, indices=None, progress: Progress | None = None
-                       ) -> tuple[Iterator, list[str]]:
+def held_out_snapshots(model, input_path, indices=None, progress: Progress | None = None,
+                       input_options: Mapping | None = None) -> tuple[Iterator, list[str]]:
     """Coarse snapshots of ``indices`` (default: the model's held-out ones) of the input,
-    coarse-grained with the model's filter; returns ``(iterator, notes)``.
+    coarse-grained with the model's filter; returns ``(iterator, notes)``. The input is read
+    with the model's recorded input options (variables, group, mask, levels, spacing), each
+    replaced by ``input_options``' where given.
 
     The file is opened and checked now (UserError naming the problem); snapshots are read
     one at a time as the iterator is consumed.
     """
     from closure.io import open_fields
+    from closure.pipeline import derivative_passes
     from closure.residuals import coarse_grain_snapshot
 
     info = provenance_input(model)
     notes: list[str] = []
+    opts = dict(info["options"])
+    overrides = {k: v for k, v in dict(input_options or {}).items() if v is not None}
+    if "variables" in overrides:
+        info["variables"] = dict(overrides.pop("variables"))
+    opts.update(overrides)
     src = open_fields(input_path, info["variables"] or None, info["scalars"],
-                      bool(info["periodic"]))
+                      bool(info["periodic"]), group=opts["group"], mask=opts["mask"],
+                      levels=opts["levels"], spacing=opts["spacing"])
     try:
         cg = coarse_graining_of(model, src.grid)
         if indices is None:
@@ -133,15 +150,21 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
         def coarse(snap):
             return favre_coarse_grain(snap, cg, targets=model.components)
     else:
+        land = str((getattr(model, "settings", None) or {}).get("land", {}).get("convention")
+                   or "zero")
+        passes = derivative_passes(model.library)
+
         def coarse(snap):
-            return coarse_grain_snapshot(snap, cg, info["scalars"])
+            return coarse_grain_snapshot(snap, cg, info["scalars"], land=land,
+                                         scheme=model.scheme, derivative_passes=passes)
 
     def iterate():
         try:
             for done, i in enumerate(indices):
                 if progress is not None:
                     progress("snapshots", done, len(indices))
-                yield coarse(src.snapshot(i))
+                for level in ([None] if src.levels is None else src.levels):
+                    yield coarse(src.snapshot(i, level))
             if progress is not None:
                 progress("snapshots", len(indices), len(indices))
         finally:
@@ -152,7 +175,8 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
 def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLike | None = None,
                  *, les=None, sweep=None, snapshots=None,
-                 progress: Progress | None = None) -> Path:
+                 progress: Progress | None = None, input_options: Mapping | None = None
+                 ) -> Path:
     """Build the report folder of a model from files and return its path.
 
     ``model``: a ClosureModel, its dict, or a model file path. ``input_path``: the fine-grid
@@ -161,6 +185,7 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
     model's filter and compared with the model. Without an input the a priori figures are left
     out. ``les``: a posteriori result (object, dict or JSON path from ``closure les``);
     ``sweep``: sweep result (SweepResult, dict or JSON path from ``closure sweep``).
+    ``input_options``: see :func:`held_out_snapshots`.
     """
     from closure.report.aposteriori import as_runs
     from closure.report.apriori import apriori_data, reference_network_of
@@ -179,19 +204,27 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
         _sweep_dict(sweep)
     notes: list[str] = []
     if input_path is None:
-        recorded = provenance_input(model)["path"]
-        candidates = [Path(recorded)] if recorded else []
-        if recorded and model_file is not None and not Path(recorded).is_absolute():
-            candidates.append(model_file.parent / recorded)  # a folder moved as a whole
-        found = next((c for c in candidates if c.is_file()), None)
-        if found is not None:
-            input_path = found
+        paths = provenance_input(model)["paths"]
+        recorded = " ".join(map(str, paths)) if paths else None
+        found = []
+        for r in paths:
+            candidates = [Path(r)]
+            if model_file is not None and not Path(r).is_absolute():
+                candidates.append(model_file.parent / r)  # a folder moved as a whole
+            hit = next((c for c in candidates if c.is_file() or c.is_dir()), None)
+            if hit is None:
+                found = []
+                break
+            found.append(hit)
+        if found:
+            input_path = found if len(found) > 1 else found[0]
         elif recorded:
             notes.append(f"the model's input file {recorded} is not available here: give it "
                          "with --input to include the a priori comparison")
     apriori = None
     if input_path is not None:
-        snaps, more = held_out_snapshots(model, input_path, snapshots, progress)
+        snaps, more = held_out_snapshots(model, input_path, snapshots, progress,
+                                         input_options)
         notes += more
         apriori = apriori_data(model, snaps, network=reference_network_of(model, notes))
     if progress is not None:
