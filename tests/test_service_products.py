@@ -330,7 +330,8 @@ def _rss_kib(pid: int) -> int:
 @pytest.mark.slow
 def test_download_streams_with_constant_memory(stack, client, data, tmp_path):
     """A 256 MiB product goes through the API with its resident memory growing by far less
-    than the file (a budget of 48 MiB), in many chunks, and a range request over HTTP."""
+    than the file (a budget of 48 MiB; reading the file into one response grows it by
+    about 760 MiB), and a range request over HTTP."""
     size = 256 << 20
     big = tmp_path / "big-product.nc"
     rng = np.random.default_rng(0)
@@ -358,20 +359,18 @@ def test_download_streams_with_constant_memory(stack, client, data, tmp_path):
     sampler.start()
     import httpx
 
-    chunks = 0
     try:
         with httpx.stream("GET", f"{stack.server_url}/products/{row['id']}/data",
                           timeout=120) as r:
             assert r.status_code == 200
             for _ in r.iter_raw():
-                chunks += 1
+                pass
         out = client.fetch(row["id"], tmp_path / "fetched.nc")
     finally:
         done.set()
         sampler.join()
     growth_mib = (peak[0] - before) / 1024
     assert growth_mib < 48, f"the API grew by {growth_mib:.0f} MiB for a 256 MiB download"
-    assert chunks > 16
     assert out.stat().st_size == size
     assert hashlib.sha256(out.read_bytes()).hexdigest() == digest == row["sha256"]
     r = httpx.get(f"{stack.server_url}/products/{row['id']}/data",
