@@ -91,7 +91,11 @@ def _scalars(spec: JobSpec) -> tuple[str, ...]:
 
 def _open(spec: JobSpec):
     from closure.io import open_fields
+    from closure.products import open_coarse_input
 
+    coarse = open_coarse_input(_input_path(spec))  # a coarse product: no second fine pass
+    if coarse is not None:
+        return coarse
     return open_fields(_input_path(spec), spec.input.variables or None, _scalars(spec),
                        spec.input.periodic)
 
@@ -162,7 +166,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     from closure.io import sha256_file
 
     path = _input_path(spec)
-    grid = src.grid
+    coarse = getattr(src, "coarse_graining", None)  # a coarse input (closure.products)
+    grid = src.grid if coarse is None else coarse.fine
     n = src.n_snapshots
     times = None if src.times is None else [float(t) for t in src.times]
     velocity = list(src.velocity)
@@ -185,6 +190,10 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     train, test = chosen[:len(chosen) - n_test], chosen[len(chosen) - n_test:]
 
     cg = _coarse_graining(spec, grid)
+    if coarse is not None:
+        from closure.products import check_coarse_input
+
+        check_coarse_input(src, cg)
     check_scheme(spec.scheme, cg.coarse)
     library = _library(spec, grid.dims)
     if len(library.terms) == 0:
@@ -206,7 +215,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "sha256": sha,
         "input": {"path": str(path), "sha256": sha, **_stamp(path),
                   "variables": dict(spec.input.variables), "scalars": list(_scalars(spec)),
-                  "periodic": bool(spec.input.periodic), "n_snapshots": int(n)},
+                  "periodic": bool(spec.input.periodic), "n_snapshots": int(n),
+                  **({"product_id": src.attrs.get("closure_product_id")} if coarse else {})},
         "snapshots": [int(i) for i in chosen],
         "train": [int(i) for i in train],
         "test": [int(i) for i in test],
@@ -277,6 +287,12 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
     own = source is None
     src = _open(spec) if own else source
     try:
+        if hasattr(src, "coarse_graining"):  # a coarse input: read, not computed
+            from closure.products import coarse_input_snapshot
+
+            cs = coarse_input_snapshot(src, index, plan["components"])
+            return cs, _coarse_graining(spec, src.coarse_graining.fine), \
+                _library(spec, cs.grid.dims)
         snap = src.snapshot(int(index))
     finally:
         if own:
@@ -486,6 +502,8 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
     return {
         "input": plan["input"]["path"],
         "sha256": plan["sha256"],
+        **({"product_id": plan["input"]["product_id"]} if plan["input"].get("product_id")
+           else {}),
         "variables": dict(plan["input"].get("variables") or {}),
         "snapshots": {"train": list(plan["train"]), "test": list(plan["test"])},
         "times": plan.get("times"),

@@ -341,3 +341,51 @@ def coarse_grain_product(spec: CoarseGrainSpec, output: str | os.PathLike,
         return assemble(p, work, output, attrs, progress)
     finally:
         shutil.rmtree(work, ignore_errors=True)
+
+
+# --------------------------------------------------------------------------- discovery input
+
+def open_coarse_input(path: str | os.PathLike):
+    """The coarse file at ``path`` (a product, or what ``closure coarse-grain`` writes)
+    opened with :func:`closure.io.open_coarse` (a product's root group: its first setting);
+    None when the file is not a coarse file (then it holds fine-grid fields)."""
+    from closure.io import COARSE_FILE_KIND, open_coarse
+
+    try:
+        with netCDF4.Dataset(path) as nc:
+            kind = getattr(nc, "closure_file", None)
+    except OSError:
+        return None  # not netCDF: the fine-grid reader gives the message
+    return open_coarse(path) if kind == COARSE_FILE_KIND else None
+
+
+def check_coarse_input(src, cg) -> None:
+    """UserError unless the coarse file ``src`` was made by the coarse-graining ``cg`` (the
+    job's filter), so that discovery from it equals discovery from the fine data."""
+    made = src.coarse_graining
+    same = made.kind == cg.kind and made.ratio == cg.ratio and \
+        np.allclose(made.widths, cg.widths, rtol=1e-9, atol=0) and \
+        made.fine.shape == cg.fine.shape
+    if not same:
+        cells = ", ".join(f"{w / h:g}" for w, h in zip(made.widths, made.fine.spacing,
+                                                       strict=True))
+        raise UserError(
+            f"{src.path} holds data coarse-grained with the {made.kind} filter, ratio "
+            f"{made.ratio}, width {cells} grid spacings (a product's first setting), not the "
+            f"job's {cg.kind} filter, ratio {cg.ratio}: set filter.kind, filter.ratio and "
+            "filter.width to match, or use a product made with the job's filter")
+
+
+def coarse_input_snapshot(src, index: int, components: Sequence[str]):
+    """Snapshot ``index`` (its position in the coarse file) of a coarse input, with the
+    targets ``components`` (UserError naming a missing one). Its ``index`` is the position,
+    as the plan counts snapshots."""
+    import dataclasses
+
+    cs = src.snapshot(int(index))
+    missing = [c for c in components if c not in cs.targets]
+    if missing:
+        raise UserError(f"{src.path} has no {', '.join(missing)} (it has "
+                        f"{', '.join(cs.targets) or 'no targets'}): make a product with this "
+                        "target, or discover from the fine data")
+    return dataclasses.replace(cs, index=int(index))

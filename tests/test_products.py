@@ -227,3 +227,45 @@ def test_store_products_block(fine, tmp_path):
     assert not st.product_dir(row["id"]).exists()
     with pytest.raises(NotFoundError, match="list them with GET /products"):
         st.get_product(row["id"])
+
+
+# ------------------------------------------------------------------- products feed discovery
+
+@pytest.mark.parametrize("periodic", [True, False], ids=["periodic", "bounded"])
+def test_discovery_from_a_product_equals_discovery_from_the_fine_data(fine, tmp_path,
+                                                                      periodic):
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    cg = parse_coarse_grain_spec({"input": {"path": str(fine), "periodic": periodic},
+                                  "filters": [{"ratio": 4}, {"ratio": 2}]})
+    products.coarse_grain_product(cg, tmp_path / "p.nc", attrs={"closure_product_id": "pr-1"})
+    common = {"filter": {"ratio": 4}, "fit": {"resamples": 4}, "target": "vorticity",
+              "scheme": "spectral" if periodic else "fd4"}
+    direct = pipeline.discover(parse_spec(
+        {"input": {"path": str(fine), "periodic": periodic}, **common}))
+    from_product = pipeline.discover(parse_spec(
+        {"input": {"path": str(tmp_path / "p.nc"), "periodic": periodic}, **common}))
+    assert from_product.names == direct.names
+    assert np.array_equal(from_product.coefficients, direct.coefficients)
+    assert from_product.scores == direct.scores
+    assert from_product.provenance["product_id"] == "pr-1"
+    assert "product_id" not in direct.provenance
+
+
+def test_discovery_from_a_product_needs_its_filter_and_target(fine, tmp_path):
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    cg = parse_coarse_grain_spec({"input": {"path": str(fine)}, "filters": [{"ratio": 4}],
+                                  "targets": ["stress"], "transfers": []})
+    products.coarse_grain_product(cg, tmp_path / "p.nc")
+    with pytest.raises(UserError, match=r"coarse-grained with the gaussian filter, ratio 4, "
+                                        r"width 8, 8 grid spacings .* not the job's gaussian "
+                                        r"filter, ratio 2"):
+        pipeline.check(parse_spec({"input": {"path": str(tmp_path / "p.nc")},
+                                   "filter": {"ratio": 2}}))
+    with pytest.raises(UserError, match=r"has no vorticity_forcing .* make a product with "
+                                        r"this target"):
+        pipeline.discover(parse_spec({"input": {"path": str(tmp_path / "p.nc")},
+                                      "target": "vorticity", "fit": {"resamples": 2}}))

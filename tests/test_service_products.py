@@ -406,3 +406,32 @@ def test_cli_submit_list_and_fetch(stack, data, tmp_path):
     r = run("fetch", "pr-nope", "-o", str(tmp_path / "x.nc"), check=False)
     assert r.returncode == 2 and "no product with id 'pr-nope'" in r.stderr
     assert not (tmp_path / "x.nc").exists()
+
+
+@pytest.mark.slow
+def test_discovery_job_from_a_stored_product(stack, client, data):
+    """A discovery job whose input.dataset_id is a product id reads the product (no second
+    pass over the fine data) and gives the model in-process discovery gives from the fine
+    data; the model's provenance names the product."""
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    job = client.submit_coarse_grain(cg_spec(data["small"], [{"ratio": 4}, {"ratio": 2}]))
+    product_id = client.wait(job["id"], timeout=180, poll=0.2)["product_id"]
+    common = {"filter": {"ratio": 4}, "fit": {"resamples": 4, "seed": 11}}
+    doc = client.submit({"input": {"dataset_id": product_id}, **common})
+    final = client.wait(doc["id"], timeout=180, poll=0.2)
+    model = client.closure_model(final["model_id"])
+    direct = pipeline.discover(parse_spec({"input": {"path": str(data["small"])}, **common}))
+    assert model.names == direct.names
+    np.testing.assert_array_equal(model.coefficients, direct.coefficients)
+    assert model.provenance["product_id"] == product_id
+    # a filter the product was not made with is refused at submission
+    from closure.client import ServiceError
+
+    with pytest.raises(ServiceError, match="not the job's gaussian filter, ratio 2") as err:
+        client.submit({"input": {"dataset_id": product_id}, "filter": {"ratio": 2}})
+    assert err.value.status == 400
+    with pytest.raises(ServiceError, match="no product with id 'pr-nope'") as err:
+        client.submit({"input": {"dataset_id": "pr-nope"}})
+    assert err.value.status == 404

@@ -135,8 +135,12 @@ def plan_task(job_id: str) -> dict:
 def _open_planned(plan: dict):
     """The planned input file, opened as the plan read it (closure.io.open_fields)."""
     from closure.io import open_fields
+    from closure.products import open_coarse_input
 
     inp = plan["input"]
+    coarse = open_coarse_input(inp["path"])  # a coarse product (closure.products)
+    if coarse is not None:
+        return coarse
     return open_fields(inp["path"], inp.get("variables") or None, tuple(inp.get("scalars") or ()),
                        bool(inp.get("periodic", True)))
 

@@ -65,6 +65,26 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     return q.status(store, conn, job_id)
 
 
+def product_as_dataset(spec, store: Store):
+    """A discovery spec whose ``input.dataset_id`` names a stored product (``pr-...``) reads
+    that product's file: it is entered as a dataset of its own and the spec points at it
+    (the pipeline then reads the coarse fields and exact terms instead of the fine data).
+    Any other spec is returned as it is."""
+    inp = getattr(spec, "input", None)
+    if inp is None or not (inp.dataset_id or "").startswith("pr-"):
+        return spec
+    row = store.get_product(inp.dataset_id)
+    path = store.product_dir(row["id"]) / "product.nc"
+    if not path.is_file():
+        raise InputFileError(f"product {row['id']}: its file is gone from the store; "
+                             "submit its coarse-graining job again")
+    st = path.stat()
+    ds = store.dataset_by_path(path, st.st_size, st.st_mtime_ns) or store.add_dataset(
+        sha256=row["sha256"], path=path, source="product", size=st.st_size,
+        mtime_ns=st.st_mtime_ns, n_snapshots=row["n_snapshots"])
+    return spec.model_copy(update={"input": inp.model_copy(update={"dataset_id": ds["id"]})})
+
+
 @router.get("/products", summary="Coarse-grained products, newest first")
 def list_products(dataset: str | None = Query(
                       None, description="only products of this input (dataset id or SHA-256)"),
