@@ -430,6 +430,52 @@ class Client:
         raise ServiceError(f"{msg} (HTTP {r.status_code})", status=r.status_code, detail=detail,
                            kind=kind)
 
+    # -- filter-width sweeps
+
+    def submit_sweep(self, spec, widths, *, ratios=None, name: str | None = None,
+                     upload: bool | None = None, **options) -> dict:
+        """Submit a filter-width sweep: the discovery job ``spec`` (a JobSpec, its dict, or
+        an input file path with discover ``options``) at each of ``widths``; returns the
+        job's status (``sweep_id`` once done). One task per width, spread over the workers."""
+        from closure.spec import parse_sweep_spec
+
+        if isinstance(spec, JobSpec):
+            base = spec.model_dump(mode="json", exclude_none=True)
+        elif isinstance(spec, dict):
+            base = spec_from_options(base=spec, **options) if options else dict(spec)
+        else:
+            base = spec_from_options(spec, **options)
+        params = {"name": name} if name else None
+
+        def post(discovery: dict) -> dict:
+            body = {"kind": "sweep", "discovery": discovery, "widths": list(widths),
+                    **({"ratios": list(ratios)} if ratios else {})}
+            parse_sweep_spec(body)  # the same message locally as the server would give
+            return self._json("POST", "/jobs", json=body, params=params)
+
+        local = base.get("input", {}).get("path")
+        if local is None or upload is False or not (upload or Path(local).is_file()):
+            return post(base)
+        if not upload:  # by path when the server may read it, else upload
+            try:
+                return post(dict(base, input={**base["input"],
+                                              "path": str(Path(local).resolve())}))
+            except ServiceError as exc:
+                if exc.status != 403:
+                    raise
+        inp = base["input"]
+        ds = self.upload(local, variables=inp.get("variables"), scalars=inp.get("scalars") or (),
+                         periodic=inp.get("periodic", True))
+        return post(dict(base, input={**{k: v for k, v in inp.items() if k != "path"},
+                                      "dataset_id": ds["id"]}))
+
+    def sweep(self, sweep_id: str) -> dict:
+        """A stored sweep result (entries per width, ``model_ids``)."""
+        return self._json("GET", f"/sweeps/{sweep_id}")
+
+    def sweeps(self) -> list[dict]:
+        return self._json("GET", "/sweeps")
+
 
 # --------------------------------------------------------------------------- coarse-graining
 

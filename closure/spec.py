@@ -288,6 +288,41 @@ def parse_coarse_grain_spec(data: dict | str) -> CoarseGrainSpec:
             "job spec", "coarse-graining spec", 1)) from None
 
 
+class SweepSpec(_Strict):
+    """A filter-width sweep on the queue: the discovery job ``discovery`` at each of
+    ``widths`` (closure.sweep.sweep_specs: widths in its filter.width_units, ratios one for
+    all, one per width, or derived as D / 2), one task per width, and the sweep result
+    stored (closure.sweep.SweepResult) with each width's model."""
+
+    version: Literal[1] = SPEC_VERSION
+    kind: Literal["sweep"] = "sweep"
+    discovery: JobSpec
+    widths: list[Annotated[float, Field(gt=0)]] = Field(..., min_length=1, max_length=32)
+    ratios: list[Annotated[int, Field(ge=1, le=1024)]] | None = None
+
+    @property
+    def input(self) -> InputSpec:
+        return self.discovery.input
+
+    def fingerprint(self) -> dict:
+        """The fields that determine the result, without the file's location."""
+        d = self.model_dump(mode="json")
+        d["input"] = self.discovery.fingerprint()["input"]
+        d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
+        return d
+
+
+def parse_sweep_spec(data: dict | str) -> SweepSpec:
+    """Validate a sweep spec; OptionError naming each bad field."""
+    try:
+        if isinstance(data, str):
+            return SweepSpec.model_validate_json(data)
+        return SweepSpec.model_validate(data)
+    except ValidationError as exc:
+        raise OptionError(format_validation_error(exc).replace("job spec", "sweep spec",
+                                                               1)) from None
+
+
 def _spec_kind(value) -> str:
     """The ``kind`` of a spec (dict or model); a missing kind is a discovery job."""
     if isinstance(value, dict):
@@ -295,9 +330,11 @@ def _spec_kind(value) -> str:
     return getattr(value, "kind", "discover")
 
 
-#: the body of POST /jobs: a discovery job (``kind`` "discover", the default) or a
-#: coarse-graining job (``kind`` "coarse-grain")
+#: the body of POST /jobs: a discovery job (``kind`` "discover", the default), a
+#: coarse-graining job (``kind`` "coarse-grain") or a filter-width sweep (``kind`` "sweep")
 AnyJobSpec = Annotated[
-    Annotated[JobSpec, Tag("discover")] | Annotated[CoarseGrainSpec, Tag("coarse-grain")],
+    Annotated[JobSpec, Tag("discover")] | Annotated[CoarseGrainSpec, Tag("coarse-grain")]
+    | Annotated[SweepSpec, Tag("sweep")],
     Discriminator(_spec_kind, custom_error_type="invalid_kind",
-                  custom_error_message="kind must be 'discover' (the default) or 'coarse-grain'")]
+                  custom_error_message="kind must be 'discover' (the default), 'coarse-grain' "
+                                       "or 'sweep'")]

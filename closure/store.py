@@ -627,6 +627,55 @@ class Store:
             shutil.rmtree(gone, ignore_errors=True)
         return row
 
+    # -- filter-width sweeps run on the queue (files only: sweeps/<id>/sweep.json)
+
+    def sweep_dir(self, sweep_id: str) -> Path:
+        return self.root / "sweeps" / _check_id(sweep_id)
+
+    def add_sweep(self, *, result: dict, fingerprint: str, job_id: str | None) -> dict:
+        """Store a sweep result (closure.sweep.SweepResult's dict plus ``model_ids``) in a
+        folder built under a temporary name and renamed into place; idempotent."""
+        sweep_id = sweep_id_for(fingerprint)
+        final = self.sweep_dir(sweep_id)
+        final.parent.mkdir(exist_ok=True)
+        if not final.exists():
+            tmp = final.parent / f".tmp-{sweep_id}-{uuid.uuid4().hex[:8]}"
+            tmp.mkdir()
+            try:
+                write_json_atomic(tmp / "sweep.json", {**result, "id": sweep_id,
+                                                       "job_id": job_id, "created": time.time()})
+                try:
+                    os.rename(tmp, final)
+                except OSError:
+                    if not final.exists():
+                        raise
+            finally:
+                if tmp.exists():
+                    shutil.rmtree(tmp, ignore_errors=True)
+        return self.get_sweep(sweep_id)
+
+    def get_sweep(self, sweep_id: str, missing_ok: bool = False) -> dict | None:
+        path = self.sweep_dir(sweep_id) / "sweep.json"
+        if not path.is_file():
+            if missing_ok:
+                return None
+            raise NotFoundError(f"no sweep with id {sweep_id!r}; list them with GET /sweeps")
+        return read_json(path)
+
+    def sweep_by_fingerprint(self, fingerprint: str) -> dict | None:
+        return self.get_sweep(sweep_id_for(fingerprint), missing_ok=True)
+
+    def list_sweeps(self) -> list[dict]:
+        """Stored sweeps (id, job, widths, model ids), newest first."""
+        folder = self.root / "sweeps"
+        out = []
+        for path in folder.glob("sw-*/sweep.json") if folder.is_dir() else ():
+            d = read_json(path)
+            out.append({"id": d["id"], "job_id": d.get("job_id"), "created": d.get("created"),
+                        "widths": [e.get("width_cells") for e in d.get("entries", [])],
+                        "model_ids": d.get("model_ids", [])})
+        return sorted(out, key=lambda r: -(r["created"] or 0))
+
     # -- internals
 
     def _update(self, table: sa.Table, row_id: str, **fields) -> None:
@@ -705,3 +754,7 @@ products_table = sa.Table(
 def product_id_for(fingerprint: str) -> str:
     """The product id is a function of the fingerprint, like a model's."""
     return "pr-" + fingerprint[:20]
+
+
+def sweep_id_for(fingerprint: str) -> str:
+    return "sw-" + fingerprint[:20]

@@ -154,7 +154,7 @@ def test_job_kind_selects_the_schema():
     assert isinstance(adapter.validate_python({"kind": "coarse-grain", "input": {"path": "a"}}),
                       CoarseGrainSpec)
     with pytest.raises(Exception, match="kind must be 'discover'"):
-        adapter.validate_python({"kind": "sweep", "input": {"path": "a"}})
+        adapter.validate_python({"kind": "tune", "input": {"path": "a"}})
 
 
 def test_wanted_variables_and_their_errors():

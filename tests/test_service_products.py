@@ -107,8 +107,8 @@ def test_a_stored_product_answers_an_identical_submission(api, data):
     (cg_spec("small.nc", [{"ratio": 2}], dtype="int8"), 422,
      "dtype: must be one of 'float64' or 'float32'"),
     (cg_spec("small.nc", [{"ratio": 2}, {"ratio": 2}]), 422, "repeats an earlier one"),
-    ({"kind": "sweep", "input": {"path": "small.nc"}}, 422,
-     "kind must be 'discover' (the default) or 'coarse-grain'"),
+    ({"kind": "tune", "input": {"path": "small.nc"}}, 422,
+     "kind must be 'discover' (the default), 'coarse-grain' or 'sweep'"),
     (cg_spec("/etc/passwd", [{"ratio": 2}]), 403, "outside the data roots"),
     (cg_spec("nothere.nc", [{"ratio": 2}]), 422, "no such file under the data roots"),
 ], ids=["ratio", "flux", "dtype", "repeated", "kind", "outside", "missing"])
@@ -435,3 +435,50 @@ def test_discovery_job_from_a_stored_product(stack, client, data):
     with pytest.raises(ServiceError, match="no product with id 'pr-nope'") as err:
         client.submit({"input": {"dataset_id": "pr-nope"}})
     assert err.value.status == 404
+
+
+# --------------------------------------------------------------------------- sweeps
+
+def test_sweep_user_errors_are_4xx(api, data):
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 2}}
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 200]})
+    assert r.status_code == 400, r.text
+    assert r.json()["detail"].startswith("widths[1] (200): ")
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": []})
+    assert r.status_code == 422 and "widths: " in r.json()["detail"]
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 8],
+                                "ratios": [1, 2, 3]})
+    assert r.status_code == 422 and "3 ratios for 2 widths" in r.json()["detail"]
+    assert api.get("/sweeps/sw-nope").status_code == 404
+    assert "no sweep with id 'sw-nope'" in api.get("/sweeps/sw-nope").json()["detail"]
+    doc = api.get("/openapi.json").json()
+    assert "/sweeps/{sweep_id}" in doc["paths"] and "SweepSpec" in doc["components"]["schemas"]
+    assert not any((api.store.root / "jobs").iterdir())
+
+
+@pytest.mark.slow
+def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data):
+    from closure.sweep import run_sweep
+    from worker import queue as q
+
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 4, "seed": 21}}
+    job = client.submit_sweep(base, [4, 6, 8], ratios=[2])
+    doc = client.wait(job["id"], timeout=300, poll=0.2)
+    assert doc["state"] == "succeeded" and doc["sweep_id"].startswith("sw-")
+    result = client.sweep(doc["sweep_id"])
+    direct = run_sweep(base, [4, 6, 8], [2]).to_dict()
+    assert [e["delta"] for e in result["entries"]] == [e["delta"] for e in direct["entries"]]
+    for got, want in zip(result["entries"], direct["entries"], strict=True):
+        assert got["terms"].keys() == want["terms"].keys()
+        for name, t in want["terms"].items():
+            a, b = got["terms"][name]["coefficient_scaled"], t["coefficient_scaled"]
+            assert abs(a - b) <= 1e-10 * max(1.0, abs(b)), (name, a, b)
+    # every width's model is stored like a discovery job's
+    for model_id in result["model_ids"]:
+        assert client.model(model_id)["id"] == model_id
+    conn = q.connect(stack.redis_url)
+    names = {q.fetch(conn, q.map_id(job["id"], k)).worker_name for k in range(3)}
+    assert len(names) == 2, names
+    again = client.submit_sweep(base, [4, 6, 8], ratios=[2])
+    assert again["reused"] and again["sweep_id"] == doc["sweep_id"]
+    assert doc["sweep_id"] in [s["id"] for s in client.sweeps()]

@@ -1,6 +1,7 @@
-"""CLI commands for coarse-graining jobs on a service and their products:
-``closure submit-coarse-grain``, ``closure products``, ``closure fetch``,
-``closure delete-product``."""
+"""CLI commands for coarse-graining jobs on a service and their products
+(``closure submit-coarse-grain``, ``closure products``, ``closure fetch``,
+``closure delete-product``), and for filter-width sweeps on the queue
+(``closure submit-sweep``)."""
 
 from __future__ import annotations
 
@@ -122,9 +123,65 @@ def delete_product(product_id: str = typer.Argument(..., help="product id"),
     typer.echo(f"deleted {product_id}")
 
 
+def submit_sweep(
+    input: Path = typer.Argument(..., help="netCDF file of fine-grid fields"),
+    widths: str = typer.Option(..., "--widths", help="filter widths, e.g. 4,8,16 (grid "
+                               "spacings by default)"),
+    ratios: str = typer.Option(None, "--ratios", help="one ratio for all widths or one per "
+                               "width (default: width / 2)"),
+    spec_file: Path = typer.Option(None, "--spec", help="the discovery spec JSON to sweep"),
+    filter: str = typer.Option(None, "--filter", help="box, gaussian, spectral or block"),
+    target: str = typer.Option(None, "--target", help="stress, force, vorticity or flux:NAME"),
+    resamples: int = typer.Option(None, "--resamples", help="resamples for uncertainty"),
+    seed: int = typer.Option(None, "--seed"),
+    name: str = typer.Option(None, "--name", help="a label for the job"),
+    wait: bool = typer.Option(False, "--wait", help="wait and print the sweep id"),
+    server: str = SERVER,
+    token: str = TOKEN,
+) -> None:
+    """Submit a filter-width sweep (one discovery per width, spread over the workers);
+    prints the job id as the last line (the sweep id with --wait)."""
+    from closure.client import JobFailedError, spec_from_options
+
+    def numbers(text: str, kind, flag: str) -> list:
+        try:
+            return [kind(x) for x in text.split(",") if x.strip()]
+        except ValueError:
+            raise OptionError(f"{flag} {text!r}: give numbers separated by commas") from None
+
+    base = None
+    if spec_file is not None:
+        try:
+            base = json.loads(spec_file.read_text())
+        except (OSError, ValueError) as exc:
+            raise OptionError(f"--spec {spec_file}: cannot read a JSON spec ({exc})") from None
+    spec = spec_from_options(input.resolve() if input.is_file() else input, filter=filter,
+                             target=target, resamples=resamples, seed=seed, base=base)
+    with _client(server, token) as c:
+        doc = c.submit_sweep(spec, numbers(widths, float, "--widths"),
+                             ratios=numbers(ratios, int, "--ratios") if ratios else None,
+                             name=name)
+        if not wait:
+            typer.echo(doc["id"])
+            return
+        try:
+            doc = c.wait(doc["id"])
+        except JobFailedError as exc:
+            typer.echo(f"error: {exc}", err=True)
+            raise typer.Exit(1) from None
+        result = c.sweep(doc["sweep_id"])
+    for e, model_id in zip(result["entries"], result["model_ids"], strict=True):
+        r2 = e["test_scores"].get("r2")
+        typer.echo(f"D = {e['delta']:.4g} (ratio {e['ratio']}): model {model_id}, held-out "
+                   f"R^2 {'-' if r2 is None else format(r2, '.3f')}")
+    typer.echo("a priori skill does not guarantee a stable or accurate coarse simulation")
+    typer.echo(doc["sweep_id"])
+
+
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
     app.command("submit-coarse-grain")(submit_coarse_grain)
     app.command("products")(products)
     app.command("fetch")(fetch)
     app.command("delete-product")(delete_product)
+    app.command("submit-sweep")(submit_sweep)
