@@ -401,6 +401,10 @@ def test_cli_submit_list_and_fetch(stack, data, tmp_path):
     with xr.open_dataset(target, group="setting_1") as ds:
         assert [v for v in ds.data_vars if v.startswith(("tau", "pi"))] == [
             "tau_xx", "tau_xy", "tau_yy", "pi"]
+    out = run("submit-sweep", str(data["small"]), "--widths", "4,6", "--ratios", "2",
+              "--resamples", "2", "--seed", "31", "--wait").stdout
+    assert out.strip().splitlines()[-1].startswith("sw-")
+    assert "a priori skill does not guarantee" in out
     r = run("submit-coarse-grain", str(data["small"]), "--ratio", "64", check=False)
     assert r.returncode == 2 and "filters[0]" in r.stderr
     r = run("fetch", "pr-nope", "-o", str(tmp_path / "x.nc"), check=False)
@@ -482,3 +486,20 @@ def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data)
     again = client.submit_sweep(base, [4, 6, 8], ratios=[2])
     assert again["reused"] and again["sweep_id"] == doc["sweep_id"]
     assert doc["sweep_id"] in [s["id"] for s in client.sweeps()]
+
+
+@pytest.mark.slow
+def test_a_bad_snapshot_fails_the_job_with_its_message(stack, client, data):
+    from closure.client import JobFailedError
+    from closure.io import write_netcdf
+
+    with xr.open_dataset(data["small"]) as ds:
+        ds = ds.load()
+    ds["u"][4, 0, 0] = float("nan")  # found when snapshot 4 is read, in a map task
+    broken = write_netcdf(ds, data["root"] / "broken.nc")
+    job = client.submit_coarse_grain(cg_spec(broken, [{"ratio": 2}]))
+    with pytest.raises(JobFailedError, match=r"snapshot 4: variable 'u' has 1 NaN") as err:
+        client.wait(job["id"], timeout=180, poll=0.2)
+    assert err.value.status_doc["state"] == "failed"
+    assert err.value.status_doc["product_id"] is None
+    assert job["id"] not in {p["job_id"] for p in client.products()}
