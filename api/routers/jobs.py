@@ -1,4 +1,4 @@
-"""/jobs: submit a discovery job, follow it, cancel it."""
+"""/jobs: submit a job (discovery, coarse-graining, sweep), follow it, cancel it."""
 
 from __future__ import annotations
 
@@ -18,7 +18,7 @@ from worker import queue as q
 router = APIRouter(tags=["jobs"], dependencies=[Depends(require_token)])
 
 
-@router.post("/jobs", status_code=202, summary="Submit a discovery or coarse-graining job")
+@router.post("/jobs", status_code=202, summary="Submit a discovery, coarse-graining or sweep job")
 def submit_job(spec: AnyJobSpec, response: Response,
                name: str | None = Query(None, max_length=200, description="a label for the job"),
                settings: Settings = Depends(get_settings), store: Store = Depends(get_store),
@@ -29,7 +29,8 @@ def submit_job(spec: AnyJobSpec, response: Response,
     ``input.dataset_id`` (from POST /datasets). An identical job (same input SHA-256 and spec
     fingerprint) is not run twice: the answer is the existing job (200, ``reused: true``),
     finished or still running. ``kind: "coarse-grain"`` queues a coarse-graining job (see
-    /products).
+    /products), ``kind: "sweep"`` a filter-width sweep (see /sweeps); a discovery job whose
+    ``input.dataset_id`` is a product id (``pr-...``) reads that product.
     """
     if spec.kind == "coarse-grain":
         return submit_coarse_grain(spec, response, name, settings, store, conn)
