@@ -19,7 +19,7 @@ from fastapi.responses import JSONResponse
 
 from api.deps import Settings
 from api.errors import AuthError, status_for
-from api.routers import datasets, health, jobs, models, reports, runs
+from api.routers import datasets, health, jobs, models, products, reports, runs, sweeps
 from closure import __version__
 from closure.errors import UserError
 
@@ -39,7 +39,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     app.state.store = None
     app.state.redis = None
-    for module in (jobs, datasets, models, runs, reports, health):
+    for module in (jobs, datasets, models, runs, reports, products, sweeps, health):
         app.include_router(module.router)
     _install_error_handlers(app)
     return app
@@ -91,6 +91,8 @@ def _describe(err: dict) -> dict:
     where = loc[0] if loc else ""
     if where in ("body", "query", "path", "header"):
         loc = loc[1:]
+    if where == "body" and loc[:1] in (["discover"], ["coarse-grain"], ["sweep"]):
+        loc = loc[1:]  # the job kind pydantic puts first in a POST /jobs error
     message = err.get("msg", "invalid")
     if err.get("type") == "json_invalid":  # loc is (body, character offset)
         loc = []

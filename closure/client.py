@@ -323,3 +323,194 @@ class Client:
             for name in names:
                 (tmp / name).write_bytes(self.report_file(model_id, name))
         return out_dir
+
+    # -- coarse-graining jobs and their products
+
+    def submit_coarse_grain(self, spec, *, name: str | None = None, upload: bool | None = None,
+                             **options) -> dict:
+        """Submit a coarse-graining job; returns its status (``id``, ``state``, ``reused``, and
+        ``product_id`` once done; follow it with :meth:`wait`).
+
+        ``spec`` is a CoarseGrainSpec, a spec dict, or the path of an input file (then
+        ``options`` are those of :func:`coarse_spec_from_options`: ``widths``, ``ratios``,
+        ``filter``, ``targets``, ``transfers``, ``dtype`` ...). A local file goes by path when it
+        lies under the server's data roots, else it is uploaded (``upload`` forces either way).
+        """
+        from closure.spec import CoarseGrainSpec, parse_coarse_grain_spec
+
+        if isinstance(spec, CoarseGrainSpec):
+            body = spec.model_dump(mode="json", exclude_none=True)
+        elif isinstance(spec, dict):
+            body = coarse_spec_from_options(base=spec, **options)
+        else:
+            body = coarse_spec_from_options(spec, **options)
+        params = {"name": name} if name else None
+        local = body.get("input", {}).get("path")
+        if local is not None and upload is not False and (upload or Path(local).is_file()):
+            if not upload:
+                by_path = dict(body, input={**body["input"], "path": str(Path(local).resolve())})
+                parse_coarse_grain_spec(by_path)
+                try:
+                    return self._json("POST", "/jobs", json=by_path, params=params)
+                except ServiceError as exc:
+                    if exc.status != 403:
+                        raise
+            inp = body["input"]
+            ds = self.upload(local, variables=inp.get("variables"),
+                             scalars=inp.get("scalars") or (), periodic=inp.get("periodic", True))
+            body = dict(body, input={**{k: v for k, v in inp.items() if k != "path"},
+                                     "dataset_id": ds["id"]})
+        parse_coarse_grain_spec(body)  # the same message locally as the server would give
+        return self._json("POST", "/jobs", json=body, params=params)
+
+
+    def products(self, dataset: str | None = None, limit: int = 100) -> list[dict]:
+        """Stored coarse-grained products, newest first (``dataset``: id or SHA-256 of the
+        input)."""
+        params = {"limit": limit, **({"dataset": dataset} if dataset else {})}
+        return self._json("GET", "/products", params=params)
+
+
+    def product(self, product_id: str) -> dict:
+        """A product's record: settings, variables, snapshots, size, sha256, spec."""
+        return self._json("GET", f"/products/{product_id}")
+
+
+    def delete_product(self, product_id: str) -> dict:
+        return self._json("DELETE", f"/products/{product_id}")
+
+
+    def fetch(self, product_id: str, path: str | os.PathLike, *, chunk_size: int = 1 << 20,
+               verify: bool = True) -> Path:
+        """Download a product's file to ``path``, streamed in chunks (constant memory), through a
+        temporary file renamed into place; its SHA-256 is checked against the server's record.
+        Returns ``path``."""
+        import hashlib
+        import tempfile
+
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+        digest = hashlib.sha256()
+        try:
+            with os.fdopen(fd, "wb") as out:
+                try:
+                    with self._http.stream("GET", f"/products/{product_id}/data") as r:
+                        if r.status_code >= 400:
+                            r.read()
+                            self._raise_for(r)
+                        expected = r.headers.get("x-content-sha256")
+                        for block in r.iter_bytes(chunk_size):
+                            out.write(block)
+                            digest.update(block)
+                except httpx.TransportError as exc:
+                    raise ServiceError(f"the download of product {product_id} from {self.server} "
+                                       f"broke off ({exc}); run it again") from None
+            if verify and expected and digest.hexdigest() != expected:
+                raise ServiceError(f"product {product_id}: the downloaded file's SHA-256 "
+                                   f"{digest.hexdigest()} is not the server's {expected}; "
+                                   "download it again")
+            from closure.atomic import ordinary_mode
+
+            ordinary_mode(tmp)
+            os.replace(tmp, path)
+        finally:
+            if os.path.exists(tmp):
+                os.unlink(tmp)
+        return path
+
+
+    def _raise_for(self, r: httpx.Response) -> None:
+        """Raise the ServiceError of an error answer (``_request``'s message)."""
+        try:
+            body = r.json()
+        except ValueError:
+            body = {"detail": r.text.strip() or r.reason_phrase}
+        detail = body.get("detail") if isinstance(body, dict) else body
+        kind = body.get("error") if isinstance(body, dict) else None
+        msg = detail if isinstance(detail, str) else str(detail)
+        raise ServiceError(f"{msg} (HTTP {r.status_code})", status=r.status_code, detail=detail,
+                           kind=kind)
+
+    # -- filter-width sweeps
+
+    def submit_sweep(self, spec, widths, *, ratios=None, name: str | None = None,
+                     upload: bool | None = None, **options) -> dict:
+        """Submit a filter-width sweep: the discovery job ``spec`` (a JobSpec, its dict, or
+        an input file path with discover ``options``) at each of ``widths``; returns the
+        job's status (``sweep_id`` once done). One task per width, spread over the workers."""
+        from closure.spec import parse_sweep_spec
+
+        if isinstance(spec, JobSpec):
+            base = spec.model_dump(mode="json", exclude_none=True)
+        elif isinstance(spec, dict):
+            base = spec_from_options(base=spec, **options) if options else dict(spec)
+        else:
+            base = spec_from_options(spec, **options)
+        params = {"name": name} if name else None
+
+        def post(discovery: dict) -> dict:
+            body = {"kind": "sweep", "discovery": discovery, "widths": list(widths),
+                    **({"ratios": list(ratios)} if ratios else {})}
+            parse_sweep_spec(body)  # the same message locally as the server would give
+            return self._json("POST", "/jobs", json=body, params=params)
+
+        local = base.get("input", {}).get("path")
+        if local is None or upload is False or not (upload or Path(local).is_file()):
+            return post(base)
+        if not upload:  # by path when the server may read it, else upload
+            try:
+                return post(dict(base, input={**base["input"],
+                                              "path": str(Path(local).resolve())}))
+            except ServiceError as exc:
+                if exc.status != 403:
+                    raise
+        inp = base["input"]
+        ds = self.upload(local, variables=inp.get("variables"), scalars=inp.get("scalars") or (),
+                         periodic=inp.get("periodic", True))
+        return post(dict(base, input={**{k: v for k, v in inp.items() if k != "path"},
+                                      "dataset_id": ds["id"]}))
+
+    def sweep(self, sweep_id: str) -> dict:
+        """A stored sweep result (entries per width, ``model_ids``)."""
+        return self._json("GET", f"/sweeps/{sweep_id}")
+
+    def sweeps(self) -> list[dict]:
+        return self._json("GET", "/sweeps")
+
+
+# --------------------------------------------------------------------------- coarse-graining
+
+def coarse_spec_from_options(path: str | os.PathLike | None = None, *,
+                             dataset_id: str | None = None, filter: str | None = None,
+                             widths=None, ratios=None, width_units: str | None = None,
+                             targets=None, transfers=None, dtype: str | None = None,
+                             variables: dict[str, str] | None = None, scalars=None,
+                             snapshots=None, periodic: bool | None = None,
+                             base: dict | None = None) -> dict:
+    """A coarse-graining spec dict (:class:`closure.spec.CoarseGrainSpec`) from options, on
+    top of ``base``. ``widths`` x ``ratios`` (each a number or a list) give one filter
+    setting per pair; validation is :func:`closure.spec.parse_coarse_grain_spec`'s."""
+    spec = spec_from_options(path, dataset_id=dataset_id, variables=variables, scalars=scalars,
+                             snapshots=snapshots, periodic=periodic,
+                             base={k: v for k, v in (base or {}).items()})
+    spec["kind"] = "coarse-grain"
+
+    def listed(value):
+        return None if value is None else list(value) if isinstance(value, list | tuple) \
+            else [value]
+
+    widths, ratios = listed(widths), listed(ratios)
+    if widths is not None or ratios is not None or filter is not None or width_units:
+        settings = []
+        for r in ratios or [None]:
+            for w in widths or [None]:
+                s = {k: v for k, v in (("kind", filter), ("width", w), ("ratio", r),
+                                       ("width_units", width_units)) if v is not None}
+                settings.append(s)
+        spec["filters"] = settings
+    for key, value in (("targets", listed(targets)), ("transfers", listed(transfers)),
+                       ("dtype", dtype)):
+        if value is not None:
+            spec[key] = value
+    return spec

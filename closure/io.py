@@ -1488,15 +1488,24 @@ class CoarseSource(_Reader):
         self.target_names: tuple[str, ...] = tuple(targets)
         self.velocity = tuple(c for c in ("u", "v", "w") if c in fields)
         self.scalars = tuple(c for c in fields if c not in (*self.velocity, "vorticity"))
+        # what the pipeline asks of any input (FieldSource's): one file, no level stack
+        self.paths = [self.path]
+        self.levels = None
+        self.notes: list[str] = []
+        self.warnings: list[str] = []
         self.source_index = (np.asarray(ds["snapshot"].values, dtype=int)
                              if "snapshot" in ds.variables else np.arange(self.n_snapshots))
         # the writer stores the source index as the time coordinate when there was no time
         self._has_time = TIME in ds.variables and ds[TIME].attrs.get("long_name") == "time"
 
-    def snapshot(self, i: int) -> CoarseSnapshot:
-        """Snapshot ``i``. In a file with land (``land_convention`` attribute) NaN marks land
-        in the fields and excluded points in the subgrid terms: they read as 0, and ``valid``
-        is True where every field and term is finite."""
+    def info(self) -> dict:
+        """How the input was read (FieldSource.info's counterpart): a coarse file."""
+        return {"coarse_file": True, "units": dict(self.units)}
+
+    def snapshot(self, i: int, level: int | None = None) -> CoarseSnapshot:
+        """Snapshot ``i`` (``level``: None; coarse files hold no level stacks). In a file with
+        land (``land_convention`` attribute) NaN marks land in the fields and excluded points in
+        the subgrid terms: they read as 0, and ``valid`` is True where all are finite."""
         i = self._check_index(i)
         land = "land_convention" in self.attrs
         fields = {n: self.read(n, i, missing_ok=land) for n in self.field_names}

@@ -128,15 +128,27 @@ def _scalars(spec: JobSpec) -> tuple[str, ...]:
 
 def _open(spec: JobSpec):
     from closure.io import open_input
+    from closure.products import open_coarse_input
 
+    paths = spec.input.paths if spec.input.path is not None else []
+    if len(paths) == 1:
+        coarse = open_coarse_input(paths[0])  # a coarse product: no second fine pass
+        if coarse is not None:
+            return coarse
     return open_input(spec.input, _scalars(spec))
 
 
 def open_planned(plan: Mapping):
     """The planned input, opened with the options the plan read it with (for workers)."""
     from closure.io import open_fields
+    from closure.products import open_coarse_input
 
     inp = plan["input"]
+    paths = inp.get("paths") or [inp["path"]]
+    if len(paths) == 1:
+        coarse = open_coarse_input(paths[0])  # a coarse product: no second fine pass
+        if coarse is not None:
+            return coarse
     opts = inp.get("options") or {}
     return open_fields(inp.get("paths") or inp["path"], inp.get("variables") or None,
                        tuple(inp.get("scalars") or ()), bool(inp.get("periodic", True)),
@@ -216,7 +228,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     from closure.io import input_stamps, sha256_file
 
     path = src.path if len(src.paths) == 1 else f"the {len(src.paths)} inputs"
-    grid = src.grid
+    coarse = getattr(src, "coarse_graining", None)  # a coarse input (closure.products)
+    grid = src.grid if coarse is None else coarse.fine
     n = src.n_snapshots
     levels = None if src.levels is None else list(src.levels)
     if spec.input.per_level and levels is not None and len(levels) > 1:
@@ -244,6 +257,10 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     train, test = chosen[:len(chosen) - n_test], chosen[len(chosen) - n_test:]
 
     cg = _coarse_graining(spec, grid)
+    if coarse is not None:
+        from closure.products import check_coarse_input
+
+        check_coarse_input(src, cg)
     check_scheme(spec.scheme, cg.coarse)
     library = _library(spec, grid.dims)
     if len(library.terms) == 0:
@@ -273,7 +290,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
                               "levels": levels,
                               "spacing": None if spec.input.spacing is None
                               else list(spec.input.spacing)},
-                  "read": src.info()},
+                  "read": src.info(),
+                  **({"product_id": src.attrs.get("closure_product_id")} if coarse else {})},
         "snapshots": [int(i) for i in chosen],
         "train": [int(i) for i in train],
         "test": [int(i) for i in test],
@@ -408,6 +426,12 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
     src = open_planned(plan) if own else source
     out, cg, library = [], None, None
     try:
+        if hasattr(src, "coarse_graining"):  # a coarse input: read, not computed
+            from closure.products import coarse_input_snapshot
+
+            cs = coarse_input_snapshot(src, index, plan["components"])
+            return [cs], _coarse_graining(spec, src.coarse_graining.fine), \
+                _library(spec, cs.grid.dims)
         for level in _levels(plan):
             snap = src.snapshot(int(index), level)
             cg = _coarse_graining(spec, snap.grid)
@@ -851,6 +875,8 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
         "sha256": plan["sha256"],
         "sha256_policy": "one file: its SHA-256; several files or a Zarr store: SHA-256 of the "
                          "sorted per-file SHA-256 lines (closure.io.input_sha256)",
+        **({"product_id": plan["input"]["product_id"]} if plan["input"].get("product_id")
+           else {}),
         "variables": dict(plan["input"].get("variables") or {}),
         "input_options": dict(plan["input"].get("options") or {}),
         "input_read": read,

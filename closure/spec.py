@@ -9,7 +9,16 @@ from __future__ import annotations
 import re
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Discriminator,
+    Field,
+    Tag,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
 
 from closure.errors import OptionError
 
@@ -294,3 +303,131 @@ def format_validation_error(exc: ValidationError) -> str:
             msg = f"must be one of {err['ctx']['expected']}"
         lines.append(f"{path}: {msg} (got {err.get('input')!r})")
     return "invalid job spec: " + "; ".join(lines)
+
+
+# --------------------------------------------------------------------------- coarse-graining jobs
+
+_TRANSFERS = ("pi", "enstrophy_transfer")
+
+
+class CoarseGrainSpec(_Strict):
+    """A coarse-graining job: filtered fields and exact subgrid terms of every selected
+    snapshot, for one or several filter settings, stored as a downloadable *product*.
+
+    Each entry of ``filters`` is one setting (kind, width, ratio); the product holds one data
+    set per setting (see :mod:`closure.products` for the layout). ``targets`` and
+    ``transfers`` None (the default) keep every target and transfer, as
+    ``closure coarse-grain`` does.
+    """
+
+    version: Literal[1] = SPEC_VERSION
+    kind: Literal["coarse-grain"] = "coarse-grain"
+    input: InputSpec
+    filters: list[FilterSpec] = Field(
+        default_factory=lambda: [FilterSpec()], min_length=1, max_length=32,
+        description="one entry per filter setting (kind, width, ratio)")
+    targets: list[str] | None = Field(
+        None, description="subgrid terms to compute: stress, force, vorticity (2-D), "
+        "flux:NAME (a scalar of input.scalars); default: every one")
+    transfers: list[Literal["pi", "enstrophy_transfer"]] | None = Field(
+        None, description="transfer maps: pi (energy), enstrophy_transfer (2-D); "
+        "default: every one")
+    dtype: Literal["float64", "float32"] = Field(
+        "float64", description="type of the stored fields and terms (coordinates stay float64)")
+    format: Literal["netcdf"] = Field("netcdf", description="product file format")
+
+    @field_validator("targets")
+    @classmethod
+    def _targets(cls, v: list[str] | None) -> list[str] | None:
+        if v is None:
+            return v
+        for t in v:
+            if not _TARGET.match(t):
+                raise ValueError(f"each target must be stress, force, vorticity or flux:NAME, "
+                                 f"got {t!r}")
+        return list(dict.fromkeys(v))
+
+    @field_validator("transfers")
+    @classmethod
+    def _transfers(cls, v):
+        return None if v is None else list(dict.fromkeys(v))
+
+    @field_validator("filters")
+    @classmethod
+    def _distinct(cls, v: list[FilterSpec]) -> list[FilterSpec]:
+        seen = set()
+        for k, f in enumerate(v):
+            key = f.model_dump_json()
+            if key in seen:
+                raise ValueError(f"filter setting {k} repeats an earlier one; give each once")
+            seen.add(key)
+        return v
+
+    def fingerprint(self) -> dict:
+        """The fields that determine the product (for identical-resubmission detection)."""
+        d = self.model_dump(mode="json")
+        d["input"] = {k: v for k, v in d["input"].items() if k not in ("path", "dataset_id")}
+        return d
+
+
+def parse_coarse_grain_spec(data: dict | str) -> CoarseGrainSpec:
+    """Validate a coarse-graining spec; OptionError naming each bad field."""
+    try:
+        if isinstance(data, str):
+            return CoarseGrainSpec.model_validate_json(data)
+        return CoarseGrainSpec.model_validate(data)
+    except ValidationError as exc:
+        raise OptionError(format_validation_error(exc).replace(
+            "job spec", "coarse-graining spec", 1)) from None
+
+
+class SweepSpec(_Strict):
+    """A filter-width sweep on the queue: the discovery job ``discovery`` at each of
+    ``widths`` (closure.sweep.sweep_specs: widths in its filter.width_units, ratios one for
+    all, one per width, or derived as D / 2), one task per width, and the sweep result
+    stored (closure.sweep.SweepResult) with each width's model."""
+
+    version: Literal[1] = SPEC_VERSION
+    kind: Literal["sweep"] = "sweep"
+    discovery: JobSpec
+    widths: list[Annotated[float, Field(gt=0)]] = Field(..., min_length=1, max_length=32)
+    ratios: list[Annotated[int, Field(ge=1, le=1024)]] | None = None
+
+    @property
+    def input(self) -> InputSpec:
+        return self.discovery.input
+
+    def fingerprint(self) -> dict:
+        """The fields that determine the result, without the file's location."""
+        d = self.model_dump(mode="json")
+        d["input"] = self.discovery.fingerprint()["input"]
+        d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
+        return d
+
+
+def parse_sweep_spec(data: dict | str) -> SweepSpec:
+    """Validate a sweep spec; OptionError naming each bad field."""
+    try:
+        if isinstance(data, str):
+            return SweepSpec.model_validate_json(data)
+        return SweepSpec.model_validate(data)
+    except ValidationError as exc:
+        raise OptionError(format_validation_error(exc).replace("job spec", "sweep spec",
+                                                               1)) from None
+
+
+def _spec_kind(value) -> str:
+    """The ``kind`` of a spec (dict or model); a missing kind is a discovery job."""
+    if isinstance(value, dict):
+        return value.get("kind", "discover")
+    return getattr(value, "kind", "discover")
+
+
+#: the body of POST /jobs: a discovery job (``kind`` "discover", the default), a
+#: coarse-graining job (``kind`` "coarse-grain") or a filter-width sweep (``kind`` "sweep")
+AnyJobSpec = Annotated[
+    Annotated[JobSpec, Tag("discover")] | Annotated[CoarseGrainSpec, Tag("coarse-grain")]
+    | Annotated[SweepSpec, Tag("sweep")],
+    Discriminator(_spec_kind, custom_error_type="invalid_kind",
+                  custom_error_message="kind must be 'discover' (the default), 'coarse-grain' "
+                                       "or 'sweep'")]

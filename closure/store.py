@@ -542,6 +542,140 @@ class Store:
         with self.engine.connect() as conn:
             return [dict(r) for r in conn.execute(stmt).mappings().all()]
 
+    # -- coarse-grained products (coarse-graining jobs; closure.products makes the files)
+
+    def product_dir(self, product_id: str) -> Path:
+        """A product's folder: ``product.nc`` and ``spec.json``."""
+        return self.root / "products" / _check_id(product_id)
+
+    def add_product(self, *, file: str | os.PathLike, fingerprint: str, dataset_sha256: str,
+                    spec: dict, plan: dict, job_id: str | None,
+                    name: str | None = None) -> dict:
+        """Store a finished product file (moved, not copied): its folder is built under a
+        temporary name and renamed into place, then entered in the catalog. Idempotent: a
+        product already stored under the same fingerprint is kept and returned."""
+        from closure.io import sha256_file
+
+        product_id = product_id_for(fingerprint)
+        final = self.product_dir(product_id)
+        final.parent.mkdir(exist_ok=True)
+        if not final.exists():
+            tmp = final.parent / f".tmp-{product_id}-{uuid.uuid4().hex[:8]}"
+            tmp.mkdir()
+            try:
+                os.replace(file, tmp / PRODUCT_FILE)
+                write_json_atomic(tmp / "spec.json", spec)
+                try:
+                    os.rename(tmp, final)
+                except OSError:
+                    if not final.exists():  # not a lost race with an identical reduce
+                        raise
+            finally:
+                if tmp.exists():
+                    shutil.rmtree(tmp, ignore_errors=True)
+        existing = self.get_product(product_id, missing_ok=True)
+        if existing is not None:
+            return existing
+        path = final / PRODUCT_FILE
+        settings = [{k: s.get(k) for k in ("group", "kind", "ratio", "width", "width_units",
+                                           "coarse_shape")} for s in plan.get("settings", [])]
+        row = dict(id=product_id, fingerprint=fingerprint, dataset_sha256=dataset_sha256,
+                   format=spec.get("format", "netcdf"), dtype=spec.get("dtype", "float64"),
+                   settings=settings, variables=list(plan.get("targets") or []),
+                   n_snapshots=len(plan.get("snapshots") or []), size=path.stat().st_size,
+                   sha256=sha256_file(path), job_id=job_id, name=name, spec=spec,
+                   created=time.time(), path=str(path))
+        try:
+            with self.engine.begin() as conn:
+                conn.execute(products_table.insert().values(**row))
+        except IntegrityError:
+            pass  # an identical reduce entered it first
+        return self.get_product(product_id)
+
+    def get_product(self, product_id: str, missing_ok: bool = False) -> dict | None:
+        with self.engine.connect() as conn:
+            row = conn.execute(sa.select(products_table).where(
+                products_table.c.id == product_id)).mappings().first()
+        if row is None:
+            if missing_ok:
+                return None
+            raise NotFoundError(f"no product with id {product_id!r}; list them with "
+                                "GET /products (`closure products`)")
+        return dict(row)
+
+    def product_by_fingerprint(self, fingerprint: str) -> dict | None:
+        return self.get_product(product_id_for(fingerprint), missing_ok=True)
+
+    def list_products(self, dataset_sha256: str | None = None, limit: int = 100) -> list[dict]:
+        """Products, newest first (``dataset_sha256``: of that input only)."""
+        stmt = sa.select(products_table).order_by(products_table.c.created.desc()).limit(limit)
+        if dataset_sha256:
+            stmt = stmt.where(products_table.c.dataset_sha256 == dataset_sha256)
+        with self.engine.connect() as conn:
+            return [dict(r) for r in conn.execute(stmt).mappings().all()]
+
+    def delete_product(self, product_id: str) -> dict:
+        """Remove a product from the catalog, then its folder; returns the removed record.
+        (A download already streaming keeps its open file to the end.)"""
+        row = self.get_product(product_id)
+        with self.engine.begin() as conn:
+            conn.execute(products_table.delete().where(products_table.c.id == product_id))
+        folder = self.product_dir(product_id)
+        if folder.exists():
+            gone = folder.parent / f".deleted-{product_id}-{uuid.uuid4().hex[:8]}"
+            os.rename(folder, gone)  # atomically out of sight, then removed
+            shutil.rmtree(gone, ignore_errors=True)
+        return row
+
+    # -- filter-width sweeps run on the queue (files only: sweeps/<id>/sweep.json)
+
+    def sweep_dir(self, sweep_id: str) -> Path:
+        return self.root / "sweeps" / _check_id(sweep_id)
+
+    def add_sweep(self, *, result: dict, fingerprint: str, job_id: str | None) -> dict:
+        """Store a sweep result (closure.sweep.SweepResult's dict plus ``model_ids``) in a
+        folder built under a temporary name and renamed into place; idempotent."""
+        sweep_id = sweep_id_for(fingerprint)
+        final = self.sweep_dir(sweep_id)
+        final.parent.mkdir(exist_ok=True)
+        if not final.exists():
+            tmp = final.parent / f".tmp-{sweep_id}-{uuid.uuid4().hex[:8]}"
+            tmp.mkdir()
+            try:
+                write_json_atomic(tmp / "sweep.json", {**result, "id": sweep_id,
+                                                       "job_id": job_id, "created": time.time()})
+                try:
+                    os.rename(tmp, final)
+                except OSError:
+                    if not final.exists():
+                        raise
+            finally:
+                if tmp.exists():
+                    shutil.rmtree(tmp, ignore_errors=True)
+        return self.get_sweep(sweep_id)
+
+    def get_sweep(self, sweep_id: str, missing_ok: bool = False) -> dict | None:
+        path = self.sweep_dir(sweep_id) / "sweep.json"
+        if not path.is_file():
+            if missing_ok:
+                return None
+            raise NotFoundError(f"no sweep with id {sweep_id!r}; list them with GET /sweeps")
+        return read_json(path)
+
+    def sweep_by_fingerprint(self, fingerprint: str) -> dict | None:
+        return self.get_sweep(sweep_id_for(fingerprint), missing_ok=True)
+
+    def list_sweeps(self) -> list[dict]:
+        """Stored sweeps (id, job, widths, model ids), newest first."""
+        folder = self.root / "sweeps"
+        out = []
+        for path in folder.glob("sw-*/sweep.json") if folder.is_dir() else ():
+            d = read_json(path)
+            out.append({"id": d["id"], "job_id": d.get("job_id"), "created": d.get("created"),
+                        "widths": [e.get("width_cells") for e in d.get("entries", [])],
+                        "model_ids": d.get("model_ids", [])})
+        return sorted(out, key=lambda r: -(r["created"] or 0))
+
     # -- internals
 
     def _update(self, table: sa.Table, row_id: str, **fields) -> None:
@@ -591,3 +725,36 @@ def _model_filter_width(model, spec) -> float | None:
             if isinstance(v, int | float):
                 return float(v)
     return float(spec.filter.width) if spec.filter.width is not None else None
+
+
+# --------------------------------------------------------------------------- products (catalog)
+
+PRODUCT_FILE = "product.nc"
+
+products_table = sa.Table(
+    "closure_products", _metadata,
+    sa.Column("id", sa.String(64), primary_key=True),
+    sa.Column("fingerprint", sa.String(64), nullable=False, index=True),
+    sa.Column("dataset_sha256", sa.String(64), nullable=False, index=True),
+    sa.Column("format", sa.String(16), nullable=False),
+    sa.Column("dtype", sa.String(16), nullable=False),
+    sa.Column("settings", sa.JSON, nullable=False),   # group, kind, ratio, width ... per setting
+    sa.Column("variables", sa.JSON),                  # the target variables computed
+    sa.Column("n_snapshots", sa.Integer, nullable=False),
+    sa.Column("size", sa.BigInteger, nullable=False),
+    sa.Column("sha256", sa.String(64), nullable=False),  # of the product file
+    sa.Column("job_id", sa.String(64)),
+    sa.Column("name", sa.Text),
+    sa.Column("spec", sa.JSON, nullable=False),
+    sa.Column("created", sa.Float, nullable=False),
+    sa.Column("path", sa.Text, nullable=False),
+)
+
+
+def product_id_for(fingerprint: str) -> str:
+    """The product id is a function of the fingerprint, like a model's."""
+    return "pr-" + fingerprint[:20]
+
+
+def sweep_id_for(fingerprint: str) -> str:
+    return "sw-" + fingerprint[:20]

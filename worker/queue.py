@@ -228,7 +228,11 @@ def status(store, conn: redis.Redis, job_id: str) -> dict:
         progress["phase"] = "done"
     elif row["state"] in ("failed", "canceled"):
         progress["phase"] = row["state"]
-    return {
+    from worker import products, sweeps  # these kinds also report what they stored
+
+    extra = products.status_fields(store, row) if products.is_coarse_grain(row) else \
+        sweeps.status_fields(store, row) if sweeps.is_sweep(row) else {}
+    return {**extra,
         "id": row["id"], "name": row["name"], "state": row["state"], "progress": progress,
         "model_id": row["model_id"], "error": row["error"], "reused": bool(row["reused"]),
         "input_sha256": row["input_sha256"], "dataset_id": row["dataset_id"],

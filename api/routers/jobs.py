@@ -1,4 +1,4 @@
-"""/jobs: submit a discovery job, follow it, cancel it."""
+"""/jobs: submit a job (discovery, coarse-graining, sweep), follow it, cancel it."""
 
 from __future__ import annotations
 
@@ -8,16 +8,18 @@ from fastapi.responses import JSONResponse
 from api.deps import Settings, get_redis, get_settings, get_store, require_token
 from api.errors import ConflictError
 from api.inputs import resolve_input
+from api.routers.products import product_as_dataset, submit_coarse_grain
+from api.routers.sweeps import submit_sweep
 from closure import pipeline
-from closure.spec import JobSpec
+from closure.spec import AnyJobSpec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
 
 router = APIRouter(tags=["jobs"], dependencies=[Depends(require_token)])
 
 
-@router.post("/jobs", status_code=202, summary="Submit a discovery job")
-def submit_job(spec: JobSpec, response: Response,
+@router.post("/jobs", status_code=202, summary="Submit a discovery, coarse-graining or sweep job")
+def submit_job(spec: AnyJobSpec, response: Response,
                name: str | None = Query(None, max_length=200, description="a label for the job"),
                settings: Settings = Depends(get_settings), store: Store = Depends(get_store),
                conn=Depends(get_redis)) -> dict:
@@ -26,8 +28,15 @@ def submit_job(spec: JobSpec, response: Response,
     The input is ``input.path`` (a file under the server's data roots) or
     ``input.dataset_id`` (from POST /datasets). An identical job (same input SHA-256 and spec
     fingerprint) is not run twice: the answer is the existing job (200, ``reused: true``),
-    finished or still running.
+    finished or still running. ``kind: "coarse-grain"`` queues a coarse-graining job (see
+    /products), ``kind: "sweep"`` a filter-width sweep (see /sweeps); a discovery job whose
+    ``input.dataset_id`` is a product id (``pr-...``) reads that product.
     """
+    if spec.kind == "coarse-grain":
+        return submit_coarse_grain(spec, response, name, settings, store, conn)
+    if spec.kind == "sweep":
+        return submit_sweep(spec, response, name, settings, store, conn)
+    spec = product_as_dataset(spec, store)  # input.dataset_id "pr-...": a stored product
     run_spec, dataset = resolve_input(spec, store, settings.data_roots)
     pipeline.check(run_spec)  # a ratio, width or library the data cannot take: 4xx now
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])

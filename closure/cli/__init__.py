@@ -47,6 +47,7 @@ from closure.cli import synth, coarse, discover, terms, apply, service, les, rep
 
 for _module in (synth, coarse, discover, terms, apply, service, les, report):
     _module.register(app)
+__import__("closure.cli.products", fromlist=["register"]).register(app)  # coarse-grain jobs
 
 
 def main(argv: list[str] | None = None) -> int:
