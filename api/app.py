@@ -42,13 +42,47 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     for module in (jobs, datasets, models, runs, reports, health):
         app.include_router(module.router)
     _install_error_handlers(app)
+    app.add_middleware(RefuseNulBytes)
     return app
+
+
+class RefuseNulBytes:
+    """Answer 400 to a request whose path or query string holds a NUL byte (no file name,
+    id or database text may contain one), before any route sees it."""
+
+    def __init__(self, app):
+        self.app = app
+
+    async def __call__(self, scope, receive, send):
+        if scope["type"] == "http":
+            from urllib.parse import unquote_to_bytes
+
+            raw = scope.get("raw_path") or scope.get("path", "").encode()
+            if b"\x00" in unquote_to_bytes(raw) or \
+                    b"\x00" in unquote_to_bytes(scope.get("query_string", b"")):
+                response = _error(400, "BadRequest", "the URL contains a NUL byte (%00); "
+                                  "ids, names and paths never do")
+                await response(scope, receive, send)
+                return
+        await self.app(scope, receive, send)
+
+
+#: bounds on an error answer: the message's characters and the number of listed field errors
+MAX_DETAIL = 2000
+MAX_ERRORS = 20
+
+
+def bounded(message: str, limit: int = MAX_DETAIL) -> str:
+    """``message`` cut to ``limit`` characters, saying how much was left out."""
+    if len(message) <= limit:
+        return message
+    return message[:limit] + f"... ({len(message) - limit} more characters left out)"
 
 
 def _error(status: int, kind: str, message: str, **extra) -> JSONResponse:
     headers = {"WWW-Authenticate": "Bearer"} if status == 401 else None
-    return JSONResponse({"detail": message, "error": kind, **extra}, status_code=status,
-                        headers=headers)
+    return JSONResponse({"detail": bounded(message), "error": kind, **extra},
+                        status_code=status, headers=headers)
 
 
 def _install_error_handlers(app: FastAPI) -> None:
@@ -59,9 +93,13 @@ def _install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):
-        errors = [_describe(e) for e in exc.errors()]
-        return _error(422, "ValidationError", "invalid request: " + "; ".join(
-            f"{e['field']}: {e['message']}" for e in errors), errors=errors)
+        all_errors = exc.errors()
+        errors = [_describe(e) for e in all_errors[:MAX_ERRORS]]
+        more = len(all_errors) - len(errors)
+        text = "; ".join(f"{e['field']}: {e['message']}" for e in errors)
+        if more:
+            text += f"; and {more} more error(s)"
+        return _error(422, "ValidationError", "invalid request: " + text, errors=errors)
 
     @app.exception_handler(redis.RedisError)
     async def _redis_down(request: Request, exc: redis.RedisError):
@@ -95,14 +133,14 @@ def _describe(err: dict) -> dict:
     if err.get("type") == "json_invalid":  # loc is (body, character offset)
         loc = []
         message = f"the request body is not valid JSON ({ctx_error(err)}); send the spec as JSON"
-    field = ".".join(loc) or ("request body" if where == "body" else "request")
+    field = bounded(".".join(loc), 200) or ("request body" if where == "body" else "request")
     ctx = err.get("ctx") or {}
     if err.get("type") == "literal_error" and "expected" in ctx:
         message = f"must be one of {ctx['expected']}"
     if "input" in err and err.get("type") != "missing":
         given = err["input"]
         if isinstance(given, str | int | float | bool) or given is None:
-            message += f" (got {given!r})"
+            message += f" (got {bounded(repr(given), 200)})"
     return {"field": field, "message": message, "in": where or None}
 
 

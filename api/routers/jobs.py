@@ -8,7 +8,6 @@ from fastapi.responses import JSONResponse
 from api.deps import Settings, get_redis, get_settings, get_store, require_token
 from api.errors import ConflictError
 from api.inputs import resolve_input
-from closure import pipeline
 from closure.spec import JobSpec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
@@ -28,8 +27,8 @@ def submit_job(spec: JobSpec, response: Response,
     fingerprint) is not run twice: the answer is the existing job (200, ``reused: true``),
     finished or still running.
     """
-    run_spec, dataset = resolve_input(spec, store, settings.data_roots)
-    pipeline.check(run_spec)  # a ratio, width or library the data cannot take: 4xx now
+    # header-only checks (sizes, ratio, width, library): 4xx now, no field values read
+    run_spec, dataset = resolve_input(spec, store, settings)
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     model = store.model_by_fingerprint(fingerprint)
     existing = None
