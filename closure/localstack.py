@@ -311,7 +311,8 @@ class LocalStack:
         if self.threads_per_worker:
             for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
                 env[var] = str(self.threads_per_worker)
-        args = ["worker", *self._common_args(), *self.worker_options.args(),
+        roots = [a for root in self.data_roots for a in ("--data-root", str(root))]
+        args = ["worker", *self._common_args(), *self.worker_options.args(), *roots,
                 "--name", f"local-{os.getpid()}-{n}-{int(time.time() * 1000) % 100000}"]
         proc = self._spawn(f"worker-{n}", args, env)
         if self.pin_cpus:  # worker n (and the work-horses it forks) on CPU n mod count

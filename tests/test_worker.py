@@ -261,3 +261,64 @@ def test_queued_job_with_a_postgresql_catalog(tmp_path, redis_server, turb2d_fil
         conn.close()
         store.drop_schema()
         store.close()
+
+
+# --------------------------------------------------------------------------- containment at open
+
+def test_a_symlink_swapped_in_after_submission_is_not_read(env, turb2d_file, tmp_path):  # noqa: F811
+    """The file is replaced by a link to a file outside the data root between submission and
+    planning; the outside file has the same bytes, so the location check alone refuses it."""
+    import shutil
+
+    conn, store = env
+    root = tmp_path / "root"
+    root.mkdir()
+    inside = root / "a.nc"
+    shutil.copy(turb2d_file, inside)
+    outside = tmp_path / "outside.nc"
+    shutil.copy(turb2d_file, outside)
+    job_id = submit(conn, store, spec_dict(inside))
+    inside.unlink()
+    inside.symlink_to(outside)
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "leads elsewhere" in doc["error"], doc
+    assert store.find_models() == []
+
+
+def test_input_changed_after_submission_fails_on_its_checksum(env, turb2d_file, tmp_path):  # noqa: F811
+    import shutil
+
+    import netCDF4
+
+    conn, store = env
+    copy = tmp_path / "copy.nc"
+    shutil.copy(turb2d_file, copy)
+    job_id = submit(conn, store, spec_dict(copy))
+    with netCDF4.Dataset(copy, "a") as nc:  # still a valid file, other values
+        nc["u"][0, 0, 0] = nc["u"][0, 0, 0] + 1.0
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "SHA-256 differs" in doc["error"], doc
+    assert store.find_models() == []
+
+
+def test_worker_data_roots_are_checked_when_a_task_opens_the_input(env, turb2d_file, tmp_path):  # noqa: F811
+    conn, store = env
+    root = tmp_path / "root"
+    root.mkdir()
+    job_id = submit(conn, store, spec_dict(turb2d_file))  # outside the worker's root
+    run_burst(conn, store, db=["--data-root", str(root)])
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "not under the worker's data roots" in doc["error"]
+
+
+def test_a_library_file_in_a_queued_spec_is_refused(env, turb2d_file, tmp_path):  # noqa: F811
+    conn, store = env
+    secret = tmp_path / "secret.yaml"
+    secret.write_text("password: hunter2-PRIVATE\n")
+    job_id = submit(conn, store, spec_dict(turb2d_file, library=str(secret)))
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "inline" in doc["error"]
+    assert "hunter2" not in json.dumps(doc)

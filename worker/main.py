@@ -115,7 +115,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
                db_schema: str | None = None, *, name: str | None = None, burst: bool = False,
                monitoring_interval: int = 5, abandon_grace: int = 10,
                maintenance_interval: int = 10, with_scheduler: bool = True,
-               max_jobs: int | None = None, log_level: str = "INFO") -> int:
+               max_jobs: int | None = None, data_roots=None, log_level: str = "INFO") -> int:
     """Run one worker until SIGTERM/SIGINT (with ``burst``: until the queue is empty; with
     ``max_jobs``: until it has run that many tasks).
 
@@ -123,7 +123,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
     worker that stopped on a lost connection is started again.
     """
     logging.basicConfig(level=log_level, format="%(asctime)s %(name)s %(message)s")
-    tasks.configure(store_root, db_url, db_schema)
+    tasks.configure(store_root, db_url, db_schema, data_roots)
     tasks.store().open()  # fail fast on a bad catalog URL, create the tables
     tasks.store().close()  # each work-horse opens its own connections after the fork
     preload()

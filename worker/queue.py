@@ -230,11 +230,25 @@ def status(store, conn: redis.Redis, job_id: str) -> dict:
         progress["phase"] = row["state"]
     return {
         "id": row["id"], "name": row["name"], "state": row["state"], "progress": progress,
-        "model_id": row["model_id"], "error": row["error"], "reused": bool(row["reused"]),
+        "model_id": row["model_id"], "error": public_error(store, row),
+        "reused": bool(row["reused"]),
         "input_sha256": row["input_sha256"], "dataset_id": row["dataset_id"],
         "created": row["created"], "started": row["started"], "finished": row["finished"],
         "spec": row["spec"],
     }
+
+
+def public_error(store, row: dict) -> str | None:
+    """A job's error as its submitter may read it: an uploaded dataset named by its id, and
+    no path inside the server's store."""
+    error = row["error"]
+    if not error:
+        return error
+    if row.get("dataset_id"):
+        ds = store.get_dataset(row["dataset_id"], missing_ok=True)
+        if ds is not None:
+            error = error.replace(str(ds["path"]), f"dataset {row['dataset_id']}")
+    return error.replace(str(store.root), "<store>")
 
 
 # --------------------------------------------------------------------------- cancel

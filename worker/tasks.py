@@ -31,11 +31,46 @@ _config: dict = {}
 _store: Store | None = None
 
 
-def configure(store_root: str, db_url: str | None = None, db_schema: str | None = None) -> None:
-    """Set where tasks find the store (the worker's main process calls this before forking)."""
+def configure(store_root: str, db_url: str | None = None, db_schema: str | None = None,
+              data_roots=None) -> None:
+    """Set where tasks find the store and which folders their inputs may lie in (the worker's
+    main process calls this before forking); ``data_roots`` None: $CLOSURE_DATA_ROOTS."""
     global _store
-    _config.update(store_root=str(store_root), db_url=db_url, db_schema=db_schema)
+    _config.update(store_root=str(store_root), db_url=db_url, db_schema=db_schema,
+                   data_roots=None if data_roots is None else [str(r) for r in data_roots])
     _store = None
+
+
+def data_roots() -> list[Path]:
+    """The folders inputs given by path may lie in (none configured: no root check, only the
+    unchanged-location and checksum checks of :func:`check_input_file`)."""
+    roots = _config.get("data_roots")
+    if roots is None:
+        roots = [r for r in os.environ.get("CLOSURE_DATA_ROOTS", "").split(os.pathsep) if r]
+    return [Path(r).expanduser() for r in roots]
+
+
+def check_input_file(path: str | os.PathLike) -> Path:
+    """Containment at open time: the input must still be where the submission resolved it
+    (no symlink put in its way since: its real path is the recorded one) and, when the worker
+    has data roots, lie under one of them or be an upload of the store. UserError otherwise."""
+    recorded = Path(path)
+    try:
+        real = recorded.resolve(strict=True)
+    except (OSError, RuntimeError):
+        raise UserError(f"the input file {recorded} is gone since the job was submitted: "
+                        "resubmit the job") from None
+    if real != recorded:
+        raise UserError(f"the input file {recorded} now leads elsewhere (a link was put in its "
+                        "place since the job was submitted); the job does not read it: put the "
+                        "file back and resubmit")
+    roots = data_roots()
+    if roots:
+        allowed = [Path(r).resolve() for r in roots] + [(store().root / "datasets").resolve()]
+        if not any(real == r or r in real.parents for r in allowed):
+            raise UserError(f"the input file {recorded} is not under the worker's data roots; "
+                            "the job does not read it")
+    return real
 
 
 def store() -> Store:
@@ -85,17 +120,26 @@ def plan_task(job_id: str) -> dict:
     st.update_job(job_id, state="running", only_if_active=True)
     q.set_progress(conn, job_id, phase="plan")
     from closure import pipeline
+    from closure.library import PRESETS
 
+    if isinstance(spec.library, str) and spec.library not in PRESETS:
+        # the API puts a terms file's content inline: a queued job never names a file
+        return _fail(conn, job_id, f"library {spec.library_label[:200]!r}: a queued job takes "
+                     f"a preset ({', '.join(PRESETS)}) or term definitions inline, not a file")
     try:
+        check_input_file(spec.input.path or "")
         plan = pipeline.plan(spec)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
 
     sha = plan.get("sha256") or row["input_sha256"]
+    if sha != row["input_sha256"]:
+        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
+                     "SHA-256 differs from the one recorded then); the job does not read it: "
+                     "resubmit the job")
     fingerprint = fingerprint_hash(spec, sha)
-    if fingerprint != row["fingerprint"] or sha != row["input_sha256"]:
-        # the file changed between submission and planning: the plan's hash is the truth
-        st.update_job(job_id, fingerprint=fingerprint, input_sha256=sha)
+    if fingerprint != row["fingerprint"]:
+        st.update_job(job_id, fingerprint=fingerprint)
     existing = st.model_by_fingerprint(fingerprint)
     if existing is not None:
         st.update_job(job_id, state="succeeded", model_id=existing["id"], reused=True,
@@ -137,6 +181,7 @@ def _open_planned(plan: dict):
     from closure.io import open_fields
 
     inp = plan["input"]
+    check_input_file(inp["path"])
     return open_fields(inp["path"], inp.get("variables") or None, tuple(inp.get("scalars") or ()),
                        bool(inp.get("periodic", True)))
 
