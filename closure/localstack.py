@@ -252,6 +252,7 @@ class LocalStack:
                             f"{self.state_dir}; stop it first or use another --state-dir") \
                 from None
         try:
+            self._sweep_store()
             if self.redis_url is None:
                 self.redis = RedisServer(self.state_dir)
                 self.redis_url = self.redis.start()
@@ -264,6 +265,16 @@ class LocalStack:
             self.stop()
             raise
         return self
+
+    def _sweep_store(self) -> None:
+        """Remove what a previous run's crash left in the store (closure.store.Store.sweep)."""
+        from closure.store import Store
+
+        store = Store(self.store, self.db_url, self.db_schema)
+        try:
+            store.sweep()
+        finally:
+            store.close()
 
     def _child_env(self) -> dict:
         env = dict(os.environ)

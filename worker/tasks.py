@@ -10,6 +10,7 @@ anything else raises, so rq retries the task.
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 import uuid
@@ -102,11 +103,55 @@ def plan_indices(plan: dict) -> list[int]:
 def _fail(conn, job_id: str, message: str) -> dict:
     store().update_job(job_id, state="failed", error=message, only_if_active=True)
     q.set_progress(conn, job_id, phase="failed")
+    discard_work(job_id)
     return {"job": job_id, "failed": message}
+
+
+def discard_work(job_id: str) -> None:
+    """Remove an ended job's working folder (plan, spec, per-snapshot statistics)."""
+    shutil.rmtree(store().job_dir(job_id), ignore_errors=True)
+
+
+def _discard_if_ended(job_id: str) -> None:
+    """A task that finds its job ended (failed, canceled) removes what it wrote."""
+    row = store().get_job(job_id, missing_ok=True)
+    if row is None or row["state"] not in ("queued", "running"):
+        discard_work(job_id)
+
+
+# --------------------------------------------------------------------------- leases
+
+_lease: q.Lease | None = None
+
+
+def _leased(task):
+    """Run the task under its lease (worker.queue.Lease): a copy the queue re-ran while
+    another still runs waits for that one's lease, and stands down if it stays held."""
+
+    @functools.wraps(task)
+    def run(*args, **kwargs):
+        global _lease
+        job = get_current_job()
+        if job is None:
+            raise RuntimeError("closure tasks run inside an rq worker")
+        with q.Lease(job.connection, job.id) as lease:
+            _lease = lease
+            try:
+                return task(*args, **kwargs)
+            finally:
+                _lease = None
+
+    return run
+
+
+def _lease_lost() -> bool:
+    """True when this copy lost its lease (another copy runs): it must store nothing."""
+    return _lease is not None and not _lease.held()
 
 
 # --------------------------------------------------------------------------- tasks
 
+@_leased
 def plan_task(job_id: str) -> dict:
     """Plan the job, then enqueue one map task per snapshot and the reduce task after them."""
     conn = _conn()
@@ -147,6 +192,8 @@ def plan_task(job_id: str) -> dict:
         q.set_progress(conn, job_id, phase="done")
         return {"job": job_id, "model_id": existing["id"], "reused": True}
 
+    if _lease_lost():
+        return {"job": job_id, "lease_lost": True}
     work = st.job_dir(job_id)
     write_json_atomic(work / "plan.json", plan)
     write_json_atomic(work / "spec.json", spec.model_dump(mode="json"))
@@ -213,6 +260,7 @@ def _held_out(work: Path, plan: dict):
     return held
 
 
+@_leased
 def map_task(job_id: str, indices: list[int]) -> dict:
     """SufficientStats of each snapshot in ``indices``, one file each, saved atomically
     (temp file + rename): a re-run overwrites them with identical statistics."""
@@ -246,6 +294,8 @@ def map_task(job_id: str, indices: list[int]) -> dict:
         except UserError as exc:
             errors[int(i)] = str(exc)
             continue
+        if _lease_lost():
+            break
         stats.save(st.stats_path(job_id, i))  # atomic: temp file + rename
         with conn.pipeline() as p:
             p.sadd(q.done_key(job_id), int(i))
@@ -258,9 +308,11 @@ def map_task(job_id: str, indices: list[int]) -> dict:
             p.hset(q.errors_key(job_id), mapping={str(k): v for k, v in errors.items()})
             p.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
             p.execute()
+    _discard_if_ended(job_id)
     return {"job": job_id, "indices": indices, "errors": len(errors)}
 
 
+@_leased
 def reduce_task(job_id: str) -> dict:
     """Load every snapshot's statistics, fit and score the model, store it, end the job."""
     conn = _conn()
@@ -300,6 +352,8 @@ def reduce_task(job_id: str) -> dict:
                                     held_out=held)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
+    if _lease_lost():
+        return {"job": job_id, "lease_lost": True}
     model_row = st.add_model(
         model=model, fingerprint=row["fingerprint"], dataset_sha256=row["input_sha256"],
         spec=spec, plan=plan, job_id=job_id, stats_dir=work / "stats", name=row["name"])
@@ -344,5 +398,6 @@ def on_task_failure(job, connection, exc_type=None, exc_value=None, tb=None) -> 
         message = str(exc_value)
     try:
         store().update_job(job_id, state="failed", error=message, only_if_active=True)
+        discard_work(job_id)
     finally:
         q.set_progress(connection, job_id, phase="failed")
