@@ -2,6 +2,13 @@
 process against the ASGI app, a Redis of our own, no worker). Every answer must be one the
 document lists for its route, with the body shape it documents; no 5xx.
 
+Every check of schemathesis runs but one: ``positive_data_acceptance`` (a request the schema
+allows must succeed) does not hold for this API by design, since what a request names is
+checked against the server's state and files after the schema: a path outside the data
+roots (403), an unknown id (404), a file that is not netCDF or a ratio the grid cannot take
+(422), a spec with both or neither of input.path and input.dataset_id (422). Those answers
+are documented, and the conformance checks see them.
+
 Bounded: a few examples per operation (CLOSURE_CONFORMANCE_EXAMPLES, default 15), derandomised
 so a run is reproducible; about half a minute on two cores.
 """
@@ -16,6 +23,7 @@ import pytest
 
 schemathesis = pytest.importorskip("schemathesis")
 from hypothesis import HealthCheck, settings  # noqa: E402
+from schemathesis.checks import positive_data_acceptance  # noqa: E402
 from service_support import redis_server, turb2d_file  # noqa: E402, F401
 
 from api.app import create_app  # noqa: E402
@@ -44,4 +52,4 @@ schema = schemathesis.pytest.from_fixture("api_schema")
 @settings(max_examples=EXAMPLES, deadline=None, derandomize=True, database=None,
           suppress_health_check=list(HealthCheck))
 def test_every_answer_is_documented(case):
-    case.call_and_validate()
+    case.call_and_validate(excluded_checks=[positive_data_acceptance])
