@@ -223,3 +223,15 @@ def test_dataset_errors_name_the_dataset_not_the_store(setup):
                                             "variables": {"v": "NOPE"}}})
     assert r.status_code == 422, r.text
     assert ds["id"] in r.json()["detail"] and str(setup.store_root) not in r.text
+
+
+def test_the_client_sends_a_local_terms_file_inline(tmp_path):
+    from closure.client import inline_local_library
+
+    terms = tmp_path / "terms.yaml"
+    terms.write_text("terms:\n  - name: smag\n    delta_power: 2\n"
+                     "    expression: \"Delta**2 * S_mag * S_{i}{j}\"\n")
+    spec = {"input": {"path": "x.nc"}, "library": str(terms)}
+    assert inline_local_library(spec)["library"] == {"terms": TERMS}
+    for lib in ("default", "/srv/not/here.yaml", TERMS):
+        assert inline_local_library({**spec, "library": lib})["library"] == lib
