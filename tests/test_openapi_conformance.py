@@ -9,8 +9,8 @@ roots (403), an unknown id (404), a file that is not netCDF or a ratio the grid 
 (422), a spec with both or neither of input.path and input.dataset_id (422). Those answers
 are documented, and the conformance checks see them.
 
-Bounded: a few examples per operation (CLOSURE_CONFORMANCE_EXAMPLES, default 15), derandomised
-so a run is reproducible; about half a minute on two cores.
+Bounded: a few examples per operation (CLOSURE_CONFORMANCE_EXAMPLES, default 30), derandomised
+so a run is reproducible; under a minute on two cores.
 """
 
 from __future__ import annotations
@@ -31,7 +31,7 @@ from api.deps import Settings  # noqa: E402
 
 pytestmark = pytest.mark.slow
 
-EXAMPLES = int(os.environ.get("CLOSURE_CONFORMANCE_EXAMPLES", 15))
+EXAMPLES = int(os.environ.get("CLOSURE_CONFORMANCE_EXAMPLES", 30))
 
 
 @pytest.fixture

@@ -235,3 +235,18 @@ def test_the_client_sends_a_local_terms_file_inline(tmp_path):
     assert inline_local_library(spec)["library"] == {"terms": TERMS}
     for lib in ("default", "/srv/not/here.yaml", TERMS):
         assert inline_local_library({**spec, "library": lib})["library"] == lib
+
+
+def test_job_errors_name_the_dataset_and_stay_bounded(tmp_path):
+    from closure.store import Store
+    from worker.queue import public_error
+
+    st = Store(tmp_path / "store")
+    path = st.root / "datasets" / "d-x" / "a.nc"
+    ds = st.add_dataset(sha256="a" * 64, path=path, source="upload", size=1)
+    row = {"error": f"variable 'u' has 3 NaN values at snapshot 2 of {path}; " + "x" * 5000,
+           "dataset_id": ds["id"]}
+    shown = public_error(st, row)
+    assert f"dataset {ds['id']}" in shown and str(st.root) not in shown
+    assert len(shown) < 2100 and "left out" in shown
+    st.close()

@@ -339,7 +339,10 @@ def public_error(store, row: dict) -> str | None:
         ds = store.get_dataset(row["dataset_id"], missing_ok=True)
         if ds is not None:
             error = error.replace(str(ds["path"]), f"dataset {row['dataset_id']}")
-    return error.replace(str(store.root), "<store>")
+    error = error.replace(str(store.root), "<store>")
+    if len(error) > 2000:  # an error listing many items stays readable
+        error = error[:2000] + f"... ({len(error) - 2000} more characters left out)"
+    return error
 
 
 # --------------------------------------------------------------------------- cancel
