@@ -402,3 +402,21 @@ def test_the_work_horse_dies_with_its_worker_killed_by_sigkill(env, turb2d_file,
         if horse is not None and pid_alive(horse):
             os.kill(horse, signal.SIGKILL)  # only when the test failed
     assert job_id
+
+
+def test_a_starting_worker_sweeps_the_store(env):
+    conn, store = env
+    leftovers = [store.root / "uploads" / ".upload-dead.nc",
+                 store.root / "models" / ".tmp-m-dead-0000" / "model.json",
+                 store.job_dir("j-gone") / "stats" / ".000000.npz.abc.tmp"]
+    for path in leftovers:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(b"half")
+        for p in (path, *path.parents):
+            if p == store.root:
+                break
+            os.utime(p, (0, 0))  # untouched since 1970: a crash long ago
+    run_burst(conn, store)
+    for path in leftovers:
+        assert not path.exists(), path
+    assert not (store.root / "jobs" / "j-gone").exists()
