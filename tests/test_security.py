@@ -10,6 +10,7 @@ import shutil
 import warnings
 
 import netCDF4
+import numpy as np
 import pytest
 
 with warnings.catch_warnings():
@@ -250,3 +251,20 @@ def test_job_errors_name_the_dataset_and_stay_bounded(tmp_path):
     assert f"dataset {ds['id']}" in shown and str(st.root) not in shown
     assert len(shown) < 2100 and "left out" in shown
     st.close()
+
+
+def test_an_inline_library_runs_like_the_same_terms_file(turb2d_file, tmp_path):  # noqa: F811
+    """The inline definitions give the model the terms file gives (in process)."""
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    terms_file = tmp_path / "terms.json"
+    terms_file.write_text(json.dumps({"terms": TERMS + [
+        {"name": "grad", "delta_power": 2, "expression": "Delta**2 * A_{i}x * A_{j}x"}]}))
+    base = {"input": {"path": str(turb2d_file)}, "filter": {"kind": "gaussian", "ratio": 4},
+            "fit": {"resamples": 2}}
+    by_file = pipeline.discover(parse_spec({**base, "library": str(terms_file)}))
+    inline = pipeline.discover(parse_spec({**base,
+                                           "library": json.loads(terms_file.read_text())}))
+    assert inline.names == by_file.names == ["smag", "grad"]
+    assert np.allclose(inline.coefficients, by_file.coefficients, rtol=1e-12, atol=0)
