@@ -86,6 +86,25 @@ class ClosureWorker(Worker):
             with contextlib.suppress(redis.RedisError):
                 q.release_dead_lease(self.connection, job.id, self.name, pid)
 
+    #: seconds between store sweeps (closure.store.Store.sweep) of a running worker
+    sweep_interval_s: float = 600.0
+    _swept_at: float = 0.0
+
+    def run_maintenance_tasks(self):
+        """rq's registry cleaning, and now and then a sweep of the store's leftovers."""
+        super().run_maintenance_tasks()
+        if time.monotonic() - self._swept_at >= self.sweep_interval_s:
+            self._swept_at = time.monotonic()
+            try:
+                removed = tasks.store().sweep()
+            except Exception as exc:  # noqa: BLE001 - housekeeping must not stop the worker
+                log.warning("store sweep failed: %s", exc)
+                removed = []
+            finally:
+                tasks.store().close()  # no pooled connection for the next horse to inherit
+            if removed:
+                log.info("removed %d leftover(s) from the store", len(removed))
+
     def heartbeat(self, timeout=None, pipeline=None):
         """rq's heartbeat, and back into the worker registry if an outage dropped us from it
         (the registry sets, not the worker's own key, are what Worker.count reads)."""
@@ -177,6 +196,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
             # an idle worker wakes up every worker_ttl - 15 s: that is the cleaning cadence
             worker_ttl=max(16, maintenance_interval + 15))
         worker.abandon_grace_s = abandon_grace
+        worker._swept_at = time.monotonic()  # swept at start-up, above
         try:
             worker.work(burst=burst, with_scheduler=with_scheduler and not burst,
                         max_jobs=max_jobs, logging_level=log_level)
