@@ -268,3 +268,29 @@ def test_an_inline_library_runs_like_the_same_terms_file(turb2d_file, tmp_path):
                                            "library": json.loads(terms_file.read_text())}))
     assert inline.names == by_file.names == ["smag", "grad"]
     assert np.allclose(inline.coefficients, by_file.coefficients, rtol=1e-12, atol=0)
+
+
+def test_a_report_reads_its_input_only_under_the_roots_and_limits(tmp_path, turb2d_file):  # noqa: F811
+    """The a priori figures of a report read the model's input in the API process: the same
+    containment and size limits as a job's input apply (else the figures are left out)."""
+    from api.routers.reports import _check_report_input
+    from closure.errors import InputTooLargeError, UserError
+    from closure.store import Store
+
+    root = tmp_path / "root"
+    root.mkdir()
+    inside = root / "t.nc"
+    shutil.copy(turb2d_file, inside)
+    st = Store(tmp_path / "store")
+    settings = Settings(store=st.root, redis_url="redis://x", data_roots=(root,))
+    _check_report_input(inside, st, settings)
+    with pytest.raises(UserError, match="not under the data roots"):
+        _check_report_input(turb2d_file, st, settings)
+    link = root / "link.nc"
+    link.symlink_to(turb2d_file)
+    with pytest.raises(UserError):
+        _check_report_input(link, st, settings)
+    huge = _declare_huge(root / "huge.nc")
+    with pytest.raises(InputTooLargeError):
+        _check_report_input(huge, st, settings)
+    st.close()
