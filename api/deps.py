@@ -10,6 +10,13 @@ fields):
     CLOSURE_DATA_ROOTS     folders whose files jobs may read by path (os.pathsep-separated)
     CLOSURE_TOKEN          bearer token; required when serving on a non-loopback address
     CLOSURE_MAX_UPLOAD_MB  upload size limit in MiB (default 2048)
+    CLOSURE_MAX_POINTS     grid points per snapshot of an input (default 134217728 = 512^3)
+    CLOSURE_MAX_SNAPSHOTS  snapshots in an input (default 100000)
+    CLOSURE_MAX_INPUT_GB   bytes an input declares, all variables together, in GiB
+                           (default 256)
+
+The three input limits are checked from the file's header (declared sizes, no data read), at
+upload and at submission; their defaults suit one machine of some tens of GiB of memory.
 """
 
 from __future__ import annotations
@@ -28,6 +35,9 @@ from closure.store import Store
 
 DEFAULT_STORE = "~/.closure/store"
 DEFAULT_MAX_UPLOAD_MB = 2048.0
+DEFAULT_MAX_POINTS = 2**27
+DEFAULT_MAX_SNAPSHOTS = 100_000
+DEFAULT_MAX_INPUT_GB = 256.0
 
 
 @dataclass
@@ -41,6 +51,9 @@ class Settings:
     data_roots: tuple[Path, ...] = ()
     token: str | None = None
     max_upload_mb: float = DEFAULT_MAX_UPLOAD_MB
+    max_points: int = DEFAULT_MAX_POINTS
+    max_snapshots: int = DEFAULT_MAX_SNAPSHOTS
+    max_input_gb: float = DEFAULT_MAX_INPUT_GB
     host: str = "127.0.0.1"
     extra: dict = field(default_factory=dict)
 
@@ -57,6 +70,9 @@ class Settings:
             data_roots=roots,
             token=env.get("CLOSURE_TOKEN") or None,
             max_upload_mb=env.get("CLOSURE_MAX_UPLOAD_MB", DEFAULT_MAX_UPLOAD_MB),
+            max_points=env.get("CLOSURE_MAX_POINTS", DEFAULT_MAX_POINTS),
+            max_snapshots=env.get("CLOSURE_MAX_SNAPSHOTS", DEFAULT_MAX_SNAPSHOTS),
+            max_input_gb=env.get("CLOSURE_MAX_INPUT_GB", DEFAULT_MAX_INPUT_GB),
         )
         values.update({k: v for k, v in overrides.items() if v is not None})
         try:
@@ -65,6 +81,15 @@ class Settings:
             raise UserError("CLOSURE_MAX_UPLOAD_MB must be a number of MiB") from None
         if values["max_upload_mb"] <= 0:
             raise UserError("the upload limit must be positive (CLOSURE_MAX_UPLOAD_MB)")
+        for key, var, kind in (("max_points", "CLOSURE_MAX_POINTS", int),
+                               ("max_snapshots", "CLOSURE_MAX_SNAPSHOTS", int),
+                               ("max_input_gb", "CLOSURE_MAX_INPUT_GB", float)):
+            try:
+                values[key] = kind(values[key])
+            except ValueError:
+                raise UserError(f"{var} must be a positive number") from None
+            if values[key] <= 0:
+                raise UserError(f"{var} must be a positive number")
         values["store"] = Path(values["store"]).expanduser()
         values["data_roots"] = tuple(Path(r).expanduser() for r in values["data_roots"])
         return cls(**values)

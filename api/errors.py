@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from closure.errors import InputFileError, OptionError, UserError
+from closure.errors import InputFileError, InputTooLargeError, OptionError, UserError
 from closure.store import NotFoundError
 
 
@@ -29,7 +29,8 @@ class UnsupportedMediaError(UserError):
 def status_for(exc: UserError) -> int:
     """The HTTP status of a user error: the most specific class wins."""
     for cls, code in ((AuthError, 401), (ForbiddenPathError, 403), (NotFoundError, 404),
-                      (ConflictError, 409), (TooLargeError, 413), (UnsupportedMediaError, 415),
+                      (ConflictError, 409), (TooLargeError, 413),
+                      (InputTooLargeError, 413), (UnsupportedMediaError, 415),
                       (InputFileError, 422), (OptionError, 422)):
         if isinstance(exc, cls):
             return code

@@ -60,6 +60,31 @@ class JobFailedError(ServiceError):
         self.status_doc = status_doc
 
 
+def inline_local_library(spec_dict: dict) -> dict:
+    """The spec with a local terms file's content put inline (``library`` as JSON), so a
+    remote server needs no access to it; presets, inline definitions and paths that are not
+    local files are left as they are (the server resolves those under its data roots)."""
+    from closure.library import PRESETS
+
+    lib = spec_dict.get("library")
+    if not isinstance(lib, str) or lib in PRESETS or not Path(lib).is_file():
+        return spec_dict
+    path = Path(lib)
+    text = path.read_text(encoding="utf-8", errors="replace")
+    try:
+        if path.suffix.lower() == ".json":
+            import json
+
+            data = json.loads(text)
+        else:
+            import yaml
+
+            data = yaml.safe_load(text)
+    except Exception as exc:  # noqa: BLE001 - the parser's own reason, for the user's file
+        raise UserError(f"terms file {path} could not be read: {exc}") from None
+    return {**spec_dict, "library": data}
+
+
 def spec_from_options(path: str | os.PathLike | None = None, *, dataset_id: str | None = None,
                       filter: str | None = None, width: float | None = None,
                       width_units: str | None = None, ratio: int | None = None,
@@ -208,6 +233,7 @@ class Client:
                              scalars=inp.get("scalars") or (), periodic=inp.get("periodic", True))
             spec_dict = dict(spec_dict, input={**{k: v for k, v in inp.items() if k != "path"},
                                                "dataset_id": ds["id"]})
+        spec_dict = inline_local_library(spec_dict)
         parse_spec(spec_dict)  # the same message locally as the server would give
         return self._json("POST", "/jobs", json=spec_dict, params=params)
 

@@ -45,6 +45,26 @@ def check_scheme(scheme: str, grid: Grid) -> None:
         raise UserError("spectral derivatives need periodic data: use --scheme fd2 or fd4")
 
 
+#: fewest points per direction a scheme's first and second derivatives need: spectral keeps
+#: at least one wavenumber besides the mean and Nyquist; the central stencils span 3 (fd2) and
+#: 5 (fd4) points, and the one-sided edge stencils of a non-periodic grid 4 and 6 (_EDGE)
+_MIN_POINTS = {("spectral", True): 3, ("fd2", True): 3, ("fd4", True): 5,
+               ("spectral", False): 3, ("fd2", False): 4, ("fd4", False): 6}
+
+
+def check_coarse_points(scheme: str, grid: Grid, ratio: int | None = None) -> None:
+    """Raise a UserError if ``grid`` (a coarse grid) has fewer points in a direction than
+    ``scheme`` needs; ``ratio`` (the coarsening ratio that made it) is named in the message."""
+    need = _MIN_POINTS.get((scheme, bool(grid.periodic)))
+    if need is None:
+        return
+    for d, n in zip(grid.dims, grid.shape, strict=True):
+        if n < need:
+            by = f" (the ratio {ratio} leaves {n})" if ratio is not None else ""
+            raise UserError(f"the coarse grid has {n} point(s) in {d}{by}; {scheme} derivatives "
+                            f"need at least {need}: use a smaller ratio")
+
+
 def derivative(f: np.ndarray, grid: Grid, dim: str, order: int = 1,
                scheme: str = "spectral") -> np.ndarray:
     """The ``order``-th derivative of ``f`` along direction ``dim``.

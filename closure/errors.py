@@ -15,3 +15,7 @@ class InputFileError(UserError):
 
 class OptionError(UserError):
     """An option or job-spec value is out of range or unknown."""
+
+
+class InputTooLargeError(InputFileError):
+    """An input whose declared size is over a configured limit (the service answers 413)."""

@@ -1628,3 +1628,28 @@ __all__ = [
     "Snapshot", "decode_time", "input_files", "input_sha256", "input_stamps", "open_coarse",
     "open_fields", "open_input", "sha256_file", "write_coarse", "write_netcdf",
 ]
+
+
+# ---------------------------------------------------------------------------------------------
+# declared sizes (header only)
+
+def declared_sizes(path: str | os.PathLike) -> dict:
+    """The sizes a netCDF file declares in its header, without reading any variable's data:
+    ``{"dims": {name: length}, "unlimited": [names], "variables": {name: {"dims": [...],
+    "itemsize": bytes}}}`` (root group only). Raises InputFileError when it is not netCDF."""
+    try:
+        nc = netCDF4.Dataset(path, "r")
+    except Exception as exc:  # noqa: BLE001 - the netCDF library's OSError and friends
+        raise InputFileError(f"{path} could not be read as netCDF ({type(exc).__name__}): give "
+                             "a netCDF-3 or netCDF-4 file") from None
+    try:
+        dims = {str(n): int(len(d)) for n, d in nc.dimensions.items()}
+        unlimited = [str(n) for n, d in nc.dimensions.items() if d.isunlimited()]
+        variables = {}
+        for name, var in nc.variables.items():
+            itemsize = getattr(var.dtype, "itemsize", None) or 8  # strings: count 8 bytes
+            variables[str(name)] = {"dims": [str(d) for d in var.dimensions],
+                                    "itemsize": int(itemsize)}
+        return {"dims": dims, "unlimited": unlimited, "variables": variables}
+    finally:
+        nc.close()

@@ -1357,6 +1357,14 @@ def load_terms_file(path: str | Path, target: str, dims: Iterable[str],
     return terms_from_data(data, target, dims, scalars, name=str(path), prune=prune)
 
 
+def terms_from_inline(definitions, target: str, dims: Iterable[str],
+                      scalars: Iterable[str] = (), *, prune: bool = True) -> Library:
+    """A Library from term definitions given inline (a job spec's ``library``): a terms
+    file's content as parsed JSON, either its whole mapping or just its list of terms."""
+    data = {"terms": definitions} if isinstance(definitions, list) else definitions
+    return terms_from_data(data, target, dims, scalars, name="(inline)", prune=prune)
+
+
 def terms_from_data(data, target: str, dims: Iterable[str], scalars: Iterable[str] = (),
                     name: str = "terms", *, prune: bool = True) -> Library:
     """Build a Library from the parsed contents of a terms file. An included preset is

@@ -110,7 +110,7 @@ class RedisServer:
     def config_text(self) -> str:
         lines = ["daemonize no", "bind 127.0.0.1", "protected-mode yes",
                  f'dir "{self.data_dir}"', "appendonly yes", 'appendfilename "appendonly.aof"',
-                 "appendfsync everysec", 'save ""', "loglevel notice", 'logfile ""',
+                 "appendfsync always", 'save ""', "loglevel notice", 'logfile ""',
                  "databases 4"]
         if self.port is None:
             lines += ["port 0", f'unixsocket "{self.socket_path}"', "unixsocketperm 700"]
@@ -230,6 +230,8 @@ class LocalStack:
         self.server_url: str | None = None
         self._stopping = False
         self._lock = None
+        self._restarts: dict[str, list[float]] = {}
+        self._api_port: int | None = None
 
     # -- start
 
@@ -252,6 +254,7 @@ class LocalStack:
                             f"{self.state_dir}; stop it first or use another --state-dir") \
                 from None
         try:
+            self._sweep_store()
             if self.redis_url is None:
                 self.redis = RedisServer(self.state_dir)
                 self.redis_url = self.redis.start()
@@ -264,6 +267,16 @@ class LocalStack:
             self.stop()
             raise
         return self
+
+    def _sweep_store(self) -> None:
+        """Remove what a previous run's crash left in the store (closure.store.Store.sweep)."""
+        from closure.store import Store
+
+        store = Store(self.store, self.db_url, self.db_schema)
+        try:
+            store.sweep()
+        finally:
+            store.close()
 
     def _child_env(self) -> dict:
         env = dict(os.environ)
@@ -284,13 +297,14 @@ class LocalStack:
         sock = socket.socket(socket.AF_INET6 if ":" in self.host else socket.AF_INET)
         sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
         try:
-            sock.bind((self.host, self.port))
+            # a restarted API takes the port its predecessor had (also when port was 0)
+            sock.bind((self.host, self._api_port or self.port))
         except OSError as exc:
             sock.close()
             raise UserError(f"cannot listen on {self.host}:{self.port} ({exc.strerror}); "
                             "pick another --port") from None
         sock.listen(128)
-        port = sock.getsockname()[1]
+        port = self._api_port = sock.getsockname()[1]
         host = f"[{self.host}]" if ":" in self.host else self.host
         self.server_url = f"http://{host}:{port}"
         args = ["api", "--host", self.host, "--fd", str(sock.fileno()), *self._common_args()]
@@ -311,7 +325,8 @@ class LocalStack:
         if self.threads_per_worker:
             for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
                 env[var] = str(self.threads_per_worker)
-        args = ["worker", *self._common_args(), *self.worker_options.args(),
+        roots = [a for root in self.data_roots for a in ("--data-root", str(root))]
+        args = ["worker", *self._common_args(), *self.worker_options.args(), *roots,
                 "--name", f"local-{os.getpid()}-{n}-{int(time.time() * 1000) % 100000}"]
         proc = self._spawn(f"worker-{n}", args, env)
         if self.pin_cpus:  # worker n (and the work-horses it forks) on CPU n mod count
@@ -375,8 +390,9 @@ class LocalStack:
 
     def supervise(self, poll: float = 1.0, stop_on=(signal.SIGINT, signal.SIGTERM),
                   echo=print) -> int:
-        """Block until SIGINT/SIGTERM; restart a worker that dies; stop everything if Redis
-        or the API dies. Returns an exit status."""
+        """Block until SIGINT/SIGTERM, restarting what dies: Redis (from its append-only
+        file, so queued and running jobs carry on), the API and the workers. Stops the stack
+        when Redis or the API keeps dying (see :meth:`heal`). Returns an exit status."""
         stop = {"now": False}
 
         def _handler(signum, frame):
@@ -388,11 +404,8 @@ class LocalStack:
             while not stop["now"]:
                 time.sleep(poll)
                 try:
-                    if self.redis is not None and self.redis.proc.poll() is not None:
-                        raise UserError(f"redis-server exited ({self.redis.proc.returncode})")
-                    if self.api.poll() is not None:
-                        raise UserError(f"the API exited ({self.api.returncode}); see "
-                                        f"{self.state_dir / 'logs' / 'api.log'}")
+                    for message in self.heal():
+                        echo(message)
                 except UserError as exc:
                     echo(f"error: {exc}; stopping the stack")
                     status = 1
@@ -405,6 +418,39 @@ class LocalStack:
                 signal.signal(s, h)
             self.stop()
         return status
+
+    #: restarts of Redis or the API allowed within RESTART_WINDOW_S before the stack gives up
+    MAX_RESTARTS = 5
+    RESTART_WINDOW_S = 60.0
+
+    def heal(self) -> list[str]:
+        """Restart Redis (same folder and config: its append-only file brings the queues
+        back) or the API (on the same port) if it died; returns what was done. Workers and
+        the API reconnect to Redis by themselves. UserError when one of them died more than
+        MAX_RESTARTS times in RESTART_WINDOW_S seconds (something is wrong: see its log)."""
+        done = []
+        if self.redis is not None and self.redis.proc.poll() is not None:
+            code = self.redis.proc.returncode
+            self._count_restart("redis-server", self.redis.log_path)
+            self.redis.start()
+            done.append(f"redis-server exited ({code}); restarted it from its append-only "
+                        f"file (pid {self.redis.pid})")
+        if self.api is not None and self.api.poll() is not None:
+            code = self.api.returncode
+            self._count_restart("the API", self.state_dir / "logs" / "api.log")
+            self._start_api()
+            done.append(f"the API exited ({code}); restarted it (pid {self.api.pid})")
+        if done:
+            self._write_state()
+        return done
+
+    def _count_restart(self, what: str, log: Path) -> None:
+        now = time.monotonic()
+        times = [t for t in self._restarts.get(what, []) if now - t < self.RESTART_WINDOW_S]
+        if len(times) >= self.MAX_RESTARTS:
+            raise UserError(f"{what} died {len(times) + 1} times within "
+                            f"{self.RESTART_WINDOW_S:g} s:\n{_tail(log)}")
+        self._restarts[what] = [*times, now]
 
     def respawn_dead_workers(self) -> list[int]:
         """Start a new worker in place of each one that exited; returns their numbers."""

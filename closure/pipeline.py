@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import json
 import os
 import platform
 import tempfile
@@ -28,7 +29,7 @@ from pathlib import Path
 
 import numpy as np
 
-from closure.derivatives import check_scheme
+from closure.derivatives import check_coarse_points, check_scheme
 from closure.errors import InputFileError, OptionError, UserError
 from closure.filters import make_coarse_graining
 from closure.grid import Grid
@@ -170,12 +171,17 @@ def _coarse_graining_cached(kind, grid, ratio, width, width_units):
 @lru_cache(maxsize=16)
 def _library_cached(name: str, target: str, dims: tuple[str, ...], scalars: tuple[str, ...],
                     stamp: tuple):
-    from closure.library import make_library
+    from closure.library import make_library, terms_from_inline
 
+    if stamp == ("inline",):  # name is the definitions as JSON text
+        return terms_from_inline(json.loads(name), target, dims, scalars)
     return make_library(name, target, dims, scalars)
 
 
 def _library(spec: JobSpec, dims: tuple[str, ...]):
+    if not isinstance(spec.library, str):  # term definitions inline: no file to read
+        return _library_cached(json.dumps(spec.library, sort_keys=True), spec.target,
+                               tuple(dims), _scalars(spec), ("inline",))
     name = spec.library
     stamp: tuple = ()
     p = Path(name)
@@ -262,9 +268,10 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
 
         check_coarse_input(src, cg)
     check_scheme(spec.scheme, cg.coarse)
+    check_coarse_points(spec.scheme, cg.coarse, spec.filter.ratio)
     library = _library(spec, grid.dims)
     if len(library.terms) == 0:
-        raise UserError(f"the library {spec.library!r} has no terms for target {spec.target} "
+        raise UserError(f"the library {spec.library_label!r} has no terms for target {spec.target} "
                         "on this grid: choose another library")
     missing = [f for f in library.fields if f not in (*velocity, *_scalars(spec))]
     if missing:
@@ -272,10 +279,10 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
                         "them with --var / input.scalars")
     from closure.library import component_weights
 
-    library_info = {"name": spec.library, "terms": library.names,
+    library_info = {"name": spec.library_label, "terms": library.names,
                     "dropped": list(library.dropped)}
-    lib_path = Path(spec.library)
-    if lib_path.suffix and lib_path.exists():
+    lib_path = Path(spec.library_label)
+    if isinstance(spec.library, str) and lib_path.suffix and lib_path.exists():
         library_info["sha256"] = sha256_file(lib_path)
     first = src.paths[0]
     return {
@@ -328,6 +335,28 @@ def _gas_constants(src) -> dict:
         except (KeyError, TypeError, ValueError):
             continue
     return out
+
+
+def check_options(spec: JobSpec, grid: Grid, velocity, n_snapshots: int) -> None:
+    """The checks of :func:`plan` that need only the input's header (its grid, velocity
+    components and snapshot count): snapshot count, filter, ratio, scheme, library and the
+    fields it needs. Reads no field values, so a service can answer a submission at once;
+    the value checks (finite values, divergence) run when the job is planned."""
+    chosen = n_snapshots if spec.input.snapshots is None else len(set(spec.input.snapshots))
+    if chosen < 2:
+        raise UserError(f"{chosen} snapshot(s) selected: a held-out score needs at least 2 "
+                        "(one to fit, one to test); add snapshots")
+    cg = _coarse_graining(spec, grid)
+    check_scheme(spec.scheme, cg.coarse)
+    check_coarse_points(spec.scheme, cg.coarse, spec.filter.ratio)
+    library = _library(spec, grid.dims)
+    if len(library.terms) == 0:
+        raise UserError(f"the library {spec.library_label!r} has no terms for target "
+                        f"{spec.target} on this grid: choose another library")
+    missing = [f for f in library.fields if f not in (*velocity, *_scalars(spec))]
+    if missing:
+        raise UserError(f"the library's terms need fields {missing} that are not read: add "
+                        "them with --var / input.scalars")
 
 
 #: Relative divergence above which the incompressible-only pruning of the library is doubtful.

@@ -104,7 +104,9 @@ def _open(spec: CoarseGrainSpec):
     if inp.path is None:
         raise UserError("input.path is not set (an uploaded dataset must be resolved to its "
                         "file first)")
-    return open_fields(inp.path, inp.variables or None, tuple(inp.scalars), inp.periodic)
+    return open_fields(inp.path, inp.variables or None, tuple(inp.scalars), inp.periodic,
+                       group=inp.group, mask=inp.mask, levels=inp.levels,
+                       spacing=None if inp.spacing is None else list(inp.spacing))
 
 
 def _coarse_grainings(plan: dict, grid):
@@ -118,6 +120,10 @@ def _plan(spec: CoarseGrainSpec, src) -> dict:
     from closure.filters import make_coarse_graining
 
     n = src.n_snapshots
+    if src.levels is not None:
+        raise UserError("input.levels: a coarse-graining product holds one grid; coarse-grain "
+                        "a level stack with `closure coarse-grain --levels` (one file per "
+                        "level), or submit one job per level")
     if spec.input.snapshots:
         bad = [i for i in spec.input.snapshots if i >= n]
         if bad:
@@ -139,8 +145,13 @@ def _plan(spec: CoarseGrainSpec, src) -> dict:
     variables = wanted_variables(spec.targets, spec.transfers, src.grid.dims, src.scalars)
     return {
         "kind": "coarse-grain",
-        "input": {"path": str(src.path), "variables": dict(spec.input.variables),
-                  "scalars": list(src.scalars), "periodic": bool(spec.input.periodic)},
+        "input": {"path": str(src.path), "paths": [str(p) for p in src.paths],
+                  "variables": dict(spec.input.variables),
+                  "scalars": list(src.scalars), "periodic": bool(spec.input.periodic),
+                  "options": {"group": spec.input.group, "mask": spec.input.mask,
+                              "levels": None if src.levels is None else list(src.levels),
+                              "spacing": None if spec.input.spacing is None
+                              else list(spec.input.spacing)}},
         "grid": src.grid.to_dict(),
         "snapshots": indices,
         "settings": settings,
@@ -174,12 +185,15 @@ def _plain(obj):
 
 
 def open_planned(plan: dict):
-    """The planned input file, opened as the plan read it."""
+    """The planned input file, opened as the plan read it (with the input options)."""
     from closure.io import open_fields
 
     inp = plan["input"]
-    return open_fields(inp["path"], inp.get("variables") or None,
-                       tuple(inp.get("scalars") or ()), bool(inp.get("periodic", True)))
+    opts = inp.get("options") or {}
+    return open_fields(inp.get("paths") or inp["path"], inp.get("variables") or None,
+                       tuple(inp.get("scalars") or ()), bool(inp.get("periodic", True)),
+                       group=opts.get("group"), mask=opts.get("mask"),
+                       levels=opts.get("levels"), spacing=opts.get("spacing"))
 
 
 # --------------------------------------------------------------------------- map: pieces

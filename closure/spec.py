@@ -6,8 +6,9 @@ A spec is plain JSON. Validation errors name the field path and the allowed valu
 
 from __future__ import annotations
 
+import json
 import re
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 from pydantic import (
     BaseModel,
@@ -23,6 +24,10 @@ from pydantic import (
 from closure.errors import OptionError
 
 SPEC_VERSION = 1
+#: longest library name or terms-file path, and largest inline library (characters of JSON)
+MAX_LIBRARY_NAME = 1024
+MAX_INLINE_LIBRARY = 65536
+INLINE_LIBRARY = "inline terms"
 
 FilterKind = Literal["box", "gaussian", "spectral", "block"]
 Scheme = Literal["spectral", "fd2", "fd4"]
@@ -134,7 +139,8 @@ class FitSpec(_Strict):
     test_fraction: Annotated[float, Field(gt=0, lt=1)] = 0.25
     resamples: Annotated[int, Field(ge=0, le=1000)] = 20
     transfer_weight: Annotated[float, Field(ge=0)] = 0.0
-    seed: int = 0
+    seed: Annotated[int, Field(ge=0, le=2**32 - 1)] = Field(
+        0, description="random seed of the resampling (0 to 2^32-1)")
     folds: Annotated[int, Field(ge=2, le=50)] = Field(
         5, description="contiguous blocks of training snapshots for held-out selection")
     selection: Literal["one_se", "min"] = Field(
@@ -177,7 +183,10 @@ class JobSpec(_Strict):
     input: InputSpec
     filter: FilterSpec = FilterSpec()
     target: str = "stress"
-    library: str = Field("default", description="a preset name or a path to a terms file")
+    library: str | list[dict[str, Any]] | dict[str, Any] = Field(
+        "default", description="a preset name (default, classic, minimal), a terms file (for "
+        "the service: a path under its data roots), or term definitions inline: the terms "
+        "file's content as JSON (its mapping, or just its list of terms)")
     scheme: Scheme = "spectral"
     fit: FitSpec = FitSpec()
     reference_net: ReferenceNetSpec = ReferenceNetSpec()
@@ -189,6 +198,26 @@ class JobSpec(_Strict):
             raise ValueError("target must be stress, force, vorticity, flux:NAME, or with a "
                              "compressible library heat_flux or pressure_dilatation")
         return v
+
+    @field_validator("library")
+    @classmethod
+    def _library(cls, v):
+        if isinstance(v, str):
+            if not v or "\x00" in v or len(v) > MAX_LIBRARY_NAME:
+                raise ValueError(f"library must be a preset name or a file path of 1 to "
+                                 f"{MAX_LIBRARY_NAME} characters without NUL bytes")
+            return v
+        if isinstance(v, list) and not v:
+            raise ValueError("inline library: give at least one term definition")
+        if len(json.dumps(v)) > MAX_INLINE_LIBRARY:
+            raise ValueError(f"inline library: the definitions take more than "
+                             f"{MAX_INLINE_LIBRARY} characters as JSON; use fewer terms")
+        return v
+
+    @property
+    def library_label(self) -> str:
+        """The library's name for messages and provenance ("inline terms" when inline)."""
+        return self.library if isinstance(self.library, str) else INLINE_LIBRARY
 
     def fingerprint(self) -> dict:
         """The fields that determine the result (for identical-resubmission detection)."""

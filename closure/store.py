@@ -99,6 +99,11 @@ models_table = sa.Table(
 )
 
 _SAFE_NAME = re.compile(r"[^A-Za-z0-9._-]+")
+_ID = re.compile(r"[A-Za-z0-9][A-Za-z0-9_-]{0,63}")
+#: how long a temporary file or an unknown folder must be untouched before a sweep removes it
+SWEEP_MIN_AGE_S = float(os.environ.get("CLOSURE_SWEEP_AGE", 600))
+
+
 
 
 class NotFoundError(UserError):
@@ -354,6 +359,10 @@ class Store:
         return row, True
 
     def get_dataset(self, dataset_id: str, missing_ok: bool = False) -> dict | None:
+        if not isinstance(dataset_id, str) or not _ID.fullmatch(dataset_id):  # never a query
+            if missing_ok:
+                return None
+            raise NotFoundError(f"{str(dataset_id)[:80]!r} is not a valid dataset id")
         with self.engine.connect() as conn:
             row = conn.execute(sa.select(datasets_table).where(
                 datasets_table.c.id == dataset_id)).mappings().first()
@@ -397,6 +406,10 @@ class Store:
         return self.get_job(job_id)
 
     def get_job(self, job_id: str, missing_ok: bool = False) -> dict | None:
+        if not isinstance(job_id, str) or not _ID.fullmatch(job_id):  # never a query
+            if missing_ok:
+                return None
+            raise NotFoundError(f"{str(job_id)[:80]!r} is not a valid job id")
         with self.engine.connect() as conn:
             row = conn.execute(sa.select(jobs_table).where(
                 jobs_table.c.id == job_id)).mappings().first()
@@ -497,6 +510,10 @@ class Store:
         return self.get_model(model_id)
 
     def get_model(self, model_id: str, missing_ok: bool = False) -> dict | None:
+        if not isinstance(model_id, str) or not _ID.fullmatch(model_id):  # never a query
+            if missing_ok:
+                return None
+            raise NotFoundError(f"{str(model_id)[:80]!r} is not a valid model id")
         with self.engine.connect() as conn:
             row = conn.execute(sa.select(models_table).where(
                 models_table.c.id == model_id)).mappings().first()
@@ -676,6 +693,74 @@ class Store:
                         "model_ids": d.get("model_ids", [])})
         return sorted(out, key=lambda r: -(r["created"] or 0))
 
+    # -- leftovers
+
+    def sweep(self, min_age: float = SWEEP_MIN_AGE_S) -> list[str]:
+        """Remove what interrupted work left behind, so the folders agree with the catalog:
+        half-written uploads, ``.tmp-*`` model folders, temporary files of atomic writes
+        (a killed work-horse's statistics), the folders of jobs that ended (or that the
+        catalog does not know), and model or dataset folders without a catalog row.
+        Temporary files and unknown folders are removed only when untouched for ``min_age``
+        seconds, so work in progress elsewhere is left alone; the folder of an ended job at
+        once. Returns the removed paths, relative to the store."""
+        now = time.time()
+        removed: list[str] = []
+
+        def old(p: Path) -> bool:
+            """Untouched for min_age: the path and, for a folder, everything in it."""
+            try:
+                latest = p.lstat().st_mtime
+                if p.is_dir() and not p.is_symlink():
+                    latest = max([latest, *(q.lstat().st_mtime for q in p.rglob("*"))])
+            except OSError:
+                return False
+            return now - latest >= min_age
+
+        def remove(p: Path) -> None:
+            if p.is_dir() and not p.is_symlink():
+                shutil.rmtree(p, ignore_errors=True)
+            else:
+                with contextlib.suppress(FileNotFoundError):
+                    p.unlink()
+            if not p.exists():
+                removed.append(str(p.relative_to(self.root)))
+
+        def temporaries(folder: Path):
+            for pattern in (".*.tmp", ".tmp-*", ".upload-*"):
+                yield from (p for p in folder.rglob(pattern) if old(p))
+
+        def entries(sub: str) -> list[Path]:
+            folder = self.root / sub
+            return sorted(folder.iterdir()) if folder.is_dir() else []
+
+        for p in entries("uploads"):
+            if old(p):
+                remove(p)
+        for p in entries("jobs"):
+            row = self.get_job(p.name, missing_ok=True) if _ID.fullmatch(p.name) else None
+            if row is not None and row["state"] in ("queued", "running"):
+                for t in temporaries(p):
+                    remove(t)
+            elif row is not None or old(p):
+                remove(p)
+        for sub, lookup in (("models", self.get_model), ("datasets", self.get_dataset)):
+            for p in entries(sub):
+                if p.name.startswith("."):
+                    if old(p):
+                        remove(p)
+                    continue
+                known = _ID.fullmatch(p.name) and lookup(p.name, missing_ok=True) is not None
+                if not known and old(p):
+                    remove(p)
+                elif p.is_dir():
+                    for t in temporaries(p):
+                        remove(t)
+        for sub in ("products", "sweeps"):  # half-built or half-deleted product/sweep folders
+            for p in entries(sub):
+                if p.name.startswith((".tmp-", ".deleted-")) and old(p):
+                    remove(p)
+        return removed
+
     # -- internals
 
     def _update(self, table: sa.Table, row_id: str, **fields) -> None:
@@ -684,7 +769,7 @@ class Store:
 
 
 def _check_id(value: str) -> str:
-    if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_-]{0,63}", value or ""):
+    if not _ID.fullmatch(value or ""):
         raise NotFoundError(f"{value!r} is not a valid id")
     return value
 

@@ -383,3 +383,32 @@ def test_stored_model_of_a_canceled_job_is_still_reused(client, turb2d_file):  #
     doc = again.json()
     assert doc["id"] != job["id"] and doc["state"] == "succeeded" and doc["reused"]
     assert doc["model_id"] == model_id_for(fp)
+
+
+def test_options_and_wrong_methods_answer_allow(client):
+    r = client.options("/jobs")
+    assert r.status_code == 204 and set(r.headers["allow"].split(", ")) >= {"GET", "POST",
+                                                                            "OPTIONS"}
+    r = client.options("/jobs/j-1")
+    assert {"GET", "DELETE"} <= set(r.headers["allow"].split(", "))
+    r = client.put("/jobs")
+    assert r.status_code == 405 and "POST" in r.headers["allow"]
+    assert r.json()["error"] == "MethodNotAllowed"
+    assert client.options("/no-such-route").status_code == 404
+
+
+def test_every_error_status_is_documented_with_the_error_body(client):
+    doc = client.get("/openapi.json").json()
+    body = {"$ref": "#/components/schemas/ErrorBody"}
+    submit = doc["paths"]["/jobs"]["post"]["responses"]
+    for code in ("200", "202", "400", "401", "403", "404", "413", "422", "503"):
+        assert code in submit, code
+    assert submit["422"]["content"]["application/json"]["schema"] == body
+    assert "HTTPValidationError" not in doc["components"]["schemas"]
+    # the 422 answer has the documented shape
+    r = client.post("/jobs", json={"input": {"path": "x.nc"}, "fit": {"seed": -1}})
+    assert r.status_code == 422
+    assert set(r.json()) <= {"detail", "error", "errors"}
+    assert r.json()["errors"][0]["field"] == "fit.seed"
+    r = client.post("/jobs", content=b"\xff\xfe", headers={"Content-Type": "application/json"})
+    assert r.status_code in (400, 422) and "error" in r.json()

@@ -3,6 +3,7 @@ standard names, level stacks, curvilinear grids; xarray is the independent reade
 
 import hashlib
 import json
+from types import SimpleNamespace
 
 import netCDF4
 import numpy as np
@@ -513,7 +514,7 @@ def test_service_refuses_several_paths_with_a_user_error(tmp_path):
 
     s = parse_spec({"input": {"path": [str(tmp_path / "a.nc"), str(tmp_path / "b.nc")]}})
     with pytest.raises(InputFileError, match="this server takes one file per job"):
-        resolve_input(s, None, [tmp_path])
+        resolve_input(s, None, SimpleNamespace(data_roots=[tmp_path]))
 
 
 def test_level_stack_through_the_queue_functions_equals_in_process(stack, tmp_path):

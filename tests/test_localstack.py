@@ -225,3 +225,62 @@ def test_demo_runs_the_whole_job_and_stops_the_stack(tmp_path):
     assert "validate the model a posteriori" in out
     assert read_state(tmp_path / "demo" / "stack") is None  # stopped
     assert not (tmp_path / "demo" / "stack" / STATE_FILE).exists()
+
+
+@pytest.mark.slow
+def test_closure_up_heals_a_killed_redis_and_api_and_the_job_finishes(tmp_path):
+    """kill -9 of the stack's Redis while a job runs, then of its API: `closure up` restarts
+    each (Redis from its append-only file, the API on the same port) and the job ends
+    succeeded."""
+    from closure.synth import turb2d, write
+
+    data = tmp_path / "data"
+    data.mkdir()
+    path = write(turb2d(n=32, snapshots=8, spinup=1.0, interval=0.2), data / "t.nc")
+    state_dir = tmp_path / "home"
+    env = {**os.environ, "CLOSURE_HOME": str(state_dir), "CLOSURE_SNAPSHOTS_PER_TASK": "1"}
+    env.pop("CLOSURE_SERVER", None)
+    proc = subprocess.Popen([*CLI, "up", "--port", "0", "--workers", "1", "--data-root",
+                             str(data)], env=env, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True)
+
+    def state_after(check, seconds=60):
+        deadline = time.monotonic() + seconds
+        while time.monotonic() < deadline:
+            assert proc.poll() is None, proc.communicate()
+            state = read_state(state_dir)
+            if state is not None and check(state):
+                return state
+            time.sleep(0.2)
+        raise AssertionError("the stack did not get there in time")
+
+    try:
+        state = state_after(lambda s: True, 90)
+        with Client(state["server"]) as c:
+            job = c.submit({"input": {"path": str(path)}, "filter": {"ratio": 4},
+                            "fit": {"resamples": 4}})
+            deadline = time.monotonic() + 60
+            while c.status(job["id"])["state"] == "queued" and time.monotonic() < deadline:
+                time.sleep(0.2)
+            os.kill(state["pids"]["redis"], signal.SIGKILL)
+            state = state_after(lambda s: s["pids"]["redis"] != state["pids"]["redis"])
+            done = c.wait(job["id"], timeout=180)
+            assert done["state"] == "succeeded" and done["model_id"]
+            os.kill(state["pids"]["api"], signal.SIGKILL)
+            new = state_after(lambda s: s["pids"]["api"] != state["pids"]["api"])
+            assert new["server"] == state["server"]
+            deadline = time.monotonic() + 30
+            while True:
+                try:
+                    assert c.health()["status"] == "ok"
+                    break
+                except ServiceError:
+                    assert time.monotonic() < deadline
+                    time.sleep(0.3)
+            assert c.status(job["id"])["state"] == "succeeded"
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(60) == 0
+        assert "restarted it from its append-only file" in proc.stderr.read()
+    finally:
+        if proc.poll() is None:
+            proc.kill()

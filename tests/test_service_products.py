@@ -64,6 +64,7 @@ def api(tmp_path, redis_server, data):  # noqa: F811
                         data_roots=(data["root"],))
     with TestClient(create_app(settings)) as c:
         c.store = Store(tmp_path / "store")
+        c.settings = settings
         yield c
 
 
@@ -86,7 +87,7 @@ def test_a_stored_product_answers_an_identical_submission(api, data):
     from closure.store import fingerprint_hash
 
     spec = parse_coarse_grain_spec(cg_spec(data["small"], [{"ratio": 4}]))
-    run_spec, ds = resolve_input(spec, api.store, (data["root"],))
+    run_spec, ds = resolve_input(spec, api.store, api.settings)
     fp = fingerprint_hash(run_spec, ds["sha256"])
     out = products.coarse_grain_product(run_spec, data["root"] / "stored.nc")
     row = api.store.add_product(file=out, fingerprint=fp, dataset_sha256=ds["sha256"],

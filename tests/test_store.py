@@ -147,3 +147,59 @@ def test_postgres_schemas_keep_runs_apart(tmp_path):
     finally:
         a.drop_schema()
         b.drop_schema()
+
+
+def test_sweep_removes_planted_leftovers_and_keeps_live_work(store):  # noqa: F811
+    """Leftovers of killed processes: a half-written upload, a .tmp- model folder, a killed
+    horse's temporary statistics file, the folders of ended and unknown jobs, a model folder
+    the catalog does not know. Live work (an active job's files, fresh temporaries) stays."""
+    root = store.root
+    old = 3600.0
+
+    def plant(path, folder=False):
+        if folder:
+            path.mkdir(parents=True)
+            (path / "x.json").write_text("{}")
+        else:
+            path.parent.mkdir(parents=True, exist_ok=True)
+            path.write_bytes(b"partial")
+        # as a crash long ago leaves them: the entry, its contents and its folders untouched
+        for p in [path, *(path.rglob("*") if folder else []), *path.parents]:
+            if p == root.parent:
+                break
+            os.utime(p, (os.path.getmtime(p) - old, os.path.getmtime(p) - old))
+        return path
+
+    fp = "f" * 64
+    store.create_job(job_id="j-live", spec=SPEC, fingerprint=fp, input_sha256="1" * 64)
+    store.create_job(job_id="j-done", spec=SPEC, fingerprint="e" * 64, input_sha256="1" * 64)
+    store.update_job("j-done", state="failed", error="x")
+    live_stats = plant(store.stats_path("j-live", 0))
+    leftovers = [
+        plant(root / "uploads" / ".upload-0123.nc"),
+        plant(root / "models" / ".tmp-m-abc-1234", folder=True),
+        plant(store.job_dir("j-live") / "stats" / ".000001.npz.k2j3.tmp"),
+        plant(store.job_dir("j-live") / "held_out" / ".tmp-77", folder=True),
+        plant(store.job_dir("j-done") / "stats" / "000000.npz"),
+        plant(store.job_dir("j-unknown") / "plan.json"),
+        plant(root / "models" / "m-orphan", folder=True),
+    ]
+    fresh = root / "uploads" / ".upload-in-progress.nc"
+    fresh.write_bytes(b"streaming")
+    removed = store.sweep()
+    for path in leftovers:
+        assert not path.exists(), path
+    assert store.job_dir("j-done").exists() is False
+    assert live_stats.exists() and fresh.exists()
+    assert "uploads/.upload-0123.nc" in removed
+    # the catalog and the folders agree: every folder left has its row
+    assert {p.name for p in (root / "jobs").iterdir()} == {"j-live"}
+    assert not any((root / "models").iterdir())
+
+
+def test_ids_with_nul_or_odd_characters_are_not_queried(store):  # noqa: F811
+    for bad in ("d-\x00", "x" * 500, "a b", ""):
+        with pytest.raises(NotFoundError):
+            store.get_dataset(bad)
+        assert store.get_job(bad, missing_ok=True) is None
+        assert store.get_model(bad, missing_ok=True) is None

@@ -261,3 +261,162 @@ def test_queued_job_with_a_postgresql_catalog(tmp_path, redis_server, turb2d_fil
         conn.close()
         store.drop_schema()
         store.close()
+
+
+# --------------------------------------------------------------------------- containment at open
+
+def test_a_symlink_swapped_in_after_submission_is_not_read(env, turb2d_file, tmp_path):  # noqa: F811
+    """The file is replaced by a link to a file outside the data root between submission and
+    planning; the outside file has the same bytes, so the location check alone refuses it."""
+    import shutil
+
+    conn, store = env
+    root = tmp_path / "root"
+    root.mkdir()
+    inside = root / "a.nc"
+    shutil.copy(turb2d_file, inside)
+    outside = tmp_path / "outside.nc"
+    shutil.copy(turb2d_file, outside)
+    job_id = submit(conn, store, spec_dict(inside))
+    inside.unlink()
+    inside.symlink_to(outside)
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "leads elsewhere" in doc["error"], doc
+    assert store.find_models() == []
+
+
+def test_input_changed_after_submission_fails_on_its_checksum(env, turb2d_file, tmp_path):  # noqa: F811
+    import shutil
+
+    import netCDF4
+
+    conn, store = env
+    copy = tmp_path / "copy.nc"
+    shutil.copy(turb2d_file, copy)
+    job_id = submit(conn, store, spec_dict(copy))
+    with netCDF4.Dataset(copy, "a") as nc:  # still a valid file, other values
+        nc["u"][0, 0, 0] = nc["u"][0, 0, 0] + 1.0
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "SHA-256 differs" in doc["error"], doc
+    assert store.find_models() == []
+
+
+def test_worker_data_roots_are_checked_when_a_task_opens_the_input(env, turb2d_file, tmp_path):  # noqa: F811
+    conn, store = env
+    root = tmp_path / "root"
+    root.mkdir()
+    job_id = submit(conn, store, spec_dict(turb2d_file))  # outside the worker's root
+    run_burst(conn, store, db=["--data-root", str(root)])
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "not under the worker's data roots" in doc["error"]
+
+
+def test_a_library_file_in_a_queued_spec_is_refused(env, turb2d_file, tmp_path):  # noqa: F811
+    conn, store = env
+    secret = tmp_path / "secret.yaml"
+    secret.write_text("password: hunter2-PRIVATE\n")
+    job_id = submit(conn, store, spec_dict(turb2d_file, library=str(secret)))
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "failed" and "inline" in doc["error"]
+    assert "hunter2" not in json.dumps(doc)
+
+
+# --------------------------------------------------------------------------- one copy at a time
+
+def test_a_lease_keeps_a_second_copy_of_a_task_out(redis_server):  # noqa: F811
+    conn = q.connect(redis_server.url)
+    first = q.Lease(conn, "j-x-map-0", ttl=3).acquire()
+    with pytest.raises(q.LeaseHeld):
+        q.Lease(conn, "j-x-map-0", ttl=3).acquire(wait=1.0)
+    import time
+
+    time.sleep(4)  # renewed while its holder lives: still held past one ttl
+    assert first.held()
+    first.release()
+    second = q.Lease(conn, "j-x-map-0", ttl=3).acquire(wait=1.0)
+    assert second.held() and not first.held()
+    # a holder that stops renewing (its process died) loses it after ttl; the new holder
+    # then sees itself as the owner and the old one, were it still alive, does not
+    second._stop.set()
+    time.sleep(3.5)
+    third = q.Lease(conn, "j-x-map-0", ttl=3).acquire(wait=1.0)
+    assert third.held() and not second.held()
+    third.release()
+    # the lease of a dead work-horse is dropped by its worker at once
+    import os
+
+    os.environ["RQ_WORKER_ID"] = "w1"
+    try:
+        held = q.Lease(conn, "j-y-plan", ttl=30).acquire()
+    finally:
+        del os.environ["RQ_WORKER_ID"]
+    held._stop.set()
+    assert not q.release_dead_lease(conn, "j-y-plan", "w2", os.getpid())
+    assert q.release_dead_lease(conn, "j-y-plan", "w1", os.getpid())
+    assert not held.held()
+    conn.close()
+
+
+EXTRA = ""  # (a test of the test: "import worker.main as m; m.die_with_parent = print" fails it)
+
+
+def test_the_work_horse_dies_with_its_worker_killed_by_sigkill(env, turb2d_file, tmp_path):  # noqa: F811
+    """kill -9 of the worker: its work-horse (in a process group of its own) must not go on
+    running the task beside the copy the queue re-runs."""
+    import signal
+    import time
+
+    from service_support import child_pids, pid_alive
+
+    conn, store = env
+    job_id = submit(conn, store, spec_dict(turb2d_file))
+    url = conn.connection_pool.connection_kwargs.get("path")
+    patch = "import time, closure.pipeline as p; p.plan = lambda spec: time.sleep(120)" + EXTRA
+    code = patch + "\nimport sys; from closure.cli import main; sys.exit(main(sys.argv[1:]))"
+    worker = subprocess.Popen(
+        [sys.executable, "-c", code, "worker", "--burst", "--redis", f"unix://{url}",
+         "--store", str(store.root), "--log-level", "WARNING"],
+        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    horse = None
+    try:
+        deadline = time.time() + 60
+        while horse is None and time.time() < deadline:
+            kids = [p for p in child_pids(worker.pid) if os.getpgid(p) == p]
+            horse = kids[0] if kids else None
+            time.sleep(0.2)
+        assert horse is not None, "no work-horse started"
+        time.sleep(0.5)
+        assert pid_alive(horse)
+        os.kill(worker.pid, signal.SIGKILL)
+        worker.wait(10)
+        deadline = time.time() + 10
+        while pid_alive(horse) and time.time() < deadline:
+            time.sleep(0.1)
+        assert not pid_alive(horse), "the work-horse outlived its worker"
+    finally:
+        if worker.poll() is None:
+            worker.kill()
+        if horse is not None and pid_alive(horse):
+            os.kill(horse, signal.SIGKILL)  # only when the test failed
+    assert job_id
+
+
+def test_a_starting_worker_sweeps_the_store(env):
+    conn, store = env
+    leftovers = [store.root / "uploads" / ".upload-dead.nc",
+                 store.root / "models" / ".tmp-m-dead-0000" / "model.json",
+                 store.job_dir("j-gone") / "stats" / ".000000.npz.abc.tmp"]
+    for path in leftovers:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(b"half")
+        for p in (path, *path.parents):
+            if p == store.root:
+                break
+            os.utime(p, (0, 0))  # untouched since 1970: a crash long ago
+    run_burst(conn, store)
+    for path in leftovers:
+        assert not path.exists(), path
+    assert not (store.root / "jobs" / "j-gone").exists()

@@ -109,6 +109,7 @@ def les_task(job_id: str) -> dict:
                        phase_total=n_runs)
 
     try:
+        _check_files(st, spec, row)
         comparison = run(st, spec, progress=progress)
     except UserError as exc:
         st.update_job(job_id, state="failed", error=str(exc), only_if_active=True)
@@ -123,6 +124,22 @@ def les_task(job_id: str) -> dict:
     q.set_progress(conn, job_id, phase="done")
     return {"job": job_id, "model_id": spec.model_id, "run": folder.name,
             "status": {k: v.status for k, v in comparison.runs.items()}}
+
+
+def _check_files(store: Store, spec: AposterioriSpec, row: dict) -> None:
+    """Containment at open time (worker.tasks.check_input_file) of the run's files, and the
+    initial file's SHA-256 against the one recorded at submission."""
+    from closure.io import sha256_file
+    from worker import tasks
+
+    initial = spec.input.path if spec.input is not None else model_input_path(store,
+                                                                              spec.model_id)
+    tasks.check_input_file(initial)
+    if spec.reference is not None:
+        tasks.check_input_file(spec.reference.path)
+    if row.get("input_sha256") and sha256_file(initial) != row["input_sha256"]:
+        raise UserError("the input file changed since the run was submitted (its SHA-256 "
+                        "differs from the one recorded then); it is not read: resubmit")
 
 
 def run(store: Store, spec: AposterioriSpec, progress=None):

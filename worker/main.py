@@ -65,6 +65,46 @@ class ClosureWorker(Worker):
         except Exception as exc:  # noqa: BLE001 - an optimisation only
             log.debug("no warm-up for %s: %s", job_id, exc)
 
+    def fork_work_horse(self, job, queue):
+        self._worker_pid = os.getpid()
+        return super().fork_work_horse(job, queue)
+
+    def main_work_horse(self, job, queue):
+        """The work-horse dies with its worker: rq puts it in its own process group, so a
+        worker killed with SIGKILL would otherwise leave it running beside the copy of its
+        task that the queue re-runs."""
+        die_with_parent(getattr(self, "_worker_pid", None))
+        return super().main_work_horse(job, queue)
+
+    def monitor_work_horse(self, job, queue, execution):
+        """rq's monitoring; once the horse has exited (done, failed or killed), a lease it
+        still holds is void: drop it so a retry need not wait for it to expire."""
+        pid = self.horse_pid
+        try:
+            return super().monitor_work_horse(job, queue, execution)
+        finally:
+            with contextlib.suppress(redis.RedisError):
+                q.release_dead_lease(self.connection, job.id, self.name, pid)
+
+    #: seconds between store sweeps (closure.store.Store.sweep) of a running worker
+    sweep_interval_s: float = 600.0
+    _swept_at: float = 0.0
+
+    def run_maintenance_tasks(self):
+        """rq's registry cleaning, and now and then a sweep of the store's leftovers."""
+        super().run_maintenance_tasks()
+        if time.monotonic() - self._swept_at >= self.sweep_interval_s:
+            self._swept_at = time.monotonic()
+            try:
+                removed = tasks.store().sweep()
+            except Exception as exc:  # noqa: BLE001 - housekeeping must not stop the worker
+                log.warning("store sweep failed: %s", exc)
+                removed = []
+            finally:
+                tasks.store().close()  # no pooled connection for the next horse to inherit
+            if removed:
+                log.info("removed %d leftover(s) from the store", len(removed))
+
     def heartbeat(self, timeout=None, pipeline=None):
         """rq's heartbeat, and back into the worker registry if an outage dropped us from it
         (the registry sets, not the worker's own key, are what Worker.count reads)."""
@@ -83,6 +123,19 @@ class ClosureWorker(Worker):
         if job.timeout and job.timeout > 0:
             interval = min(job.timeout - working_time, interval)
         return int(max(interval, 1)) + self.abandon_grace_s
+
+
+def die_with_parent(parent_pid: int | None) -> None:
+    """Ask the kernel to SIGKILL this process when its parent exits (Linux PR_SET_PDEATHSIG),
+    and exit now if the parent is already gone (it died before the request took effect)."""
+    import ctypes
+    import signal
+
+    with contextlib.suppress(OSError, AttributeError):
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG = 1
+    if parent_pid is not None and os.getppid() != parent_pid:
+        os._exit(1)
 
 
 #: modules every task needs: imported once in the worker, so each forked work-horse starts
@@ -115,7 +168,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
                db_schema: str | None = None, *, name: str | None = None, burst: bool = False,
                monitoring_interval: int = 5, abandon_grace: int = 10,
                maintenance_interval: int = 10, with_scheduler: bool = True,
-               max_jobs: int | None = None, log_level: str = "INFO") -> int:
+               max_jobs: int | None = None, data_roots=None, log_level: str = "INFO") -> int:
     """Run one worker until SIGTERM/SIGINT (with ``burst``: until the queue is empty; with
     ``max_jobs``: until it has run that many tasks).
 
@@ -123,8 +176,12 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
     worker that stopped on a lost connection is started again.
     """
     logging.basicConfig(level=log_level, format="%(asctime)s %(name)s %(message)s")
-    tasks.configure(store_root, db_url, db_schema)
+    tasks.configure(store_root, db_url, db_schema, data_roots)
     tasks.store().open()  # fail fast on a bad catalog URL, create the tables
+    removed = tasks.store().sweep()  # what killed tasks and uploads left behind
+    if removed:
+        log.info("removed %d leftover(s) from the store: %s", len(removed),
+                 ", ".join(removed[:20]))
     tasks.store().close()  # each work-horse opens its own connections after the fork
     preload()
     base = name or f"closure-{socket.gethostname()}-{os.getpid()}"
@@ -139,6 +196,7 @@ def run_worker(redis_url: str, store_root: str, db_url: str | None = None,
             # an idle worker wakes up every worker_ttl - 15 s: that is the cleaning cadence
             worker_ttl=max(16, maintenance_interval + 15))
         worker.abandon_grace_s = abandon_grace
+        worker._swept_at = time.monotonic()  # swept at start-up, above
         try:
             worker.work(burst=burst, with_scheduler=with_scheduler and not burst,
                         max_jobs=max_jobs, logging_level=log_level)

@@ -75,15 +75,21 @@ def plan_task(job_id: str) -> dict:
     q.set_progress(conn, job_id, phase="plan")
     from closure import products
     from closure.store import fingerprint_hash
+    from worker.tasks import check_input_file
 
     try:
+        for path in spec.input.paths if spec.input.path is not None else [""]:
+            check_input_file(path)  # containment at open time, as for discovery
         plan = products.plan(spec)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
+    if plan["sha256"] != row["input_sha256"]:
+        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
+                     "SHA-256 differs from the one recorded then); the job does not read it: "
+                     "resubmit the job")
     fingerprint = fingerprint_hash(spec, plan["sha256"])
-    if fingerprint != row["fingerprint"] or plan["sha256"] != row["input_sha256"]:
-        # the file changed between submission and planning: the plan's hash is the truth
-        st.update_job(job_id, fingerprint=fingerprint, input_sha256=plan["sha256"])
+    if fingerprint != row["fingerprint"]:
+        st.update_job(job_id, fingerprint=fingerprint)
     existing = st.product_by_fingerprint(fingerprint)
     if existing is not None:
         return _done(conn, job_id, existing["id"], reused=True)
@@ -128,7 +134,10 @@ def map_task(job_id: str, indices: list[int]) -> dict:
 
     errors: dict[int, str] = {}
     source = None
+    from worker.tasks import check_input_file
+
     try:
+        check_input_file(plan["input"]["path"])
         source = products.open_planned(plan)  # once for the whole group
         cgs = products._coarse_grainings(plan, source.grid)
     except UserError as exc:

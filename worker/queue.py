@@ -13,6 +13,7 @@ Everything on the queue is JSON (rq's JSONSerializer), never pickle.
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import time
@@ -158,6 +159,96 @@ def map_tasks(conn: redis.Redis, job_id: str) -> list[list[int]]:
     return json.loads(raw) if raw else []
 
 
+# --------------------------------------------------------------------------- leases
+
+#: a running task's lease lives this long past its last renewal (renewed every third of it)
+LEASE_TTL_S = int(os.environ.get("CLOSURE_LEASE_TTL", 30))
+
+_RENEW = "if redis.call('get', KEYS[1]) == ARGV[1] then " \
+         "return redis.call('expire', KEYS[1], ARGV[2]) else return 0 end"
+_RELEASE = "if redis.call('get', KEYS[1]) == ARGV[1] then " \
+           "return redis.call('del', KEYS[1]) else return 0 end"
+
+
+_RELEASE_OWNER = "local v = redis.call('get', KEYS[1]) " \
+                 "if v and string.sub(v, 1, #ARGV[1]) == ARGV[1] then " \
+                 "return redis.call('del', KEYS[1]) else return 0 end"
+
+
+def lease_owner(worker_name: str, pid: int) -> str:
+    """The prefix of the lease tokens a worker's work-horse ``pid`` takes."""
+    return f"{worker_name}:{int(pid)}:"
+
+
+def release_dead_lease(conn: redis.Redis, task_id: str, worker_name: str, pid: int) -> bool:
+    """Drop a task's lease if the (now dead) work-horse ``pid`` of ``worker_name`` held it,
+    so the retry starts at once instead of waiting for it to expire."""
+    return bool(conn.eval(_RELEASE_OWNER, 1, f"closure:lease:{task_id}",
+                          lease_owner(worker_name, pid)))
+
+
+class LeaseHeld(RuntimeError):
+    """Another copy of the task holds its lease (still running): this copy does not run."""
+
+
+class Lease:
+    """The right to run one rq task: a Redis key holding this copy's token, renewed by a
+    heartbeat thread while the task runs and checked before the task stores its result, so
+    a re-queued copy never runs (or stores) beside a still-running one. A copy that dies
+    stops renewing, and its lease expires ``ttl`` seconds later."""
+
+    def __init__(self, conn: redis.Redis, task_id: str, ttl: int | None = None):
+        import uuid
+
+        self.conn, self.key = conn, f"closure:lease:{task_id}"
+        self.ttl = int(ttl or LEASE_TTL_S)
+        # who holds it: the worker that forked this process and the process itself
+        self.token = lease_owner(os.environ.get("RQ_WORKER_ID", "-"), os.getpid()) + \
+            uuid.uuid4().hex
+        self._stop = None
+
+    def acquire(self, wait: float | None = None) -> Lease:
+        """Take the lease, waiting up to ``wait`` seconds (default: one ttl and a little,
+        long enough for a dead copy's lease to expire); LeaseHeld when it stays taken."""
+        import threading
+
+        deadline = time.monotonic() + (self.ttl + 5 if wait is None else wait)
+        while not self.conn.set(self.key, self.token, nx=True, ex=self.ttl):
+            if time.monotonic() >= deadline:
+                raise LeaseHeld(f"another copy of {self.key.rsplit(':', 1)[-1]} is still "
+                                "running; this one stands down (the queue retries it)")
+            time.sleep(0.5)
+        self._stop = threading.Event()
+        thread = threading.Thread(target=self._renew, daemon=True, name="closure-lease")
+        thread.start()
+        return self
+
+    def _renew(self) -> None:
+        while not self._stop.wait(self.ttl / 3):
+            try:
+                if not self.conn.eval(_RENEW, 1, self.key, self.token, self.ttl):
+                    return  # lost: held() says so before anything is stored
+            except redis.RedisError:
+                continue  # an outage: try again; the check before storing decides
+
+    def held(self) -> bool:
+        """Whether this copy still holds the lease (asked before storing a result)."""
+        value = self.conn.get(self.key)
+        return value is not None and value.decode() == self.token
+
+    def release(self) -> None:
+        if self._stop is not None:
+            self._stop.set()
+        with contextlib.suppress(redis.RedisError):
+            self.conn.eval(_RELEASE, 1, self.key, self.token)
+
+    def __enter__(self) -> Lease:
+        return self.acquire()
+
+    def __exit__(self, *exc) -> None:
+        self.release()
+
+
 # --------------------------------------------------------------------------- submit
 
 def enqueue_plan(conn: redis.Redis, job_id: str) -> None:
@@ -234,11 +325,28 @@ def status(store, conn: redis.Redis, job_id: str) -> dict:
         sweeps.status_fields(store, row) if sweeps.is_sweep(row) else {}
     return {**extra,
         "id": row["id"], "name": row["name"], "state": row["state"], "progress": progress,
-        "model_id": row["model_id"], "error": row["error"], "reused": bool(row["reused"]),
+        "model_id": row["model_id"], "error": public_error(store, row),
+        "reused": bool(row["reused"]),
         "input_sha256": row["input_sha256"], "dataset_id": row["dataset_id"],
         "created": row["created"], "started": row["started"], "finished": row["finished"],
         "spec": row["spec"],
     }
+
+
+def public_error(store, row: dict) -> str | None:
+    """A job's error as its submitter may read it: an uploaded dataset named by its id, and
+    no path inside the server's store."""
+    error = row["error"]
+    if not error:
+        return error
+    if row.get("dataset_id"):
+        ds = store.get_dataset(row["dataset_id"], missing_ok=True)
+        if ds is not None:
+            error = error.replace(str(ds["path"]), f"dataset {row['dataset_id']}")
+    error = error.replace(str(store.root), "<store>")
+    if len(error) > 2000:  # an error listing many items stays readable
+        error = error[:2000] + f"... ({len(error) - 2000} more characters left out)"
+    return error
 
 
 # --------------------------------------------------------------------------- cancel
@@ -253,6 +361,10 @@ def cancel(store, conn: redis.Redis, job_id: str) -> bool:
     set_progress(conn, job_id, canceled=1)
     store.update_job(job_id, state="canceled", error="canceled on request", only_if_active=True)
     stop_tasks(conn, job_id)
+    import shutil
+
+    # a task still running removes what it writes after this when it sees the job ended
+    shutil.rmtree(store.job_dir(job_id), ignore_errors=True)
     return True
 
 

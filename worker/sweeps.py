@@ -63,17 +63,23 @@ def plan_task(job_id: str) -> dict:
     q.set_progress(conn, job_id, phase="plan")
     from closure import pipeline
     from closure.io import sha256_file
+    from worker.tasks import check_input_file
 
     try:
+        check_input_file(spec.discovery.input.path or "")  # containment at open time
         specs = _specs(spec)
         for s in specs:
             pipeline.check(s)
         sha = sha256_file(spec.discovery.input.path)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
+    if sha != row["input_sha256"]:
+        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
+                     "SHA-256 differs from the one recorded then); the job does not read it: "
+                     "resubmit the job")
     fingerprint = fingerprint_hash(spec, sha)
-    if fingerprint != row["fingerprint"] or sha != row["input_sha256"]:
-        st.update_job(job_id, fingerprint=fingerprint, input_sha256=sha)
+    if fingerprint != row["fingerprint"]:
+        st.update_job(job_id, fingerprint=fingerprint)
     if st.sweep_by_fingerprint(fingerprint) is not None:
         st.update_job(job_id, state="succeeded", reused=True, only_if_active=True)
         q.set_progress(conn, job_id, phase="done")

@@ -10,6 +10,7 @@ anything else raises, so rq retries the task.
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 import uuid
@@ -31,11 +32,47 @@ _config: dict = {}
 _store: Store | None = None
 
 
-def configure(store_root: str, db_url: str | None = None, db_schema: str | None = None) -> None:
-    """Set where tasks find the store (the worker's main process calls this before forking)."""
+def configure(store_root: str, db_url: str | None = None, db_schema: str | None = None,
+              data_roots=None) -> None:
+    """Set where tasks find the store and which folders their inputs may lie in (the worker's
+    main process calls this before forking); ``data_roots`` None: $CLOSURE_DATA_ROOTS."""
     global _store
-    _config.update(store_root=str(store_root), db_url=db_url, db_schema=db_schema)
+    _config.update(store_root=str(store_root), db_url=db_url, db_schema=db_schema,
+                   data_roots=None if data_roots is None else [str(r) for r in data_roots])
     _store = None
+
+
+def data_roots() -> list[Path]:
+    """The folders inputs given by path may lie in (none configured: no root check, only the
+    unchanged-location and checksum checks of :func:`check_input_file`)."""
+    roots = _config.get("data_roots")
+    if roots is None:
+        roots = [r for r in os.environ.get("CLOSURE_DATA_ROOTS", "").split(os.pathsep) if r]
+    return [Path(r).expanduser() for r in roots]
+
+
+def check_input_file(path: str | os.PathLike) -> Path:
+    """Containment at open time: the input must still be where the submission resolved it
+    (no symlink put in its way since: its real path is the recorded one) and, when the worker
+    has data roots, lie under one of them or be an upload of the store. UserError otherwise."""
+    recorded = Path(path)
+    try:
+        real = recorded.resolve(strict=True)
+    except (OSError, RuntimeError):
+        raise UserError(f"the input file {recorded} is gone since the job was submitted: "
+                        "resubmit the job") from None
+    if real != recorded:
+        raise UserError(f"the input file {recorded} now leads elsewhere (a link was put in its "
+                        "place since the job was submitted); the job does not read it: put the "
+                        "file back and resubmit")
+    roots = data_roots()
+    if roots:
+        allowed = [Path(r).resolve() for r in roots] + [
+            (store().root / sub).resolve() for sub in ("datasets", "products")]
+        if not any(real == r or r in real.parents for r in allowed):
+            raise UserError(f"the input file {recorded} is not under the worker's data roots; "
+                            "the job does not read it")
+    return real
 
 
 def store() -> Store:
@@ -67,11 +104,55 @@ def plan_indices(plan: dict) -> list[int]:
 def _fail(conn, job_id: str, message: str) -> dict:
     store().update_job(job_id, state="failed", error=message, only_if_active=True)
     q.set_progress(conn, job_id, phase="failed")
+    discard_work(job_id)
     return {"job": job_id, "failed": message}
+
+
+def discard_work(job_id: str) -> None:
+    """Remove an ended job's working folder (plan, spec, per-snapshot statistics)."""
+    shutil.rmtree(store().job_dir(job_id), ignore_errors=True)
+
+
+def _discard_if_ended(job_id: str) -> None:
+    """A task that finds its job ended (failed, canceled) removes what it wrote."""
+    row = store().get_job(job_id, missing_ok=True)
+    if row is None or row["state"] not in ("queued", "running"):
+        discard_work(job_id)
+
+
+# --------------------------------------------------------------------------- leases
+
+_lease: q.Lease | None = None
+
+
+def _leased(task):
+    """Run the task under its lease (worker.queue.Lease): a copy the queue re-ran while
+    another still runs waits for that one's lease, and stands down if it stays held."""
+
+    @functools.wraps(task)
+    def run(*args, **kwargs):
+        global _lease
+        job = get_current_job()
+        if job is None:
+            raise RuntimeError("closure tasks run inside an rq worker")
+        with q.Lease(job.connection, job.id) as lease:
+            _lease = lease
+            try:
+                return task(*args, **kwargs)
+            finally:
+                _lease = None
+
+    return run
+
+
+def _lease_lost() -> bool:
+    """True when this copy lost its lease (another copy runs): it must store nothing."""
+    return _lease is not None and not _lease.held()
 
 
 # --------------------------------------------------------------------------- tasks
 
+@_leased
 def plan_task(job_id: str) -> dict:
     """Plan the job, then enqueue one map task per snapshot and the reduce task after them."""
     conn = _conn()
@@ -85,17 +166,27 @@ def plan_task(job_id: str) -> dict:
     st.update_job(job_id, state="running", only_if_active=True)
     q.set_progress(conn, job_id, phase="plan")
     from closure import pipeline
+    from closure.library import PRESETS
 
+    if isinstance(spec.library, str) and spec.library not in PRESETS:
+        # the API puts a terms file's content inline: a queued job never names a file
+        return _fail(conn, job_id, f"library {spec.library_label[:200]!r}: a queued job takes "
+                     f"a preset ({', '.join(PRESETS)}) or term definitions inline, not a file")
     try:
+        for path in spec.input.paths if spec.input.path is not None else [""]:
+            check_input_file(path)
         plan = pipeline.plan(spec)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
 
     sha = plan.get("sha256") or row["input_sha256"]
+    if sha != row["input_sha256"]:
+        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
+                     "SHA-256 differs from the one recorded then); the job does not read it: "
+                     "resubmit the job")
     fingerprint = fingerprint_hash(spec, sha)
-    if fingerprint != row["fingerprint"] or sha != row["input_sha256"]:
-        # the file changed between submission and planning: the plan's hash is the truth
-        st.update_job(job_id, fingerprint=fingerprint, input_sha256=sha)
+    if fingerprint != row["fingerprint"]:
+        st.update_job(job_id, fingerprint=fingerprint)
     existing = st.model_by_fingerprint(fingerprint)
     if existing is not None:
         st.update_job(job_id, state="succeeded", model_id=existing["id"], reused=True,
@@ -103,6 +194,8 @@ def plan_task(job_id: str) -> dict:
         q.set_progress(conn, job_id, phase="done")
         return {"job": job_id, "model_id": existing["id"], "reused": True}
 
+    if _lease_lost():
+        return {"job": job_id, "lease_lost": True}
     work = st.job_dir(job_id)
     write_json_atomic(work / "plan.json", plan)
     write_json_atomic(work / "spec.json", spec.model_dump(mode="json"))
@@ -136,6 +229,9 @@ def _open_planned(plan: dict):
     """The planned input, opened as the plan read it (closure.pipeline.open_planned)."""
     from closure.pipeline import open_planned
 
+    inp = plan["input"]
+    for path in inp.get("paths") or [inp["path"]]:
+        check_input_file(path)
     return open_planned(plan)
 
 
@@ -166,6 +262,7 @@ def _held_out(work: Path, plan: dict):
     return held
 
 
+@_leased
 def map_task(job_id: str, indices: list[int]) -> dict:
     """SufficientStats of each snapshot in ``indices``, one file each, saved atomically
     (temp file + rename): a re-run overwrites them with identical statistics."""
@@ -199,6 +296,8 @@ def map_task(job_id: str, indices: list[int]) -> dict:
         except UserError as exc:
             errors[int(i)] = str(exc)
             continue
+        if _lease_lost():
+            break
         stats.save(st.stats_path(job_id, i))  # atomic: temp file + rename
         with conn.pipeline() as p:
             p.sadd(q.done_key(job_id), int(i))
@@ -211,9 +310,11 @@ def map_task(job_id: str, indices: list[int]) -> dict:
             p.hset(q.errors_key(job_id), mapping={str(k): v for k, v in errors.items()})
             p.expire(q.errors_key(job_id), q.PROGRESS_TTL_S)
             p.execute()
+    _discard_if_ended(job_id)
     return {"job": job_id, "indices": indices, "errors": len(errors)}
 
 
+@_leased
 def reduce_task(job_id: str) -> dict:
     """Load every snapshot's statistics, fit and score the model, store it, end the job."""
     conn = _conn()
@@ -253,6 +354,8 @@ def reduce_task(job_id: str) -> dict:
                                     held_out=held)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
+    if _lease_lost():
+        return {"job": job_id, "lease_lost": True}
     model_row = st.add_model(
         model=model, fingerprint=row["fingerprint"], dataset_sha256=row["input_sha256"],
         spec=spec, plan=plan, job_id=job_id, stats_dir=work / "stats", name=row["name"])
@@ -297,5 +400,6 @@ def on_task_failure(job, connection, exc_type=None, exc_value=None, tb=None) -> 
         message = str(exc_value)
     try:
         store().update_job(job_id, state="failed", error=message, only_if_active=True)
+        discard_work(job_id)
     finally:
         q.set_progress(connection, job_id, phase="failed")

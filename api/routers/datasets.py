@@ -10,8 +10,8 @@ from starlette.concurrency import run_in_threadpool
 
 from api.deps import Settings, get_settings, get_store, require_token
 from api.errors import TooLargeError, UnsupportedMediaError
-from api.inputs import describe_fields
-from closure.errors import InputFileError, OptionError
+from api.inputs import check_declared_sizes, describe_fields
+from closure.errors import InputFileError, InputTooLargeError, OptionError
 from closure.store import Store
 
 router = APIRouter(tags=["datasets"], dependencies=[Depends(require_token)])
@@ -70,6 +70,11 @@ async def upload_dataset(
             raise InputFileError(f"{name}: not a netCDF file (netCDF-3 or netCDF-4/HDF5 "
                                  "expected)")
         try:
+            time_dim = (mapping or {}).get("time", "time")
+            try:
+                await run_in_threadpool(check_declared_sizes, tmp, name, settings, time_dim)
+            except InputTooLargeError as exc:
+                raise TooLargeError(str(exc)) from None
             info = await run_in_threadpool(describe_fields, tmp, mapping, scalar_names, periodic)
         except InputFileError as exc:  # name the user's file, not our temporary copy
             raise InputFileError(str(exc).replace(str(tmp), name)) from None

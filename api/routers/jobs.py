@@ -10,7 +10,6 @@ from api.errors import ConflictError
 from api.inputs import resolve_input
 from api.routers.products import product_as_dataset, submit_coarse_grain
 from api.routers.sweeps import submit_sweep
-from closure import pipeline
 from closure.spec import AnyJobSpec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
@@ -37,8 +36,8 @@ def submit_job(spec: AnyJobSpec, response: Response,
     if spec.kind == "sweep":
         return submit_sweep(spec, response, name, settings, store, conn)
     spec = product_as_dataset(spec, store)  # input.dataset_id "pr-...": a stored product
-    run_spec, dataset = resolve_input(spec, store, settings.data_roots)
-    pipeline.check(run_spec)  # a ratio, width or library the data cannot take: 4xx now
+    # header-only checks (sizes, ratio, width, library): 4xx now, no field values read
+    run_spec, dataset = resolve_input(spec, store, settings)
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     model = store.model_by_fingerprint(fingerprint)
     existing = None

@@ -35,7 +35,7 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     from worker import products as tasks
     from worker import queue as q
 
-    run_spec, dataset = resolve_input(spec, store, settings.data_roots)
+    run_spec, dataset = resolve_input(spec, store, settings)
     products.check(run_spec)  # a ratio, width or target the data cannot take: 4xx now
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     existing = None

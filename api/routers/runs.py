@@ -9,7 +9,7 @@ from pathlib import Path
 from fastapi import APIRouter, Body, Depends, Response
 
 from api.deps import Settings, get_redis, get_settings, get_store, require_token
-from api.inputs import resolve_under_roots
+from api.inputs import check_declared_sizes, resolve_under_roots
 from closure.errors import InputFileError, OptionError
 from closure.spec import AposterioriSpec, FileSpec
 from closure.store import NotFoundError, Store, new_job_id, read_json
@@ -113,16 +113,17 @@ def _resolve(ref: FileSpec | None, what: str, store: Store, settings: Settings
     if ref is None:
         return None, None
     if ref.dataset_id is not None:
+        if "\x00" in ref.dataset_id or len(ref.dataset_id) > 64:
+            raise OptionError(f"{what}.dataset_id: give a dataset id from POST /datasets")
         ds = store.get_dataset(ref.dataset_id)
         path = Path(ds["path"])
         if not path.is_file():
             raise InputFileError(f"{what}.dataset_id {ref.dataset_id}: its file is gone from "
                                  "the store; upload it again")
         return path, ds["id"]
-    try:
-        return resolve_under_roots(ref.path, settings.data_roots), None
-    except InputFileError as exc:
-        raise InputFileError(str(exc).replace("input.path", f"{what}.path")) from None
+    path = resolve_under_roots(ref.path, settings.data_roots, f"{what}.path")
+    check_declared_sizes(path, f"{what}.path {ref.path!r}", settings)
+    return path, None
 
 
 def _sha256(store: Store, path: Path) -> str:

@@ -7,7 +7,6 @@ from fastapi import APIRouter, Depends, Response
 
 from api.deps import Settings, get_store, require_token
 from api.inputs import resolve_input
-from closure import pipeline
 from closure.errors import UserError
 from closure.spec import SweepSpec
 from closure.store import Store, fingerprint_hash, new_job_id
@@ -26,11 +25,11 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
     from worker import queue as q
     from worker import sweeps as tasks
 
-    discovery, dataset = resolve_input(spec.discovery, store, settings.data_roots)
+    discovery, dataset = resolve_input(spec.discovery, store, settings)
     run_spec = spec.model_copy(update={"discovery": discovery})
     for k, s in enumerate(sweep_specs(discovery, spec.widths, spec.ratios)):
         try:
-            pipeline.check(s)  # a width the data cannot take: 4xx now
+            resolve_input(s, store, settings)  # a width the data cannot take: 4xx now (header)
         except UserError as exc:
             raise type(exc)(f"widths[{k}] ({spec.widths[k]:g}): {exc}") from None
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])

@@ -161,6 +161,9 @@ def worker(
                                       "missed heartbeat before a task counts as lost"),
     maintenance_interval: int = typer.Option(10, "--maintenance-interval", min=1,
                                              help="seconds between lost-task sweeps"),
+    data_root: list[Path] = typer.Option(None, "--data-root", help="folder inputs given by "
+                                         "path must lie in, checked again when a task opens "
+                                         "them (repeatable; $CLOSURE_DATA_ROOTS)"),
     log_level: str = typer.Option("INFO", "--log-level"),
 ) -> None:
     """Run one queue worker (rq, JSON serializer, with the scheduler).
@@ -178,7 +181,7 @@ def worker(
         db_schema or os.environ.get("CLOSURE_DB_SCHEMA") or None, name=name, burst=burst,
         monitoring_interval=monitoring_interval, abandon_grace=abandon_grace,
         maintenance_interval=maintenance_interval, max_jobs=max_jobs,
-        log_level=log_level.upper()))
+        data_roots=data_root or None, log_level=log_level.upper()))
 
 
 # --------------------------------------------------------------------------- client
