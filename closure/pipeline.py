@@ -222,7 +222,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "library": library_info,
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
-        "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library),
+        "warnings": list(cg.warnings()) + _compressibility_warning(src, chosen[0], library,
+                                                                   spec),
     }
 
 
@@ -230,13 +231,21 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
 DIVERGENCE_TOLERANCE = 1e-3
 
 
-def _compressibility_warning(src, index: int, library) -> list[str]:
+def _compressibility_warning(src, index: int, library, spec: JobSpec | None = None
+                            ) -> list[str]:
     """Warn when the library left out terms that are dependent only on incompressible fields
-    and the data's velocity is not divergence-free (rms div u against rms |grad u|)."""
+    and the data's velocity is not divergence-free (rms div u against rms |grad u|). A snapshot
+    too large for memory is checked on its coarse-grained velocity (read by slabs)."""
     pruned = [d.split(":")[0] for d in library.dropped if "on incompressible fields" in d]
     if not pruned or len(src.velocity) < 2:
         return []
-    snap = src.snapshot(index)
+    if spec is not None and _by_slabs(spec, src):
+        from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
+
+        snap = coarse_grain_out_of_core(SourceSlabs(src, index), _coarse_graining(spec, src.grid),
+                                        targets=(), memory_limit=spec.memory_limit)
+    else:
+        snap = src.snapshot(index)
     ratio = divergence_ratio(snap.fields, snap.grid, list(src.velocity))
     if ratio <= DIVERGENCE_TOLERANCE:
         return []
@@ -298,18 +307,36 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
     own = source is None
     src = _open(spec) if own else source
     try:
-        snap = src.snapshot(int(index))
+        cg = _coarse_graining(spec, src.grid)
+        # only the fitted target: the scores' transfers come from the coarse fields
+        if _by_slabs(spec, src):
+            from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
+
+            cs = coarse_grain_out_of_core(
+                SourceSlabs(src, int(index)), cg, _scalars(spec), targets=plan["components"],
+                memory_limit=spec.memory_limit,
+                dtype=np.float32 if spec.fine_float32 else np.float64)
+        else:
+            snap = src.snapshot(int(index))
+            cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"])
     finally:
         if own:
             src.close()
-    cg = _coarse_graining(spec, snap.grid)
-    # only the fitted target: the scores' transfers come from the coarse fields
-    cs = coarse_grain_snapshot(snap, cg, _scalars(spec), targets=plan["components"])
-    library = _library(spec, snap.grid.dims)
+    library = _library(spec, cg.fine.dims)
     if library.names != list(plan["terms"]):
         raise UserError("the library's terms changed since the job was planned: resubmit the "
                         "job")
     return cs, cg, library
+
+
+def _by_slabs(spec: JobSpec, src) -> bool:
+    """Whether a snapshot of ``src`` goes through closure.outofcore: it would exceed the
+    spec's memory limit in memory, or the fine-grid pass runs in float32."""
+    from closure.outofcore import needs_out_of_core
+
+    n_fields = len(src.velocity) + len(_scalars(spec))
+    return bool(getattr(spec, "fine_float32", False)) or needs_out_of_core(
+        src.grid, n_fields, getattr(spec, "memory_limit", None))
 
 
 @_small_blas

@@ -46,13 +46,26 @@ def coarse_grain(
     non_periodic: bool = typer.Option(False, "--non-periodic",
                                       help="the data are not periodic (finite differences, "
                                            "reflecting filter edges)"),
+    memory_limit: str | None = typer.Option(
+        None, "--memory-limit", help="memory one snapshot may use, e.g. 8G or 0.25 (of the "
+        "machine's); larger snapshots are processed by slabs (default: half the machine's "
+        "memory)", show_default=False),
+    float32: bool = typer.Option(False, "--float32",
+                                 help="fine-grid pass in float32 (relative error ~1e-6)"),
 ) -> None:
     """Filter and coarsen every snapshot; write filtered fields and exact subgrid terms."""
     from closure.filters import make_coarse_graining
     from closure.io import CoarseWriter, open_fields
+    from closure.outofcore import (
+        SourceSlabs,
+        coarse_grain_out_of_core,
+        needs_out_of_core,
+        parse_memory,
+    )
     from closure.residuals import coarse_grain_snapshot
 
     variables = parse_var_options(var)
+    limit = parse_memory(memory_limit)
     with open_fields(input, variables, tuple(scalar or ()), periodic=not non_periodic) as src:
         if output.exists() and output.resolve() == src.path.resolve():
             raise OptionError(f"the output {output} is the input file: choose another -o "
@@ -61,10 +74,17 @@ def coarse_grain(
         for w in cg.warnings():
             typer.echo(f"warning: {w}", err=True)
         n = src.n_snapshots
+        slabs = float32 or needs_out_of_core(src.grid, len(src.velocity) + len(src.scalars),
+                                             limit)
         pi_sum, back, count = 0.0, 0, 0
         with CoarseWriter(output, src.describe()) as writer, _progress(n) as advance:
             for i in range(n):
-                cs = coarse_grain_snapshot(src.snapshot(i), cg, src.scalars)
+                if slabs:
+                    cs = coarse_grain_out_of_core(SourceSlabs(src, i), cg, src.scalars,
+                                                  memory_limit=limit,
+                                                  dtype=np.float32 if float32 else np.float64)
+                else:
+                    cs = coarse_grain_snapshot(src.snapshot(i), cg, src.scalars)
                 writer.append(cs)
                 pi = cs.targets["pi"]
                 pi_sum += float(pi.sum())

@@ -22,9 +22,11 @@ _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
 def build_spec(input: Path, *, filter: str, width: float | None, width_units: str, ratio: int,
                target: str, library: str, method: str, scheme: str, test_fraction: float,
                var: list[str] | None, scalar: list[str] | None, non_periodic: bool,
-               transfer_weight: float, seed: int, resamples: int, snapshots: str | None):
+               transfer_weight: float, seed: int, resamples: int, snapshots: str | None,
+               memory_limit: str | None = None, fine_float32: bool = False):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option)."""
     from closure.cli.coarse import parse_var_options
+    from closure.outofcore import parse_memory
     from closure.spec import parse_spec
 
     chosen = None
@@ -44,6 +46,8 @@ def build_spec(input: Path, *, filter: str, width: float | None, width_units: st
         "scheme": scheme,
         "fit": {"method": method, "test_fraction": test_fraction, "resamples": resamples,
                 "transfer_weight": transfer_weight, "seed": seed},
+        "memory_limit": parse_memory(memory_limit),
+        "fine_float32": bool(fine_float32),
     })
 
 
@@ -102,6 +106,12 @@ def discover(
     snapshots: str | None = typer.Option(None, "--snapshots",
                                          help="time indices to use, e.g. 0-9,12 (default all)",
                                          show_default=False),
+    memory_limit: str | None = typer.Option(
+        None, "--memory-limit", help="memory one snapshot may use, e.g. 8G or 0.25 (of the "
+        "machine's); larger snapshots are processed by slabs (default: half the machine's "
+        "memory)", show_default=False),
+    float32: bool = typer.Option(False, "--float32",
+                                 help="fine-grid pass in float32 (relative error ~1e-6)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
 ) -> None:
     """Fit a sparse closure from candidate terms, score it on held-out snapshots, write it."""
@@ -117,7 +127,8 @@ def discover(
                       target=target, library=library, method=method, scheme=scheme,
                       test_fraction=test_fraction, var=var, scalar=scalar,
                       non_periodic=non_periodic, transfer_weight=transfer_weight, seed=seed,
-                      resamples=resamples, snapshots=snapshots)
+                      resamples=resamples, snapshots=snapshots, memory_limit=memory_limit,
+                      fine_float32=float32)
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         model = pipeline.discover(spec, progress=progress)
     path = model.save(output)
