@@ -110,7 +110,7 @@ from pathlib import Path
 import numpy as np
 import sympy
 
-from closure.derivatives import check_scheme, derivative
+from closure.derivatives import check_scheme, derivatives
 from closure.errors import UserError
 from closure.grid import VELOCITY_OF, Grid
 
@@ -1527,15 +1527,21 @@ def derivative_fields(symbols: Iterable[sympy.Symbol], fields: Mapping[str, np.n
             steps.setdefault((parent, n), [])
             if f not in steps[(parent, n)]:
                 steps[(parent, n)].append(f)
+        # one transform of a parent stack for all the orders taken of it
+        by_parent: dict[tuple, dict[tuple, list[int]]] = {}
         for (parent, n), fs in steps.items():
             child = parent[:axis] + (n,) + (0,) * (2 - axis)
-            todo = [f for f in fs if (f, child) not in cache]
-            if not todo:
-                continue
-            stack = np.stack([cache[(f, parent)] for f in todo])
-            out = derivative(stack, grid, d, n, scheme)
-            for f, a in zip(todo, out, strict=True):
-                cache[(f, child)] = a
+            todo = tuple(f for f in fs if (f, child) not in cache)
+            if todo:
+                by_parent.setdefault(parent, {}).setdefault(todo, []).append(n)
+        for parent, groups in by_parent.items():
+            for todo, orders in groups.items():
+                stack = np.stack([cache[(f, parent)] for f in todo])
+                outs = derivatives(stack, grid, d, orders, scheme)
+                for n, out in zip(orders, outs, strict=True):
+                    child = parent[:axis] + (n,) + (0,) * (2 - axis)
+                    for f, a in zip(todo, out, strict=True):
+                        cache[(f, child)] = a
     return {name: cache[(f, counts)] for name, (f, counts) in wanted.items()}
 
 
