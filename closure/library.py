@@ -110,7 +110,7 @@ from pathlib import Path
 import numpy as np
 import sympy
 
-from closure.derivatives import check_scheme, derivatives
+from closure.derivatives import check_scheme, derivative, derivatives
 from closure.errors import UserError
 from closure.grid import VELOCITY_OF, Grid
 
@@ -1537,7 +1537,8 @@ def derivative_fields(symbols: Iterable[sympy.Symbol], fields: Mapping[str, np.n
         for parent, groups in by_parent.items():
             for todo, orders in groups.items():
                 stack = np.stack([cache[(f, parent)] for f in todo])
-                outs = derivatives(stack, grid, d, orders, scheme)
+                outs = ([derivative(stack, grid, d, orders[0], scheme)] if len(orders) == 1
+                        else derivatives(stack, grid, d, orders, scheme))
                 for n, out in zip(orders, outs, strict=True):
                     child = parent[:axis] + (n,) + (0,) * (2 - axis)
                     for f, a in zip(todo, out, strict=True):
