@@ -1127,11 +1127,62 @@ def make_library(name_or_path: str, target: str, dims: Iterable[str],
 @lru_cache(maxsize=64)
 def _default_terms(target: str, dirs: tuple[str, ...], scalars: tuple[str, ...], prune: bool
                    ) -> tuple[tuple[Term, ...], tuple[Dependency, ...]]:
+    cached = _disk_cache("default_terms", (target, dirs, scalars, prune))
+    if cached is not None:
+        return cached
     terms = _builtin_terms(target, Kinematics(dirs, scalars))
     if not prune:
-        return tuple(terms), ()
+        return _disk_cache("default_terms", (target, dirs, scalars, prune), (tuple(terms), ()))
     kept, dropped = _prune(terms, dirs)
-    return tuple(kept), tuple(dropped)
+    return _disk_cache("default_terms", (target, dirs, scalars, prune),
+                       (tuple(kept), tuple(dropped)))
+
+
+def _cache_folder() -> Path | None:
+    """Where built preset terms are kept between processes: ``CLOSURE_CACHE`` (``off``: not
+    kept), else ``$XDG_CACHE_HOME/closure`` or ``~/.cache/closure``."""
+    import os
+
+    env = os.environ.get("CLOSURE_CACHE")
+    if env is not None:
+        return None if env.strip().lower() in ("", "off", "0", "no") else Path(env)
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "closure"
+
+
+def _disk_cache(kind: str, key: tuple, value=None):
+    """Built preset terms (sympy expressions, pruning) stored between processes: building
+    and pruning them took about a second of every command's start-up. Keyed by this module's
+    source and the sympy version, so an edit of the presets never reads a stale entry. With
+    ``value``: store it (best effort) and return it; without: the stored value or None. The
+    files are this user's own cache (pickles of sympy expressions; never from elsewhere)."""
+    import hashlib
+    import pickle
+
+    folder = _cache_folder()
+    if folder is None:
+        return value
+    try:
+        h = hashlib.sha256(Path(__file__).read_bytes())
+        h.update(repr((sympy.__version__, kind, key)).encode())
+        path = folder / f"{kind}-{h.hexdigest()[:32]}.pickle"
+        if value is None:
+            if not path.exists():
+                return None
+            terms, dropped, symbols = pickle.loads(path.read_bytes())
+            for f, counts in symbols:  # the symbol registry the terms' names resolve in
+                field_symbol(f, counts)
+            return terms, dropped
+        from closure.atomic import write_bytes
+
+        symbols = sorted({_INFO[s.name] for t in value[0] for s in t.symbols})
+        bare = tuple(dataclasses.replace(t, _cache={}) for t in value[0])  # no compiled code
+        folder.mkdir(parents=True, exist_ok=True)
+        write_bytes(path, pickle.dumps((bare, value[1], symbols)))
+    except (OSError, pickle.PickleError, EOFError, AttributeError, ValueError, TypeError,
+            KeyError, UserError):
+        pass  # a cache: any problem means building the terms again
+    return value
 
 
 def _preset_terms(name: str, target: str, dirs: tuple[str, ...], scalars: tuple[str, ...],
