@@ -1635,9 +1635,9 @@ def design(library: Library, fields: Mapping[str, np.ndarray], grid: Grid,
     cols = evaluate_terms(library, fields, grid, scheme, delta)
     nc, npts, nt = len(library.keys), int(np.prod(grid.shape)), len(library.terms)
     out = np.empty((nc, npts, nt))
-    for k, comps in enumerate(cols):
-        for c, a in enumerate(comps):
-            out[c, :, k] = a.reshape(-1)
+    for c in range(nc if nt else 0):  # one interleaving copy per component (faster than
+        # writing column by column)
+        np.stack([comps[c].reshape(-1) for comps in cols], axis=1, out=out[c])
     return out
 
 
