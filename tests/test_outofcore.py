@@ -253,3 +253,18 @@ def test_coarse_grain_command_with_a_memory_limit(three_d_file, tmp_path, capsys
     assert main(["coarse-grain", str(three_d_file), "-o", str(tmp_path / "c.nc"),
                  "--memory-limit", "lots"]) == 2
     assert "--memory-limit expects a size such as 4G" in capsys.readouterr().err
+
+
+def test_discover_command_checks_the_memory_limit(three_d_file, tmp_path, capsys):
+    from closure.cli import main
+
+    assert main(["discover", str(three_d_file), "-o", str(tmp_path / "m.json"),
+                 "--memory-limit", "4 parsecs"]) == 2
+    assert "--memory-limit expects a size such as 4G" in capsys.readouterr().err
+    assert main(["discover", str(three_d_file), "-o", str(tmp_path / "m.json"), "-q",
+                 "--ratio", "2", "--library", "minimal", "--resamples", "0",
+                 "--memory-limit", "64kB"]) == 0
+    from closure.model import ClosureModel
+
+    spec = ClosureModel.load(tmp_path / "m.json").provenance["spec"]
+    assert spec["memory_limit"] == 64_000 and spec["fine_float32"] is False
