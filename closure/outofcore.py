@@ -41,9 +41,11 @@ from closure.grid import VELOCITY_OF, Grid
 
 #: the default budget: this fraction of the machine's memory
 DEFAULT_MEMORY_FRACTION = 0.5
-#: the in-memory path holds about this many field-sized arrays per field read (the fields,
-#: products, spectra and temporaries; measured peak ~2.4x a 3-D velocity snapshot, with margin)
-IN_MEMORY_FACTOR = 4.0
+#: peak memory of the in-memory path per byte of the snapshot's fields, with a margin:
+#: measured (bench/outofcore_3d.py, 256^3) 2.0x for the stress, 5.3x with the force (which
+#: holds the fine filtered velocity and its products)
+IN_MEMORY_FACTOR = 3.0
+IN_MEMORY_FACTOR_FINE = 6.5
 _UNITS = {"": 1, "b": 1, "k": 2**10, "kb": 10**3, "kib": 2**10, "m": 2**20, "mb": 10**6,
           "mib": 2**20, "g": 2**30, "gb": 10**9, "gib": 2**30, "t": 2**40, "tb": 10**12,
           "tib": 2**40}
@@ -94,11 +96,21 @@ def snapshot_bytes(grid: Grid, n_fields: int) -> int:
     return 8 * int(np.prod(grid.shape)) * int(n_fields)
 
 
-def needs_out_of_core(grid: Grid, n_fields: int, memory_limit: int | None) -> bool:
-    """Whether the in-memory pass over a snapshot of ``n_fields`` fields would exceed the
-    budget (None: the default budget)."""
+def in_memory_bytes(grid: Grid, n_fields: int, targets: Sequence[str] | None = None) -> int:
+    """Estimated peak bytes of the in-memory pass (closure.residuals.coarse_grain_snapshot)
+    for ``targets`` (None: every one, the force included)."""
+    fine = targets is None or any(t.startswith("force_") or t == "vorticity_forcing"
+                                  for t in targets)
+    factor = IN_MEMORY_FACTOR_FINE if fine else IN_MEMORY_FACTOR
+    return int(factor * snapshot_bytes(grid, n_fields))
+
+
+def needs_out_of_core(grid: Grid, n_fields: int, memory_limit: int | None,
+                      targets: Sequence[str] | None = None) -> bool:
+    """Whether the in-memory pass over a snapshot of ``n_fields`` fields, computing
+    ``targets`` (None: all), would exceed the budget (None: the default budget)."""
     limit = default_memory_limit() if memory_limit is None else int(memory_limit)
-    return IN_MEMORY_FACTOR * snapshot_bytes(grid, n_fields) > limit
+    return in_memory_bytes(grid, n_fields, targets) > limit
 
 
 # ---------------------------------------------------------------------------------- sources

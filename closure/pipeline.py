@@ -332,11 +332,13 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
 def _by_slabs(spec: JobSpec, src) -> bool:
     """Whether a snapshot of ``src`` goes through closure.outofcore: it would exceed the
     spec's memory limit in memory, or the fine-grid pass runs in float32."""
+    from closure.library import target_components
     from closure.outofcore import needs_out_of_core
 
     n_fields = len(src.velocity) + len(_scalars(spec))
     return bool(getattr(spec, "fine_float32", False)) or needs_out_of_core(
-        src.grid, n_fields, getattr(spec, "memory_limit", None))
+        src.grid, n_fields, getattr(spec, "memory_limit", None),
+        target_components(spec.target, src.grid.dims))
 
 
 @_small_blas

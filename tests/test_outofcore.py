@@ -191,6 +191,10 @@ def test_parse_memory_and_the_budget_rule():
     grid = Grid.regular((64, 64, 64), 1.0)  # 3 fields: 6 MiB
     assert needs_out_of_core(grid, 3, 10 * 2**20)
     assert not needs_out_of_core(grid, 3, 10 * 2**30)
+    # the stress alone holds less than the force (fine filtered velocity and its products)
+    assert not needs_out_of_core(grid, 3, 30 * 2**20, ["tau_xx", "tau_xy"])
+    assert needs_out_of_core(grid, 3, 30 * 2**20, ["force_x"])
+    assert needs_out_of_core(grid, 3, 30 * 2**20)
 
 
 def test_user_errors_name_the_fix():

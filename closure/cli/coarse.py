@@ -75,7 +75,7 @@ def coarse_grain(
             typer.echo(f"warning: {w}", err=True)
         n = src.n_snapshots
         slabs = float32 or needs_out_of_core(src.grid, len(src.velocity) + len(src.scalars),
-                                             limit)
+                                             limit)  # every target: the force included
         pi_sum, back, count = 0.0, 0, 0
         with CoarseWriter(output, src.describe()) as writer, _progress(n) as advance:
             for i in range(n):
