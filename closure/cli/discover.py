@@ -108,8 +108,8 @@ def discover(
                                          show_default=False),
     memory_limit: str | None = typer.Option(
         None, "--memory-limit", help="memory one snapshot may use, e.g. 8G or 0.25 (of the "
-        "machine's); larger snapshots are processed by slabs (default: half the machine's "
-        "memory)", show_default=False),
+        "machine's); larger snapshots are processed by slabs, spilling to files under "
+        "TMPDIR (default: half the machine's memory)", show_default=False),
     float32: bool = typer.Option(False, "--float32",
                                  help="fine-grid pass in float32 (relative error ~1e-6)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
