@@ -273,9 +273,11 @@ class _Engine:
         for key, _, ops in requests:
             for rest in {op[1:] for op in ops}:
                 members = [op for op in ops if op[1:] == rest]
-                res = self._first_direction(partial.pop((key, rest)), members,
-                                            spectral_of[(key, rest)])
+                store = partial.pop((key, rest))
+                res = self._first_direction(store, members, spectral_of[(key, rest)])
                 out.update({(key, op): a for op, a in res.items()})
+                if isinstance(store, _FileArray):  # free its disk now, not at the end
+                    os.unlink(store.path)
         return out
 
     def _slab_forward(self, f, ops, last) -> dict:
