@@ -65,6 +65,9 @@ CASES = [  # (shape, kind, periodic, ratio)
     ((8, 12, 16), "spectral", True, 2), ((8, 12, 16), "block", True, 2),
     ((12, 12, 16), "gaussian", False, 2), ((12, 12, 16), "box", False, 2),
     ((12, 12, 16), "block", False, 2),
+    # first direction long against the kernel: halo windows inside the domain and at its edges
+    ((64, 12), "gaussian", False, 2), ((60, 12), "box", False, 3),
+    ((48, 8, 8), "gaussian", False, 2), ((64, 24), "block", False, 4),
 ]
 
 
