@@ -325,8 +325,17 @@ class _Reader:
         var = var.isel({first: slice(int(start), int(stop))}).transpose(*self.grid.dims)
         with np.errstate(all="ignore"):
             a = np.asarray(var.values, dtype=np.float64)
-        if not np.isfinite(a).all():
-            self.read(name, i)  # raises the error that names the first bad point
+        bad = ~np.isfinite(a)
+        if bad.any():  # the message of read(), the point counted from the whole grid
+            where = list(np.unravel_index(int(np.argmax(bad)), a.shape))
+            where[0] += int(start)
+            at = ", ".join(f"{d}={j}" for d, j in zip(self.grid.dims, where, strict=True))
+            theirs = self.names[name]
+            label = theirs if theirs == name else f"{theirs} ({name})"
+            raise InputFileError(
+                f"variable {label!r} has NaN or Inf value(s) at snapshot {i} of {self.path} "
+                f"(first at {at}; fill values count as missing): fill or remove them, or "
+                "select other snapshots")
         return np.ascontiguousarray(a)
 
     def time_of(self, i: int) -> float | None:
