@@ -22,6 +22,15 @@ available, ``resource.getrusage`` over the whole process):
              snapshots stacked into one design matrix, scikit-learn LassoCV (5 folds, 100
              penalties), R^2 on the held-out snapshots
 
+Whole process (``--whole-process``, start-up included): wall time from starting the process to
+its exit, nothing warmed up, of
+
+  closure discover   the command line, ``closure discover FILE -o model.json -q``
+  six-candidate      a short hand-written script, ``python bench/discover_2d.py --worker six``:
+             per snapshot scipy.ndimage.gaussian_filter, every ratio-th point, six tensor
+             candidates (|S| S, A A^T, S, S S, S R - R S, R R) from numpy.gradient, a stacked
+             design matrix, scikit-learn LassoCV, R^2 on the held-out snapshots
+
 Then the peak memory of discover on the first ``--memory-snapshots`` A and B snapshots (it
 should not grow with the number of snapshots: statistics are O(p^2) per snapshot).
 Prints the time ratio, the peak-memory ratios and where discover spends its time. With
@@ -254,7 +263,88 @@ def run_baseline(path: str, snapshots: int | None) -> dict:
             "test_r2": float(r2), "terms": int(np.count_nonzero(fit.coef_))}
 
 
+def run_six(path: str) -> dict:
+    """The six-candidate hand-written script (its imports inside, so a cold process pays them)."""
+    import netCDF4
+    import scipy.ndimage
+    from sklearn.linear_model import LassoCV
+
+    with netCDF4.Dataset(path) as ds:
+        n_snap = ds.dimensions["time"].size
+        n = ds.dimensions["x"].size
+        h = 2 * np.pi / n * RATIO
+        sigma = 2 * RATIO / np.sqrt(12.0)
+        delta = 2 * RATIO * 2 * np.pi / n
+        n_test = max(1, round(0.25 * n_snap))
+        X, y = {"train": [], "test": []}, {"train": [], "test": []}
+        for i in range(n_snap):
+            u, v = (np.asarray(ds[c][i], dtype=float) for c in ("u", "v"))
+
+            def bar(f):
+                return scipy.ndimage.gaussian_filter(f, sigma, mode="wrap")[::RATIO, ::RATIO]
+
+            ub, vb = bar(u), bar(v)
+            tau = np.stack([bar(u * u) - ub * ub, bar(u * v) - ub * vb, bar(v * v) - vb * vb])
+            uy, ux = np.gradient(ub, h, h)
+            vy, vx = np.gradient(vb, h, h)
+            A = np.array([[ux, uy], [vx, vy]])
+            S = 0.5 * (A + A.transpose(1, 0, 2, 3))
+            R = 0.5 * (A - A.transpose(1, 0, 2, 3))
+            smag = np.sqrt(2 * np.einsum("ijab,ijab->ab", S, S))
+
+            def mm(P, Q):
+                return np.einsum("ikab,kjab->ijab", P, Q)
+
+            cands = [delta**2 * smag * S, delta**2 * mm(A, A.transpose(1, 0, 2, 3)), S,
+                     delta**2 * mm(S, S), delta**2 * (mm(S, R) - mm(R, S)), delta**2 * mm(R, R)]
+            cols = np.stack([np.stack([T[0, 0], T[0, 1], T[1, 1]]).ravel() for T in cands], 1)
+            part = "test" if i >= n_snap - n_test else "train"
+            X[part].append(cols)
+            y[part].append(tau.ravel())
+    Xtr, ytr = np.concatenate(X["train"]), np.concatenate(y["train"])
+    Xte, yte = np.concatenate(X["test"]), np.concatenate(y["test"])
+    scale = np.sqrt((Xtr**2).mean(axis=0))
+    fit = LassoCV(cv=5, fit_intercept=False).fit(Xtr / scale, ytr)
+    pred = (Xte / scale) @ fit.coef_
+    r2 = 1 - np.sum((yte - pred) ** 2) / np.sum((yte - yte.mean()) ** 2)
+    return {"test_r2": float(r2), "terms": int(np.count_nonzero(fit.coef_))}
+
+
+def _whole(kind: str, path: Path, out: Path) -> tuple[float, str]:
+    """Wall time of one cold process (start-up included) and its last output line."""
+    if kind == "discover":
+        cmd = [sys.executable, "-c", "import sys; from closure.cli import main; "
+               "sys.exit(main())", "discover", str(path), "-o", str(out), "-q"]
+    else:
+        cmd = [sys.executable, __file__, "--worker", "six", "--file", str(path)]
+    t = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    seconds = time.perf_counter() - t
+    if proc.returncode != 0:
+        raise SystemExit(f"{kind} (whole process) failed:\n{proc.stderr}")
+    return seconds, (proc.stdout.strip().splitlines() or [""])[-1]
+
+
+def whole_process(path: Path, repeat: int) -> None:
+    """closure discover vs the six-candidate script, each a cold process, alternately."""
+    ours, six = [], []
+    with tempfile.TemporaryDirectory() as tmp:
+        for _ in range(repeat):
+            ours.append(_whole("discover", path, Path(tmp) / "model.json")[0])
+            seconds, line = _whole("six", path, Path(tmp) / "unused")
+            six.append(seconds)
+    best = f"fastest of {repeat}: " if repeat > 1 else ""
+    print(f"  whole process (start-up included): closure discover {min(ours):.2f} s ({best}"
+          f"{', '.join(f'{t:.2f}' for t in ours)}), six-candidate script {min(six):.2f} s "
+          f"({', '.join(f'{t:.2f}' for t in six)}; {line})")
+    print(f"  time ratio six-candidate script / closure discover: {min(six) / min(ours):.2f}x "
+          "(target >= 5x)")
+
+
 def _worker(kind: str, path: str, snapshots: int | None) -> None:
+    if kind == "six":  # cold: the whole process is what is timed
+        print(json.dumps(run_six(path)))
+        return
     # warm up on a tiny file first (imports, compiled library terms), so the measured rise in
     # peak memory is the work itself for both contenders
     run = run_discover if kind == "discover" else run_baseline
@@ -309,7 +399,10 @@ def main(argv=None) -> int:
     ap.add_argument("--repeat", type=int, default=1,
                     help="runs of each contender, alternately; the fastest of each is compared")
     ap.add_argument("--keep", type=Path, default=None, help="folder to keep the data files in")
-    ap.add_argument("--worker", choices=("discover", "baseline"), help=argparse.SUPPRESS)
+    ap.add_argument("--whole-process", action="store_true",
+                    help="also time whole cold processes: closure discover against the "
+                         "six-candidate script (start-up included)")
+    ap.add_argument("--worker", choices=("discover", "baseline", "six"), help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)
     ap.add_argument("--use", type=int, default=None, help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
@@ -350,6 +443,8 @@ def main(argv=None) -> int:
         print(f"  peak-memory ratio baseline / discover: "
               f"{_ratio(_max_rise(base_runs), _max_rise(ours_runs))} (rise during the work), "
               f"{_ratio(base['peak_mb'], ours['peak_mb'])} (total resident)")
+    if args.whole_process:
+        whole_process(main_file, args.repeat)
     if not args.skip_memory:
         a, b = args.memory_snapshots
         n_mem = args.memory_n or args.n

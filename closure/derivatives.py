@@ -94,6 +94,32 @@ def derivative(f: np.ndarray, grid: Grid, dim: str, order: int = 1,
     return out
 
 
+def derivatives(f: np.ndarray, grid: Grid, dim: str, orders, scheme: str = "spectral"
+                ) -> list[np.ndarray]:
+    """:func:`derivative` of ``f`` along ``dim`` for each of ``orders``, the same values; the
+    spectral scheme transforms ``f`` once for all orders."""
+    orders = [int(n) for n in orders]
+    if scheme != "spectral" or len(orders) < 2 or min(orders) < 1:
+        return [derivative(f, grid, dim, n, scheme) for n in orders]
+    check_scheme(scheme, grid)
+    f = np.asarray(f, dtype=float)
+    if f.ndim < grid.ndim or f.shape[f.ndim - grid.ndim:] != grid.shape:
+        raise ValueError(f"array of shape {f.shape} does not end with the grid shape {grid.shape}")
+    axis = f.ndim - grid.ndim + grid.axis(dim)
+    n = f.shape[axis]
+    k = grid.wavenumbers(dim, real=True)
+    shape = [1] * f.ndim
+    shape[axis] = k.size
+    fh = scipy.fft.rfft(f, axis=axis, workers=-1)
+    out = []
+    for order in orders:  # the multiplier of _spectral
+        mult = (1j * k) ** order
+        if order % 2 == 1 and n % 2 == 0:
+            mult[-1] = 0.0
+        out.append(scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=-1))
+    return out
+
+
 def _spectral(f, grid, dim, order):
     axis = f.ndim - grid.ndim + grid.axis(dim)
     n = f.shape[axis]

@@ -457,22 +457,35 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int,
     dtype = np.result_type(a.dtype, np.complex128)
     direct = np.zeros((*a.shape[:-1], h), dtype=dtype)
     mirrored = np.zeros((*a.shape[:-1], h), dtype=dtype)
+    # products go through one scratch array, sums in place: the same additions in the same
+    # order as ``direct += part * m``, without a temporary per alias (the fold cost as much
+    # as the row transform)
+    scratch = np.empty_like(direct) if m_last is not None else None
+
+    def add(into, part, mult):
+        if mult is None:
+            np.add(into, part, out=into)
+        else:
+            tmp = scratch[..., :into.shape[-1]]
+            np.multiply(part, mult, out=tmp)
+            np.add(into, tmp, out=into)
+
     for m in range(r):
         lo = m * n
         nd = min(max(top - lo + 1, 0), h)  # aliases lo .. lo + nd - 1 are stored
         if nd:
-            part = a[..., lo:lo + nd]
-            direct[..., :nd] += part if m_last is None else part * m_last[lo:lo + nd]
+            add(direct[..., :nd], a[..., lo:lo + nd],
+                None if m_last is None else m_last[lo:lo + nd])
         if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(-k_lead, N - k))
             index = slice(N - lo - nd, N - lo - h, -1)
-            part = a[..., index]
             # a real operator's multiplier at -k is the conjugate of that at k
-            mirrored[..., nd:] += part if m_last is None else part * m_last[index]
+            add(mirrored[..., nd:], a[..., index], None if m_last is None else m_last[index])
     # the leading-axis flip k -> -k commutes with the fold: apply it on the coarse grid
     for i in range(d - 1):
         axis = mirrored.ndim - d + i
         mirrored = np.take(mirrored, (-np.arange(coarse[i])) % coarse[i], axis=axis)
-    direct += np.conj(mirrored)
+    np.conjugate(mirrored, out=mirrored)
+    direct += mirrored
     direct *= float(r) ** -d
     return direct
 

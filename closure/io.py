@@ -652,6 +652,29 @@ class _Reader:
                 "them, or select other snapshots")
         return np.ascontiguousarray(a)
 
+    def read_slab(self, name: str, i: int, start: int, stop: int) -> np.ndarray:
+        """Points ``start:stop`` along the first spatial dimension of our variable ``name`` at
+        snapshot ``i``, float64 (checked finite): only those chunks of the file are read."""
+        i = self._check_index(i)
+        first = self.grid.dims[0]
+        var = self._ds[self.names[name]]
+        var = var.isel({TIME: i}) if TIME in var.dims else var
+        var = var.isel({first: slice(int(start), int(stop))}).transpose(*self.grid.dims)
+        with np.errstate(all="ignore"):
+            a = np.asarray(var.values, dtype=np.float64)
+        bad = ~np.isfinite(a)
+        if bad.any():  # the message of read(), the point counted from the whole grid
+            where = list(np.unravel_index(int(np.argmax(bad)), a.shape))
+            where[0] += int(start)
+            at = ", ".join(f"{d}={j}" for d, j in zip(self.grid.dims, where, strict=True))
+            theirs = self.names[name]
+            label = theirs if theirs == name else f"{theirs} ({name})"
+            raise InputFileError(
+                f"variable {label!r} has NaN or Inf value(s) at snapshot {i} of {self.path} "
+                f"(first at {at}; fill values count as missing): fill or remove them, or "
+                "select other snapshots")
+        return np.ascontiguousarray(a)
+
     def time_of(self, i: int) -> float | None:
         return None if self.times is None else float(self.times[i])
 
@@ -911,6 +934,31 @@ class FieldSource:
                 "(or the variable's _FillValue) to mark land, or select other snapshots "
                 "(--snapshots)")
         return a
+
+    def read_slab(self, name: str, i: int, start: int, stop: int) -> np.ndarray:
+        """Points ``start:stop`` along the first spatial dimension of our variable ``name`` at
+        snapshot ``i``, float64 (checked finite): only those chunks of the input are read
+        (closure.outofcore; land does not go by slabs)."""
+        i = self._check_index(i)
+        k, j = self._index[i]
+        part = self._use(k)
+        var = part.ds[part.names[name]]
+        var = var.isel({TIME: j}) if TIME in var.dims else var
+        var = var.isel({self.grid.dims[0]: slice(int(start), int(stop))})
+        var = var.transpose(*self.grid.dims)
+        with np.errstate(all="ignore"):
+            a = np.asarray(var.values, dtype=np.float64)
+        bad = ~np.isfinite(a)
+        if bad.any():  # the point counted from the whole grid
+            where = list(np.unravel_index(int(np.argmax(bad)), a.shape))
+            where[0] += int(start)
+            at = ", ".join(f"{d}={w}" for d, w in zip(self.grid.dims, where, strict=True))
+            raise InputFileError(
+                f"variable {part.names[name]!r} has NaN or Inf value(s) at snapshot {j} of "
+                f"{part.path} (first at {at}): a snapshot with land or missing values is "
+                "processed in memory, not by slabs: raise --memory-limit or leave out "
+                "--float32")
+        return np.ascontiguousarray(a)
 
     def snapshot(self, i: int, level: int | None = None) -> Snapshot:
         """Snapshot ``i`` (0-based over all inputs, in time order), every field loaded.

@@ -110,7 +110,7 @@ from pathlib import Path
 import numpy as np
 import sympy
 
-from closure.derivatives import check_scheme, derivative
+from closure.derivatives import check_scheme, derivative, derivatives
 from closure.errors import UserError
 from closure.grid import VELOCITY_OF, Grid
 
@@ -1151,11 +1151,72 @@ def make_library(name_or_path: str, target: str, dims: Iterable[str],
 @lru_cache(maxsize=64)
 def _default_terms(target: str, dirs: tuple[str, ...], scalars: tuple[str, ...], prune: bool
                    ) -> tuple[tuple[Term, ...], tuple[Dependency, ...]]:
+    cached = _disk_cache("default_terms", (target, dirs, scalars, prune))
+    if cached is not None:
+        return cached
     terms = _builtin_terms(target, Kinematics(dirs, scalars))
     if not prune:
-        return tuple(terms), ()
+        return _disk_cache("default_terms", (target, dirs, scalars, prune), (tuple(terms), ()))
     kept, dropped = _prune(terms, dirs)
-    return tuple(kept), tuple(dropped)
+    return _disk_cache("default_terms", (target, dirs, scalars, prune),
+                       (tuple(kept), tuple(dropped)))
+
+
+def _cache_folder() -> Path | None:
+    """Where built preset terms are kept between processes: ``CLOSURE_CACHE`` (``off``: not
+    kept), else ``$XDG_CACHE_HOME/closure`` or ``~/.cache/closure``."""
+    import os
+
+    env = os.environ.get("CLOSURE_CACHE")
+    if env is not None:
+        return None if env.strip().lower() in ("", "off", "0", "no") else Path(env)
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "closure"
+
+
+def _private(path: Path) -> bool:
+    """Owned by this user and writable by nobody else (a cache entry we may unpickle)."""
+    import os
+
+    st = path.stat()
+    return st.st_uid == os.getuid() and not st.st_mode & 0o022
+
+
+def _disk_cache(kind: str, key: tuple, value=None):
+    """Built preset terms (sympy expressions, pruning) stored between processes: building
+    and pruning them took about a second of every command's start-up. Keyed by this module's
+    source and the sympy version, so an edit of the presets never reads a stale entry. With
+    ``value``: store it (best effort) and return it; without: the stored value or None. The
+    files are this user's own cache (pickles of sympy expressions), read only when this user
+    owns them and their folder and nobody else may write them."""
+    import hashlib
+    import pickle
+
+    folder = _cache_folder()
+    if folder is None:
+        return value
+    try:
+        h = hashlib.sha256(Path(__file__).read_bytes())
+        h.update(repr((sympy.__version__, kind, key)).encode())
+        path = folder / f"{kind}-{h.hexdigest()[:32]}.pickle"
+        if value is None:
+            if not path.exists() or not _private(path) or not _private(folder):
+                return None  # read only what this user alone could have written
+            terms, dropped, symbols = pickle.loads(path.read_bytes())
+            for f, counts in symbols:  # the symbol registry the terms' names resolve in
+                field_symbol(f, counts)
+            return terms, dropped
+        from closure.atomic import write_bytes
+
+        symbols = sorted({_INFO[s.name] for t in value[0] for s in t.symbols})
+        bare = tuple(dataclasses.replace(t, _cache={}) for t in value[0])  # no compiled code
+        folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+        write_bytes(path, pickle.dumps((bare, value[1], symbols)))
+        path.chmod(0o600)
+    except (OSError, pickle.PickleError, EOFError, AttributeError, ValueError, TypeError,
+            KeyError, UserError):
+        pass  # a cache: any problem means building the terms again
+    return value
 
 
 def _preset_terms(name: str, target: str, dirs: tuple[str, ...], scalars: tuple[str, ...],
@@ -1559,15 +1620,22 @@ def derivative_fields(symbols: Iterable[sympy.Symbol], fields: Mapping[str, np.n
             steps.setdefault((parent, n), [])
             if f not in steps[(parent, n)]:
                 steps[(parent, n)].append(f)
+        # one transform of a parent stack for all the orders taken of it
+        by_parent: dict[tuple, dict[tuple, list[int]]] = {}
         for (parent, n), fs in steps.items():
             child = parent[:axis] + (n,) + (0,) * (2 - axis)
-            todo = [f for f in fs if (f, child) not in cache]
-            if not todo:
-                continue
-            stack = np.stack([cache[(f, parent)] for f in todo])
-            out = derivative(stack, grid, d, n, scheme)
-            for f, a in zip(todo, out, strict=True):
-                cache[(f, child)] = a
+            todo = tuple(f for f in fs if (f, child) not in cache)
+            if todo:
+                by_parent.setdefault(parent, {}).setdefault(todo, []).append(n)
+        for parent, groups in by_parent.items():
+            for todo, orders in groups.items():
+                stack = np.stack([cache[(f, parent)] for f in todo])
+                outs = ([derivative(stack, grid, d, orders[0], scheme)] if len(orders) == 1
+                        else derivatives(stack, grid, d, orders, scheme))
+                for n, out in zip(orders, outs, strict=True):
+                    child = parent[:axis] + (n,) + (0,) * (2 - axis)
+                    for f, a in zip(todo, out, strict=True):
+                        cache[(f, child)] = a
     return {name: cache[(f, counts)] for name, (f, counts) in wanted.items()}
 
 
@@ -1609,9 +1677,9 @@ def design(library: Library, fields: Mapping[str, np.ndarray], grid: Grid,
     cols = evaluate_terms(library, fields, grid, scheme, delta)
     nc, npts, nt = len(library.keys), int(np.prod(grid.shape)), len(library.terms)
     out = np.empty((nc, npts, nt))
-    for k, comps in enumerate(cols):
-        for c, a in enumerate(comps):
-            out[c, :, k] = a.reshape(-1)
+    for c in range(nc if nt else 0):  # one interleaving copy per component (faster than
+        # writing column by column)
+        np.stack([comps[c].reshape(-1) for comps in cols], axis=1, out=out[c])
     return out
 
 

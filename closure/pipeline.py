@@ -315,7 +315,7 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "scheme": spec.scheme,
         "transfers": list(_blocks(spec, grid.dims)),
         "warnings": list(src.warnings) + list(cg.warnings()) +
-        _compressibility_warning(src, chosen[0], library, levels),
+        _compressibility_warning(src, chosen[0], library, levels, spec),
         "notes": list(src.notes),
         **({"gas": _gas_constants(src)} if _compressible(spec) else {}),
     }
@@ -363,16 +363,25 @@ def check_options(spec: JobSpec, grid: Grid, velocity, n_snapshots: int) -> None
 DIVERGENCE_TOLERANCE = 1e-3
 
 
-def _compressibility_warning(src, index: int, library, levels=None) -> list[str]:
+def _compressibility_warning(src, index: int, library, levels=None,
+                             spec: JobSpec | None = None) -> list[str]:
     """Warn when the library left out terms that are dependent only on incompressible fields
-    and the data's velocity is not divergence-free (rms div u against rms |grad u|)."""
+    and the data's velocity is not divergence-free (rms div u against rms |grad u|). A snapshot
+    too large for memory is checked on its coarse-grained velocity (read by slabs)."""
     pruned = [d.split(":")[0] for d in library.dropped if "on incompressible fields" in d]
     if not pruned or len(src.velocity) < 2:
         return []
     from closure.filters import land_as_zero
     from closure.residuals import stencil_dilation
 
-    snap = src.snapshot(index, None if not levels else levels[0])
+    if spec is not None and _by_slabs(spec, src):
+        from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
+
+        # too large for memory: the check runs on the coarse-grained velocity, read by slabs
+        snap = coarse_grain_out_of_core(SourceSlabs(src, index), _coarse_graining(spec, src.grid),
+                                        targets=(), memory_limit=spec.memory_limit)
+    else:
+        snap = src.snapshot(index, None if not levels else levels[0])
     fields, keep, scheme = snap.fields, None, None
     mask = getattr(snap, "mask", None)
     if mask is not None and not np.all(mask):
@@ -462,10 +471,12 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
             return [cs], _coarse_graining(spec, src.coarse_graining.fine), \
                 _library(spec, cs.grid.dims)
         for level in _levels(plan):
-            snap = src.snapshot(int(index), level)
-            cg = _coarse_graining(spec, snap.grid)
+            slabs = _by_slabs(spec, src)
+            snap = None if slabs else src.snapshot(int(index), level)
+            grid = src.grid if slabs else snap.grid
+            cg = _coarse_graining(spec, grid)
             if library is None:
-                library = _library(spec, snap.grid.dims)
+                library = _library(spec, grid.dims)
                 if library.names != list(plan["terms"]):
                     raise UserError("the library's terms changed since the job was planned: "
                                     "resubmit the job")
@@ -474,6 +485,13 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
                 from closure.favre import favre_coarse_grain
 
                 out.append(favre_coarse_grain(snap, cg, targets=plan["components"]))
+            elif _by_slabs(spec, src):
+                from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
+
+                out.append(coarse_grain_out_of_core(
+                    SourceSlabs(src, int(index)), cg, _scalars(spec),
+                    targets=plan["components"], memory_limit=spec.memory_limit,
+                    dtype=np.float32 if spec.fine_float32 else np.float64))
             else:
                 out.append(coarse_grain_snapshot(
                     snap, cg, _scalars(spec), targets=plan["components"],
@@ -544,6 +562,21 @@ def _check_valid_points(spec: JobSpec, cs, cg, n_terms: int) -> None:
             "out. Use a narrower filter (--width) or a smaller --ratio, a lower-order --scheme, "
             "a smaller --library, or check the mask (--mask, NaN or fill values mark land); "
             "--land does not change which points are left out")
+
+
+def _by_slabs(spec: JobSpec, src) -> bool:
+    """Whether a snapshot of ``src`` goes through closure.outofcore: it would exceed the
+    spec's memory limit in memory, or the fine-grid pass runs in float32."""
+    from closure.library import target_components
+    from closure.outofcore import needs_out_of_core
+
+    if (getattr(src, "levels", None) is not None or spec.input.mask is not None
+            or _compressible(spec) or hasattr(src, "coarse_graining")):
+        return False  # level stacks, land, Favre and coarse inputs go in memory
+    n_fields = len(src.velocity) + len(_scalars(spec))
+    return bool(getattr(spec, "fine_float32", False)) or needs_out_of_core(
+        src.grid, n_fields, getattr(spec, "memory_limit", None),
+        target_components(spec.target, src.grid.dims))
 
 
 @_small_blas
@@ -892,9 +925,9 @@ def _fit_without(stats: Mapping[int, SufficientStats], train, spec: JobSpec, lef
 
 def _provenance(spec: JobSpec, plan: Mapping) -> dict:
     """Where the model came from: input file and hash, snapshots, spec, software versions."""
-    import scipy
-    import sklearn
+    from importlib.metadata import version
 
+    # package metadata, not ``import sklearn``: that import alone took 2 s of a 5 s discover
     spec_dict = spec.model_dump(mode="json")
     spec_dict["input"]["sha256"] = plan["sha256"]
     read = dict(plan["input"].get("read") or {})
@@ -917,8 +950,8 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
         "library": plan["library"],
         **({"gas": plan["gas"]} if "gas" in plan else {}),
         "spec": spec_dict,
-        "software": {"numpy": np.__version__, "scipy": scipy.__version__,
-                     "scikit-learn": sklearn.__version__, "python": platform.python_version()},
+        "software": {"numpy": np.__version__, "scipy": version("scipy"),
+                     "scikit-learn": version("scikit-learn"), "python": platform.python_version()},
     }
 
 

@@ -190,6 +190,12 @@ class JobSpec(_Strict):
     scheme: Scheme = "spectral"
     fit: FitSpec = FitSpec()
     reference_net: ReferenceNetSpec = ReferenceNetSpec()
+    memory_limit: Annotated[int, Field(gt=0)] | None = Field(
+        None, description="bytes one snapshot's pass may use; a snapshot that needs more is "
+        "processed by slabs with intermediates in files (default: half the machine's memory)")
+    fine_float32: bool = Field(
+        False, description="run the fine-grid pass in float32 by slabs (half the memory; "
+        "relative error about 1e-6 against float64)")
 
     @field_validator("target")
     @classmethod

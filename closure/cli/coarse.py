@@ -54,16 +54,29 @@ def coarse_grain(
                                   "normalised over fluid points); land is NaN in the output, "
                                   "and so are the subgrid terms wherever the filter footprint "
                                   "touches land"),
+    memory_limit: str | None = typer.Option(
+        None, "--memory-limit", help="memory one snapshot may use, e.g. 8G or 0.25 (of the "
+        "machine's); larger snapshots are processed by slabs, spilling to files under "
+        "TMPDIR (default: half the machine's memory)", show_default=False),
+    float32: bool = typer.Option(False, "--float32",
+                                 help="fine-grid pass in float32 (relative error ~1e-6)"),
 ) -> None:
     """Filter and coarsen every snapshot; write filtered fields and exact subgrid terms."""
     from closure.cli.discover import check_output, level_output
     from closure.filters import LAND_CONVENTIONS, make_coarse_graining
     from closure.io import CoarseWriter
+    from closure.outofcore import (
+        SourceSlabs,
+        coarse_grain_out_of_core,
+        needs_out_of_core,
+        parse_memory,
+    )
     from closure.residuals import coarse_grain_snapshot
 
     if land not in LAND_CONVENTIONS:
         raise OptionError(f"--land must be one of {', '.join(LAND_CONVENTIONS)}, got {land!r}")
 
+    limit = parse_memory(memory_limit)
     check_output(output, inputs)
     with open_options(inputs, var=var, scalar=scalar, group=group, mask=mask, levels=levels,
                       spacing=spacing, snapshots=snapshots, non_periodic=non_periodic) as src:
@@ -82,6 +95,10 @@ def coarse_grain(
             raise OptionError(f"--snapshots {bad} out of range: the input has "
                               f"{src.n_snapshots} snapshot(s), indices 0..{src.n_snapshots - 1}")
         stack = [None] if src.levels is None else list(src.levels)
+        # by slabs when a snapshot would not fit (every target: the force included); level
+        # stacks and land stay in memory
+        slabs = src.levels is None and mask is None and (float32 or needs_out_of_core(
+            src.grid, len(src.velocity) + len(src.scalars), limit))
         n = len(indices)
         for level in stack:
             target = output if level is None else level_output(output, level)
@@ -91,8 +108,13 @@ def coarse_grain(
                 source["level"] = level
             with CoarseWriter(target, source) as writer, _progress(n) as advance:
                 for i in indices:
-                    cs = coarse_grain_snapshot(src.snapshot(i, level), cg, src.scalars,
-                                               land=land)
+                    if slabs:
+                        cs = coarse_grain_out_of_core(
+                            SourceSlabs(src, i), cg, src.scalars, memory_limit=limit,
+                            dtype=np.float32 if float32 else np.float64)
+                    else:
+                        cs = coarse_grain_snapshot(src.snapshot(i, level), cg, src.scalars,
+                                                   land=land)
                     writer.append(cs)
                     pi = cs.targets["pi"]
                     if cs.valid is not None:  # land: only points whose footprint avoids it

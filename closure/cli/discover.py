@@ -46,11 +46,13 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
                group: str | None = None, mask: str | None = None, levels: str | None = None,
                per_level: bool = False, spacing: str | None = None, land: str = "zero",
                reference_net: bool = False, net_epochs: int | None = None,
-               net_seconds: float | None = None):
+               net_seconds: float | None = None, memory_limit: str | None = None,
+               fine_float32: bool = False):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option).
 
     ``input``: one path or a list of them (files, globs, a folder, a Zarr store)."""
     from closure.cli.inputs import input_dict
+    from closure.outofcore import parse_memory
     from closure.spec import parse_spec
 
     if not reference_net and (net_epochs is not None or net_seconds is not None):
@@ -74,6 +76,8 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
         "fit": {"method": method, "test_fraction": test_fraction, "resamples": resamples,
                 "transfer_weight": transfer_weight, "seed": seed},
         "reference_net": net,
+        "memory_limit": parse_memory(memory_limit),
+        "fine_float32": bool(fine_float32),
     })
 
 
@@ -147,6 +151,12 @@ def discover(
     net_seconds: float | None = typer.Option(
         None, "--net-seconds", help="training time limit of --reference-net, s (default 120)",
         show_default=False),
+    memory_limit: str | None = typer.Option(
+        None, "--memory-limit", help="memory one snapshot may use, e.g. 8G or 0.25 (of the "
+        "machine's); larger snapshots are processed by slabs, spilling to files under "
+        "TMPDIR (default: half the machine's memory)", show_default=False),
+    float32: bool = typer.Option(False, "--float32",
+                                 help="fine-grid pass in float32 (relative error ~1e-6)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
     land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
 ) -> None:
@@ -164,7 +174,7 @@ def discover(
                       resamples=resamples, snapshots=snapshots, group=group, mask=mask,
                       levels=levels, per_level=per_level, spacing=spacing, land=land,
                       reference_net=reference_net, net_epochs=net_epochs,
-                      net_seconds=net_seconds)
+                      net_seconds=net_seconds, memory_limit=memory_limit, fine_float32=float32)
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         if spec.input.per_level:
             results = pipeline.discover_levels(spec, progress=progress)

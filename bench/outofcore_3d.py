@@ -1,0 +1,181 @@
+"""Benchmark: peak memory and time of one 3-D snapshot, in memory and by slabs, same run.
+
+    python bench/outofcore_3d.py                       # 128^3 and 256^3
+    python bench/outofcore_3d.py --n 64 128 --repeat 2
+    python bench/outofcore_3d.py --n 512 --budget 0.25 # 512^3 where disk and time allow
+
+Data: one snapshot of random 3-D velocity (u, v, w; the values do not matter to the cost),
+written once to a temporary netCDF file chunked in z-slabs of 8 points, so a slab read touches
+only its own chunks. Each contender runs in its own subprocess, after a warm-up on a tiny
+grid (imports, FFT set-up); peak memory is the kernel's peak resident set (VmHWM), reset after
+the warm-up through /proc/self/clear_refs, minus the resident set when the work starts.
+
+  in memory   closure.io FieldSource.snapshot + closure.residuals.coarse_grain_snapshot
+  by slabs    closure.outofcore.coarse_grain_out_of_core(SourceSlabs(...)) with a budget of
+              ``--budget`` times the snapshot's size (intermediates beyond half the budget go
+              to files in the temporary folder)
+
+Gaussian filter, ratio 4, targets ``--targets`` (default the stress; ``force`` also builds the
+fine filtered velocity in files). Prints each peak rise against the snapshot's own size (the
+velocity in float64) and the time ratio slabs / in memory. ``--repeat N`` runs each N times,
+alternately, and keeps the fastest (the machine may be shared); peaks are the largest seen.
+No assertion: a measurement.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+RATIO = 4
+
+
+def write_snapshot(path: Path, n: int, seed: int = 0) -> Path:
+    import netCDF4
+
+    rng = np.random.default_rng(seed)
+    x = np.arange(n) * (2 * np.pi / n)
+    slab = min(8, n)
+    with netCDF4.Dataset(path, "w", format="NETCDF4") as ds:
+        ds.createDimension("time", None)
+        for d in ("z", "y", "x"):
+            ds.createDimension(d, n)
+            v = ds.createVariable(d, "f8", (d,))
+            v[:] = x
+            v.units = "m"
+        t = ds.createVariable("time", "f8", ("time",))
+        t[0] = 0.0
+        for c in ("u", "v", "w"):
+            var = ds.createVariable(c, "f8", ("time", "z", "y", "x"),
+                                    chunksizes=(1, slab, n, n))
+            var.units = "m s-1"
+            for z0 in range(0, n, slab):
+                var[0, z0:z0 + slab] = rng.standard_normal((slab, n, n))
+    return path
+
+
+def _status_mb(key: str) -> float:
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(key + ":"):
+                return float(line.split()[1]) / 1024.0
+    return float("nan")
+
+
+def _start_memory() -> float:
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")  # resets the peak resident set (Linux >= 4.0)
+    except OSError:
+        pass
+    return _status_mb("VmRSS")
+
+
+def run(kind: str, path: str, budget_bytes: int, targets: list[str], tmp: str) -> dict:
+    from closure.filters import make_coarse_graining
+    from closure.io import open_fields
+    from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
+    from closure.residuals import coarse_grain_snapshot
+
+    with open_fields(path) as src:
+        cg = make_coarse_graining("gaussian", src.grid, RATIO)
+        before = _start_memory()
+        t0 = time.perf_counter()
+        if kind == "memory":
+            cs = coarse_grain_snapshot(src.snapshot(0), cg, targets=targets)
+        else:
+            cs = coarse_grain_out_of_core(SourceSlabs(src, 0), cg, targets=targets,
+                                          memory_limit=budget_bytes, workdir=tmp)
+        seconds = time.perf_counter() - t0
+        peak = _status_mb("VmHWM")
+    check = float(sum(np.abs(a).sum() for a in cs.targets.values()))
+    return {"seconds": seconds, "rise_mb": peak - before, "peak_mb": peak, "check": check}
+
+
+def _worker(args) -> None:
+    # warm-up on a tiny file: imports and FFT set-up are not the work
+    with tempfile.TemporaryDirectory() as tmp:
+        small = write_snapshot(Path(tmp) / "warm.nc", 16)
+        run(args.worker, str(small), 1 << 20, args.targets, tmp)
+        print(json.dumps(run(args.worker, args.file, args.budget_bytes, args.targets, tmp)))
+
+
+def _spawn(kind: str, path: Path, budget_bytes: int, targets: list[str]) -> dict:
+    cmd = [sys.executable, __file__, "--worker", kind, "--file", str(path),
+           "--budget-bytes", str(budget_bytes), "--targets", *targets]
+    proc = subprocess.run(cmd, capture_output=True, text=True)
+    if proc.returncode != 0:
+        raise SystemExit(f"{kind} failed:\n{proc.stderr}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0],
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--n", type=int, nargs="+", default=[128, 256], help="grid sizes")
+    ap.add_argument("--budget", type=float, default=0.25,
+                    help="memory budget of the slab run, as a fraction of the snapshot's size")
+    ap.add_argument("--targets", nargs="+", default=["tau_xx", "tau_xy", "tau_yy", "tau_xz",
+                                                     "tau_yz", "tau_zz"])
+    ap.add_argument("--repeat", type=int, default=1)
+    ap.add_argument("--skip-memory-run", action="store_true",
+                    help="only the slab run (when the in-memory one does not fit)")
+    ap.add_argument("--folder", type=Path, default=None, help="where the data file goes")
+    ap.add_argument("--worker", choices=("memory", "slabs"), help=argparse.SUPPRESS)
+    ap.add_argument("--file", help=argparse.SUPPRESS)
+    ap.add_argument("--budget-bytes", type=int, default=0, help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.worker:
+        _worker(args)
+        return 0
+    folder = Path(tempfile.mkdtemp(prefix="closure-ooc-", dir=args.folder))
+    print(f"one 3-D snapshot, Gaussian filter, ratio {RATIO}, targets {' '.join(args.targets)}; "
+          f"slab budget {args.budget:g} x the snapshot; {os.cpu_count()} cores; data in {folder}")
+    try:
+        for n in args.n:
+            size_mb = 3 * 8 * n**3 / 2**20
+            need = 3 * 8 * n**3 * (2 + 2 * args.budget)  # the file, and spill files
+            free = shutil.disk_usage(folder).free
+            if need > free:
+                print(f"  {n}^3: skipped, needs ~{need / 2**30:.1f} GiB of disk, "
+                      f"{free / 2**30:.1f} free")
+                continue
+            path = write_snapshot(folder / f"snap_{n}.nc", n)
+            budget = int(args.budget * 3 * 8 * n**3)
+            mem, slabs = [], []
+            for _ in range(args.repeat):
+                if not args.skip_memory_run:
+                    mem.append(_spawn("memory", path, budget, args.targets))
+                slabs.append(_spawn("slabs", path, budget, args.targets))
+            s = min(slabs, key=lambda r: r["seconds"])
+            s_rise = max(r["rise_mb"] for r in slabs)
+            line = (f"  {n}^3 (velocity {size_mb:.0f} MiB): by slabs {s['seconds']:.2f} s, "
+                    f"peak +{s_rise:.0f} MiB = {s_rise / size_mb:.2f}x the snapshot")
+            if mem:
+                m = min(mem, key=lambda r: r["seconds"])
+                m_rise = max(r["rise_mb"] for r in mem)
+                agree = abs(m["check"] - s["check"]) <= 1e-9 * abs(m["check"])
+                line += (f"; in memory {m['seconds']:.2f} s, peak +{m_rise:.0f} MiB = "
+                         f"{m_rise / size_mb:.2f}x; time slabs / memory "
+                         f"{s['seconds'] / m['seconds']:.2f}x, peak slabs / memory "
+                         f"{s_rise / m_rise:.2f}x; results agree: {agree}")
+            print(line, flush=True)
+            path.unlink()
+    finally:
+        shutil.rmtree(folder, ignore_errors=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
