@@ -33,7 +33,7 @@ from closure.spectral import (
     kinetic_energy,
     random_field_hat,
 )
-from closure.synth import turb2d, turb3d, write
+from closure.synth import burgers, turb2d, write
 
 TWO_PI = 2 * np.pi
 
@@ -399,10 +399,11 @@ def test_cli_reports_user_errors(small_dns, tmp_path, capsys):
     assert main(["les", "none", "--initial", str(path), "-o", out, "--reference",
                  str(path), "--initial-index", "3"]) == 2
     assert "no snapshot after" in capsys.readouterr().err
-    f3 = tmp_path / "f3.nc"
-    write(turb3d(n=8, snapshots=1), f3)
-    assert main(["les", "none", "--initial", str(f3), "-o", out]) == 2
-    assert "2-D" in capsys.readouterr().err
+    f1 = tmp_path / "f1.nc"
+    write(burgers(n=64, snapshots=2), f1)
+    assert main(["les", "none", "--initial", str(f1), "-o", out, "--filter", "none",
+                 "--ratio", "1"]) == 2
+    assert "2-D (y, x) or 3-D (z, y, x)" in capsys.readouterr().err
     single = tmp_path / "one.nc"
     write(turb2d(n=32, snapshots=1, spinup=0.1, forcing_wavenumber=3), single)
     assert main(["les", "none", "--initial", str(single), "-o", out, "--filter", "none",
