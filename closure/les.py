@@ -47,6 +47,7 @@ from closure.spectral import (
     Forcing,
     StepCollapse,
     VorticityEquation,
+    cfl_time_step,
     energy_spectrum,
     enstrophy,
     fourier,
@@ -1135,7 +1136,8 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
     ``duration`` (s) of the start, or every ``interval`` s without a reference.
 
     With ``long_duration`` (s) every run continues that long and its statistics after
-    ``spinup`` s (default 0), sampled every ``sample_interval`` s (default: 200 samples), are
+    ``spinup`` s (default 0), sampled every ``sample_interval`` s (default: 200 samples, or
+    one per initial CFL step if that is longer), are
     compared with those of every snapshot of the reference (``Comparison.long_runs``).
     """
     fdef = model_filter(model) if model is not None else None
@@ -1220,8 +1222,14 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
     plan, ref_stats = None, None
     if long_duration is not None:
         spin = 0.0 if spinup is None else float(spinup)
-        every = sample_interval if sample_interval is not None else \
-            (long_duration - spin) / 200 if long_duration > spin else long_duration
+        if sample_interval is not None:
+            every = float(sample_interval)
+        else:
+            # 200 samples, but no closer than the initial CFL step: each sample ends a step
+            f0 = init.fields[0]
+            step = cfl_time_step([f0[VELOCITY_OF[d]] for d in grid.dims], grid, cfl)
+            every = max((long_duration - spin) / 200, min(step, long_duration - spin)) \
+                if long_duration > spin else long_duration
         edges = long_run_edges(all_reference or init.fields, grid, dealias)
         plan = LongRunPlan(float(long_duration), spin, float(every), edges)
         if all_reference is not None:
