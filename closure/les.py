@@ -326,8 +326,9 @@ class _Flow2D:
 
     def __init__(self, grid: Grid, closure, *, viscosity, drag, hyperviscosity_order,
                  hypoviscosity, hypoviscosity_order, forcing, dealias):
-        if forcing is not None and not isinstance(forcing, Forcing):
-            raise OptionError("a 2-D run takes a closure.spectral.Forcing (shell, kolmogorov)")
+        if forcing is not None and not hasattr(forcing, "vorticity_hat"):
+            raise OptionError("a 2-D run takes a closure.spectral.Forcing (shell, kolmogorov) "
+                              "or a ModeForcing")
         self.eq = VorticityEquation(grid, viscosity=viscosity, drag=drag,
                                     hyperviscosity_order=hyperviscosity_order,
                                     forcing=forcing or Forcing(), dealias=dealias,
@@ -1067,14 +1068,48 @@ def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | Non
                           str(path), chosen)
 
 
-def parse_forcing(text: str | None, attrs: Mapping) -> Forcing:
+@dataclass(frozen=True)
+class ModeForcing:
+    """A steady 2-D vorticity forcing from a table of Fourier modes
+    (:func:`closure.les3d.read_forcing_modes`); ``source`` names the file."""
+
+    modes: tuple
+    source: str = ""
+    kind: str = "modes"
+
+    @property
+    def active(self) -> bool:
+        return bool(self.modes)
+
+    def vorticity_hat(self, grid: Grid) -> np.ndarray:
+        from closure.les3d import modes_field
+
+        return fourier(grid).forward(modes_field(self.modes, grid, 2))
+
+    def to_attrs(self) -> dict:
+        return {"forcing": "modes", "forcing_file": self.source,
+                "forcing_modes": len(self.modes)}
+
+
+def parse_forcing(text: str | None, attrs: Mapping) -> Forcing | ModeForcing:
     """``file`` (the file's turb2d forcing attributes, else none), ``none``,
-    ``shell:K:A[:SEED]`` or ``kolmogorov:K:A``."""
+    ``shell:K:A[:SEED]``, ``kolmogorov:K:A`` or ``modes:FILE`` (a table of Fourier modes,
+    :func:`closure.les3d.read_forcing_modes`)."""
     text = (text or "file").strip()
     if text == "file":
+        kind = str(attrs.get("forcing", "none"))
+        if kind not in ("none", "shell", "kolmogorov"):
+            raise UserError(f"the file's forcing {kind!r} is not one the 2-D solver knows: "
+                            "give --forcing none, shell:K:A[:SEED], kolmogorov:K:A or "
+                            "modes:FILE")
         return Forcing.from_attrs(attrs) if "forcing" in attrs else Forcing()
     if text == "none":
         return Forcing()
+    if text.startswith("modes:"):
+        from closure.les3d import read_forcing_modes
+
+        path = text[len("modes:"):]
+        return ModeForcing(read_forcing_modes(path, 2), path)
     parts = text.split(":")
     try:
         if parts[0] == "shell" and len(parts) in (3, 4):
@@ -1084,7 +1119,8 @@ def parse_forcing(text: str | None, attrs: Mapping) -> Forcing:
             return Forcing("kolmogorov", float(parts[1]), float(parts[2]))
     except ValueError:
         pass
-    raise OptionError(f"--forcing {text!r}: use file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+    raise OptionError(f"--forcing {text!r}: use file, none, shell:K:A[:SEED], kolmogorov:K:A "
+                      "or modes:FILE")
 
 
 def _attr_float(attrs: Mapping, key: str, option: str, given):

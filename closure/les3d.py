@@ -44,7 +44,7 @@ from closure.synth.turb3d import NavierStokes3D
 DIMS = ("z", "y", "x")
 #: velocity names in grid.dims order (z, y, x)
 VELOCITY = ("w", "v", "u")
-FORCING3D_KINDS = ("none", "steady", "power")
+FORCING3D_KINDS = ("none", "steady", "power", "modes")
 
 
 def check_grid(grid: Grid) -> None:
@@ -64,6 +64,10 @@ class Forcing3D:
     wavenumber: float = 2.0
     amplitude: float = 0.0
     seed: int = 0
+    #: for kind "modes": rows (m_z, m_y, m_x, component 0/1/2 for x/y/z, a, b), each adding
+    #: a cos(k.x) + b sin(k.x) to that force component (m s^-2); see read_forcing_modes
+    modes: tuple = ()
+    source: str = ""
 
     def __post_init__(self):
         if self.kind not in FORCING3D_KINDS:
@@ -78,6 +82,8 @@ class Forcing3D:
 
     @property
     def active(self) -> bool:
+        if self.kind == "modes":
+            return bool(self.modes)
         return self.kind != "none" and self.amplitude != 0.0
 
     def band(self, grid: Grid) -> np.ndarray:
@@ -92,7 +98,10 @@ class Forcing3D:
         return ((shell > 0.5) & (shell <= self.wavenumber + 1e-9)).astype(float)
 
     def steady_hat(self, grid: Grid) -> np.ndarray:
-        """The steady force (3, spectral) in grid.dims order, rms ``amplitude``."""
+        """The steady force (3, spectral) in grid.dims order: rms ``amplitude`` (steady), or
+        the listed modes' solenoidal part (modes)."""
+        if self.kind == "modes":
+            return project_hat(fourier(grid).forward(modes_field(self.modes, grid, 3)), grid)
         band = self.band(grid)
         dk = shell_spacing(grid)
         fh = random_field_hat(grid, lambda k: np.where((k > 0.5 * dk)
@@ -105,6 +114,9 @@ class Forcing3D:
         return fh * (self.amplitude / rms) if rms > 0 else fh
 
     def to_attrs(self) -> dict:
+        if self.kind == "modes":
+            return {"forcing": "modes", "forcing_file": self.source,
+                    "forcing_modes": len(self.modes)}
         return {"forcing": self.kind, "forcing_wavenumber": float(self.wavenumber),
                 "forcing_amplitude": float(self.amplitude), "forcing_seed": int(self.seed)}
 
@@ -131,8 +143,11 @@ def parse_forcing3d(text: str | None, attrs: Mapping) -> Forcing3D:
             return Forcing3D("power", float(parts[1]), float(parts[2]))
     except ValueError:
         pass
-    raise OptionError(f"--forcing {text!r} on a 3-D grid: use file, none, steady:K:A[:SEED] "
-                      "or power:K:P")
+    if text.startswith("modes:"):
+        path = text[len("modes:"):]
+        return Forcing3D("modes", modes=read_forcing_modes(path, 3), source=path)
+    raise OptionError(f"--forcing {text!r} on a 3-D grid: use file, none, steady:K:A[:SEED], "
+                      "power:K:P or modes:FILE")
 
 
 class LESEquation3D(NavierStokes3D):
@@ -164,7 +179,7 @@ class LESEquation3D(NavierStokes3D):
         self.subgrid = subgrid
         self._steady = None
         self._band = None
-        if self.forcing.active and self.forcing.kind == "steady":
+        if self.forcing.active and self.forcing.kind in ("steady", "modes"):
             self._steady = self.forcing.steady_hat(grid) * self._mask
         elif self.forcing.active:
             self._band = self.forcing.band(grid)
@@ -256,3 +271,63 @@ def vorticity(fields: Mapping[str, np.ndarray], grid: Grid) -> np.ndarray:
     dz, dy, dx = F.ik
     w, v, u = F.forward(np.stack([np.asarray(fields[n], dtype=float) for n in VELOCITY]))
     return F.backward(np.stack([dy * w - dz * v, dz * u - dx * w, dx * v - dy * u]))
+
+
+def read_forcing_modes(path, ndim: int) -> tuple:
+    """A steady forcing as a text table of Fourier modes (``#`` comments, blank or comma
+    separated), one mode a row: 2-D ``m_y m_x a b`` adds ``a cos(k.x) + b sin(k.x)`` to the
+    vorticity forcing (s^-2); 3-D ``m_z m_y m_x c a b`` adds it to force component ``c``
+    (x, y or z; m s^-2), of which the solenoidal part acts. ``k = 2 pi m / L``."""
+    from pathlib import Path
+
+    p = Path(path)
+    if not p.is_file():
+        raise UserError(f"the forcing file {path} does not exist: give modes:FILE with a "
+                        "table of Fourier modes")
+    need = 4 if ndim == 2 else 6
+    rows = []
+    for number, line in enumerate(p.read_text().splitlines(), 1):
+        line = line.split("#", 1)[0].replace(",", " ").split()
+        if not line:
+            continue
+        if len(line) != need:
+            raise UserError(f"{path} line {number}: expected {need} columns ("
+                            + ("m_y m_x a b" if ndim == 2 else "m_z m_y m_x component a b")
+                            + f"), got {len(line)}")
+        try:
+            if ndim == 2:
+                rows.append((int(line[0]), int(line[1]), float(line[2]), float(line[3])))
+            else:
+                comp = {"x": 0, "y": 1, "z": 2}.get(line[3].lower())
+                if comp is None:
+                    raise ValueError(line[3])
+                rows.append((int(line[0]), int(line[1]), int(line[2]), comp,
+                             float(line[4]), float(line[5])))
+        except ValueError:
+            raise UserError(f"{path} line {number}: mode numbers must be integers, the "
+                            "component x, y or z and the amplitudes numbers") from None
+    if not rows:
+        raise UserError(f"the forcing file {path} lists no modes")
+    return tuple(rows)
+
+
+def modes_field(rows, grid: Grid, ndim: int) -> np.ndarray:
+    """The real forcing field of a mode table on ``grid``: (ny, nx) in 2-D, (3, nz, ny, nx)
+    in 3-D with components in grid.dims order (z, y, x)."""
+    mesh = grid.mesh()
+    top = [n * DEALIAS_FRACTION / 2 for n in grid.shape]
+    out = np.zeros(grid.shape if ndim == 2 else (3, *grid.shape))
+    for row in rows:
+        m = row[:ndim]
+        if any(abs(mi) >= t for mi, t in zip(m, top, strict=True)):
+            raise UserError(f"the forcing mode {m} is beyond what a "
+                            f"{'x'.join(map(str, grid.shape))} grid keeps after dealiasing")
+        phase = sum(2 * np.pi * mi / L * x
+                    for mi, L, x in zip(m, grid.lengths, mesh, strict=True))
+        a, b = row[-2], row[-1]
+        value = a * np.cos(phase) + b * np.sin(phase)
+        if ndim == 2:
+            out += value
+        else:
+            out[2 - row[3]] += value  # component x, y, z -> index in (z, y, x)
+    return out

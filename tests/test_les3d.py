@@ -280,3 +280,45 @@ def test_vorticity_helper_and_long_run_in_3d():
     assert out.statistics["energy"] == pytest.approx(np.mean(e0 * np.exp(-0.2 * ts)),
                                                      rel=1e-10)
     assert out.statistics["enstrophy"] == pytest.approx(out.statistics["energy"], rel=1e-10)
+
+
+def test_forcing_from_a_file_of_fourier_modes(tmp_path):
+    # a steady force along x varying in y only drives a shear flow that advection leaves alone:
+    # from rest, with drag mu, u = F (1 - exp(-mu t)) / mu sin(y) (exact; 2-D and 3-D alike)
+    from closure.les import ModeForcing, parse_forcing
+
+    mu, t = 0.5, 0.8
+    growth = (1 - math.exp(-mu * t)) / mu
+    table3 = tmp_path / "f3.txt"
+    table3.write_text("# m_z m_y m_x component a b\n0 1 0 x 0.0 1.0\n")
+    g = grid3(12)
+    z, y, x = g.mesh()
+    rest = {n: np.zeros(g.shape) for n in ("u", "v", "w")}
+    out = run(rest, g, [0.0, t], drag=mu, forcing=parse_forcing3d(f"modes:{table3}", {}),
+              max_step=0.01)
+    np.testing.assert_allclose(out.fields["u"][-1], growth * np.sin(y), atol=1e-12)
+    np.testing.assert_allclose(out.fields["w"][-1], 0.0, atol=1e-12)
+    # 2-D: vorticity forcing sin(3 x) -> omega = growth sin(3 x)
+    table2 = tmp_path / "f2.txt"
+    table2.write_text("0, 3, 0.0, 1.0\n")
+    g2 = Grid.regular((24, 24), TWO_PI, dims=("y", "x"))
+    y2, x2 = g2.mesh()
+    force = parse_forcing(f"modes:{table2}", {})
+    assert isinstance(force, ModeForcing) and force.to_attrs()["forcing_modes"] == 1
+    out = run({"vorticity": np.zeros(g2.shape)}, g2, [0.0, t], drag=mu, forcing=force,
+              max_step=0.01)
+    np.testing.assert_allclose(out.fields["vorticity"][-1], growth * np.sin(3 * x2),
+                               atol=1e-12)
+    # what a user gets wrong
+    bad = tmp_path / "bad.txt"
+    bad.write_text("0 1 0 q 1 1\n")
+    with pytest.raises(UserError, match="component x, y or z"):
+        parse_forcing3d(f"modes:{bad}", {})
+    bad.write_text("0 1 1\n")
+    with pytest.raises(UserError, match="expected 4 columns"):
+        parse_forcing(f"modes:{bad}", {})
+    with pytest.raises(UserError, match="does not exist"):
+        parse_forcing(f"modes:{tmp_path / 'missing.txt'}", {})
+    bad.write_text("0 9 0 x 1 1\n")
+    with pytest.raises(UserError, match="dealiasing"):
+        run(rest, g, [0.0, 0.1], forcing=parse_forcing3d(f"modes:{bad}", {}))

@@ -50,8 +50,9 @@ def les(
                                       "file's, else 0)"),
     hypoviscosity_order: int | None = typer.Option(None, "--hypoviscosity-order",
                                                    help="q (default: the file's, else 1)"),
-    forcing: str = typer.Option("file", "--forcing", help="file or none; 2-D: shell:K:A[:SEED] "
-                                "or kolmogorov:K:A; 3-D: steady:K:A[:SEED] or power:K:P"),
+    forcing: str = typer.Option("file", "--forcing", help="file, none or modes:FILE (a table of "
+                                "Fourier modes); 2-D: shell:K:A[:SEED] or kolmogorov:K:A; "
+                                "3-D: steady:K:A[:SEED] or power:K:P"),
     duration: float | None = typer.Option(None, "--time", help="run length (s; default: to "
                                                                "the reference's last time)"),
     interval: float | None = typer.Option(None, "--interval", help="output interval (s) "
