@@ -878,7 +878,8 @@ class Comparison:
                           "-" if f["blowup_time"] is None else f"{f['blowup_time']:.4g}",
                           _fmt(f["spectrum_error"]), _fmt(f["vorticity_pdf_distance"]),
                           _fmt(f["mean_energy_ratio"]), _fmt(f["mean_enstrophy_ratio"]),
-                          _fmt(f.get("transfer_error")), _fmt(q[0]), _fmt(q[1])])
+                          _fmt(f.get("transfer_error")), _fmt_quantile(q[0]),
+                          _fmt_quantile(q[1])])
         ref = self.reference_statistics
         if ref and ref.get("samples"):
             from closure.longrun import TAIL_QUANTILES
@@ -893,7 +894,8 @@ class Comparison:
                   "the time-mean spectra; PDF dist = Hellinger distance of the vorticity PDFs; "
                   "E, Z ratio = time-mean energy, enstrophy / reference; transfer err = "
                   "sum |T - T_ref| / sum |T_ref| of the resolved transfer spectra; q = "
-                  "vorticity quantiles. Evidence on this flow, not a guarantee.")
+                  "vorticity quantiles (beyond: outside the histogram, 1.5 x the largest "
+                  "|vorticity| of the reference). Evidence on this flow, not a guarantee.")
         return "\n".join([*_aligned([head, *lines]), legend])
 
 
@@ -962,6 +964,12 @@ def long_run_figures(run_: Trajectory, reference: dict | None) -> dict:
         "series": series,
         "statistics": statistics_json(run_.statistics),
     }
+
+
+def _fmt_quantile(v) -> str:
+    if v is not None and math.isinf(v):
+        return "beyond"
+    return _fmt(v)
 
 
 def _index_at(t: Trajectory, time: float) -> int:

@@ -80,6 +80,19 @@ def test_taylor_green_decays_at_the_viscous_rate_without_a_model():
                                rtol=1e-12)
 
 
+def test_hyperviscosity_hypoviscosity_and_drag_damp_taylor_green_at_their_rate():
+    # the Taylor-Green vortex is a steady Euler solution, so only the linear terms act: rate
+    # nu |k|^(2p) + mu + nu_h |k|^(-2q) with |k|^2 = 2 k^2 (integrating factor, exact)
+    g = grid2()
+    k, nu, p, mu, nuh, q = 2, 1e-4, 2, 0.05, 0.4, 1
+    tg = taylor_green(g, k)
+    out = run(tg, g, [0.0, 0.6], viscosity=nu, hyperviscosity_order=p, drag=mu,
+              hypoviscosity=nuh, hypoviscosity_order=q)
+    k2 = 2 * k**2
+    rate = nu * k2**p + mu + nuh * k2 ** (-q)
+    np.testing.assert_allclose(out.fields["u"][-1], tg["u"] * np.exp(-rate * 0.6), atol=1e-12)
+
+
 def test_ratio_one_reproduces_the_generator(small_dns):
     # same initial field, same parameters read from the file, no filter: the generator again
     path, ds = small_dns

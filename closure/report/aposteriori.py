@@ -31,6 +31,9 @@ class RunSeries:
     blowup_time: float | None = None
     status: str | None = None
     metrics: dict = field(default_factory=dict)
+    #: the run's ``long_run`` record as ``closure les --json`` writes it (time-mean spectrum,
+    #: vorticity PDF, transfer spectrum, energy and enstrophy series), or None
+    long_run: dict | None = None
 
     def final(self, name: str) -> float | None:
         """Last finite value of a series (None when missing or never finite)."""
@@ -118,7 +121,7 @@ def _run(d: Mapping, label: str) -> RunSeries:
         metrics.update({f"long_run_{k}": long_run.get(k) for k in LONG_RUN_FIELDS})
     status = d.get("status")
     return RunSeries(t, series, spectrum, pdf, blowup, None if status is None else str(status),
-                     dict(metrics))
+                     dict(metrics), dict(long_run) if isinstance(long_run, Mapping) else None)
 
 
 def as_runs(result) -> AposterioriRuns:
