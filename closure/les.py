@@ -417,9 +417,12 @@ class LongRunPlan:
                               f"({self.duration - self.spinup:g} s), got {self.sample_interval}")
 
     def sample_times(self, t0: float) -> np.ndarray:
-        """Output times of the long run (every sample_interval from t0)."""
+        """Output times of the long run: every sample_interval from t0, and t0 + duration."""
         count = int(math.floor(self.duration / self.sample_interval * (1 + 1e-12)))
-        return t0 + self.sample_interval * np.arange(1, count + 1)
+        out = self.sample_interval * np.arange(1, count + 1)
+        if out.size == 0 or out[-1] < self.duration * (1 - 1e-12):
+            out = np.append(out, self.duration)
+        return t0 + out
 
 
 @dataclass

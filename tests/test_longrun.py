@@ -263,3 +263,10 @@ def test_a_file_without_its_physics_is_run_with_loud_assumptions(dns2, tmp_path,
     c = simulate(None, foreign, baselines=[], ratio=2, drag=0.0, hyperviscosity_order=1,
                  hypoviscosity=0.0, forcing="none")
     assert c.settings["qualitative"] is False
+
+
+def test_a_long_run_reaches_its_whole_duration():
+    plan = LongRunPlan(1.0, 0.0, 0.3, np.linspace(-1, 1, 3))
+    np.testing.assert_allclose(plan.sample_times(2.0), [2.3, 2.6, 2.9, 3.0])
+    np.testing.assert_allclose(LongRunPlan(1.0, 0.0, 0.25, plan.edges).sample_times(0.0),
+                               [0.25, 0.5, 0.75, 1.0])
