@@ -1,8 +1,11 @@
-"""A posteriori testing: a 2-D coarse solver that runs a closure from filtered-DNS initial fields.
+"""A posteriori testing: 2-D and 3-D coarse solvers that run a closure from filtered-DNS fields.
 
-The coarse solver is :class:`closure.spectral.VorticityEquation` (the same equation, 2/3-rule
-dealiasing, integrating-factor RK4 and forcing as the ``turb2d`` generator) with the closure as
-its explicit subgrid term. Following DEVELOPERS.md, the filtered vorticity equation reads
+In 3-D the coarse solver is :class:`closure.les3d.LESEquation3D` (the ``turb3d`` operators
+plus forcing, drag, hyper/hypoviscosity) and a stress or force closure enters the momentum
+equation as ``-d_j tau_ij`` (or ``-force_i``), projected. In 2-D the coarse solver is
+:class:`closure.spectral.VorticityEquation` (the same equation, 2/3-rule dealiasing,
+integrating-factor RK4 and forcing as the ``turb2d`` generator) with the closure as its
+explicit subgrid term. Following DEVELOPERS.md, the filtered vorticity equation reads
 
     d_t omega + u . grad omega = ... - vorticity_forcing
 
@@ -26,6 +29,13 @@ Baselines (all ``stress`` models with filter width ``D``, spectral derivatives):
 A run stops and reports (instead of raising) when the kinetic energy exceeds ``energy_bound``
 times its initial value, a value turns non-finite, or the CFL step collapses. Metrics compare a
 run with the filtered DNS at the same times, both on the modes the coarse solver carries.
+
+Long runs (``long_duration``) continue far past the reference and compare, after a spin-up,
+time-averaged statistics (closure.longrun: spectrum per octave band, vorticity PDF with its
+tails, mean energy and enstrophy, resolved transfer spectrum) with those of every filtered-DNS
+snapshot, and say whether the run stayed stable; statistics are accumulated on the fly. When
+the input file does not state its physics (files not made by closure), what is assumed is
+listed loudly in ``settings`` and the comparison is qualitative.
 
 A priori skill does not guarantee a stable or accurate coarse simulation; these runs are that
 check, on this flow only. Validate a posteriori on your own flows before relying on a model.
