@@ -266,6 +266,12 @@ def test_3d_results_feed_the_report(decaying, tmp_path):
     curves = {k: r.spectrum for k, r in runs.runs.items() if r.spectrum}
     plots.save_png(plots.aposteriori_spectra(curves, runs.reference), tmp_path / "s.png")
     assert (tmp_path / "s.png").stat().st_size > 0
+    # the time-mean long-run curves, the reference's included, for the report's figures
+    means = runs.long_run_curves("spectrum")
+    assert set(means) == {"none", "smagorinsky", "reference"}
+    plots.save_png(plots.aposteriori_spectra(means, runs.reference), tmp_path / "m.png")
+    assert set(runs.long_run_curves("vorticity_pdf")) == set(means)
+    assert set(runs.long_run_curves("transfer")) == set(means)
 
 
 def test_vorticity_helper_and_long_run_in_3d():

@@ -53,6 +53,23 @@ class AposterioriRuns:
     reference: str | None = None
     spectrum_time: float | None = None
 
+    def long_run_curves(self, kind: str) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Time-mean curves of the long runs (and the reference's statistics): ``kind``
+        "spectrum" -> (k, E), "vorticity_pdf" -> (x, density), "transfer" -> (k, T);
+        runs without a long-run record are left out."""
+        keys = {"spectrum": ("k", "E"), "vorticity_pdf": ("x", "density"),
+                "transfer": ("k", "T")}
+        if kind not in keys:
+            raise UserError(f"unknown long-run curve {kind!r}: choose from {', '.join(keys)}")
+        a, b = keys[kind]
+        out = {}
+        for label, r in self.runs.items():
+            stats = (r.long_run or {}).get("statistics") or {}
+            curve = stats.get(kind)
+            if isinstance(curve, Mapping) and a in curve and b in curve:
+                out[label] = (_arr(curve[a]), _arr(curve[b]))
+        return out
+
     def summary(self) -> dict:
         return {"reference": self.reference,
                 "runs": {k: {"status": r.status, "blowup_time": r.blowup_time,
