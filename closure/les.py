@@ -903,8 +903,9 @@ class Comparison:
         legend = (f"long runs of {first['duration']:.4g} s, statistics after a "
                   f"{first['spinup']:.4g} s spin-up"
                   + (" against every snapshot of the filtered DNS" if ref else "")
-                  + ": spectrum err = mean over octave bands of |E_b - E_b^ref| / E_b^ref of "
-                  "the time-mean spectra; PDF dist = Hellinger distance of the vorticity PDFs; "
+                  + ": spectrum err = mean over octave bands (up to the last complete shell) "
+                  "of |E_b - E_b^ref| / E_b^ref of the time-mean spectra; PDF dist = "
+                  "Hellinger distance of the vorticity PDFs; "
                   "E, Z ratio = time-mean energy, enstrophy / reference; transfer err = "
                   "sum |T - T_ref| / sum |T_ref| of the resolved transfer spectra; q = "
                   "vorticity quantiles (beyond: outside the histogram, 1.5 x the largest "

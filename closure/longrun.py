@@ -48,6 +48,11 @@ def octave_bands(grid: Grid) -> list[tuple[int, int]]:
     return bands
 
 
+def resolved_shell(grid: Grid) -> int:
+    """The last shell index every direction carries after the 2/3 rule (|m_i| < n_i / 3)."""
+    return int(math.ceil(min(grid.shape) / 3.0)) - 1
+
+
 def symmetric_edges(values: Sequence[np.ndarray], bins: int = PDF_BINS,
                     margin: float = 1.5) -> np.ndarray:
     """Bin edges spanning ``[-R, R]`` with ``R = margin * max |value|`` over ``values``."""
@@ -181,7 +186,10 @@ def compare_statistics(run: dict, reference: dict, grid: Grid) -> dict:
 
     ``spectrum_band_error`` is ``|E_b - E_b^ref| / E_b^ref`` per octave band of the time-mean
     spectra (keyed "lo-hi"; None where the reference band is empty); ``spectrum_error`` is
-    their mean over the bands that have one. ``vorticity_pdf_distance`` is the Hellinger
+    their mean over the bands that start at or below the last complete shell after
+    dealiasing (:func:`resolved_shell`; listed in ``spectrum_bands_counted``): the corner
+    bands beyond it hold a few modes with almost no reference energy, whose relative errors
+    would swamp the mean. ``vorticity_pdf_distance`` is the Hellinger
     distance of the histograms (under- and overflow bins included), ``vorticity_quantiles``
     the 0.1 % / 99.9 % quantiles of both; ``mean_energy_ratio`` and ``mean_enstrophy_ratio``
     are run / reference time means; ``transfer_error`` is ``sum |T - T_ref| / sum |T_ref|``
@@ -198,7 +206,9 @@ def compare_statistics(run: dict, reference: dict, grid: Grid) -> dict:
     band_err = {f"{lo}-{hi}": (float(abs(a - b) / b) if b > floor and math.isfinite(a)
                                else None)
                 for (lo, hi), a, b in zip(bands, eb, rb, strict=True)}
-    errs = [e for e in band_err.values() if e is not None]
+    top = resolved_shell(grid)
+    counted = [f"{lo}-{hi}" for lo, hi in bands if lo <= top]
+    errs = [band_err[b] for b in counted if band_err[b] is not None]
     transfer_error = None
     if run.get("T") is not None and reference.get("T") is not None:
         t, tr = np.asarray(run["T"]), np.asarray(reference["T"])
@@ -209,6 +219,7 @@ def compare_statistics(run: dict, reference: dict, grid: Grid) -> dict:
     return {
         "spectrum_band_error": band_err,
         "spectrum_error": float(np.mean(errs)) if errs else None,
+        "spectrum_bands_counted": counted,
         "vorticity_pdf_distance": hellinger(run["pdf"]["counts"], reference["pdf"]["counts"]),
         "vorticity_quantiles": {"run": [run["quantiles"][q] for q in TAIL_QUANTILES],
                                 "reference": [reference["quantiles"][q]

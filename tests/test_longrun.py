@@ -270,3 +270,20 @@ def test_a_long_run_reaches_its_whole_duration():
     np.testing.assert_allclose(plan.sample_times(2.0), [2.3, 2.6, 2.9, 3.0])
     np.testing.assert_allclose(LongRunPlan(1.0, 0.0, 0.25, plan.edges).sample_times(0.0),
                                [0.25, 0.5, 0.75, 1.0])
+
+
+def test_the_overall_spectrum_error_leaves_out_the_corner_bands():
+    # 2/3 rule on 16^3: |m_i| <= 5 in every direction, so shell 5 is the last complete one;
+    # bands [1,2), [2,4), [4,8) count, [8,16) (corners only) does not
+    from closure.longrun import resolved_shell
+
+    g = grid3(16)
+    assert resolved_shell(g) == 5 and resolved_shell(grid2(64)) == 21
+    k = np.arange(20.0)
+    ref = {"samples": 1, "k": k, "E": np.ones(20), "energy": 20.0, "enstrophy": 1.0,
+           "T": None, "pdf": {"counts": np.ones(4)}, "quantiles": {0.001: 0, 0.999: 0}}
+    run_ = {**ref, "E": np.where(k >= 8, 100.0, 1.0)}
+    out = compare_statistics(run_, ref, g)
+    assert out["spectrum_bands_counted"] == ["1-2", "2-4", "4-8"]
+    assert out["spectrum_band_error"]["8-16"] == pytest.approx(99.0)
+    assert out["spectrum_error"] == 0.0
