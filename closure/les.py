@@ -1,8 +1,11 @@
-"""A posteriori testing: a 2-D coarse solver that runs a closure from filtered-DNS initial fields.
+"""A posteriori testing: 2-D and 3-D coarse solvers that run a closure from filtered-DNS fields.
 
-The coarse solver is :class:`closure.spectral.VorticityEquation` (the same equation, 2/3-rule
-dealiasing, integrating-factor RK4 and forcing as the ``turb2d`` generator) with the closure as
-its explicit subgrid term. Following DEVELOPERS.md, the filtered vorticity equation reads
+In 3-D the coarse solver is :class:`closure.les3d.LESEquation3D` (the ``turb3d`` operators
+plus forcing, drag, hyper/hypoviscosity) and a stress or force closure enters the momentum
+equation as ``-d_j tau_ij`` (or ``-force_i``), projected. In 2-D the coarse solver is
+:class:`closure.spectral.VorticityEquation` (the same equation, 2/3-rule dealiasing,
+integrating-factor RK4 and forcing as the ``turb2d`` generator) with the closure as its
+explicit subgrid term. Following DEVELOPERS.md, the filtered vorticity equation reads
 
     d_t omega + u . grad omega = ... - vorticity_forcing
 
@@ -27,6 +30,13 @@ A run stops and reports (instead of raising) when the kinetic energy exceeds ``e
 times its initial value, a value turns non-finite, or the CFL step collapses. Metrics compare a
 run with the filtered DNS at the same times, both on the modes the coarse solver carries.
 
+Long runs (``long_duration``) continue far past the reference and compare, after a spin-up,
+time-averaged statistics (closure.longrun: spectrum per octave band, vorticity PDF with its
+tails, mean energy and enstrophy, resolved transfer spectrum) with those of every filtered-DNS
+snapshot, and say whether the run stayed stable; statistics are accumulated on the fly. When
+the input file does not state its physics (files not made by closure), what is assumed is
+listed loudly in ``settings`` and the comparison is qualitative.
+
 A priori skill does not guarantee a stable or accurate coarse simulation; these runs are that
 check, on this flow only. Validate a posteriori on your own flows before relying on a model.
 """
@@ -40,17 +50,18 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from closure.errors import OptionError, UserError
-from closure.grid import Grid
+from closure.grid import VELOCITY_OF, Grid
+from closure.library import component_keys
+from closure.longrun import band_energies_of_spectrum, hellinger, octave_bands
 from closure.spectral import (
     Forcing,
     StepCollapse,
     VorticityEquation,
+    cfl_time_step,
     energy_spectrum,
     enstrophy,
     fourier,
     kinetic_energy,
-    shell_spacing,
-    velocity_hat_from_vorticity,
     vorticity_from_velocity,
 )
 
@@ -67,31 +78,62 @@ SubgridTerm = Callable[[dict[str, np.ndarray]], np.ndarray]
 # --- baseline closures ----------------------------------------------------------------------
 
 
-def _velocity_gradients(fields: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
-    """``{"ux": d_x u, "uy": d_y u, "vx": ..., "vy": ...}`` spectrally."""
-    F = fourier(grid)
-    uh, vh = F.forward(np.stack([fields["u"], fields["v"]]))
-    ikx, iky = F.ik_of("x"), F.ik_of("y")
-    ux, uy, vx, vy = F.backward(np.stack([ikx * uh, iky * uh, ikx * vh, iky * vh]))
-    return {"ux": ux, "uy": uy, "vx": vx, "vy": vy}
+def velocity_names(grid: Grid) -> list[str]:
+    """Velocity component names in direction order x, y[, z]: ["u", "v"] or ["u", "v", "w"]."""
+    return [VELOCITY_OF[d] for d in ("x", "y", "z") if d in grid.dims]
 
 
-def _strain(g: Mapping[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(S_xx, S_xy, S_yy)."""
-    return g["ux"], 0.5 * (g["uy"] + g["vx"]), g["vy"]
-
-
-def _strain_magnitude(sxx, sxy, syy) -> np.ndarray:
-    """|S| = sqrt(2 S_ij S_ij)."""
-    return np.sqrt(2.0 * (sxx**2 + 2.0 * sxy**2 + syy**2))
+def _directions(grid: Grid) -> list[str]:
+    return [d for d in ("x", "y", "z") if d in grid.dims]
 
 
 def _check_fields(fields: Mapping[str, np.ndarray], grid: Grid) -> None:
-    if grid.dims != ("y", "x"):
-        raise UserError(f"the coarse solver runs 2-D (y, x) flows, not {grid.dims}")
-    for name in ("u", "v"):
+    if grid.dims not in (("y", "x"), ("z", "y", "x")):
+        raise UserError(f"the coarse solver runs 2-D (y, x) or 3-D (z, y, x) flows, not "
+                        f"{grid.dims}")
+    for name in velocity_names(grid):
         if name not in fields:
             raise UserError(f"the closure needs the field {name!r}")
+
+
+def velocity_gradient(fields: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
+    """``{"ij": d_j u_i}`` for directions i, j in x, y[, z] (e.g. "xy" is d_y u), spectrally."""
+    F = fourier(grid)
+    dirs = _directions(grid)
+    uh = F.forward(np.stack([np.asarray(fields[n], dtype=float) for n in velocity_names(grid)]))
+    stack = [F.ik_of(j) * uh[a] for a in range(len(dirs)) for j in dirs]
+    real = F.backward(np.stack(stack))
+    keys = [i + j for i in dirs for j in dirs]
+    return dict(zip(keys, real, strict=True))
+
+
+def _stress_keys(grid: Grid) -> list[str]:
+    """Stress component keys in the library's order (xx, xy, yy[, xz, yz, zz])."""
+    return component_keys("stress", grid.dims)
+
+
+def strain_rate(g: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
+    """``{"ij": S_ij}`` on the stress keys, S_ij = (d_j u_i + d_i u_j) / 2."""
+    return {k: 0.5 * (g[k] + g[k[::-1]]) for k in _stress_keys(grid)}
+
+
+def _weights(grid: Grid) -> dict[str, float]:
+    """2 for off-diagonal keys (each stands for ij and ji), else 1."""
+    return {k: (1.0 if k[0] == k[1] else 2.0) for k in _stress_keys(grid)}
+
+
+def contract(a: Mapping[str, np.ndarray], b: Mapping[str, np.ndarray], grid: Grid) -> np.ndarray:
+    """a_ij b_ij of two symmetric tensors given on the stress keys."""
+    return sum(w * a[k] * b[k] for k, w in _weights(grid).items())
+
+
+def strain_magnitude(s: Mapping[str, np.ndarray], grid: Grid) -> np.ndarray:
+    """|S| = sqrt(2 S_ij S_ij)."""
+    return np.sqrt(2.0 * contract(s, s, grid))
+
+
+def _tau(tensor: Mapping[str, np.ndarray], scale) -> dict[str, np.ndarray]:
+    return {f"tau_{k}": scale * a for k, a in tensor.items()}
 
 
 class Smagorinsky:
@@ -107,9 +149,9 @@ class Smagorinsky:
 
     def evaluate(self, fields: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
         _check_fields(fields, grid)
-        sxx, sxy, syy = _strain(_velocity_gradients(fields, grid))
-        nu_t = (self.constant * self.delta) ** 2 * _strain_magnitude(sxx, sxy, syy)
-        return {"tau_xx": -2 * nu_t * sxx, "tau_xy": -2 * nu_t * sxy, "tau_yy": -2 * nu_t * syy}
+        s = strain_rate(velocity_gradient(fields, grid), grid)
+        nu_t = (self.constant * self.delta) ** 2 * strain_magnitude(s, grid)
+        return _tau(s, -2 * nu_t)
 
 
 class DynamicSmagorinsky:
@@ -137,28 +179,32 @@ class DynamicSmagorinsky:
     def constant(self, fields: Mapping[str, np.ndarray], grid: Grid) -> float:
         """Lilly's least-squares C = <L_ij M_ij> / <M_ij M_ij> (unclipped)."""
         _check_fields(fields, grid)
-        u, v = np.asarray(fields["u"]), np.asarray(fields["v"])
-        sxx, sxy, syy = _strain(_velocity_gradients(fields, grid))
-        mag = _strain_magnitude(sxx, sxy, syy)
-        hat = self.test_filter(np.stack([u, v, u * u, u * v, v * v,
-                                         mag * sxx, mag * sxy, mag * syy]), grid)
-        uh, vh = hat[0], hat[1]
-        L = (hat[2] - uh * uh, hat[3] - uh * vh, hat[4] - vh * vh)
-        ht = _strain(_velocity_gradients({"u": uh, "v": vh}, grid))
-        hmag = _strain_magnitude(*ht)
+        names = velocity_names(grid)
+        dirs = _directions(grid)
+        vel = {d: np.asarray(fields[n], dtype=float) for d, n in zip(dirs, names, strict=True)}
+        keys = _stress_keys(grid)
+        s = strain_rate(velocity_gradient(fields, grid), grid)
+        mag = strain_magnitude(s, grid)
+        stack = ([vel[d] for d in dirs] + [vel[k[0]] * vel[k[1]] for k in keys]
+                 + [mag * s[k] for k in keys])
+        hat = self.test_filter(np.stack(stack), grid)
+        nd, nk = len(dirs), len(keys)
+        vh = dict(zip(dirs, hat[:nd], strict=True))
+        L = {k: hat[nd + a] - vh[k[0]] * vh[k[1]] for a, k in enumerate(keys)}
+        hs = strain_rate(velocity_gradient(dict(zip(names, hat[:nd], strict=True)), grid), grid)
+        hmag = strain_magnitude(hs, grid)
         a2, d2 = self.test_ratio**2, self.delta**2
-        M = tuple(2 * d2 * (hat[5 + i] - a2 * hmag * ht[i]) for i in range(3))
-        weights = (1.0, 2.0, 1.0)  # tau_xy stands for tau_xy and tau_yx
-        num = sum(w * np.mean(l_ * m) for w, l_, m in zip(weights, L, M, strict=True))
-        den = sum(w * np.mean(m * m) for w, m in zip(weights, M, strict=True))
-        return float(num / den) if den > 0 else 0.0
+        M = {k: 2 * d2 * (hat[nd + nk + a] - a2 * hmag * hs[k]) for a, k in enumerate(keys)}
+        num = float(np.mean(contract(L, M, grid)))
+        den = float(np.mean(contract(M, M, grid)))
+        return num / den if den > 0 else 0.0
 
     def evaluate(self, fields: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
         c = self.constant(fields, grid)
         self.last_constant = c
-        sxx, sxy, syy = _strain(_velocity_gradients(fields, grid))
-        nu_t = max(c, 0.0) * self.delta**2 * _strain_magnitude(sxx, sxy, syy)
-        return {"tau_xx": -2 * nu_t * sxx, "tau_xy": -2 * nu_t * sxy, "tau_yy": -2 * nu_t * syy}
+        s = strain_rate(velocity_gradient(fields, grid), grid)
+        nu_t = max(c, 0.0) * self.delta**2 * strain_magnitude(s, grid)
+        return _tau(s, -2 * nu_t)
 
 
 class GradientModel:
@@ -175,14 +221,14 @@ class GradientModel:
 
     def evaluate(self, fields: Mapping[str, np.ndarray], grid: Grid) -> dict[str, np.ndarray]:
         _check_fields(fields, grid)
-        g = _velocity_gradients(fields, grid)
+        g = velocity_gradient(fields, grid)
         c = self.delta**2 / 12.0
-        tau = {"tau_xx": c * (g["ux"] ** 2 + g["uy"] ** 2),
-               "tau_xy": c * (g["ux"] * g["vx"] + g["uy"] * g["vy"]),
-               "tau_yy": c * (g["vx"] ** 2 + g["vy"] ** 2)}
+        dirs = _directions(grid)
+        tensor = {k: sum(g[k[0] + d] * g[k[1] + d] for d in dirs) for k in _stress_keys(grid)}
+        tau = _tau(tensor, c)
         if self.clip:
-            sxx, sxy, syy = _strain(g)
-            transfer = -(tau["tau_xx"] * sxx + 2 * tau["tau_xy"] * sxy + tau["tau_yy"] * syy)
+            scaled = {k: c * a for k, a in tensor.items()}
+            transfer = -contract(scaled, strain_rate(g, grid), grid)
             keep = transfer >= 0
             tau = {k: np.where(keep, a, 0.0) for k, a in tau.items()}
         return tau
@@ -216,32 +262,44 @@ def parse_baselines(text: str | Sequence[str] | None) -> list[str]:
     return list(dict.fromkeys(names))
 
 
-# --- closures as vorticity tendencies -------------------------------------------------------
+# --- closures as tendencies -----------------------------------------------------------------
 
 
 def subgrid_term(model, grid: Grid) -> SubgridTerm | None:
-    """The vorticity tendency of a closure on the coarse ``grid``, as the solver's subgrid term.
+    """The tendency of a closure on the coarse ``grid``, as the solver's subgrid term.
 
-    ``model`` is None, an object with ``target`` ("stress", "force" or "vorticity") and
-    ``evaluate(fields, grid) -> dict`` (e.g. closure.model.ClosureModel or a baseline), or a
-    plain callable ``f(fields, grid)`` that returns the vorticity tendency itself (s^-2).
-    The returned callable maps ``{"u", "v", "vorticity"}`` to the tendency in the rfftn layout.
+    ``model`` is None, an object with ``target`` ("stress", "force" or, in 2-D, "vorticity")
+    and ``evaluate(fields, grid) -> dict`` (e.g. closure.model.ClosureModel or a baseline), or
+    a plain callable ``f(fields, grid)`` that returns the tendency itself (2-D: the vorticity
+    tendency, s^-2; 3-D: the momentum tendency (3, nz, ny, nx) in (z, y, x) component order,
+    m s^-2). In 2-D the returned callable maps ``{"u", "v", "vorticity"}`` to the vorticity
+    tendency, in 3-D ``{"u", "v", "w"}`` to the momentum tendency ``-d_j tau_ij``
+    (or ``-force_i``), both in the rfftn layout.
     """
     if model is None:
         return None
     F = fourier(grid)
-    ikx, iky = F.ik_of("x"), F.ik_of("y")
+    three = grid.ndim == 3
     if not hasattr(model, "evaluate"):
         if not callable(model):
             raise UserError("a closure must have target and evaluate(fields, grid), or be a "
-                            "callable returning the vorticity tendency")
+                            "callable returning the tendency")
         return lambda fields: F.forward(model(fields, grid))
     target = getattr(model, "target", None)
-    need = {"stress": ("tau_xx", "tau_xy", "tau_yy"), "force": ("force_x", "force_y"),
-            "vorticity": ("vorticity_forcing",)}
+    dirs = _directions(grid)
+    need = {"stress": tuple(f"tau_{k}" for k in _stress_keys(grid)),
+            "force": tuple(f"force_{d}" for d in dirs)}
+    if not three:
+        need["vorticity"] = ("vorticity_forcing",)
     if target not in need:
-        raise UserError(f"the coarse solver runs stress, force or vorticity closures, not "
+        kinds = "stress or force" if three else "stress, force or vorticity"
+        raise UserError(f"the {grid.ndim}-D coarse solver runs {kinds} closures, not "
                         f"{target!r}: fit a model of one of those targets")
+    model_dims = getattr(model, "dims", None)
+    if model_dims is not None and tuple(model_dims) != tuple(grid.dims):
+        raise UserError(f"the model is for {tuple(model_dims)} fields and the coarse run is on "
+                        f"{tuple(grid.dims)}: run it on data of its own dimension")
+    keys = _stress_keys(grid)
 
     def term(fields: dict[str, np.ndarray]) -> np.ndarray:
         out = model.evaluate(fields, grid)
@@ -249,6 +307,15 @@ def subgrid_term(model, grid: Grid) -> SubgridTerm | None:
         if missing:
             raise UserError(f"the {target} closure returned {sorted(out)}, not {missing}")
         h = F.forward(np.stack([np.asarray(out[k], dtype=float) for k in need[target]]))
+        if three:
+            if target == "force":
+                by_dir = dict(zip(dirs, h, strict=True))
+            else:
+                comp = dict(zip(keys, h, strict=True))
+                by_dir = {i: sum(F.ik_of(j) * comp["".join(sorted(i + j))] for j in dirs)
+                          for i in dirs}
+            return -np.stack([by_dir[d] for d in grid.dims])
+        ikx, iky = F.ik_of("x"), F.ik_of("y")
         if target == "vorticity":
             vf = h[0]
         elif target == "force":
@@ -260,17 +327,125 @@ def subgrid_term(model, grid: Grid) -> SubgridTerm | None:
     return term
 
 
+# --- the flows the solver runs --------------------------------------------------------------
+
+
+class _Flow2D:
+    """The 2-D coarse solver (closure.spectral.VorticityEquation) behind the interface the run
+    loop uses: initial_state, fields, energy, transfer_density, advance."""
+
+    def __init__(self, grid: Grid, closure, *, viscosity, drag, hyperviscosity_order,
+                 hypoviscosity, hypoviscosity_order, forcing, dealias):
+        if forcing is not None and not hasattr(forcing, "vorticity_hat"):
+            raise OptionError("a 2-D run takes a closure.spectral.Forcing (shell, kolmogorov) "
+                              "or a ModeForcing")
+        self.eq = VorticityEquation(grid, viscosity=viscosity, drag=drag,
+                                    hyperviscosity_order=hyperviscosity_order,
+                                    forcing=forcing or Forcing(), dealias=dealias,
+                                    subgrid=subgrid_term(closure, grid))
+        if hypoviscosity:
+            F = fourier(grid)
+            self.eq.linear = self.eq.linear - hypoviscosity * \
+                F.inverse_k2 ** int(hypoviscosity_order)
+        self._bare = VorticityEquation(grid, dealias=dealias)
+        self._weights = _energy_weights(grid)
+        self.grid = grid
+
+    def initial_state(self, fields: Mapping[str, np.ndarray]) -> np.ndarray:
+        if "vorticity" in fields:
+            omega = np.asarray(fields["vorticity"], dtype=float)
+        else:
+            omega = vorticity_from_velocity(np.asarray(fields["u"], dtype=float),
+                                            np.asarray(fields["v"], dtype=float), self.grid)
+        if omega.shape != self.grid.shape:
+            raise UserError(f"the initial field has shape {omega.shape}, not the grid's "
+                            f"{self.grid.shape}")
+        return self.eq.initial_state(omega)
+
+    def fields(self, q: np.ndarray) -> dict[str, np.ndarray]:
+        return self.eq.fields(q)
+
+    def energy(self, q: np.ndarray) -> float:
+        return float(np.sum(self._weights * np.abs(q[0]) ** 2))
+
+    def transfer_density(self, q: np.ndarray) -> np.ndarray:
+        """Per-mode resolved nonlinear energy transfer Re(conj(omega_hat) N_hat) / |k|^2 with
+        N = -u . grad omega (Parseval weights)."""
+        F = fourier(self.grid)
+        n = self._bare.tendency(q)[0]
+        return F.half_weights * np.real(np.conj(q[0]) * n) * F.inverse_k2 / F.size**2
+
+    def advance(self, q, duration, cfl, max_step, on_step, max_substeps):
+        return self.eq.advance(q, duration, cfl, max_step, on_step=on_step,
+                               max_substeps=max_substeps)
+
+
+def _flow(grid: Grid, closure=None, *, viscosity=0.0, drag=0.0, hyperviscosity_order=1,
+          hypoviscosity=0.0, hypoviscosity_order=1, forcing=None, dealias=True):
+    if grid.dims == ("y", "x"):
+        return _Flow2D(grid, closure, viscosity=viscosity, drag=drag,
+                       hyperviscosity_order=hyperviscosity_order, hypoviscosity=hypoviscosity,
+                       hypoviscosity_order=hypoviscosity_order, forcing=forcing,
+                       dealias=dealias)
+    if grid.dims == ("z", "y", "x"):
+        from closure.les3d import Forcing3D, LESEquation3D
+
+        if forcing is not None and not isinstance(forcing, Forcing3D):
+            raise OptionError("a 3-D run takes a closure.les3d.Forcing3D (steady, power)")
+        return LESEquation3D(grid, viscosity=viscosity, drag=drag,
+                             hyperviscosity_order=hyperviscosity_order,
+                             hypoviscosity=hypoviscosity,
+                             hypoviscosity_order=hypoviscosity_order, forcing=forcing,
+                             dealias=dealias, subgrid=subgrid_term(closure, grid))
+    raise UserError(f"the coarse solver runs 2-D (y, x) or 3-D (z, y, x) flows, not "
+                    f"{grid.dims}")
+
+
 # --- runs -----------------------------------------------------------------------------------
+
+
+@dataclass
+class LongRunPlan:
+    """A long run: ``duration`` (s from the initial time), statistics sampled every
+    ``sample_interval`` s after ``spinup`` s, the vorticity histogram on ``edges``."""
+
+    duration: float
+    spinup: float
+    sample_interval: float
+    edges: np.ndarray
+
+    def __post_init__(self):
+        if not (self.duration > 0 and math.isfinite(self.duration)):
+            raise OptionError(f"--duration must be a positive number of seconds, got "
+                              f"{self.duration}")
+        if not (0 <= self.spinup < self.duration):
+            raise OptionError(f"--spinup must be >= 0 and shorter than --duration "
+                              f"({self.duration:g} s), got {self.spinup}")
+        if not (self.sample_interval > 0 and self.sample_interval <= self.duration
+                - self.spinup):
+            raise OptionError(f"the sample interval must be > 0 and at most duration - spinup "
+                              f"({self.duration - self.spinup:g} s), got {self.sample_interval}")
+
+    def sample_times(self, t0: float) -> np.ndarray:
+        """Output times of the long run: every sample_interval from t0, and t0 + duration."""
+        count = int(math.floor(self.duration / self.sample_interval * (1 + 1e-12)))
+        out = self.sample_interval * np.arange(1, count + 1)
+        if out.size == 0 or out[-1] < self.duration * (1 - 1e-12):
+            out = np.append(out, self.duration)
+        return t0 + out
 
 
 @dataclass
 class Trajectory:
     """One coarse run (or the filtered reference) at its output times.
 
-    ``fields`` maps "u", "v", "vorticity" to arrays (n_times, ny, nx); ``energy`` (m^2 s^-2)
-    and ``enstrophy`` (s^-2) are spatial means of 0.5 u_i u_i and 0.5 omega^2. ``status`` is
-    "completed", "blew up" or "reference"; ``blowup_time`` (s) and ``message`` say why a run
-    stopped. ``times`` holds only the outputs reached.
+    ``fields`` maps "u", "v" (and "w" in 3-D) and "vorticity" to arrays (n_times, *grid.shape)
+    (3-D vorticity: (n_times, 3, nz, ny, nx), components x, y, z); ``energy`` (m^2 s^-2) and
+    ``enstrophy`` (s^-2) are spatial means of 0.5 u_i u_i and 0.5 omega_i omega_i.
+    ``status`` is "completed", "blew up" or "reference"; ``blowup_time`` (s) and ``message``
+    say why a run stopped. ``times`` holds only the outputs reached. ``statistics`` is the
+    long run's :meth:`closure.longrun.FlowStatistics.summary` and ``long_series`` its
+    {"time", "energy", "enstrophy"} (both None without a long run).
     """
 
     name: str
@@ -284,10 +459,18 @@ class Trajectory:
     message: str = ""
     steps: int = 0
     diagnostics: dict = field(default_factory=dict)
+    statistics: dict | None = None
+    long_series: dict | None = None
+    long_plan: LongRunPlan | None = None
 
     @property
     def blew_up(self) -> bool:
         return self.status == "blew up"
+
+    @property
+    def velocity(self) -> list[np.ndarray]:
+        """Velocity stacks (n_times, ...) in direction order x, y[, z]."""
+        return [self.fields[n] for n in velocity_names(self.grid)]
 
 
 def _energy_weights(grid: Grid) -> np.ndarray:
@@ -295,58 +478,97 @@ def _energy_weights(grid: Grid) -> np.ndarray:
     return 0.5 * F.half_weights * F.inverse_k2 / F.size**2
 
 
+def _stack_frames(frames: dict[str, list], grid: Grid) -> dict[str, np.ndarray]:
+    out = {}
+    for k, v in frames.items():
+        if v:
+            out[k] = np.stack(v)
+        else:
+            shape = (0, 3, *grid.shape) if (k == "vorticity" and grid.ndim == 3) else \
+                (0, *grid.shape)
+            out[k] = np.zeros(shape)
+    return out
+
+
 def run(initial: Mapping[str, np.ndarray], grid: Grid, times: Sequence[float], *,
         closure=None, viscosity: float = 0.0, drag: float = 0.0,
-        hyperviscosity_order: int = 1, forcing: Forcing | None = None, dealias: bool = True,
+        hyperviscosity_order: int = 1, forcing=None, dealias: bool = True,
         cfl: float = 0.5, max_step: float = math.inf, energy_bound: float = 10.0,
         max_substeps: int = 100_000, name: str = "run",
-        progress: Callable[[str, int, int], None] | None = None) -> Trajectory:
+        progress: Callable[[str, int, int], None] | None = None,
+        hypoviscosity: float = 0.0, hypoviscosity_order: int = 1,
+        long_run: LongRunPlan | None = None) -> Trajectory:
     """Run the coarse solver from ``initial`` fields and record it at ``times`` (s).
 
-    ``initial`` has "vorticity" (s^-1) or "u" and "v" (m s^-1) on ``grid`` (2-D, periodic);
-    ``times[0]`` is the initial time and later times are output times (increasing). ``closure``
-    is anything :func:`subgrid_term` accepts. The run stops early, without raising, when the
-    energy exceeds ``energy_bound`` times its initial value, a value turns non-finite or the
-    CFL step collapses; ``Trajectory.status`` and ``blowup_time`` report it.
+    2-D: ``initial`` has "vorticity" (s^-1) or "u" and "v" (m s^-1) on a periodic (y, x)
+    ``grid``, ``forcing`` is a :class:`closure.spectral.Forcing`. 3-D: "u", "v", "w" on a
+    periodic (z, y, x) grid, ``forcing`` a :class:`closure.les3d.Forcing3D`. ``times[0]`` is
+    the initial time and later times are output times (increasing). ``closure`` is anything
+    :func:`subgrid_term` accepts. With ``long_run`` the run continues to ``times[0] +
+    long_run.duration`` and accumulates statistics after the spin-up (fields are kept only
+    at ``times``, so memory does not grow with the duration). The run stops early, without
+    raising, when the energy exceeds ``energy_bound`` times its initial value, a value turns
+    non-finite or the CFL step collapses; ``Trajectory.status`` and ``blowup_time`` report it.
     """
+    from closure.longrun import FlowStatistics
+
     times = np.asarray(times, dtype=float)
     if times.ndim != 1 or times.size < 1 or np.any(np.diff(times) <= 0):
         raise OptionError("the output times must be increasing")
     if not energy_bound > 1:
         raise OptionError(f"the energy bound must be > 1 (a multiple of the initial energy), "
                           f"got {energy_bound}")
-    if "vorticity" in initial:
-        omega0 = np.asarray(initial["vorticity"], dtype=float)
-    else:
-        omega0 = vorticity_from_velocity(np.asarray(initial["u"], dtype=float),
-                                         np.asarray(initial["v"], dtype=float), grid)
-    if omega0.shape != grid.shape:
-        raise UserError(f"the initial field has shape {omega0.shape}, not the grid's "
-                        f"{grid.shape}")
-    if not np.all(np.isfinite(omega0)):
-        raise UserError("the initial field has NaN or Inf values")
-    eq = VorticityEquation(grid, viscosity=viscosity, drag=drag,
-                           hyperviscosity_order=hyperviscosity_order,
-                           forcing=forcing or Forcing(), dealias=dealias,
-                           subgrid=subgrid_term(closure, grid))
-    q = eq.initial_state(omega0)
-    weights = _energy_weights(grid)
-    e0 = float(np.sum(weights * np.abs(q[0]) ** 2))
+    for k, a in initial.items():
+        if not np.all(np.isfinite(np.asarray(a, dtype=float))):
+            raise UserError(f"the initial field {k} has NaN or Inf values")
+    flow = _flow(grid, closure, viscosity=viscosity, drag=drag,
+                 hyperviscosity_order=hyperviscosity_order, hypoviscosity=hypoviscosity,
+                 hypoviscosity_order=hypoviscosity_order, forcing=forcing, dealias=dealias)
+    q = flow.initial_state(initial)
+    e0 = flow.energy(q)
     limit = energy_bound * e0 if e0 > 0 else math.inf
-    frames = {"u": [], "v": [], "vorticity": []}
+    names = velocity_names(grid)
+    frames = {**{n: [] for n in names}, "vorticity": []}
     kept_times, constants = [], []
     state = {"status": "completed", "time": None, "message": ""}
+    t_init = float(times[0])
+    stats = series = None
+    events = [(float(t), True) for t in times[1:]]
+    if long_run is not None:
+        stats = FlowStatistics(grid, long_run.edges)
+        series = {"time": [t_init], "energy": [e0], "enstrophy": []}
+        events += [(float(t), False) for t in long_run.sample_times(t_init)]
+        events.sort()
+    # merge an output time and a sample time that coincide
+    merged: list[list] = []
+    for t, rec in events:
+        if merged and abs(merged[-1][0] - t) <= 1e-9 * max(1.0, abs(t)):
+            merged[-1][1] = merged[-1][1] or rec
+            merged[-1][2] = True
+        else:
+            merged.append([t, rec, not rec])
+    stat_start = t_init + (long_run.spinup if long_run else 0.0) - 1e-9 * max(1.0, t_init)
 
     def record(q, t):
-        f = eq.fields(q)
+        f = flow.fields(q)
         for k in frames:
             frames[k].append(f[k])
         kept_times.append(t)
         if isinstance(closure, DynamicSmagorinsky):
             constants.append(closure.constant(f, grid))
+        return f
+
+    def sample(q, t, f=None):
+        f = f or flow.fields(q)
+        series["time"].append(t)
+        series["energy"].append(flow.energy(q))
+        series["enstrophy"].append(enstrophy(list(f["vorticity"]) if grid.ndim == 3
+                                             else f["vorticity"]))
+        if t >= stat_start:
+            stats.add([f[n] for n in names], f["vorticity"], flow.transfer_density(q))
 
     def blown(q, t_now) -> bool:
-        e = float(np.sum(weights * np.abs(q[0]) ** 2))
+        e = flow.energy(q)
         if not np.isfinite(e) or not np.all(np.isfinite(q)):
             state.update(status="blew up", time=t_now,
                          message=f"non-finite values at t = {t_now:.6g} s")
@@ -359,14 +581,19 @@ def run(initial: Mapping[str, np.ndarray], grid: Grid, times: Sequence[float], *
         return False
 
     steps = 0
+    t_prev = t_init
     with np.errstate(all="ignore"):
-        record(q, float(times[0]))
-        for j in range(1, times.size):
-            t0, dt_out = float(times[j - 1]), float(times[j] - times[j - 1])
+        f0 = record(q, t_init)
+        if series is not None:
+            series["enstrophy"].append(enstrophy(list(f0["vorticity"]) if grid.ndim == 3
+                                                 else f0["vorticity"]))
+            if long_run.spinup <= 0:
+                stats.add([f0[n] for n in names], f0["vorticity"], flow.transfer_density(q))
+        for j, (t_next, rec, samp) in enumerate(merged):
+            t0, dt_out = t_prev, t_next - t_prev
             try:
-                q, n = eq.advance(q, dt_out, cfl, max_step,
-                                  on_step=lambda q, t, t0=t0: not blown(q, t0 + t),
-                                  max_substeps=max_substeps)
+                q, n = flow.advance(q, dt_out, cfl, max_step,
+                                    lambda q, t, t0=t0: not blown(q, t0 + t), max_substeps)
             except StepCollapse as exc:
                 state.update(status="blew up", time=t0, message=f"{exc} at t = {t0:.6g} s")
                 break
@@ -377,63 +604,87 @@ def run(initial: Mapping[str, np.ndarray], grid: Grid, times: Sequence[float], *
             steps += n
             if state["status"] != "completed":
                 break
-            record(q, float(times[j]))
+            f = record(q, t_next) if rec else None
+            if samp:
+                sample(q, t_next, f)
+            t_prev = t_next
             if progress is not None:
-                progress(name, j, times.size - 1)
-    arrays = {k: np.stack(v) for k, v in frames.items()}
+                progress(name, j + 1, len(merged))
+    arrays = _stack_frames(frames, grid)
+    vel = [arrays[n] for n in names]
     traj = Trajectory(
-        name=name, grid=grid, times=np.asarray(kept_times),
-        fields=arrays,
-        energy=np.array([kinetic_energy((u, v)) for u, v in zip(arrays["u"], arrays["v"],
-                                                                    strict=True)]),
-        enstrophy=np.array([enstrophy(w) for w in arrays["vorticity"]]),
+        name=name, grid=grid, times=np.asarray(kept_times), fields=arrays,
+        energy=np.array([kinetic_energy([c[i] for c in vel]) for i in range(len(kept_times))]),
+        enstrophy=np.array([_enstrophy_of(w, grid) for w in arrays["vorticity"]]),
         status=state["status"], blowup_time=state["time"], message=state["message"],
         steps=steps)
     if constants:
         # C = C_s^2 at each output time (before clipping)
         traj.diagnostics["dynamic_constant"] = [float(c) for c in constants]
+    if long_run is not None:
+        traj.statistics = stats.summary()
+        traj.long_series = {k: [float(x) for x in v] for k, v in series.items()}
+        traj.long_plan = long_run
     return traj
+
+
+def _enstrophy_of(w: np.ndarray, grid: Grid) -> float:
+    return enstrophy(list(w) if grid.ndim == 3 else w)
+
+
+def _projected_fields(flow, f: Mapping[str, np.ndarray]) -> tuple[np.ndarray, dict]:
+    q = flow.initial_state(f)
+    return q, flow.fields(q)
 
 
 def reference_trajectory(fields: Sequence[Mapping[str, np.ndarray]], times: Sequence[float],
                          grid: Grid, dealias: bool = True, name: str = REFERENCE) -> Trajectory:
     """The filtered DNS as a Trajectory on the coarse grid, projected onto the modes the
-    coarse solver carries (its 2/3-rule modes when ``dealias``; velocity from vorticity)."""
-    F = fourier(grid)
-    mask = F.dealias if dealias else 1.0
-    frames = {"u": [], "v": [], "vorticity": []}
+    coarse solver carries (its 2/3-rule modes when ``dealias``; 2-D: velocity from vorticity,
+    3-D: solenoidal projection)."""
+    flow = _flow(grid, dealias=dealias)
+    names = velocity_names(grid)
+    frames = {**{n: [] for n in names}, "vorticity": []}
     for f in fields:
-        if "vorticity" in f:
-            w = np.asarray(f["vorticity"], dtype=float)
-        else:
-            w = vorticity_from_velocity(f["u"], f["v"], grid)
-        wh = F.forward(w) * mask
-        wh[0, 0] = 0.0
-        uh, vh = velocity_hat_from_vorticity(wh, grid)
-        u, v, w = F.backward(np.stack([uh, vh, wh]))
-        frames["u"].append(u)
-        frames["v"].append(v)
-        frames["vorticity"].append(w)
-    arrays = {k: np.stack(v) for k, v in frames.items()}
+        _, out = _projected_fields(flow, f)
+        for k in frames:
+            frames[k].append(out[k])
+    arrays = _stack_frames(frames, grid)
+    vel = [arrays[n] for n in names]
     return Trajectory(
         name=name, grid=grid, times=np.asarray(times, dtype=float), fields=arrays,
-        energy=np.array([kinetic_energy((u, v)) for u, v in zip(arrays["u"], arrays["v"],
-                                                                    strict=True)]),
-        enstrophy=np.array([enstrophy(w) for w in arrays["vorticity"]]),
+        energy=np.array([kinetic_energy([c[i] for c in vel]) for i in range(len(fields))]),
+        enstrophy=np.array([_enstrophy_of(w, grid) for w in arrays["vorticity"]]),
         status=REFERENCE)
 
 
+def reference_statistics(fields: Sequence[Mapping[str, np.ndarray]], grid: Grid,
+                         edges: np.ndarray, dealias: bool = True) -> dict:
+    """Statistics (closure.longrun.FlowStatistics.summary) of every filtered-DNS snapshot,
+    projected as in :func:`reference_trajectory`, with the resolved transfer spectrum."""
+    from closure.longrun import FlowStatistics
+
+    flow = _flow(grid, dealias=dealias)
+    stats = FlowStatistics(grid, edges)
+    for f in fields:
+        q, out = _projected_fields(flow, f)
+        stats.add([out[n] for n in velocity_names(grid)], out["vorticity"],
+                  flow.transfer_density(q))
+    return stats.summary()
+
+
+def long_run_edges(fields: Sequence[Mapping[str, np.ndarray]], grid: Grid,
+                   dealias: bool = True, bins: int | None = None) -> np.ndarray:
+    """Vorticity histogram edges for a long run: symmetric, 1.5 x the largest |vorticity| of
+    the (projected) ``fields``."""
+    from closure.longrun import PDF_BINS, symmetric_edges
+
+    flow = _flow(grid, dealias=dealias)
+    values = [_projected_fields(flow, f)[1]["vorticity"] for f in fields]
+    return symmetric_edges(values, bins or PDF_BINS)
+
+
 # --- metrics --------------------------------------------------------------------------------
-
-
-def hellinger(p: np.ndarray, q: np.ndarray) -> float:
-    """Hellinger distance sqrt(1 - sum sqrt(p_i q_i)) of two histograms (normalised here)."""
-    p = np.asarray(p, dtype=float)
-    q = np.asarray(q, dtype=float)
-    if p.sum() <= 0 or q.sum() <= 0:
-        return math.nan
-    bc = float(np.sum(np.sqrt(p / p.sum() * q / q.sum())))
-    return math.sqrt(max(0.0, 1.0 - bc))
 
 
 def vorticity_hellinger(a: np.ndarray, b: np.ndarray, bins: int = 64) -> float:
@@ -452,21 +703,15 @@ def vorticity_hellinger(a: np.ndarray, b: np.ndarray, bins: int = 64) -> float:
 def spectral_bands(grid: Grid) -> list[tuple[int, int]]:
     """Octave bands of shell index (mode number) [1, 2), [2, 4), ... covering every shell of
     the grid (the corners included)."""
-    top = int(np.ceil(np.sqrt(sum((n // 2) ** 2 for n in grid.shape))))
-    bands, lo = [], 1
-    while lo <= top:
-        bands.append((lo, 2 * lo))
-        lo *= 2
-    return bands
+    return octave_bands(grid)
 
 
 def band_energies(u: np.ndarray, v: np.ndarray, grid: Grid,
-                  bands: Sequence[tuple[int, int]]) -> np.ndarray:
-    """Kinetic energy (m^2 s^-2) in each band of shells [lo, hi)."""
-    k, E = energy_spectrum((u, v), grid)
-    j = np.rint(k / shell_spacing(grid)).astype(int)
-    dk = shell_spacing(grid)
-    return np.array([float(np.sum(E[(j >= lo) & (j < hi)]) * dk) for lo, hi in bands])
+                  bands: Sequence[tuple[int, int]], w: np.ndarray | None = None) -> np.ndarray:
+    """Kinetic energy (m^2 s^-2) in each band of shells [lo, hi) (``w``: the third component
+    in 3-D)."""
+    k, E = energy_spectrum((u, v) if w is None else (u, v, w), grid)
+    return band_energies_of_spectrum(k, E, grid, bands)
 
 
 def compare(run_: Trajectory, reference: Trajectory, pdf_bins: int = 64) -> dict:
@@ -492,8 +737,10 @@ def compare(run_: Trajectory, reference: Trajectory, pdf_bins: int = 64) -> dict
         enstrophy_err.append(_relative(run_.enstrophy[i], reference.enstrophy[r]))
         hell.append(vorticity_hellinger(run_.fields["vorticity"][i],
                                         reference.fields["vorticity"][r], pdf_bins))
-        eb = band_energies(run_.fields["u"][i], run_.fields["v"][i], grid, bands)
-        rb = band_energies(reference.fields["u"][r], reference.fields["v"][r], grid, bands)
+        eb = band_energies(*[c[i] for c in run_.velocity[:2]], grid, bands,
+                           *[c[i] for c in run_.velocity[2:]])
+        rb = band_energies(*[c[r] for c in reference.velocity[:2]], grid, bands,
+                           *[c[r] for c in reference.velocity[2:]])
         # bands the reference leaves (numerically) empty have no relative error
         floor = BAND_FLOOR * reference.energy[r]
         band_err.append([_relative(a, b) if b > floor else None
@@ -541,12 +788,16 @@ def vorticity_pdf(omega: np.ndarray, edges: np.ndarray) -> dict:
 @dataclass
 class Comparison:
     """The runs of one a posteriori comparison: ``runs`` by label (model first, then
-    baselines), the filtered ``reference`` (or None) and ``metrics`` per run label."""
+    baselines), the filtered ``reference`` (or None) and ``metrics`` per run label;
+    ``long_runs`` holds each run's long-run figures (:func:`long_run_figures`) and
+    ``reference_statistics`` the filtered DNS's statistics, when long runs were made."""
 
     runs: dict[str, Trajectory]
     reference: Trajectory | None
     metrics: dict[str, dict]
     settings: dict = field(default_factory=dict)
+    long_runs: dict[str, dict] = field(default_factory=dict)
+    reference_statistics: dict | None = None
 
     def to_json(self) -> str:
         """:meth:`to_dict` as JSON text; NaN and Inf (a blown-up run) become null."""
@@ -557,8 +808,12 @@ class Comparison:
     def to_dict(self) -> dict:
         """Plain JSON: {"runs": {label: {"time", "energy", "enstrophy", "spectrum": {"k",
         "E"}, "vorticity_pdf": {"x", "density"}, "blowup_time", "status", "message",
-        "steps", "metrics"}}, "reference", "spectrum_time", "settings", "note"}; the spectra
-        and PDFs are those at ``spectrum_time``, the last time every run reached."""
+        "steps", "metrics"[, "long_run"]}}, "reference", "spectrum_time", "settings",
+        "note"}; the spectra and PDFs are those at ``spectrum_time``, the last time every run
+        reached. ``long_run`` (see :func:`long_run_figures`) holds duration, stable,
+        blowup_time, spectrum_error, vorticity_pdf_distance, mean_energy_ratio,
+        mean_enstrophy_ratio and the time-mean spectra, PDF, quantiles and transfer spectrum
+        behind them; the reference's entry has its own statistics."""
         everyone = list(self.runs.values()) + ([self.reference] if self.reference else [])
         common = min(float(t.times[-1]) for t in everyone)
         values = [t.fields["vorticity"][_index_at(t, common)] for t in everyone]
@@ -568,7 +823,7 @@ class Comparison:
         out = {}
         for t in everyone:
             i = _index_at(t, common)
-            k, E = energy_spectrum((t.fields["u"][i], t.fields["v"][i]), t.grid)
+            k, E = energy_spectrum([c[i] for c in t.velocity], t.grid)
             entry = {
                 "time": t.times.tolist(),
                 "energy": t.energy.tolist(),
@@ -584,19 +839,22 @@ class Comparison:
                 entry["diagnostics"] = t.diagnostics
             if t.name in self.metrics:
                 entry["metrics"] = self.metrics[t.name]
+            if t.name in self.long_runs:
+                entry["long_run"] = self.long_runs[t.name]
+            elif t is self.reference and self.reference_statistics is not None:
+                entry["long_run"] = {"statistics": statistics_json(self.reference_statistics)}
             out[t.name] = entry
         return {
             "runs": out,
             "reference": self.reference.name if self.reference else None,
             "spectrum_time": common,
             "settings": self.settings,
-            "note": "A priori skill does not guarantee a stable or accurate coarse "
-                    "simulation; these runs test this flow only. Validate a posteriori on "
-                    "your own flows before relying on a model.",
+            "note": LONG_RUN_NOTE if self.long_runs else SHORT_NOTE,
         }
 
     def table(self) -> str:
-        """A text table: one row per run, errors against the reference."""
+        """A text table: one row per run, errors against the reference (and, after long
+        runs, a second table of the long-run figures)."""
         rows = [(name, t, self.metrics.get(name, {})) for name, t in self.runs.items()]
         bands = []
         for _, _, m in rows:
@@ -613,14 +871,119 @@ class Comparison:
                      _fmt(m.get("mean_hellinger"))]
             cells += [_fmt(m.get("spectrum_band_error", {}).get(b)) for b in bands]
             lines.append(cells)
-        widths = [max(len(str(r[i])) for r in [head, *lines]) for i in range(len(head))]
-        text = ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip()
-                for r in [head, *lines]]
         legend = ("errors: time-mean relative error against the filtered DNS of kinetic energy "
                   "(E), enstrophy (Z) and band energy per octave of mode numbers; PDF dist: "
                   "Hellinger distance of the vorticity PDFs" if self.reference else
                   "no reference: errors not computed")
-        return "\n".join([*text, legend])
+        text = [*_aligned([head, *lines]), legend]
+        if self.long_runs:
+            text += ["", self.long_run_table()]
+        return "\n".join(text)
+
+    def long_run_table(self) -> str:
+        """The long-run figures, one row per run (and the reference's quantiles)."""
+        head = ["run", "stable", "blow-up t", "spectrum err", "PDF dist", "E ratio",
+                "Z ratio", "transfer err", "q0.1%", "q99.9%"]
+        lines = []
+        for name, f in self.long_runs.items():
+            q = (f.get("vorticity_quantiles") or {}).get("run") or [None, None]
+            lines.append([name, "yes" if f["stable"] else "no",
+                          "-" if f["blowup_time"] is None else f"{f['blowup_time']:.4g}",
+                          _fmt(f["spectrum_error"]), _fmt(f["vorticity_pdf_distance"]),
+                          _fmt(f["mean_energy_ratio"]), _fmt(f["mean_enstrophy_ratio"]),
+                          _fmt(f.get("transfer_error")), _fmt_quantile(q[0]),
+                          _fmt_quantile(q[1])])
+        ref = self.reference_statistics
+        if ref and ref.get("samples"):
+            from closure.longrun import TAIL_QUANTILES
+
+            lines.append([REFERENCE, "-", "-", "-", "-", "1", "1", "-",
+                          *[_fmt(ref["quantiles"][x]) for x in TAIL_QUANTILES]])
+        first = next(iter(self.long_runs.values()))
+        legend = (f"long runs of {first['duration']:.4g} s, statistics after a "
+                  f"{first['spinup']:.4g} s spin-up"
+                  + (" against every snapshot of the filtered DNS" if ref else "")
+                  + ": spectrum err = mean over octave bands (up to the last complete shell) "
+                  "of |E_b - E_b^ref| / E_b^ref of the time-mean spectra; PDF dist = "
+                  "Hellinger distance of the vorticity PDFs; "
+                  "E, Z ratio = time-mean energy, enstrophy / reference; transfer err = "
+                  "sum |T - T_ref| / sum |T_ref| of the resolved transfer spectra; q = "
+                  "vorticity quantiles (beyond: outside the histogram, 1.5 x the largest "
+                  "|vorticity| of the reference). Evidence on this flow, not a guarantee.")
+        return "\n".join([*_aligned([head, *lines]), legend])
+
+
+SHORT_NOTE = ("A priori skill does not guarantee a stable or accurate coarse simulation; these "
+              "runs test this flow only. Validate a posteriori on your own flows before "
+              "relying on a model.")
+LONG_RUN_NOTE = (SHORT_NOTE + " Long-run statistics compare time averages after the spin-up "
+                 "with the filtered DNS: a stable run with close statistics on one flow is "
+                 "evidence, not a guarantee, for other flows, resolutions or run lengths.")
+
+
+def _aligned(table: list[list]) -> list[str]:
+    widths = [max(len(str(r[i])) for r in table) for i in range(len(table[0]))]
+    return ["  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True)).rstrip()
+            for r in table]
+
+
+def statistics_json(s: dict) -> dict:
+    """A FlowStatistics summary in plain JSON: spectrum {k, E}, transfer {k, T} (or None),
+    vorticity_pdf {x, density, edges, underflow, overflow}, quantiles, energy, enstrophy,
+    samples."""
+    if not s.get("samples"):
+        return {"samples": 0}
+    from closure.longrun import TAIL_QUANTILES
+
+    edges = np.asarray(s["pdf"]["edges"])
+    counts = np.asarray(s["pdf"]["counts"])
+    return {
+        "samples": int(s["samples"]),
+        "spectrum": {"k": np.asarray(s["k"]).tolist(), "E": np.asarray(s["E"]).tolist()},
+        "transfer": None if s["T"] is None else {"k": np.asarray(s["k"]).tolist(),
+                                                 "T": np.asarray(s["T"]).tolist()},
+        "vorticity_pdf": {"x": (0.5 * (edges[1:] + edges[:-1])).tolist(),
+                          "density": np.asarray(s["pdf"]["density"]).tolist(),
+                          "edges": edges.tolist(),
+                          "underflow": float(counts[0] / counts.sum()),
+                          "overflow": float(counts[-1] / counts.sum())},
+        "quantiles": {str(q): s["quantiles"][q] for q in TAIL_QUANTILES},
+        "energy": s["energy"], "enstrophy": s["enstrophy"],
+    }
+
+
+def long_run_figures(run_: Trajectory, reference: dict | None) -> dict:
+    """The long-run record of a run: ``duration`` (s asked), ``spinup``, ``stable`` (ran the
+    whole duration), ``blowup_time``, ``reached`` (s), the comparison with the reference
+    statistics (:func:`closure.longrun.compare_statistics`: spectrum_error,
+    spectrum_band_error, vorticity_pdf_distance, vorticity_quantiles, mean_energy_ratio,
+    mean_enstrophy_ratio, transfer_error; None without a reference), the time series and the
+    run's own statistics."""
+    from closure.longrun import compare_statistics
+
+    plan = run_.long_plan
+    if plan is None or run_.statistics is None:
+        raise ValueError(f"run {run_.name!r} was not a long run")
+    series = run_.long_series or {"time": []}
+    reached = (series["time"][-1] - series["time"][0]) if series["time"] else 0.0
+    figures = compare_statistics(run_.statistics, reference or {}, run_.grid)
+    return {
+        "duration": float(plan.duration),
+        "spinup": float(plan.spinup),
+        "sample_interval": float(plan.sample_interval),
+        "stable": not run_.blew_up,
+        "blowup_time": run_.blowup_time,
+        "reached": float(reached),
+        **figures,
+        "series": series,
+        "statistics": statistics_json(run_.statistics),
+    }
+
+
+def _fmt_quantile(v) -> str:
+    if v is not None and math.isinf(v):
+        return "beyond"
+    return _fmt(v)
 
 
 def _index_at(t: Trajectory, time: float) -> int:
@@ -634,16 +997,20 @@ def _fmt(v) -> str:
 def compare_runs(initial: Mapping[str, np.ndarray], grid: Grid, times: Sequence[float],
                  closures: Mapping[str, object], reference: Trajectory | None = None,
                  progress: Callable[[str, int, int], None] | None = None,
-                 **solver) -> Comparison:
+                 reference_stats: dict | None = None, **solver) -> Comparison:
     """Run each closure (label -> closure, None for no model) from ``initial`` at ``times``
-    with the same ``solver`` options (see :func:`run`) and score them against ``reference``."""
-    runs, metrics = {}, {}
+    with the same ``solver`` options (see :func:`run`, ``long_run`` included) and score them
+    against ``reference`` (and, after long runs, against ``reference_stats``)."""
+    runs, metrics, long_runs = {}, {}, {}
     for label, closure in closures.items():
         runs[label] = run(initial, grid, times, closure=closure, name=label, progress=progress,
                           **solver)
         if reference is not None:
             metrics[label] = compare(runs[label], reference)
-    return Comparison(runs, reference, metrics)
+        if runs[label].long_plan is not None:
+            long_runs[label] = long_run_figures(runs[label], reference_stats)
+    return Comparison(runs, reference, metrics, long_runs=long_runs,
+                      reference_statistics=reference_stats)
 
 
 # --- from files -----------------------------------------------------------------------------
@@ -683,10 +1050,11 @@ def _open_input(path, input_options: Mapping | None):
 def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | None = None,
                 width_units: str = "grid", indices: Sequence[int] | None = None,
                 input_options: Mapping | None = None) -> CoarseData:
-    """Read 2-D fine fields from ``path`` (closure.io; ``input_options`` as in
-    :func:`simulate`) and coarse-grain them as the discovery pipeline does
-    (closure.residuals); ``kind="none"`` keeps the fields as they are (ratio 1), and the
-    baselines then use the grid spacing as their width."""
+    """Read 2-D (y, x) or 3-D (z, y, x) fine fields from ``path`` (closure.io;
+    ``input_options`` as in :func:`simulate`) and coarse-grain them as the discovery pipeline
+    does (closure.residuals); ``kind="none"`` keeps the fields as they are (ratio 1), and the
+    baselines then use the grid spacing as their width. 2-D fields carry u, v, vorticity; 3-D
+    ones u, v, w."""
     from closure.filters import make_coarse_graining
     from closure.pipeline import refuse_land_mask
     from closure.residuals import coarse_grain_snapshot
@@ -696,14 +1064,15 @@ def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | Non
     src, level = _open_input(path, input_options)
     with src:
         grid = src.grid
-        if grid.dims != ("y", "x"):
+        if grid.dims not in (("y", "x"), ("z", "y", "x")):
             raise UserError(f"{path} holds {grid.dims} fields: the coarse solver runs 2-D "
-                            "(y, x) periodic flows")
+                            "(y, x) or 3-D (z, y, x) periodic flows")
         if not grid.periodic:
             raise UserError(f"{path}: the coarse solver needs periodic data")
         if "time" in src.units and src.units["time"].strip() not in ("s", "second", "seconds"):
             raise UserError(f"{path}: time is in {src.units['time']!r}; the coarse solver "
                             "needs seconds")
+        names = velocity_names(grid)
         if kind == "none":
             if ratio != 1:
                 raise OptionError(f"--filter none keeps the fine grid: use --ratio 1 (got "
@@ -720,26 +1089,67 @@ def coarse_data(path, kind: str = "gaussian", ratio: int = 4, width: float | Non
         for i in chosen:
             snap = src.snapshot(i, level)
             refuse_land_mask(snap)
+            missing = [n for n in names if n not in snap.fields]
+            if missing:
+                raise UserError(f"{path} has no velocity {', '.join(missing)}: the coarse "
+                                f"solver needs {', '.join(names)}")
             if cg is None:
-                u, v = snap.fields["u"], snap.fields["v"]
-                f = {"u": u, "v": v, "vorticity": vorticity_from_velocity(u, v, grid)}
+                f = {n: snap.fields[n] for n in names}
             else:
-                cs = coarse_grain_snapshot(snap, cg)
-                f = {k: cs.fields[k] for k in ("u", "v", "vorticity")}
+                cs = coarse_grain_snapshot(snap, cg, targets=())
+                f = {n: cs.fields[n] for n in names}
+                if grid.ndim == 2:
+                    f["vorticity"] = cs.fields["vorticity"]
+            if grid.ndim == 2 and "vorticity" not in f:
+                f["vorticity"] = vorticity_from_velocity(f["u"], f["v"], coarse)
             fields.append(f)
             times.append(snap.time)
         return CoarseData(coarse, times, fields, dict(src.attrs), float(delta), described,
                           str(path), chosen)
 
 
-def parse_forcing(text: str | None, attrs: Mapping) -> Forcing:
+@dataclass(frozen=True)
+class ModeForcing:
+    """A steady 2-D vorticity forcing from a table of Fourier modes
+    (:func:`closure.les3d.read_forcing_modes`); ``source`` names the file."""
+
+    modes: tuple
+    source: str = ""
+    kind: str = "modes"
+
+    @property
+    def active(self) -> bool:
+        return bool(self.modes)
+
+    def vorticity_hat(self, grid: Grid) -> np.ndarray:
+        from closure.les3d import modes_field
+
+        return fourier(grid).forward(modes_field(self.modes, grid, 2))
+
+    def to_attrs(self) -> dict:
+        return {"forcing": "modes", "forcing_file": self.source,
+                "forcing_modes": len(self.modes)}
+
+
+def parse_forcing(text: str | None, attrs: Mapping) -> Forcing | ModeForcing:
     """``file`` (the file's turb2d forcing attributes, else none), ``none``,
-    ``shell:K:A[:SEED]`` or ``kolmogorov:K:A``."""
+    ``shell:K:A[:SEED]``, ``kolmogorov:K:A`` or ``modes:FILE`` (a table of Fourier modes,
+    :func:`closure.les3d.read_forcing_modes`)."""
     text = (text or "file").strip()
     if text == "file":
+        kind = str(attrs.get("forcing", "none"))
+        if kind not in ("none", "shell", "kolmogorov"):
+            raise UserError(f"the file's forcing {kind!r} is not one the 2-D solver knows: "
+                            "give --forcing none, shell:K:A[:SEED], kolmogorov:K:A or "
+                            "modes:FILE")
         return Forcing.from_attrs(attrs) if "forcing" in attrs else Forcing()
     if text == "none":
         return Forcing()
+    if text.startswith("modes:"):
+        from closure.les3d import read_forcing_modes
+
+        path = text[len("modes:"):]
+        return ModeForcing(read_forcing_modes(path, 2), path)
     parts = text.split(":")
     try:
         if parts[0] == "shell" and len(parts) in (3, 4):
@@ -749,7 +1159,8 @@ def parse_forcing(text: str | None, attrs: Mapping) -> Forcing:
             return Forcing("kolmogorov", float(parts[1]), float(parts[2]))
     except ValueError:
         pass
-    raise OptionError(f"--forcing {text!r}: use file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+    raise OptionError(f"--forcing {text!r}: use file, none, shell:K:A[:SEED], kolmogorov:K:A "
+                      "or modes:FILE")
 
 
 def _attr_float(attrs: Mapping, key: str, option: str, given):
@@ -785,19 +1196,29 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
              baselines: Sequence[str] = (), smagorinsky_constant: float = SMAGORINSKY_CONSTANT,
              dealias: bool | None = None, cfl: float = 0.5, energy_bound: float = 10.0,
              progress: Callable[[str, int, int], None] | None = None,
-             input_options: Mapping | None = None) -> Comparison:
+             input_options: Mapping | None = None,
+             long_duration: float | None = None, spinup: float | None = None,
+             sample_interval: float | None = None, hypoviscosity: float | None = None,
+             hypoviscosity_order: int | None = None) -> Comparison:
     """Run ``model`` (None: no model) and ``baselines`` from snapshot ``initial_index`` of the
-    file ``initial``, coarse-grained, and score them against the coarse-grained ``reference``
-    file (default: the initial file when it has later snapshots).
+    file ``initial`` (2-D or 3-D), coarse-grained, and score them against the coarse-grained
+    ``reference`` file (default: the initial file when it has later snapshots).
 
     ``input_options`` (both files): ``variables`` (our name -> the file's), ``group``,
     ``mask``, ``levels`` (one level of a level stack) and ``spacing``, as closure.io reads them.
 
     The coarse-graining defaults to the model's own (its ``filter``), else Gaussian, ratio 4,
-    width 2 x ratio. Viscosity (m^2 s^-1), drag (s^-1), hyperviscosity order, forcing and
-    dealiasing default to the initial file's attributes (our turb2d files carry them).
-    Output times are the reference's snapshot times within ``duration`` (s) of the start, or
-    every ``interval`` s without a reference.
+    width 2 x ratio. Viscosity (m^2 s^-1), drag (s^-1), hyper- and hypoviscosity, forcing and
+    dealiasing default to the initial file's attributes (our turb2d/turb3d files carry them);
+    what a file made elsewhere does not state is assumed (no drag, Laplacian viscosity, no
+    forcing) and said in ``settings["warnings"]`` and ``settings["assumed_physics"]``: the
+    comparison is then qualitative. Output times are the reference's snapshot times within
+    ``duration`` (s) of the start, or every ``interval`` s without a reference.
+
+    With ``long_duration`` (s) every run continues that long and its statistics after
+    ``spinup`` s (default 0), sampled every ``sample_interval`` s (default: 200 samples, or
+    one per initial CFL step if that is longer), are
+    compared with those of every snapshot of the reference (``Comparison.long_runs``).
     """
     fdef = model_filter(model) if model is not None else None
     warnings = []
@@ -812,10 +1233,14 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
                         f"; this run uses {filter_kind} ratio {ratio}")
     if ratio is None:
         ratio = 1 if filter_kind == "none" else 4
+    if long_duration is not None and not (long_duration > 0 and math.isfinite(long_duration)):
+        raise OptionError(f"--duration must be a positive number of seconds, got "
+                          f"{long_duration}")
     init = coarse_data(initial, filter_kind, ratio, width, width_units, [initial_index],
                        input_options)
     attrs = init.attrs
     t_start = init.times[0] if init.times[0] is not None else 0.0
+    grid = init.grid
 
     ref_data = None
     if reference is None:
@@ -824,6 +1249,7 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
             later = len(src) > initial_index + 1
         if later:
             reference = initial
+    all_reference = None
     if reference is not None:
         ref_data = coarse_data(reference, filter_kind, ratio, width, width_units,
                                input_options=input_options)
@@ -832,6 +1258,7 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
                             f" the initial file to {init.grid.shape}: use files on the same grid")
         if any(t is None for t in ref_data.times):
             raise UserError(f"the reference {reference} has no time coordinate: add one (s)")
+        all_reference = list(ref_data.fields)
         keep = [i for i, t in enumerate(ref_data.times)
                 if t >= t_start - 1e-9 and (duration is None or t <= t_start + duration + 1e-9)]
         ref_data.fields = [ref_data.fields[i] for i in keep]
@@ -843,9 +1270,12 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
                             f"{t_start:g} s (within --time): choose an earlier --initial-index "
                             "or a longer --time")
         times = [t_start, *later_times]
+    elif duration is None and long_duration is not None:
+        times = [t_start]
     else:
         if duration is None:
-            raise OptionError("without a reference give --time (the run length in s)")
+            raise OptionError("without a reference give --time (the run length in s) or "
+                              "--duration (a long run)")
         if not duration > 0:
             raise OptionError(f"--time must be > 0, got {duration}")
         step = interval if interval is not None else duration / 10
@@ -854,14 +1284,9 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
         count = max(1, int(round(duration / step)))
         times = list(t_start + np.linspace(0.0, duration, count + 1))
 
-    nu = _attr_float(attrs, "viscosity", "--viscosity", viscosity)
-    mu = drag if drag is not None else float(attrs.get("drag", 0.0))
-    order = hyperviscosity_order if hyperviscosity_order is not None else \
-        int(attrs.get("hyperviscosity_order", 1))
-    if dealias is None:
-        dealias = str(attrs.get("dealias", "true")).lower() == "true"
-    force = parse_forcing(forcing, attrs)
-    grid = init.grid
+    physics = _physics(attrs, grid, viscosity, drag, hyperviscosity_order, hypoviscosity,
+                       hypoviscosity_order, forcing, dealias)
+    warnings.extend(physics.pop("warnings"))
     if model is not None and callable(getattr(model, "grid_warnings", None)):
         warnings.extend(model.grid_warnings(grid) or [])
     names = parse_baselines(baselines)
@@ -872,28 +1297,112 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
         closures[b] = baseline(b, init.delta, smagorinsky_constant)
     if model is None:
         closures = {("none" if k == model_label else k): v for k, v in closures.items()}
+    dealias = physics["dealias"]
     ref_traj = (reference_trajectory(ref_data.fields, ref_data.times, grid, dealias)
                 if ref_data is not None else None)
+    plan, ref_stats = None, None
+    if long_duration is not None:
+        spin = 0.0 if spinup is None else float(spinup)
+        if sample_interval is not None:
+            every = float(sample_interval)
+        else:
+            # 200 samples, but no closer than the initial CFL step: each sample ends a step
+            f0 = init.fields[0]
+            step = cfl_time_step([f0[VELOCITY_OF[d]] for d in grid.dims], grid, cfl)
+            every = max((long_duration - spin) / 200, min(step, long_duration - spin)) \
+                if long_duration > spin else long_duration
+        edges = long_run_edges(all_reference or init.fields, grid, dealias)
+        plan = LongRunPlan(float(long_duration), spin, float(every), edges)
+        if all_reference is not None:
+            ref_stats = reference_statistics(all_reference, grid, edges, dealias)
+    elif spinup is not None or sample_interval is not None:
+        raise OptionError("--spinup and --sample-interval belong to a long run: give "
+                          "--duration too")
     comparison = compare_runs(init.fields[0], grid, times, closures, ref_traj,
-                              progress=progress, viscosity=nu, drag=mu,
-                              hyperviscosity_order=order, forcing=force, dealias=dealias,
-                              cfl=cfl, energy_bound=energy_bound)
+                              progress=progress, reference_stats=ref_stats,
+                              viscosity=physics["viscosity"], drag=physics["drag"],
+                              hyperviscosity_order=physics["hyperviscosity_order"],
+                              hypoviscosity=physics["hypoviscosity"],
+                              hypoviscosity_order=physics["hypoviscosity_order"],
+                              forcing=physics["forcing"], dealias=dealias,
+                              cfl=cfl, energy_bound=energy_bound, long_run=plan)
     comparison.settings = {
         "initial": str(initial), "initial_index": int(initial_index),
         "reference": None if reference is None else str(reference),
         "coarse_graining": init.coarse_graining, "grid": grid.to_dict(),
-        "delta": init.delta, "viscosity": nu, "drag": mu, "hyperviscosity_order": order,
-        "forcing": force.to_attrs(), "dealias": bool(dealias), "cfl": cfl,
+        "delta": init.delta, "viscosity": physics["viscosity"], "drag": physics["drag"],
+        "hyperviscosity_order": physics["hyperviscosity_order"],
+        "hypoviscosity": physics["hypoviscosity"],
+        "hypoviscosity_order": physics["hypoviscosity_order"],
+        "forcing": physics["forcing"].to_attrs(), "dealias": bool(dealias), "cfl": cfl,
         "energy_bound": energy_bound, "smagorinsky_constant": smagorinsky_constant,
         "times": [float(t) for t in times], "warnings": warnings,
+        "assumed_physics": physics["assumed"], "qualitative": bool(physics["assumed"]),
+        "long_run": None if plan is None else {
+            "duration": plan.duration, "spinup": plan.spinup,
+            "sample_interval": plan.sample_interval,
+            "reference_snapshots": None if all_reference is None else len(all_reference)},
     }
     return comparison
 
 
+#: solvers whose files state their whole physics (closure's own generators)
+OWN_SOLVERS = ("turb2d", "turb3d")
+
+
+def _physics(attrs: Mapping, grid: Grid, viscosity, drag, hyperviscosity_order, hypoviscosity,
+             hypoviscosity_order, forcing, dealias) -> dict:
+    """The coarse run's physics from the options, else the file's attributes, else assumed
+    (listed in "assumed", with a loud warning that the comparison is qualitative)."""
+    own = str(attrs.get("solver", "")) in OWN_SOLVERS
+    assumed, warnings = [], []
+
+    def pick(given, key, default, text):
+        if given is not None:
+            return given
+        if key in attrs:
+            return attrs[key]
+        if not own:
+            assumed.append(text)
+        return default
+
+    nu = _attr_float(attrs, "viscosity", "--viscosity", viscosity)
+    mu = float(pick(drag, "drag", 0.0, "no linear drag (--drag 0)"))
+    order = int(pick(hyperviscosity_order, "hyperviscosity_order", 1,
+                     "Laplacian viscosity (--hyperviscosity-order 1)"))
+    hypo = float(pick(hypoviscosity, "hypoviscosity", 0.0, "no hypoviscosity "
+                      "(--hypoviscosity 0)"))
+    hypo_order = int(hypoviscosity_order if hypoviscosity_order is not None else
+                     attrs.get("hypoviscosity_order", 1))
+    if dealias is None:
+        dealias = str(attrs.get("dealias", "true")).lower() == "true"
+    text = (forcing or "file").strip()
+    if text == "file" and "forcing" not in attrs and not own:
+        assumed.append("no forcing (--forcing none)")
+    if grid.ndim == 3:
+        from closure.les3d import parse_forcing3d
+
+        force = parse_forcing3d(text, attrs)
+        if text == "file" and str(attrs.get("forcing", "none")) not in ("none", "steady",
+                                                                        "power"):
+            raise UserError(f"the file's forcing {attrs.get('forcing')!r} is not one the 3-D "
+                            "solver knows: give --forcing none, steady:K:A[:SEED] or power:K:P")
+    else:
+        force = parse_forcing(text, attrs)
+    if assumed:
+        warnings.append("ASSUMED PHYSICS: the initial file does not state its physics; this "
+                        "run assumes " + "; ".join(assumed) + ". The comparison with this "
+                        "reference is qualitative: give these options to match its physics.")
+    return {"viscosity": nu, "drag": mu, "hyperviscosity_order": order,
+            "hypoviscosity": hypo, "hypoviscosity_order": hypo_order, "dealias": dealias,
+            "forcing": force, "assumed": assumed, "warnings": warnings}
+
+
 def write_run(comparison: Comparison, path, label: str | None = None):
     """Write the coarse trajectory of run ``label`` (default: the first) to netCDF: u, v,
-    vorticity (time, y, x) at every output time (NaN after a blow-up), plus energy and
-    enstrophy series (run, time) of every run and the reference. Atomic."""
+    vorticity (time, y, x) in 2-D, u, v, w (time, z, y, x) in 3-D, at every output time (NaN
+    after a blow-up), plus energy and enstrophy series (run, time) of every run and the
+    reference, and the long-run figures (scalars) in the ``long_runs`` attribute. Atomic."""
     import json
 
     import xarray as xr
@@ -916,25 +1425,28 @@ def write_run(comparison: Comparison, path, label: str | None = None):
                 out[hit[0]] = values[i]
         return out
 
-    data = {name: (("time", "y", "x"), on_times(main, main.fields[name]),
+    names = velocity_names(grid) + (["vorticity"] if grid.ndim == 2 else [])
+    data = {name: (("time", *grid.dims), on_times(main, main.fields[name]),
                    {**VARIABLE_ATTRS[name], "long_name": VARIABLE_ATTRS[name]["long_name"]
                     + f" (coarse run: {label})"})
-            for name in ("u", "v", "vorticity")}
+            for name in names}
     data["energy"] = (("run", "time"), np.stack([on_times(t, t.energy) for t in everyone]),
                       {"long_name": "mean kinetic energy 0.5 <u_i u_i>", "units": "m2 s-2"})
     data["enstrophy"] = (("run", "time"), np.stack([on_times(t, t.enstrophy)
                                                     for t in everyone]),
-                         {"long_name": "mean enstrophy 0.5 <omega^2>", "units": "s-2"})
+                         {"long_name": "mean enstrophy 0.5 <omega_i omega_i>", "units": "s-2"})
     coords = {"time": ("time", times, COORD_ATTRS["time"]),
-              "y": ("y", grid.coords("y"), COORD_ATTRS["y"]),
-              "x": ("x", grid.coords("x"), COORD_ATTRS["x"]),
+              **{d: (d, grid.coords(d), COORD_ATTRS[d]) for d in grid.dims},
               "run": ("run", np.array([t.name for t in everyone], dtype=object))}
     status = {t.name: {"status": t.status, "blowup_time": t.blowup_time, "message": t.message}
               for t in everyone}
     attrs = {"Conventions": "CF-1.8", "title": "a posteriori coarse run (closure les)",
              "run": label, "status": main.status,
              "blowup_time": "none" if main.blowup_time is None else float(main.blowup_time),
-             "runs": json.dumps(status), "settings": json.dumps(comparison.settings),
+             "runs": json.dumps(status), "settings": json.dumps(_finite(comparison.settings)),
+             "long_runs": json.dumps(_finite({
+                 k: {m: v for m, v in f.items() if m not in ("series", "statistics")}
+                 for k, f in comparison.long_runs.items()})),
              "note": "A priori skill does not guarantee a stable or accurate coarse "
                      "simulation; validate a posteriori before relying on a model."}
     return write_netcdf(xr.Dataset(data, coords=coords, attrs=attrs), path)

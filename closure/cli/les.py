@@ -1,4 +1,5 @@
-"""CLI command: ``closure les``, a posteriori runs of a closure in the 2-D coarse solver."""
+"""CLI command: ``closure les``, a posteriori runs of a closure in the 2-D or 3-D coarse
+solver, with optional long runs compared by statistics (``--duration``)."""
 
 from __future__ import annotations
 
@@ -52,12 +53,26 @@ def les(
     drag: float | None = typer.Option(None, "--drag", help="linear drag (s-1; default: the "
                                                            "file's, else 0)"),
     hyperviscosity_order: int | None = typer.Option(None, "--hyperviscosity-order"),
-    forcing: str = typer.Option("file", "--forcing", help="file, none, shell:K:A[:SEED] or "
-                                                          "kolmogorov:K:A"),
+    hypoviscosity: float | None = typer.Option(
+        None, "--hypoviscosity", help="large-scale damping nu_h |k|^(-2q) (default: the "
+                                      "file's, else 0)"),
+    hypoviscosity_order: int | None = typer.Option(None, "--hypoviscosity-order",
+                                                   help="q (default: the file's, else 1)"),
+    forcing: str = typer.Option("file", "--forcing", help="file, none or modes:FILE (a table of "
+                                "Fourier modes); 2-D: shell:K:A[:SEED] or kolmogorov:K:A; "
+                                "3-D: steady:K:A[:SEED] or power:K:P"),
     duration: float | None = typer.Option(None, "--time", help="run length (s; default: to "
                                                                "the reference's last time)"),
     interval: float | None = typer.Option(None, "--interval", help="output interval (s) "
                                                                    "without a reference"),
+    long_duration: float | None = typer.Option(
+        None, "--duration", help="long run: run this long (s) and compare time-averaged "
+                                 "statistics with every reference snapshot"),
+    spinup: float | None = typer.Option(None, "--spinup", help="long run: statistics start "
+                                                               "after this time (s; default 0)"),
+    sample_interval: float | None = typer.Option(
+        None, "--sample-interval", help="long run: sampling interval of the statistics (s; "
+                                        "default: 200 samples)"),
     baselines: str = typer.Option("none,smagorinsky,dynamic,gradient,gradient-clipped",
                                   "--baselines", help="comma-separated baselines ('' for none)"),
     smagorinsky_constant: float = typer.Option(0.17, "--smagorinsky-constant"),
@@ -69,8 +84,10 @@ def les(
     json_out: Path | None = typer.Option(None, "--json", help="write runs and metrics here"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress bar or table"),
 ) -> None:
-    """Run a closure (and baselines) in the 2-D coarse solver from filtered-DNS initial fields
-    and compare with the filtered DNS over time."""
+    """Run a closure (and baselines) in the 2-D or 3-D coarse solver from filtered-DNS initial
+    fields and compare with the filtered DNS over time; with --duration, also run long and
+    compare time-averaged statistics (spectrum, vorticity PDF, energy, enstrophy, transfer,
+    stability) after --spinup."""
     from closure.cli.progress import progress_bar
     from closure.les import simulate, write_run
 
@@ -91,7 +108,12 @@ def les(
             viscosity=viscosity, drag=drag, hyperviscosity_order=hyperviscosity_order,
             forcing=forcing, duration=duration, interval=interval, baselines=baselines,
             smagorinsky_constant=smagorinsky_constant, dealias=dealias, cfl=cfl,
-            energy_bound=energy_bound, progress=progress, input_options=options)
+            energy_bound=energy_bound, progress=progress, input_options=options,
+            long_duration=long_duration, spinup=spinup, sample_interval=sample_interval,
+            hypoviscosity=hypoviscosity, hypoviscosity_order=hypoviscosity_order)
+    for w in comparison.settings["warnings"]:
+        if w.startswith("ASSUMED"):  # said even with --quiet: the comparison is qualitative
+            typer.echo(f"warning: {w}", err=True)
     path = write_run(comparison, output, label)
     if json_out is not None:
         write_text(json_out, comparison.to_json())
@@ -99,17 +121,20 @@ def les(
         return
     s = comparison.settings
     g = s["grid"]
-    typer.echo(f"coarse grid {g['shape'][0]} x {g['shape'][1]}, filter "
+    typer.echo(f"coarse grid {' x '.join(str(n) for n in g['shape'])}, filter "
                f"{s['coarse_graining']['kind']} ratio {s['coarse_graining']['ratio']}, "
                f"width {s['delta']:.4g} m; nu {s['viscosity']:g}, drag {s['drag']:g}, "
                f"forcing {s['forcing']['forcing']}; t = {s['times'][0]:g} .. "
                f"{s['times'][-1]:g} s")
     for w in s["warnings"]:
-        typer.echo(f"warning: {w}")
+        if not w.startswith("ASSUMED"):
+            typer.echo(f"warning: {w}")
     typer.echo(comparison.table())
     for name, t in comparison.runs.items():
         if t.blew_up:
             typer.echo(f"{name}: {t.message}")
+        elif name in comparison.long_runs:
+            typer.echo(f"{name}: stable for {comparison.long_runs[name]['duration']:g} s")
         if "dynamic_constant" in t.diagnostics:
             c = t.diagnostics["dynamic_constant"]
             typer.echo(f"{name}: Germano-Lilly C = C_s^2 from {min(c):.3g} to {max(c):.3g} "

@@ -3,7 +3,9 @@
 The report needs, per run (the model, each baseline and the filtered reference): a time axis,
 kinetic energy and enstrophy series, optionally a final energy spectrum and a vorticity PDF,
 and the blow-up time (None when the run stayed finite). :func:`as_runs` reads that from a
-result object or its JSON dict.
+result object or its JSON dict, 2-D or 3-D alike (a 3-D run's vorticity PDF pools the three
+components); a run's ``long_run`` record (``closure les --duration``) adds the
+``long_run_*`` metrics.
 """
 
 from __future__ import annotations
@@ -29,6 +31,9 @@ class RunSeries:
     blowup_time: float | None = None
     status: str | None = None
     metrics: dict = field(default_factory=dict)
+    #: the run's ``long_run`` record as ``closure les --json`` writes it (time-mean spectrum,
+    #: vorticity PDF, transfer spectrum, energy and enstrophy series), or None
+    long_run: dict | None = None
 
     def final(self, name: str) -> float | None:
         """Last finite value of a series (None when missing or never finite)."""
@@ -48,6 +53,23 @@ class AposterioriRuns:
     reference: str | None = None
     spectrum_time: float | None = None
 
+    def long_run_curves(self, kind: str) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+        """Time-mean curves of the long runs (and the reference's statistics): ``kind``
+        "spectrum" -> (k, E), "vorticity_pdf" -> (x, density), "transfer" -> (k, T);
+        runs without a long-run record are left out."""
+        keys = {"spectrum": ("k", "E"), "vorticity_pdf": ("x", "density"),
+                "transfer": ("k", "T")}
+        if kind not in keys:
+            raise UserError(f"unknown long-run curve {kind!r}: choose from {', '.join(keys)}")
+        a, b = keys[kind]
+        out = {}
+        for label, r in self.runs.items():
+            stats = (r.long_run or {}).get("statistics") or {}
+            curve = stats.get(kind)
+            if isinstance(curve, Mapping) and a in curve and b in curve:
+                out[label] = (_arr(curve[a]), _arr(curve[b]))
+        return out
+
     def summary(self) -> dict:
         return {"reference": self.reference,
                 "runs": {k: {"status": r.status, "blowup_time": r.blowup_time,
@@ -57,9 +79,18 @@ class AposterioriRuns:
                          for k, r in self.runs.items()}}
 
 
-#: Summary errors of a run against the reference, as ``closure.les`` names them.
+#: Summary errors of a run against the reference, as ``closure.les`` names them; the
+#: ``long_run_*`` ones come from a run's ``long_run`` record (``closure les --duration``).
 METRICS = {"mean_energy_error": "energy error", "mean_enstrophy_error": "enstrophy error",
-           "mean_hellinger": "vorticity PDF distance"}
+           "mean_hellinger": "vorticity PDF distance",
+           "long_run_stable": "stable for the long run",
+           "long_run_spectrum_error": "long-run spectrum error",
+           "long_run_vorticity_pdf_distance": "long-run vorticity PDF distance",
+           "long_run_mean_energy_ratio": "long-run mean energy / reference",
+           "long_run_mean_enstrophy_ratio": "long-run mean enstrophy / reference"}
+#: the fields of a ``long_run`` record copied into the metrics (prefixed ``long_run_``)
+LONG_RUN_FIELDS = ("stable", "duration", "blowup_time", "spectrum_error",
+                   "vorticity_pdf_distance", "mean_energy_ratio", "mean_enstrophy_ratio")
 
 _SERIES_KEYS = {"energy": ("energy", "kinetic_energy"), "enstrophy": ("enstrophy",)}
 
@@ -101,10 +132,13 @@ def _run(d: Mapping, label: str) -> RunSeries:
                 ("density", "pdf", "p"))
     blowup = d.get("blowup_time", d.get("blow_up_time"))
     blowup = None if blowup is None or not math.isfinite(float(blowup)) else float(blowup)
-    metrics = d.get("metrics") if isinstance(d.get("metrics"), Mapping) else {}
+    metrics = dict(d.get("metrics")) if isinstance(d.get("metrics"), Mapping) else {}
+    long_run = d.get("long_run")
+    if isinstance(long_run, Mapping) and "stable" in long_run:
+        metrics.update({f"long_run_{k}": long_run.get(k) for k in LONG_RUN_FIELDS})
     status = d.get("status")
     return RunSeries(t, series, spectrum, pdf, blowup, None if status is None else str(status),
-                     dict(metrics))
+                     dict(metrics), dict(long_run) if isinstance(long_run, Mapping) else None)
 
 
 def as_runs(result) -> AposterioriRuns:

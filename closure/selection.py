@@ -1,0 +1,268 @@
+"""Selection of a closure by coarse runs (a posteriori), in process.
+
+A priori scores rank the models along a sparse path by how well they fit the subgrid term;
+they say nothing about whether a model stays stable when it feeds a coarse simulation. Here
+every candidate along the path (at one or more transfer weights) runs long in the coarse
+solver (:func:`closure.les.simulate` with ``long_duration``), one after another, and
+
+    the chosen model is the sparsest candidate that is stable for the whole run and whose
+    long-run score (spectrum error + vorticity-PDF Hellinger distance) is within
+    ``tolerance`` (relative) of the best stable candidate's score; ties go to the lower
+    score. None is chosen when no candidate is stable.
+
+:func:`plan_candidates` is a pure function of the fitted paths (what a queue would fan out);
+:func:`choose` a pure function of the candidates' figures; :func:`select_by_coarse_runs`
+runs them and returns a :class:`Selection` that records every candidate with its a priori
+and a posteriori figures. Long-run statistics on one flow are evidence, not a guarantee.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from closure.errors import OptionError, UserError
+
+#: default relative tolerance on the long-run score
+TOLERANCE = 0.1
+RULE = ("sparsest candidate stable for the whole run with long-run score (spectrum error + "
+        "vorticity-PDF distance) within the tolerance of the best stable score")
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One model along a sparse path: coefficients in design units (one per library term,
+    zero when unselected), its transfer weight and path parameter, and a priori figures."""
+
+    label: str
+    transfer_weight: float
+    parameter: float
+    coefficients: tuple[float, ...]
+    terms: tuple[str, ...]
+    apriori: dict = field(default_factory=dict)
+
+    @property
+    def n_terms(self) -> int:
+        return int(sum(1 for c in self.coefficients if c != 0.0))
+
+    @property
+    def active_terms(self) -> list[str]:
+        return [t for t, c in zip(self.terms, self.coefficients, strict=True) if c != 0.0]
+
+
+def plan_candidates(paths: Mapping[float, object], max_per_path: int | None = None
+                    ) -> list[Candidate]:
+    """Candidates along the sparse paths of fits at several transfer weights (pure).
+
+    ``paths`` maps transfer weight -> a fit with ``terms``, ``path.parameters``,
+    ``path.coefficients`` (m, p), ``path.supports`` (m, p) and optionally ``cv.mean`` (the
+    cross-validated error per path point), e.g. :class:`closure.regression.FitResult`. One
+    candidate per distinct non-empty support (the first path point that has it), sparsest
+    first, at most ``max_per_path`` per weight (the sparsest ones).
+    """
+    out: list[Candidate] = []
+    for weight in sorted(paths):
+        fit = paths[weight]
+        path = fit.path
+        coefs = np.asarray(path.coefficients, dtype=float)
+        supports = np.asarray(path.supports, dtype=bool)
+        cv = getattr(getattr(fit, "cv", None), "mean", None)
+        seen, mine = set(), []
+        for i in range(coefs.shape[0]):
+            key = tuple(bool(s) for s in supports[i])
+            if not any(key) or key in seen:
+                continue
+            seen.add(key)
+            c = np.where(supports[i], coefs[i], 0.0)
+            apriori = {"cv_error": None if cv is None else float(np.asarray(cv)[i])}
+            mine.append((int(sum(key)), i, c, apriori))
+        mine.sort(key=lambda m: (m[0], m[1]))
+        if max_per_path is not None:
+            mine = mine[:max_per_path]
+        for n, i, c, apriori in mine:
+            out.append(Candidate(f"w{weight:g}-{n}terms", float(weight),
+                                 float(np.asarray(path.parameters)[i]),
+                                 tuple(float(x) for x in c), tuple(fit.terms), apriori))
+    return out
+
+
+def score(figures: Mapping) -> float | None:
+    """Long-run score of a run's figures: spectrum error + vorticity-PDF distance."""
+    a, b = figures.get("spectrum_error"), figures.get("vorticity_pdf_distance")
+    if a is None or b is None or not (math.isfinite(a) and math.isfinite(b)):
+        return None
+    return float(a + b)
+
+
+def choose(records: Sequence[Mapping], tolerance: float = TOLERANCE) -> str | None:
+    """The chosen label among ``records`` ({"label", "n_terms", "long_run": figures}) by the
+    module's rule (pure); None when no candidate is stable with a score."""
+    if not tolerance >= 0:
+        raise OptionError(f"the selection tolerance must be >= 0, got {tolerance}")
+    ok = [(r, score(r["long_run"])) for r in records if r["long_run"].get("stable")]
+    ok = [(r, s) for r, s in ok if s is not None]
+    if not ok:
+        return None
+    best = min(s for _, s in ok)
+    within = [(r, s) for r, s in ok if s <= best * (1 + tolerance) + 1e-15]
+    within.sort(key=lambda rs: (rs[0]["n_terms"], rs[1]))
+    return within[0][0]["label"]
+
+
+@dataclass
+class Selection:
+    """The candidates' records (label, n_terms, terms, transfer_weight, parameter, apriori,
+    long_run figures, score) in run order, the chosen label (or None), tolerance and rule."""
+
+    candidates: list[dict]
+    chosen: str | None
+    tolerance: float
+    settings: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        return {"rule": RULE, "tolerance": self.tolerance, "chosen": self.chosen,
+                "candidates": self.candidates, "settings": self.settings,
+                "note": "A priori skill does not guarantee a stable or accurate coarse "
+                        "simulation; the chosen model was stable on this flow for this run "
+                        "length, which is evidence, not a guarantee."}
+
+    def table(self) -> str:
+        head = ["candidate", "terms", "weight", "a priori cv err", "stable", "blow-up t",
+                "spectrum err", "PDF dist", "score", ""]
+        rows = []
+        for r in self.candidates:
+            f = r["long_run"]
+            rows.append([r["label"], str(r["n_terms"]), f"{r['transfer_weight']:g}",
+                         _fmt(r["apriori"].get("cv_error")), "yes" if f["stable"] else "no",
+                         _fmt(f.get("blowup_time")), _fmt(f.get("spectrum_error")),
+                         _fmt(f.get("vorticity_pdf_distance")), _fmt(r["score"]),
+                         "chosen" if r["label"] == self.chosen else ""])
+        widths = [max(len(x[i]) for x in [head, *rows]) for i in range(len(head))]
+        lines = ["  ".join(c.ljust(w) for c, w in zip(x, widths, strict=True)).rstrip()
+                 for x in [head, *rows]]
+        lines.append(f"rule: {RULE} (tolerance {self.tolerance:g})")
+        return "\n".join(lines)
+
+
+def _fmt(v) -> str:
+    return "-" if v is None or not math.isfinite(v) else f"{v:.3g}"
+
+
+def candidate_model(base, candidate: Candidate):
+    """A copy of the ClosureModel ``base`` (its library, filter, grid, scheme, width) with the
+    candidate's coefficients."""
+    from closure.model import ClosureModel
+
+    if tuple(base.library.names) != tuple(candidate.terms):
+        raise UserError("the candidate's terms are not the model's library terms")
+    return ClosureModel(base.library, candidate.coefficients, filter=base.filter,
+                        grid=base.grid, scheme=base.scheme, delta=base.delta,
+                        provenance=base.provenance, method=base.method,
+                        settings={**base.settings, "candidate": candidate.label})
+
+
+def select_by_coarse_runs(base, candidates: Sequence[Candidate], initial, reference=None, *,
+                          long_duration: float, spinup: float | None = None,
+                          tolerance: float = TOLERANCE,
+                          progress: Callable[[str, int, int], None] | None = None,
+                          **simulate_options) -> tuple[Selection, object | None]:
+    """Run every candidate long (one after another) and choose by :func:`choose`.
+
+    ``base`` is the fitted ClosureModel whose library the candidates use; the other options
+    go to :func:`closure.les.simulate`. Returns the Selection and the chosen model (None
+    when no candidate is stable), which records the selection in
+    ``settings["aposteriori_selection"]``.
+    """
+    from closure.les import simulate
+
+    if not candidates:
+        raise UserError("no candidate models to run: the sparse path is empty")
+    records = []
+    for done, cand in enumerate(candidates):
+        if progress is not None:
+            progress("candidates", done, len(candidates))
+        model = candidate_model(base, cand)
+        c = simulate(model, initial, reference, model_label=cand.label, baselines=[],
+                     long_duration=long_duration, spinup=spinup, **simulate_options)
+        figures = {k: v for k, v in c.long_runs[cand.label].items()
+                   if k not in ("series", "statistics")}
+        records.append({"label": cand.label, "n_terms": cand.n_terms,
+                        "terms": cand.active_terms, "transfer_weight": cand.transfer_weight,
+                        "parameter": cand.parameter, "apriori": dict(cand.apriori),
+                        "long_run": figures, "score": score(figures)})
+    if progress is not None:
+        progress("candidates", len(candidates), len(candidates))
+    chosen = choose(records, tolerance)
+    selection = Selection(records, chosen, float(tolerance),
+                          {"long_duration": float(long_duration),
+                           "spinup": 0.0 if spinup is None else float(spinup)})
+    model = None
+    if chosen is not None:
+        cand = next(c for c in candidates if c.label == chosen)
+        model = candidate_model(base, cand)
+        model.settings["aposteriori_selection"] = _plain(selection.to_dict())
+    return selection, model
+
+
+def _plain(obj):
+    from closure.les import _finite
+
+    return _finite(obj)
+
+
+def discover_and_select(spec, *, long_duration: float, spinup: float | None = None,
+                        transfer_weights: Sequence[float] = (0.0, 1.0),
+                        max_per_path: int | None = 4, tolerance: float = TOLERANCE,
+                        initial=None, reference=None,
+                        progress: Callable[[str, int, int], None] | None = None,
+                        **simulate_options):
+    """Discovery with selection by coarse runs, in process (``discover --select aposteriori``).
+
+    Plans and maps the job ``spec`` (closure.pipeline), fits the a priori model (reduce), then
+    the sparse paths at ``transfer_weights`` (closure.regression.fit_closure on the same
+    statistics), plans the candidates (:func:`plan_candidates`, each with its held-out a
+    priori scores) and runs them long from ``initial`` (default: the job's input file),
+    against ``reference`` (default: the same), with :func:`select_by_coarse_runs`.
+    Returns (a priori model, Selection, chosen model or None).
+    """
+    from closure.pipeline import _flat_scores, map_snapshot, plan, reduce
+    from closure.regression import fit_closure
+    from closure.scores import prediction_scores
+    from closure.stats import SufficientStats
+
+    if not transfer_weights or any(not (w >= 0) for w in transfer_weights):
+        raise OptionError(f"transfer weights must be >= 0, got {list(transfer_weights)}")
+    # map once with the transfer statistics when a positive weight needs them
+    top = max(float(w) for w in transfer_weights)
+    mapping = spec if top <= 0 or spec.fit.transfer_weight > 0 else spec.model_copy(
+        update={"fit": spec.fit.model_copy(update={"transfer_weight": top})})
+    p = plan(mapping)
+    indices = sorted(p["snapshots"])
+    stats = {}
+    for done, i in enumerate(indices):
+        if progress is not None:
+            progress("map", done, len(indices))
+        stats[i] = map_snapshot(mapping, p, i)
+    apriori_model = reduce(spec, p, stats, progress)
+    train = list(p["train"])
+    test_stats = SufficientStats.merge([stats[i] for i in sorted(p["test"])])
+    fits = {float(w): fit_closure(stats, train, spec.fit.method, transfer_weight=float(w),
+                                  n_folds=spec.fit.folds, resamples=0, seed=spec.fit.seed,
+                                  rule=spec.fit.selection)
+            for w in dict.fromkeys(transfer_weights)}
+    candidates = []
+    for c in plan_candidates(fits, max_per_path):
+        scores = _flat_scores(prediction_scores(test_stats, np.asarray(c.coefficients)))
+        candidates.append(Candidate(c.label, c.transfer_weight, c.parameter, c.coefficients,
+                                    c.terms, {**c.apriori, "test": scores}))
+    source = initial if initial is not None else spec.input.path
+    selection, chosen = select_by_coarse_runs(
+        apriori_model, candidates, source, reference, long_duration=long_duration,
+        spinup=spinup, tolerance=tolerance, progress=progress, **simulate_options)
+    if chosen is not None:
+        chosen.scores = {"test": next(c.apriori["test"] for c in candidates
+                                      if c.label == selection.chosen)}
+    return apriori_model, selection, chosen

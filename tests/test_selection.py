@@ -1,0 +1,123 @@
+"""Tests for closure.selection (choosing a closure by coarse runs, in process)."""
+
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from closure.errors import OptionError, UserError
+from closure.grid import Grid
+from closure.selection import (
+    Candidate,
+    candidate_model,
+    choose,
+    plan_candidates,
+    select_by_coarse_runs,
+)
+from closure.synth import turb2d, write
+
+TWO_PI = 2 * np.pi
+
+
+def record(label, n, stable, spectrum, pdf):
+    return {"label": label, "n_terms": n,
+            "long_run": {"stable": stable, "spectrum_error": spectrum,
+                         "vorticity_pdf_distance": pdf}}
+
+
+def test_choose_takes_the_sparsest_stable_candidate_within_the_tolerance():
+    records = [record("a", 1, False, 0.01, 0.01),   # best score, but blew up
+               record("b", 2, True, 0.30, 0.10),    # 0.40: outside 10 % of 0.30
+               record("c", 3, True, 0.25, 0.07),    # 0.32: within 10 % of 0.30
+               record("d", 4, True, 0.20, 0.10)]    # 0.30: the best stable
+    assert choose(records, 0.1) == "c"
+    assert choose(records, 0.5) == "b"
+    assert choose(records, 0.0) == "d"
+    assert choose([record("a", 1, False, 0.1, 0.1)]) is None
+    with pytest.raises(OptionError, match="tolerance"):
+        choose(records, -1)
+
+
+def test_plan_candidates_follows_each_path_sparsest_first():
+    terms = ("a", "b", "c")
+    fit = SimpleNamespace(terms=terms, cv=SimpleNamespace(mean=np.array([1.0, 2.0, 3.0, 4.0])),
+                          path=SimpleNamespace(
+                              parameters=np.array([0.0, 0.1, 0.2, 0.3]),
+                              coefficients=np.array([[1.0, 2.0, 3.0], [1.0, 0.0, 3.0],
+                                                     [1.1, 0.0, 3.1], [0.0, 0.0, 0.0]]),
+                              supports=np.array([[1, 1, 1], [1, 0, 1], [1, 0, 1], [0, 0, 0]],
+                                                dtype=bool)))
+    out = plan_candidates({0.0: fit, 1.0: fit}, max_per_path=2)
+    assert [c.label for c in out] == ["w0-2terms", "w0-3terms", "w1-2terms", "w1-3terms"]
+    assert out[0].coefficients == (1.0, 0.0, 3.0) and out[0].apriori["cv_error"] == 2.0
+    assert out[0].active_terms == ["a", "c"] and out[1].n_terms == 3
+    assert plan_candidates({0.0: fit}, max_per_path=1)[0].parameter == 0.1
+
+
+def test_selection_skips_a_candidate_that_blows_up(tmp_path):
+    # constructed case: the sparsest candidate is an anti-diffusive Smagorinsky term (energy
+    # injected at every scale: it must blow up); the other is Smagorinsky with the usual
+    # negative sign (tau = -2 (C_s D)^2 |S| S, C_s = 0.17) plus the gradient model: stable
+    from closure.filters import make_coarse_graining
+    from closure.library import make_library
+    from closure.model import ClosureModel
+
+    path = tmp_path / "dns.nc"
+    write(turb2d(n=48, snapshots=3, interval=0.3, spinup=0.6, viscosity=2e-3,
+                 forcing_wavenumber=3, seed=2), path)
+    fine = Grid.regular((48, 48), TWO_PI, dims=("y", "x"))
+    cg = make_coarse_graining("gaussian", fine, 2, 4.0)
+    lib = make_library("default", "stress", ("y", "x"))
+    names = list(lib.names)
+
+    def coef(**values):
+        return tuple(float(values.get(n, 0.0)) for n in names)
+
+    base = ClosureModel(lib, coef(gradient_model=1.0), filter=cg, grid=cg.coarse,
+                        scheme="spectral", delta=cg.delta)
+    candidates = [
+        Candidate("anti", 0.0, 0.0, coef(smagorinsky=5.0), tuple(names)),
+        Candidate("stable", 0.0, 0.0, coef(smagorinsky=-2 * 0.17**2, gradient_model=1.0),
+                  tuple(names)),
+    ]
+    selection, model = select_by_coarse_runs(base, candidates, path, long_duration=2.0,
+                                             spinup=0.5)
+    by = {r["label"]: r for r in selection.candidates}
+    assert by["anti"]["long_run"]["stable"] is False
+    assert by["anti"]["long_run"]["blowup_time"] is not None
+    assert by["stable"]["long_run"]["stable"] is True
+    assert selection.chosen == "stable"
+    assert model.coefficients_scaled.tolist() == list(candidates[1].coefficients)
+    recorded = model.settings["aposteriori_selection"]
+    assert recorded["chosen"] == "stable" and len(recorded["candidates"]) == 2
+    assert "chosen" in selection.table()
+    with pytest.raises(UserError, match="no candidate"):
+        select_by_coarse_runs(base, [], path, long_duration=1.0)
+    with pytest.raises(UserError, match="library terms"):
+        candidate_model(base, Candidate("x", 0, 0, (1.0,), ("other",)))
+
+
+def test_discover_and_select_runs_the_path_candidates(tmp_path):
+    from closure.selection import discover_and_select
+    from closure.spec import parse_spec
+
+    path = tmp_path / "dns.nc"
+    write(turb2d(n=48, snapshots=6, interval=0.3, spinup=0.6, viscosity=2e-3,
+                 forcing_wavenumber=3, seed=2), path)
+    spec = parse_spec({"input": {"path": str(path)}, "filter": {"kind": "gaussian",
+                                                                 "ratio": 2},
+                       "fit": {"resamples": 0, "folds": 2}})
+    apriori, selection, chosen = discover_and_select(spec, long_duration=1.0, spinup=0.3,
+                                                     transfer_weights=(0.0, 1.0),
+                                                     max_per_path=2)
+    assert 1 <= len(selection.candidates) <= 4
+    for r in selection.candidates:
+        assert "test" in r["apriori"] and r["long_run"]["duration"] == 1.0
+    # this short run of gradient-type candidates is stable: one is chosen, and the record of
+    # every candidate travels with the model file
+    assert selection.chosen == choose(selection.candidates, selection.tolerance)
+    assert chosen is not None and "test" in chosen.scores
+    d = chosen.to_dict()
+    assert d["settings"]["aposteriori_selection"]["chosen"] == selection.chosen
+    assert len(d["settings"]["aposteriori_selection"]["candidates"]) == len(
+        selection.candidates)
