@@ -78,6 +78,8 @@ def test_coinciding_runs_get_distinct_line_styles_and_markers():
     assert len({v[0] for v in s.values()}) == 3  # line styles
     assert len({v[1] for v in s.values()}) == 3  # markers
     assert s["none"][2] != s["dynamic"][2]        # markers at interleaved points
+    lines = {ln.get_label(): ln for ln in ax.get_lines()}
+    assert all(lines[n].get_markerfacecolor() == "none" for n in ("none", "dynamic"))
     k = np.arange(1.0, 17.0)
     ax = plots.aposteriori_spectra({"reference": (k, k**-3), "none": (k, 2 * k**-3),
                                     "dynamic": (k, 2 * k**-3)}, "reference").axes[0]
@@ -112,6 +114,7 @@ def test_sweep_has_one_panel_per_term_and_prints_the_spread():
     axes = [ax for ax in fig.axes if ax.get_visible()]
     assert len(axes) == 2
     titles = {ax.get_title().split(":")[0]: ax for ax in axes}
+    assert set(titles) == {"gradient_model", "second"}
     expected = (max(big) - min(big)) / abs(np.mean(big))  # (max - min) / |mean|
     assert plots.spread(big) == pytest.approx(expected, rel=1e-12)
     assert f"spread {expected:.1%} of mean" in titles["gradient_model"].get_title()

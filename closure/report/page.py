@@ -560,10 +560,12 @@ def _sweep_section(sweep: dict, tmp: Path, base: Units | None = None,
     from closure.sweep import selected_coefficients
 
     entries = sorted(sweep["entries"], key=lambda e: e["delta"])
+    base = base or Units()
     first_model = entries[0].get("model")
     if isinstance(first_model, Mapping) and first_model.get("grid"):
-        base = model_units(first_model)
-    base = base or Units()
+        own = model_units(first_model)  # the sweep's own record first, then the model's
+        base = Units(own.length or base.length, own.velocity or base.velocity,
+                     own.time or base.time, {**base.scalars, **own.scalars})
     length = base.of("length")
     delta = [e["delta"] for e in entries]
     scaled, errors = selected_coefficients(entries)
@@ -723,8 +725,8 @@ def _aposteriori_section(runs: AposterioriRuns, tmp: Path, base: Units | None = 
             plots.save_png(plots.time_series(series, what, blowup, runs.reference, log,
                                              time_units=t_units, units=un),
                            tmp / name)
-            out.append(_figure(name, f"{what.capitalize()} of the coarse runs; dashed lines "
-                               "mark blow-up times.", t_units, un,
+            out.append(_figure(name, f"{what.capitalize()} of the coarse runs; dashed "
+                               "vertical lines mark blow-up times.", t_units, un,
                                note=_notes_text(notes[key])))
     pdfs = {lab: r.vorticity_pdf for lab, r in runs.runs.items() if r.vorticity_pdf}
     if pdfs:

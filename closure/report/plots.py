@@ -61,12 +61,15 @@ LINE_STYLES = [("-", "o"), ("--", "s"), (":", "^"), ("-.", "D"), ((0, (5, 1, 1, 
 
 
 def line_style(i: int, n_points: int, n_lines: int) -> dict:
-    """Matplotlib keywords of the i-th curve: its line style and a marker every few points,
-    offset per curve so the markers of coinciding curves do not overlap."""
+    """Matplotlib keywords of the i-th curve: its line style and a hollow marker of its own
+    shape and size every few points (offset per curve when there are many points), so
+    coinciding curves show both markers."""
     ls, marker = LINE_STYLES[i % len(LINE_STYLES)]
     step = max(1, n_points // 8)
-    return dict(ls=ls, marker=marker, ms=5, markevery=(min(i * max(1, step // max(n_lines, 1)),
-                                                           max(n_points - 1, 0)), step))
+    offset = min(i * max(1, step // max(n_lines, 1)), max(n_points - 1, 0)) if step > 1 else 0
+    # earlier curves get larger markers: a later marker at the same point sits inside
+    return dict(ls=ls, marker=marker, ms=max(4.5, 10.0 - 1.1 * i), mfc="none", mew=1.3,
+                markevery=(offset, step))
 
 
 def coinciding(curves: Mapping[str, tuple[np.ndarray, np.ndarray]],
@@ -208,7 +211,7 @@ def coefficients(names: Sequence[str], scaled: Sequence[float], std_error: Seque
         f = np.array([0.0 if v is None else v for v in selection_frequency], dtype=float)
         ax2.barh(y, f, height=0.6, color="tab:orange")
         ax2.set_xlim(0, 1)
-        ax2.set_xlabel(_label("selection frequency", "1"))
+        ax2.set_xlabel(_label("selection frequency", "1").replace(" (", "\n("))
         ax2.set_title("Selection")
     return fig
 
@@ -263,7 +266,7 @@ def sweep_coefficients(delta: Sequence[float], scaled: Mapping[str, Sequence[flo
         selected = int(ok.sum())
         note = (f"spread {sp:.1%} of mean" if np.isfinite(sp) else
                 f"selected at {selected} width{'s' if selected != 1 else ''}")
-        ax.set_title(f"{name}: {note}", fontsize=9)
+        ax.set_title(f"{name}:\n{note}", fontsize=8)
     fig.suptitle("Scaled coefficients vs filter width, +/- 1 std error (flat: the D-scaling "
                  "holds)", fontsize=11)
     return fig
