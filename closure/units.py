@@ -329,6 +329,21 @@ class Units:
                 "scalars": dict(self.scalars)}
 
 
+def variable_units(name: str, units: Mapping[str, str], length: str | None) -> str | None:
+    """Units of a variable we write (``u``, a scalar, ``vorticity``, ``tau_xy``, ``force_x``,
+    ``flux_<c>_x``, ``vorticity_forcing``, ``pi``, ``enstrophy_transfer``) from an input's
+    units by variable (``FieldSource.units``: our names and coordinate dims -> CF ``units``)
+    and the grid's length units, simplified: vorticity from ``m s-1`` and ``m`` is ``s-1``
+    whichever file it is written to. None where not derivable."""
+    if name in units and name not in ("u", "v", "w") and not name.startswith(
+            ("tau_", "force_", "flux_")):
+        return simplify(units[name])
+    scalars = {c: str(u) for c, u in units.items()
+               if c not in ("u", "v", "w", "x", "y", "z", "time", "vorticity")}
+    base = Units(simplify(length), _velocity_of(units), None, scalars)
+    return base.component(name)
+
+
 def _get(obj, name, default=None):
     if isinstance(obj, Mapping):
         return obj.get(name, default)
@@ -401,4 +416,5 @@ def run_units(result, fallback: Units | None = None) -> Units:
 
 
 __all__ = ["DIMENSIONLESS", "NOT_RECORDED", "QUANTITIES", "Unit", "Units", "combine",
-           "is_dimensionless", "label", "model_units", "parse", "run_units", "simplify"]
+           "is_dimensionless", "label", "model_units", "parse", "run_units", "simplify",
+           "variable_units"]

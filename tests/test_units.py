@@ -18,6 +18,7 @@ from closure.units import (
     parse,
     run_units,
     simplify,
+    variable_units,
 )
 
 
@@ -142,3 +143,21 @@ def test_run_units_prefer_the_run_then_the_model():
     assert run_units({"settings": {"grid": {"units": "km"}}}, fallback).length == "km"
     assert run_units({"settings": {}}, fallback) == fallback
     assert run_units({}, None) == Units()
+
+
+def test_variable_units_give_one_form_for_every_file():
+    # the same quantity gets the same text whichever file writes it: vorticity from m s-1
+    # over m is s-1, as the demo data record it (closure.synth), never "(m s-1)/(m)"
+    units = {"u": "m s-1", "v": "m s-1", "x": "m", "y": "m", "time": "s", "c": "K"}
+    assert variable_units("vorticity", units, "m") == "s-1"
+    assert variable_units("vorticity", {**units, "vorticity": "s^-1"}, "m") == "s-1"
+    assert variable_units("u", units, "m") == "m s-1"
+    assert variable_units("c", units, "m") == "K"
+    assert variable_units("tau_xy", units, "m") == "m2 s-2"
+    assert variable_units("force_x", units, "m") == "m s-2"
+    assert variable_units("flux_c_y", units, "m") == "m K s-1"
+    assert variable_units("vorticity_forcing", units, "m") == "s-2"
+    assert variable_units("pi", units, "m") == "m2 s-3"
+    assert variable_units("enstrophy_transfer", units, "m") == "s-3"
+    assert variable_units("tau_xy", {"u": "m s-1", "v": "cm s-1"}, "m") is None
+    assert variable_units("force_x", {"u": "m s-1"}, None) is None
