@@ -219,3 +219,43 @@ def test_export_errors(tmp_path):
     export_model(m, "c")  # C distinguishes case
     with pytest.raises(UserError, match="differ only in case"):
         export_model(m, "fortran")
+
+
+def test_exports_carry_the_units_the_model_records():
+    # units derived by dimensional analysis (common practice): d u/dx in s-1, d2u/dx2 in
+    # m-1 s-1, tau_ij in (m s-1)^2, the Delta-scaled coefficient of a D^2 term dimensionless,
+    # its dimensional coefficient in m2
+    m = model_for("stress", ("y", "x"))
+    d = m.to_dict()
+    d["provenance"]["units"] = {"u": "m s-1", "v": "m s-1", "x": "m", "y": "m", "time": "s"}
+    m = ClosureModel.from_dict(d)
+    for lang in ("python", "c", "fortran"):
+        text = export_model(m, lang).replace("\n! ", " ").replace("\n * ", " ").replace(
+            "\n# ", " ")
+        for needle in ("coordinates: m; velocity: m s-1; time: s", "du_dx: du/dx [s-1]",
+                       "d2u_dxy: d^2 u / dx dy [m-1 s-1]", "Delta: filter width (coordinate "
+                       "units) [m]", "tau_xy [m2 s-2]"):
+            assert needle in text, (lang, needle)
+        assert "not recorded" not in text
+    doc = json.loads(export_model(m, "json"))
+    assert doc["units"]["base"]["velocity"] == "m s-1"
+    assert doc["units"]["outputs"] == {"tau_xx": "m2 s-2", "tau_xy": "m2 s-2",
+                                       "tau_yy": "m2 s-2"}
+    assert doc["units"]["inputs"]["Delta"] == "m"
+    for t in m.active_terms:
+        scaled = doc["units"]["coefficient_scaled"][t.name]
+        if t.term.dimensionless:
+            assert scaled == "1"
+            p = t.delta_power
+            assert doc["units"]["coefficient"][t.name] == ("1" if p == 0 else
+                                                           "m" if p == 1 else f"m{p:g}")
+
+
+def test_exports_say_which_units_were_not_recorded():
+    m = model_for("vorticity", ("y", "x"))
+    text = export_model(m, "c")
+    assert "velocity: units not recorded" in text and "coordinates: m;" in text
+    assert "vorticity_forcing [units not recorded]" in text
+    doc = json.loads(export_model(m, "json"))
+    assert doc["units"]["outputs"] == {"vorticity_forcing": None}
+    assert doc["units"]["inputs"]["Delta"] == "m"

@@ -199,7 +199,7 @@ def build_report(model, out_dir: str | os.PathLike, input_path: str | os.PathLik
         sweep = _json_file(sweep, "sweep", "closure sweep")
     # malformed a posteriori or sweep data fail here, before the a priori pass
     if les is not None:
-        les = as_runs(les)
+        as_runs(les)  # the report reads the result itself, diagnostics and settings included
     if sweep is not None:
         _sweep_dict(sweep)
     notes: list[str] = []

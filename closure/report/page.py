@@ -24,6 +24,7 @@ from closure.errors import UserError
 from closure.report import plots
 from closure.report.aposteriori import AposterioriRuns, as_runs
 from closure.report.apriori import AprioriData, apriori_data, reference_network_of
+from closure.units import NOT_RECORDED, Units, label, model_units, run_units
 
 #: The caution every report carries, verbatim.
 CAUTION = ("A priori skill does not guarantee a stable or accurate coarse simulation: "
@@ -74,7 +75,8 @@ def _model_dict(model) -> dict:
 
 def term_rows(model) -> list[dict]:
     """One plain dict per term: name, coefficient, coefficient_scaled, std_error,
-    std_error_scaled, selection_frequency, delta_power, active (None where unknown).
+    std_error_scaled, selection_frequency, delta_power, active, scaled_units (the library's
+    exponents of length, time and scalars; None where unknown).
 
     Read from the model file's records (``to_dict()["terms"]``) when the model has them,
     else from ``model.terms`` items (dicts or objects with those attributes).
@@ -86,8 +88,11 @@ def term_rows(model) -> list[dict]:
     for t in records:
         row = {"name": str(t if isinstance(t, str) else _get(t, "name"))}
         for key in ("coefficient", "coefficient_scaled", "std_error", "std_error_scaled",
-                    "selection_frequency", "delta_power", "active"):
+                    "selection_frequency", "delta_power", "active", "scaled_units"):
             row[key] = None if isinstance(t, str) else _get(t, key)
+        if row["scaled_units"] is None and not isinstance(t, str) \
+                and _get(t, "dimensionless") is True:
+            row["scaled_units"] = {}
         if row["active"] is None:
             row["active"] = row["coefficient_scaled"] != 0 or row["coefficient"] != 0
         if row["std_error_scaled"] is None and row["std_error"] is not None \
@@ -181,7 +186,12 @@ def _scores_table(scores) -> str:
     return out + (_kv_table(rest) if rest else "")
 
 
-def _figure(filename: str, caption: str) -> str:
+def _figure(filename: str, caption: str, *units: str | None, note: str = "") -> str:
+    """A figure with its caption; "(units not recorded)" is added once when any of ``units``
+    (those the figure's axes need) is None; ``note`` follows."""
+    if any(u is None for u in units):
+        caption += f" ({NOT_RECORDED})"
+    caption += note
     width, height = (int(round(s * plots.DPI)) for s in plots.FIGSIZE)
     return (f'<figure><img src="{html.escape(filename)}" width="{width}" height="{height}"'
             f' alt="{html.escape(caption)}">'
@@ -227,9 +237,29 @@ def _atomic_folder(out_dir: Path):
 # ------------------------------------------------------------------ sections
 
 
-def _summary_section(model, mdict) -> str:
+def _units_text(base: Units) -> str:
+    """The base units in words, e.g. "length m, velocity m s-1, time s"."""
+    parts = [f"{name} {value if value is not None else 'not recorded'}"
+             for name, value in (("length", base.length), ("velocity", base.velocity),
+                                 ("time", base.time))]
+    parts += [f"{c} {u}" for c, u in base.scalars.items()]
+    return ", ".join(parts) + " (the input's units attributes)"
+
+
+def _with_units(value, units: str | None):
+    """A number followed by its units, or by "(units not recorded)"."""
+    if value is None:
+        return None
+    text = _plain(float(value)) if isinstance(value, int | float) else str(value)
+    if units is None:
+        return f"{text} ({NOT_RECORDED})"
+    return text if units == "1" else f"{text} {units}"
+
+
+def _summary_section(model, mdict, base: Units | None = None) -> str:
     from closure.report.gather import provenance_input
 
+    base = base or Units()
     filt = dict(_get(model, "filter", None) or mdict.get("filter") or {})
     prov = dict(_get(model, "provenance", None) or mdict.get("provenance") or {})
     library = mdict.get("library")
@@ -242,12 +272,15 @@ def _summary_section(model, mdict) -> str:
         "target": _get(model, "target"),
         "components": mdict.get("components"),
         "filter": filt.get("kind"),
-        "filter width D": _get(model, "delta") or filt.get("width"),
+        "filter width D": _with_units(_get(model, "delta") or filt.get("width"),
+                                      base.of("length")),
         "filter width (fine spacings)": filt.get("width_cells"),
         "coarsening ratio": filt.get("ratio"),
         "coarse grid": " x ".join(map(str, grid.get("shape", []))) + (
             f" ({', '.join(grid.get('dims', []))}), spacing "
-            f"{', '.join(f'{h:.4g}' for h in grid.get('spacing', []))}" if grid else ""),
+            f"{', '.join(f'{h:.4g}' for h in grid.get('spacing', []))}"
+            f" {base.length or '(' + NOT_RECORDED + ')'}" if grid else ""),
+        "units": _units_text(base),
         "derivative scheme": _get(model, "scheme"),
         "library": library.get("name") if isinstance(library, Mapping) else library,
         "fit method": mdict.get("method"),
@@ -262,7 +295,19 @@ def _summary_section(model, mdict) -> str:
     return "<h2>Model</h2>" + _kv_table(summary)
 
 
-def _terms_section(all_rows: list[dict]) -> str:
+def _term_units(base: Units, row: dict, scaled: bool) -> str | None:
+    return base.coefficient(row.get("scaled_units"), 0.0 if scaled else
+                            float(row.get("delta_power") or 0.0))
+
+
+def _units_cell(units: str | None) -> str:
+    if units is None:
+        return f"<td>{NOT_RECORDED}</td>"
+    return "<td>dimensionless</td>" if units == "1" else f"<td>{html.escape(units)}</td>"
+
+
+def _terms_section(all_rows: list[dict], base: Units | None = None) -> str:
+    base = base or Units()
     rows = [r for r in all_rows if r["active"]]
     inactive = [r["name"] for r in all_rows if not r["active"]]
     rest = ("<p>Terms not selected: " + ", ".join(f"<code>{html.escape(n)}</code>"
@@ -278,11 +323,15 @@ def _terms_section(all_rows: list[dict]) -> str:
         if r["std_error_scaled"] is not None:
             scaled += f" &plusmn; {_fmt(r['std_error_scaled'])}"
         body.append(f"<tr><td><code>{html.escape(r['name'])}</code></td><td>{coef}</td>"
+                    f"{_units_cell(_term_units(base, r, False))}"
                     f"<td>{_fmt(r['delta_power'])}</td><td>{scaled}</td>"
+                    f"{_units_cell(_term_units(base, r, True))}"
                     f"<td>{_fmt(r['selection_frequency'])}</td></tr>")
-    head = ("<tr><th>term</th><th>coefficient &plusmn; std error</th><th>power p of D</th>"
+    head = ("<tr><th>term</th><th>coefficient c &plusmn; std error</th><th>units of c</th>"
+            "<th>power p of D (dimensionless)</th>"
             "<th>scaled coefficient (c / D<sup>p</sup>) &plusmn; std error</th>"
-            "<th>selection frequency</th></tr>")
+            "<th>units of c / D<sup>p</sup></th>"
+            "<th>selection frequency (dimensionless)</th></tr>")
     return (f"<h2>Terms</h2><table><thead>{head}</thead><tbody>{''.join(body)}</tbody></table>"
             + rest +
             "<p>The coefficient multiplies the term with D = 1 (dimensional); the scaled "
@@ -332,31 +381,36 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
     runs = as_runs(les_result) if les_result is not None else None
     sweep_dict = _sweep_dict(sweep) if sweep is not None else None
     warnings = _collect_warnings(model, mdict, extra_warnings)
+    base = model_units(model)
     numbers: dict = {"model_id": mdict.get("id"), "target": _get(model, "target"),
                      "terms": rows, "scores": _get(model, "scores", None) or {},
-                     "warnings": warnings, "caution": CAUTION}
+                     "warnings": warnings, "caution": CAUTION, "units": base.to_dict()}
     sections: list[str] = []
 
     with _atomic_folder(out_dir) as tmp:
-        sections.append(_summary_section(model, mdict))
-        sections.append(_terms_section(rows))
+        sections.append(_summary_section(model, mdict, base))
+        sections.append(_terms_section(rows, base))
         active = [r for r in rows if r["active"]]
         if active:
+            coef_units = [_term_units(base, r, True) for r in active]
             fig = plots.coefficients([r["name"] for r in active],
                                      [r["coefficient_scaled"] if r["coefficient_scaled"]
                                       is not None else r["coefficient"] or 0.0 for r in active],
                                      [r["std_error_scaled"] for r in active],
-                                     [r["selection_frequency"] for r in active])
+                                     [r["selection_frequency"] for r in active],
+                                     units=coef_units)
             plots.save_png(fig, tmp / "coefficients.png")
             sections.append(_figure("coefficients.png",
                                     "Scaled coefficients with one standard error, and how "
-                                    "often each term was selected"))
+                                    "often each term was selected", *coef_units))
 
-        sections.append("<h2>A priori scores</h2>" + _scores_table(numbers["scores"]))
+        sections.append("<h2>A priori scores</h2>" + _scores_table(numbers["scores"])
+                        + "<p>The scores (R<sup>2</sup>, correlations, relative errors and "
+                          "ratios) are dimensionless.</p>")
         if isinstance(numbers["scores"], Mapping) and "reference_net_test" in numbers["scores"]:
             sections.append(_NETWORK_NOTE)
         if apriori is not None:
-            sections.append(_apriori_section(apriori, tmp))
+            sections.append(_apriori_section(apriori, tmp, base, _get(model, "target", "")))
             numbers["apriori"] = apriori.to_dict()
             note_items += apriori.notes
         else:
@@ -369,11 +423,18 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
             + "</ul>" if warnings else "<p>None.</p>"))
 
         if sweep_dict is not None:
-            sections.append(_sweep_section(sweep_dict, tmp))
-            numbers["sweep"] = {"delta": [e.get("delta") for e in sweep_dict["entries"]]}
+            text, spreads = _sweep_section(sweep_dict, tmp, base, rows)
+            sections.append(text)
+            numbers["sweep"] = {"delta": [e.get("delta") for e in sweep_dict["entries"]],
+                                "spread": spreads}
         if runs is not None:
-            sections.append(_aposteriori_section(runs, tmp))
+            raw = _raw_result(les_result)
+            run_base = run_units(raw, base)
+            text, coincide = _aposteriori_section(runs, tmp, run_base, raw)
+            sections.append(text)
             numbers["aposteriori"] = runs.summary()
+            numbers["aposteriori"]["units"] = run_base.to_dict()
+            numbers["aposteriori"]["coinciding"] = coincide
         if note_items:
             sections.append("<h2>Notes</h2><ul>" + "".join(
                 f"<li>{html.escape(str(n))}</li>" for n in note_items) + "</ul>")
@@ -411,43 +472,67 @@ def _jsonable(x):
     return str(x)
 
 
-def _apriori_section(data: AprioriData, tmp: Path) -> str:
+def _transfer_units(base: Units, name: str, target: str) -> str | None:
+    """Units of a transfer spectrum per shell: energy (pi), enstrophy, scalar variance."""
+    if name == "energy":
+        return base.of("energy_transfer")
+    if name == "enstrophy":
+        return base.of("enstrophy_transfer")
+    c = target.split(":", 1)[1] if target.startswith("flux:") else None
+    if name == "scalar" and c in base.scalars:
+        return base.dims(0, -1, **{c: 2})
+    return None
+
+
+def _apriori_section(data: AprioriData, tmp: Path, base: Units | None = None,
+                     target: str = "") -> str:
+    base = base or Units()
     out = [f"<h2>A priori comparison on held-out snapshots</h2>"
            f"<p>Snapshots {', '.join(str(i) for i in data.snapshot_indices)}, all points "
            "pooled.</p>"]
     stats = data.agreement()
     net = data.network_agreement()
     if net is None:
-        out.append(_table(["component", "R^2", "correlation"],
-                          [[n, s["r2"], s["correlation"]] for n, s in stats.items()]))
+        out.append(_table(["component", "units", "R^2 (dimensionless)",
+                           "correlation (dimensionless)"],
+                          [[n, base.component(n) or NOT_RECORDED, s["r2"], s["correlation"]]
+                           for n, s in stats.items()]))
     else:
-        out.append(_table(["component", "R^2", "correlation", "network R^2",
+        out.append(_table(["component", "units", "R^2 (dimensionless)",
+                           "correlation (dimensionless)", "network R^2",
                            "network correlation"],
-                          [[n, s["r2"], s["correlation"], net.get(n, {}).get("r2"),
-                            net.get(n, {}).get("correlation")] for n, s in stats.items()]))
-    plots.save_png(plots.apriori_hexbin(data.exact, data.modelled, stats=stats),
-                   tmp / "apriori_hexbin.png")
+                          [[n, base.component(n) or NOT_RECORDED, s["r2"], s["correlation"],
+                            net.get(n, {}).get("r2"), net.get(n, {}).get("correlation")]
+                           for n, s in stats.items()]))
+    comp_units = {n: base.component(n) for n in data.exact}
+    plots.save_png(plots.apriori_hexbin(data.exact, data.modelled, stats=stats,
+                                        units=comp_units), tmp / "apriori_hexbin.png")
     out.append(_figure("apriori_hexbin.png", "Exact vs modelled subgrid term per component "
-                       "(hexbin of point counts, log scale; red: 1:1 line)"))
+                       "(hexbin of point counts, log scale; red: 1:1 line)",
+                       *comp_units.values()))
     if net is not None:
-        plots.save_png(plots.apriori_hexbin(data.exact, data.network, stats=net),
+        plots.save_png(plots.apriori_hexbin(data.exact, data.network, stats=net,
+                                            units=comp_units),
                        tmp / "apriori_hexbin_network.png")
         out.append(_figure("apriori_hexbin_network.png", "The same for the neural reference "
                            "network (trained on the same snapshots): how much skill the closed "
-                           "form leaves on the table"))
+                           "form leaves on the table", *comp_units.values()))
     for t in data.transfers:
         name = f"transfer_{t.name}.png"
         curves = {"exact": t.exact, "model": t.model}
-        totals = f"exact {t.exact.sum():.4g}, model {t.model.sum():.4g}"
+        un = _transfer_units(base, t.name, target)
+        ku = base.of("wavenumber")
+        suffix = "" if un is None else ("" if un == "1" else f" {un}")
+        totals = f"exact {t.exact.sum():.4g}{suffix}, model {t.model.sum():.4g}{suffix}"
         if t.network is not None:
             curves["reference network"] = t.network
-            totals += f", reference network {t.network.sum():.4g}"
+            totals += f", reference network {t.network.sum():.4g}{suffix}"
         fig = plots.transfer_spectra(t.k, curves, f"Subgrid {t.label}: exact vs model",
-                                     t.label)
+                                     t.label, k_units=ku, units=un)
         plots.save_png(fig, tmp / name)
         out.append(_figure(name, f"Subgrid {t.label} by shell, averaged over the held-out "
                            f"snapshots; positive: drained to the subgrid scales. Totals: "
-                           f"{totals}"))
+                           f"{totals}", ku, un))
     if data.transfers:
         out.append("<p>Transfer spectra are shell sums of Re(conj(u&#770;<sub>i</sub>) "
                    "f&#770;<sub>i</sub>)/N<sup>2</sup> between the resolved velocity and the "
@@ -469,26 +554,56 @@ SWEEP_SCORES = ("r2", "correlation", "relative_error", "energy_transfer_correlat
                 "enstrophy_transfer_correlation", "scalar_variance_transfer_correlation")
 
 
-def _sweep_section(sweep: dict, tmp: Path) -> str:
+def _sweep_section(sweep: dict, tmp: Path, base: Units | None = None,
+                   rows_of_model: list[dict] | None = None) -> tuple[str, dict]:
+    """The sweep's HTML and the spread of each term's scaled coefficient across widths."""
     from closure.sweep import selected_coefficients
 
     entries = sorted(sweep["entries"], key=lambda e: e["delta"])
+    base = base or Units()
+    first_model = entries[0].get("model")
+    if isinstance(first_model, Mapping) and first_model.get("grid"):
+        own = model_units(first_model)  # the sweep's own record first, then the model's
+        base = Units(own.length or base.length, own.velocity or base.velocity,
+                     own.time or base.time, {**base.scalars, **own.scalars})
+    length = base.of("length")
     delta = [e["delta"] for e in entries]
     scaled, errors = selected_coefficients(entries)
     names = list(scaled)
+    known = {r["name"]: r.get("scaled_units") for r in rows_of_model or []}
+    for e in entries:
+        for n, t in (e.get("terms") or {}).items():
+            if isinstance(t, Mapping) and "scaled_units" in t:
+                known[n] = t["scaled_units"]
+            elif isinstance(t, Mapping) and t.get("dimensionless") is True:
+                known[n] = {}
+    units = {n: base.coefficient(known[n]) if n in known else None for n in names}
+    spreads = {n: plots.spread(scaled[n]) for n in names}
     out = ["<h2>Filter-width sweep</h2>",
            "<p>The same data, library and fit at each filter width D. Scaled coefficients "
-           "(c / D<sup>p</sup>); blank where the term was not selected.</p>"]
+           "(c / D<sup>p</sup>); blank where the term was not selected. The spread is "
+           "(largest &minus; smallest) / |mean| of a term's scaled coefficient over the "
+           "widths where it was selected.</p>"]
     rows = [[e["delta"], e.get("width_cells"), e.get("ratio")] + [
         None if math.isnan(scaled[n][k]) else scaled[n][k] for n in names]
         for k, e in enumerate(entries)]
-    out.append(_table(["D", "D (fine spacings)", "ratio"] + names, rows))
+    rows.append(["spread", None, None] + [
+        f"{spreads[n]:.1%}" if math.isfinite(spreads[n]) else None for n in names])
+    out.append(_table([label("D", length), "D (fine spacings)", "ratio"]
+                      + [n + (f" ({NOT_RECORDED})" if units[n] is None else
+                              " (dimensionless)" if units[n] == "1" else f" ({units[n]})")
+                         for n in names], rows))
     if names:
-        plots.save_png(plots.sweep_coefficients(delta, scaled, errors),
+        plots.save_png(plots.sweep_coefficients(delta, scaled, errors, units=units,
+                                                length_units=length),
                        tmp / "sweep_coefficients.png")
-        out.append(_figure("sweep_coefficients.png", "Scaled coefficients vs filter width D, "
-                           "+/- one standard error; a closure whose D-scaling is right gives "
-                           "flat lines"))
+        words = "; ".join(f"{n} {spreads[n]:.1%}" for n in names if math.isfinite(spreads[n]))
+        out.append(_figure("sweep_coefficients.png", "Scaled coefficient of each term vs filter "
+                           "width D, +/- one standard error, one panel per term on its own "
+                           "axis (which includes 0, so a drift shows in proportion to the "
+                           "coefficient's size); a closure whose D-scaling is right gives flat "
+                           "lines." + (f" Spread across widths: {words}." if words else ""),
+                           length, *units.values()))
     available = [n for n in SWEEP_SCORES
                  if any(isinstance((e.get("test_scores") or {}).get(n), int | float)
                         for e in entries)]
@@ -500,51 +615,138 @@ def _sweep_section(sweep: dict, tmp: Path) -> str:
     if available:
         series = {n: [_num_or_nan((e.get("test_scores") or {}).get(n)) for e in entries]
                   for n in available}
-        plots.save_png(plots.sweep_scores(delta, series), tmp / "sweep_scores.png")
-        out.append(_figure("sweep_scores.png", "Held-out a priori scores vs filter width D"))
-    return "".join(out)
+        plots.save_png(plots.sweep_scores(delta, series, length_units=length),
+                       tmp / "sweep_scores.png")
+        out.append(_figure("sweep_scores.png", "Held-out a priori scores (dimensionless) vs "
+                           "filter width D", length))
+    return "".join(out), {n: (v if math.isfinite(v) else None) for n, v in spreads.items()}
 
 
 def _num_or_nan(v) -> float:
     return float(v) if isinstance(v, int | float) and not isinstance(v, bool) else math.nan
 
 
-def _aposteriori_section(runs: AposterioriRuns, tmp: Path) -> str:
+def _raw_result(les_result) -> dict:
+    """The a posteriori result as its plain dict (diagnostics and settings included), or {}
+    when only the report's own run data were given."""
+    if isinstance(les_result, Mapping):
+        return dict(les_result)
+    to_dict = getattr(les_result, "to_dict", None)
+    if callable(to_dict) and not isinstance(les_result, AposterioriRuns):
+        return dict(to_dict())
+    return {}
+
+
+def dynamic_constant_text(name: str, constants) -> str:
+    """What ``closure les`` prints about a dynamic run's Germano-Lilly constant."""
+    c = [float(v) for v in constants]
+    return (f"{name}: Germano-Lilly C = C_s^2 from {min(c):.3g} to {max(c):.3g} "
+            "(negative values clipped to 0)")
+
+
+def coincidence_notes(curves: Mapping[str, tuple], raw: Mapping | None = None
+                      ) -> list[tuple[list[str], str, str]]:
+    """For each group of runs whose curves coincide (:func:`plots.coinciding`):
+    ``(labels, short caption note, full note)`` saying so and, where the run data tell, why:
+    a dynamic run whose Germano-Lilly constant stayed at or below 0 is clipped to C = 0, so
+    it adds no subgrid stress and runs as the run without a model."""
+    runs = (raw or {}).get("runs") if isinstance((raw or {}).get("runs"), Mapping) else {}
+    out = []
+    for group, worst in plots.coinciding(curves):
+        quoted = [f"'{g}'" for g in group]
+        names = ", ".join(quoted[:-1]) + " and " + quoted[-1]
+        how = "identical" if worst == 0 else f"equal to {worst:.1g} of their largest value"
+        short = f" {names} coincide ({how}; distinct line styles and markers)"
+        full = f"In these runs {names} are {how}, so their lines coincide"
+        why, short_why = [], []
+        for g in group:
+            diag = (runs.get(g) or {}).get("diagnostics") or {}
+            c = diag.get("dynamic_constant") if isinstance(diag, Mapping) else None
+            if c and max(c) <= 0:
+                why.append(dynamic_constant_text(g, c) + ": at or below 0 throughout, so "
+                           "it is clipped to C = 0, adds no subgrid stress and runs as the run "
+                           "without a model")
+                short_why.append(f"'{g}' has its dynamic constant clipped to 0 throughout")
+            elif c:
+                why.append(dynamic_constant_text(g, c))
+        out.append((group, short + (": " + "; ".join(short_why) if short_why else "") + ".",
+                    full + (". Why: " + "; ".join(why) if why else "") + "."))
+    return out
+
+
+def _aposteriori_section(runs: AposterioriRuns, tmp: Path, base: Units | None = None,
+                         raw: Mapping | None = None) -> tuple[str, list[dict]]:
+    """The a posteriori HTML and the groups of coinciding runs (with the note shown)."""
     from closure.report.aposteriori import METRICS
 
+    base = base or Units()
+    t_units = base.time or base.of("time")
+    e_units, z_units = base.of("energy"), base.of("enstrophy")
     out = ["<h2>A posteriori: coarse runs</h2>",
            "<p>The model and the baselines run in the coarse solver from the same filtered "
            "initial state" + (f", against the filtered fine-grid data (run <code>"
                               f"{html.escape(runs.reference)}</code>)" if runs.reference
                               else "")
            + ". Errors are time means of relative errors against the reference (PDF "
-           "distance: Hellinger distance of the vorticity PDFs).</p>"]
+           "distance: Hellinger distance of the vorticity PDFs); both are dimensionless.</p>"]
     metric_names = [m for m in METRICS if any(m in r.metrics for r in runs.runs.values())]
-    rows = [[label, r.status, r.blowup_time if r.blowup_time is not None else "none",
+    rows = [[label_, r.status, r.blowup_time if r.blowup_time is not None else "none",
              r.final("energy"), r.final("enstrophy")] + [r.metrics.get(m) for m in metric_names]
-            for label, r in runs.runs.items()]
-    out.append(_table(["run", "status", "blow-up time", "final kinetic energy",
-                       "final enstrophy"] + [METRICS[m] for m in metric_names], rows))
-    spectra_curves = {label: r.spectrum for label, r in runs.runs.items() if r.spectrum}
+            for label_, r in runs.runs.items()]
+    out.append(_table(["run", "status", label("blow-up time", t_units) if t_units else
+                       f"blow-up time ({NOT_RECORDED})",
+                       label("final kinetic energy", e_units) if e_units else
+                       f"final kinetic energy ({NOT_RECORDED})",
+                       label("final enstrophy", z_units) if z_units else
+                       f"final enstrophy ({NOT_RECORDED})"]
+                      + [label(METRICS[m], "1") for m in metric_names], rows))
+    notes: dict[str, list[tuple[list[str], str, str]]] = {}
+    spectra_curves = {lab: r.spectrum for lab, r in runs.runs.items() if r.spectrum}
     if spectra_curves:
-        plots.save_png(plots.aposteriori_spectra(spectra_curves, runs.reference),
+        ku, eu = base.of("wavenumber"), base.of("energy_spectrum")
+        notes["spectrum"] = coincidence_notes(spectra_curves, raw)
+        plots.save_png(plots.aposteriori_spectra(spectra_curves, runs.reference, k_units=ku,
+                                                 units=eu),
                        tmp / "aposteriori_spectra.png")
         out.append(_figure("aposteriori_spectra.png", "Energy spectra of the coarse runs and of "
-                           "the filtered reference" + (f" (at t = {runs.spectrum_time:.4g})"
-                                                       if runs.spectrum_time is not None else "")))
-    blowup = {label: r.blowup_time for label, r in runs.runs.items()}
-    for key, label, log in (("energy", "kinetic energy", False), ("enstrophy", "enstrophy",
-                                                                   False)):
+                           "the filtered reference" + (f" (at t = {runs.spectrum_time:.4g}"
+                                                       f"{' ' + t_units if t_units else ''})"
+                                                       if runs.spectrum_time is not None
+                                                       else "") + ".",
+                           ku, eu, note=_notes_text(notes["spectrum"])))
+    blowup = {lab: r.blowup_time for lab, r in runs.runs.items()}
+    for key, what, log, un in (("energy", "kinetic energy", False, e_units),
+                               ("enstrophy", "enstrophy", False, z_units)):
         series = {lab: (r.time, r.series[key]) for lab, r in runs.runs.items()
                   if key in r.series}
         if series:
             name = f"aposteriori_{key}.png"
-            plots.save_png(plots.time_series(series, label, blowup, runs.reference, log),
+            notes[key] = coincidence_notes(series, raw)
+            plots.save_png(plots.time_series(series, what, blowup, runs.reference, log,
+                                             time_units=t_units, units=un),
                            tmp / name)
-            out.append(_figure(name, f"{label.capitalize()} of the coarse runs; dashed lines "
-                               "mark blow-up times"))
-    pdfs = {label: r.vorticity_pdf for label, r in runs.runs.items() if r.vorticity_pdf}
+            out.append(_figure(name, f"{what.capitalize()} of the coarse runs; dashed "
+                               "vertical lines mark blow-up times.", t_units, un,
+                               note=_notes_text(notes[key])))
+    pdfs = {lab: r.vorticity_pdf for lab, r in runs.runs.items() if r.vorticity_pdf}
     if pdfs:
-        plots.save_png(plots.pdfs(pdfs, "vorticity", runs.reference), tmp / "vorticity_pdf.png")
-        out.append(_figure("vorticity_pdf.png", "Probability density of the vorticity"))
-    return "".join(out)
+        wu, pu = base.of("vorticity"), base.of("vorticity_pdf")
+        notes["vorticity_pdf"] = coincidence_notes(pdfs, raw)
+        plots.save_png(plots.pdfs(pdfs, "vorticity", runs.reference, units=wu,
+                                  density_units=pu), tmp / "vorticity_pdf.png")
+        out.append(_figure("vorticity_pdf.png", "Probability density of the vorticity.",
+                           wu, pu, note=_notes_text(notes["vorticity_pdf"])))
+    seen: dict[tuple, str] = {}
+    for groups in notes.values():
+        for group, _, text in groups:
+            seen.setdefault(tuple(group), text)
+    if seen:
+        out.append("<ul>" + "".join(f"<li>{html.escape(t)}</li>" for t in seen.values())
+                   + "</ul>")
+    coincide = [{"figure": fig, "runs": group, "note": text}
+                for fig, groups in notes.items() for group, _, text in groups]
+    return "".join(out), coincide
+
+
+def _notes_text(groups: list[tuple[list[str], str, str]]) -> str:
+    return "".join(short for _, short, _ in groups)
