@@ -1276,30 +1276,14 @@ def _long_name(name: str) -> str:
 
 
 def _units_of(name: str, units: Mapping[str, str], length: str | None) -> str | None:
-    """Units of an output variable from the input's units; None where not derivable."""
-    def u(key):
-        return units.get(key)
+    """Units of an output variable from the input's units, simplified (closure.units); None
+    where not derivable."""
+    from closure.units import variable_units
 
-    vel = [u(c) for c in ("u", "v", "w") if u(c)]
-    U = vel[0] if vel and len(set(vel)) == 1 else None
-    if name in units and not name.startswith(("tau_", "force_", "flux_")):
-        return units[name]
-    if name.startswith("tau_"):
-        return f"({U})^2" if U else None
-    if name.startswith("force_"):
-        return f"({U})^2/({length})" if U and length else None
-    if name.startswith("flux_"):
-        c = u(name[5:-2])
-        return f"({U}) ({c})" if U and c else None
-    if name == "vorticity":
-        return f"({U})/({length})" if U and length else None
-    if name == "vorticity_forcing":
-        return f"({U})^2/({length})^2" if U and length else None
-    if name == "pi":
-        return f"({U})^3/({length})" if U and length else None
-    if name == "enstrophy_transfer":
-        return f"({U})^3/({length})^3" if U and length else None
-    return None
+    try:
+        return variable_units(name, units, length)
+    except (ValueError, KeyError):  # units closure.units does not parse: say nothing
+        return None
 
 
 def _filter_attrs(cg: CoarseGraining) -> dict:

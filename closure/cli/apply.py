@@ -206,18 +206,10 @@ class _Skill:
 
 
 def _units(component: str, units: dict, length: str | None) -> str | None:
-    vel = {units.get(c) for c in ("u", "v", "w") if units.get(c)}
-    U = vel.pop() if len(vel) == 1 else None
-    if component.startswith("tau_"):
-        return f"({U})^2" if U else None
-    if component.startswith("force_"):
-        return f"({U})^2/({length})" if U and length else None
-    if component.startswith("flux_"):
-        c = units.get(component[5:-2])
-        return f"({U}) ({c})" if U and c else None
-    if component == "vorticity_forcing":
-        return f"({U})^2/({length})^2" if U and length else None
-    return None
+    """Units of a predicted component from the input's, simplified (closure.units)."""
+    from closure.io import _units_of
+
+    return _units_of(component, units, length)
 
 
 def _compressible_units(component: str, units: dict) -> str | None:
