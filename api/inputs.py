@@ -69,6 +69,63 @@ def resolve_under_roots(raw: str, roots: Sequence[Path], field: str = "input.pat
     return inside
 
 
+def resolve_inputs_under_roots(raw: str | Sequence[str], roots: Sequence[Path],
+                               field: str = "input.path") -> list[Path]:
+    """The real paths of every input an ``input.path`` names (several paths, globs, a folder
+    of netCDF files, Zarr stores: closure.io.input_files), each of them, and every file of a
+    Zarr store, inside the data roots (symlinks and ``..`` resolved). Relative entries and
+    patterns are taken from each root in turn."""
+    from closure.io import _store_files, input_files
+
+    items = [raw] if isinstance(raw, str) else list(raw)
+    if not items:
+        raise InputFileError(f"{field} is empty: give a file, several files, a glob, a folder "
+                             "or a Zarr store under the data roots")
+    if not roots:
+        resolve_under_roots(items[0], roots, field)  # the answer for a server without roots
+    real_roots = [Path(r).resolve() for r in roots]
+    out: list[Path] = []
+    for item in items:
+        check_path_text(item, field)
+        found = None
+        for root in real_roots:
+            try:
+                found = input_files(item, base=root)
+                break
+            except InputFileError:
+                continue
+        if found is None:
+            raise InputFileError(f"{field} {item!r}: no such file, folder or match under the "
+                                 "data roots")
+        for p in found:
+            real = p.resolve()
+            files = [real] + [f.resolve() for f in _store_files(real)] if real.is_dir() else [real]
+            if not all(is_inside(f, real_roots) for f in files):
+                listed = ", ".join(str(r) for r in real_roots)
+                raise ForbiddenPathError(
+                    f"{field} {item!r} leads outside the data roots ({listed}); put the files "
+                    "under one of them or upload them with POST /datasets")
+            out.append(real)
+    return list(dict.fromkeys(out))
+
+
+def _declared_sizes_zarr(path: Path) -> dict:
+    """closure.io.declared_sizes' answer for a Zarr store, from its metadata only."""
+    import xarray as xr
+
+    try:
+        ds = xr.open_zarr(path, chunks=None, decode_times=False)
+    except Exception:  # noqa: BLE001 - any unreadable store is the same answer
+        raise InputFileError(f"{path.name} could not be read as a Zarr store") from None
+    try:
+        return {"dims": {str(k): int(v) for k, v in ds.sizes.items()}, "unlimited": [],
+                "variables": {str(n): {"dims": [str(d) for d in v.dims],
+                                       "itemsize": int(v.dtype.itemsize)}
+                              for n, v in ds.variables.items()}}
+    finally:
+        ds.close()
+
+
 def is_inside(real: Path, real_roots: Sequence[Path]) -> bool:
     """Whether the resolved path ``real`` is one of ``real_roots`` or lies below one."""
     return any(real == root or root in real.parents for root in real_roots)
@@ -84,7 +141,7 @@ def check_declared_sizes(path: Path, label: str, settings, time_dim: str = "time
     from closure.io import declared_sizes
 
     try:
-        sizes = declared_sizes(path)
+        sizes = _declared_sizes_zarr(path) if path.is_dir() else declared_sizes(path)
     except InputFileError:
         raise InputFileError(f"{label} could not be read as netCDF: give a netCDF-3 or "
                              "netCDF-4 file") from None
@@ -186,6 +243,18 @@ def resolve_library(spec: JobSpec, roots: Sequence[Path], dims: Sequence[str]):
 
 # --------------------------------------------------------------------------- the job's input
 
+def _one_plain_file(raw, roots: Sequence[Path]) -> bool:
+    """Whether ``input.path`` names one plain file (no list, no pattern, no folder)."""
+    import glob
+
+    if not isinstance(raw, str) or glob.has_magic(raw) or "\x00" in raw:
+        return False
+    p = Path(raw)
+    try:
+        return not any((p if p.is_absolute() else Path(r) / p).is_dir() for r in roots)
+    except OSError:
+        return True  # resolve_under_roots gives the answer
+
 def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]:
     """The spec the workers run (``input.path`` absolute, no dataset id, the library a preset
     or inline) and the dataset record of its input. The file's header is checked against the
@@ -198,11 +267,6 @@ def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]
     inp = spec.input
     options = {"group": inp.group, "mask": inp.mask, "levels": inp.levels,
                "spacing": inp.spacing}
-    if inp.path is not None and not isinstance(inp.path, str):
-        # several inputs need every path checked against the roots (closure.io.input_files
-        # expands them); until then one file per job
-        raise InputFileError("input.path: this server takes one file per job; give one path "
-                             "(or upload the data as one file)")
     time_dim = inp.variables.get("time", "time")
     if inp.dataset_id is not None:
         if "\x00" in inp.dataset_id or len(inp.dataset_id) > 64:
@@ -217,7 +281,7 @@ def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]
             info = describe_fields(path, inp.variables, inp.scalars, inp.periodic, **options)
         except UserError as exc:
             raise _as_dataset(exc, path, ds["id"]) from None
-    else:
+    elif _one_plain_file(inp.path, roots):
         path = resolve_under_roots(inp.path, roots)
         check_declared_sizes(path, f"input.path {inp.path!r}", settings, time_dim)
         info = describe_fields(path, inp.variables, inp.scalars, inp.periodic, **options)
@@ -229,6 +293,21 @@ def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]
             ds = store.add_dataset(sha256=sha256_file(path), path=path, source="path",
                                    size=st.st_size, mtime_ns=st.st_mtime_ns, grid=info["grid"],
                                    n_snapshots=info["n_snapshots"], variables=inp.variables)
+    else:  # several files, a glob, a folder or a Zarr store: every one under the roots
+        from closure.io import _store_files, input_sha256
+
+        paths = resolve_inputs_under_roots(inp.path, roots)
+        for p in paths:
+            check_declared_sizes(p, f"input.path {p.name!r}", settings, time_dim)
+        info = describe_fields(paths, inp.variables, inp.scalars, inp.periodic, **options)
+        files = [f for p in paths for f in _store_files(p)]
+        stats = [f.stat() for f in files]
+        ds = store.add_dataset(sha256=input_sha256(paths), path=paths[0], source="paths",
+                               size=sum(st.st_size for st in stats),
+                               mtime_ns=max(st.st_mtime_ns for st in stats),
+                               grid=info["grid"], n_snapshots=info["n_snapshots"],
+                               variables=inp.variables)
+        path = [os.fspath(p) for p in paths] if len(paths) > 1 else paths[0]
     if inp.snapshots:
         bad = sorted({i for i in inp.snapshots if i >= info["n_snapshots"]})
         if bad:
@@ -237,7 +316,8 @@ def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]
             raise InputFileError(f"input.snapshots: {shown} out of range; the file has "
                                  f"{info['n_snapshots']} snapshots (0..{info['n_snapshots'] - 1})")
     grid = Grid.from_dict(info["grid"])
-    run_input = inp.model_copy(update={"path": os.fspath(path), "dataset_id": None,
+    run_input = inp.model_copy(update={"path": path if isinstance(path, list)
+                                       else os.fspath(path), "dataset_id": None,
                                        "sha256": None})
     if getattr(spec, "kind", "discover") != "discover":  # coarse-graining: no library, no fit
         return spec.model_copy(update={"input": run_input}), ds

@@ -1199,7 +1199,8 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
              input_options: Mapping | None = None,
              long_duration: float | None = None, spinup: float | None = None,
              sample_interval: float | None = None, hypoviscosity: float | None = None,
-             hypoviscosity_order: int | None = None) -> Comparison:
+             hypoviscosity_order: int | None = None,
+             reference_net: bool = False) -> Comparison:
     """Run ``model`` (None: no model) and ``baselines`` from snapshot ``initial_index`` of the
     file ``initial`` (2-D or 3-D), coarse-grained, and score them against the coarse-grained
     ``reference`` file (default: the initial file when it has later snapshots).
@@ -1219,6 +1220,8 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
     ``spinup`` s (default 0), sampled every ``sample_interval`` s (default: 200 samples, or
     one per initial CFL step if that is longer), are
     compared with those of every snapshot of the reference (``Comparison.long_runs``).
+    ``reference_net``: also run the model's stored neural reference closure (closure.neural,
+    torch on CPU) as the run "reference network".
     """
     fdef = model_filter(model) if model is not None else None
     warnings = []
@@ -1297,6 +1300,11 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
         closures[b] = baseline(b, init.delta, smagorinsky_constant)
     if model is None:
         closures = {("none" if k == model_label else k): v for k, v in closures.items()}
+    if reference_net:  # the model's neural reference closure beside it (torch on CPU)
+        if model is None or not callable(getattr(model, "reference_network", None)):
+            raise OptionError("--reference-net runs a model's stored network: give a model "
+                              "discovered with --reference-net")
+        closures["reference network"] = model.reference_network()
     dealias = physics["dealias"]
     ref_traj = (reference_trajectory(ref_data.fields, ref_data.times, grid, dealias)
                 if ref_data is not None else None)

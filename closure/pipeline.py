@@ -263,6 +263,10 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     train, test = chosen[:len(chosen) - n_test], chosen[len(chosen) - n_test:]
 
     cg = _coarse_graining(spec, grid)
+    if getattr(spec, "device", "numpy") != "numpy":
+        from closure.backend import get_backend
+
+        get_backend(spec.device)  # torch present, a GPU where cuda is asked: say so now
     if coarse is not None:
         from closure.products import check_coarse_input
 
@@ -485,6 +489,8 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
                 from closure.favre import favre_coarse_grain
 
                 out.append(favre_coarse_grain(snap, cg, targets=plan["components"]))
+            elif _on_backend(spec, snap, cg):
+                out.append(_backend_coarse(spec, plan, snap, cg))
             elif _by_slabs(spec, src):
                 from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
 
@@ -562,6 +568,25 @@ def _check_valid_points(spec: JobSpec, cs, cg, n_terms: int) -> None:
             "out. Use a narrower filter (--width) or a smaller --ratio, a lower-order --scheme, "
             "a smaller --library, or check the mask (--mask, NaN or fill values mark land); "
             "--land does not change which points are left out")
+
+
+def _on_backend(spec: JobSpec, snap, cg) -> bool:
+    """Whether the fine-grid pass runs on the array backend of ``spec.device`` (torch):
+    periodic data without land, a box, Gaussian or sharp filter (closure.backend)."""
+    return (getattr(spec, "device", "numpy") != "numpy" and snap is not None
+            and snap.mask is None and cg.fine.periodic and cg.kind != "block")
+
+
+def _backend_coarse(spec: JobSpec, plan: Mapping, snap, cg):
+    """The coarse snapshot from the array backend's pass (closure.backend), which equals
+    closure.residuals.coarse_grain_snapshot's to 1e-10 in float64."""
+    from closure.backend import coarse_grain_periodic, get_backend
+    from closure.residuals import CoarseSnapshot
+
+    fields, targets = coarse_grain_periodic(snap.fields, cg, _scalars(spec),
+                                            list(plan["components"]),
+                                            get_backend(spec.device))
+    return CoarseSnapshot(fields, targets, cg.coarse, cg, snap.index, snap.time)
 
 
 def _by_slabs(spec: JobSpec, src) -> bool:

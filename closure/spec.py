@@ -196,6 +196,9 @@ class JobSpec(_Strict):
     fine_float32: bool = Field(
         False, description="run the fine-grid pass in float32 by slabs (half the memory; "
         "relative error about 1e-6 against float64)")
+    device: Literal["numpy", "cpu", "cuda", "auto"] = Field(
+        "numpy", description="array backend of the fine-grid pass of periodic data: numpy, or "
+        "torch on cpu, cuda, or auto (cuda when available); results agree to 1e-10")
 
     @field_validator("target")
     @classmethod
@@ -231,6 +234,11 @@ class JobSpec(_Strict):
         d["input"] = {k: v for k, v in d["input"].items() if k not in ("path", "dataset_id")}
         if not d["reference_net"]["enabled"]:
             del d["reference_net"]  # jobs without a network keep their earlier fingerprint
+        # where and within what memory the pass runs changes results at round-off only
+        for key in ("memory_limit", "device"):
+            d.pop(key, None)
+        if not d.get("fine_float32"):
+            d.pop("fine_float32", None)
         return d
 
 

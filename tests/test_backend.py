@@ -153,3 +153,32 @@ def test_only_periodic_spectral_filters_take_the_backend_pass():
     with pytest.raises(UserError, match="unknown target"):
         coarse_grain_periodic(fields, make_coarse_graining("box", periodic, 2, None, "grid"),
                               targets=["flux_c_x"])
+
+
+def test_discover_on_the_torch_backend_equals_numpy(tmp_path, monkeypatch):
+    # the whole job with --device cpu: the fine-grid pass on torch, the same model to 1e-10
+    pytest.importorskip("torch", reason="torch is optional (pip install torch==2.13.0)")
+    from closure import pipeline
+    from closure.spec import parse_spec
+    from closure.synth import turb2d, write
+
+    path = write(turb2d(n=48, snapshots=4, spinup=0.5, interval=0.2), tmp_path / "f.nc")
+    base = {"input": {"path": str(path)}, "filter": {"kind": "gaussian", "ratio": 4},
+            "fit": {"resamples": 0}}
+    import closure.backend as backend
+
+    calls = []
+    real = backend.coarse_grain_periodic
+
+    def spy(*args, **kwargs):
+        calls.append(type(kwargs.get("backend", args[-1] if len(args) > 4 else None)).__name__)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(backend, "coarse_grain_periodic", spy)
+    a = pipeline.discover(parse_spec(base))
+    assert calls == []
+    b = pipeline.discover(parse_spec({**base, "device": "cpu"}))
+    assert calls and set(calls) == {"TorchBackend"}
+    assert a.names == b.names
+    np.testing.assert_allclose(b.coefficients, a.coefficients, rtol=1e-10, atol=1e-14)
+    assert parse_spec({**base, "device": "cpu"}).fingerprint() == parse_spec(base).fingerprint()

@@ -508,13 +508,37 @@ def test_cli_coarse_grain_writes_one_file_per_level(stack, tmp_path, capsys):
     assert not (tmp_path / "c_level0.nc").exists()
 
 
-def test_service_refuses_several_paths_with_a_user_error(tmp_path):
-    # a UserError is a 4xx answer (api.app); several paths wait for per-file containment
-    from api.inputs import resolve_input
+def test_service_resolves_several_inputs_under_the_roots_only(dns, tmp_path):
+    # a list of files and a glob are each checked against the data roots, file by file (a
+    # link inside a Zarr store too); the workers get the real paths and the combined checksum
+    from api.errors import ForbiddenPathError
+    from api.inputs import resolve_inputs_under_roots
+    from closure.io import input_sha256
 
-    s = parse_spec({"input": {"path": [str(tmp_path / "a.nc"), str(tmp_path / "b.nc")]}})
-    with pytest.raises(InputFileError, match="this server takes one file per job"):
-        resolve_input(s, None, SimpleNamespace(data_roots=[tmp_path]))
+    _, ds = dns
+    root = tmp_path / "root"
+    root.mkdir()
+    paths = split(ds, root / "run")
+    got = resolve_inputs_under_roots([str(p) for p in paths[:2]], [root])
+    assert got == [p.resolve() for p in paths[:2]]
+    assert resolve_inputs_under_roots("run/snap_*.nc", [root]) == [p.resolve() for p in paths]
+    assert resolve_inputs_under_roots("run", [root]) == [p.resolve() for p in paths]  # folder
+    assert input_sha256(got) != input_sha256(paths[:3])
+    outside = tmp_path / "elsewhere.nc"
+    outside.write_bytes(paths[0].read_bytes())
+    with pytest.raises(ForbiddenPathError, match="outside the data roots"):
+        resolve_inputs_under_roots([str(paths[0]), str(outside)], [root])
+    (root / "run" / "snap_99.nc").symlink_to(outside)
+    with pytest.raises(ForbiddenPathError, match="outside the data roots"):
+        resolve_inputs_under_roots("run/snap_*.nc", [root])
+    store = root / "store.zarr"
+    ds.to_zarr(store)
+    assert resolve_inputs_under_roots("store.zarr", [root]) == [store.resolve()]
+    (store / "stray").symlink_to(outside)
+    with pytest.raises(ForbiddenPathError, match="outside the data roots"):
+        resolve_inputs_under_roots("store.zarr", [root])
+    with pytest.raises(InputFileError, match="no such file, folder or match"):
+        resolve_inputs_under_roots("run/none_*.nc", [root])
 
 
 def test_level_stack_through_the_queue_functions_equals_in_process(stack, tmp_path):

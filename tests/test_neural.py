@@ -161,6 +161,20 @@ def test_the_coarse_solver_runs_the_network_a_posteriori(turb_model, turb_file):
     assert traj.status in ("completed", "blew up") and len(traj.times) >= 1
 
 
+def test_simulate_runs_the_stored_network_beside_the_model(turb_model, turb_file):
+    # closure les --reference-net: the network is one more run of the same comparison
+    from closure import les
+
+    model, _ = turb_model
+    comparison = les.simulate(model, turb_file, initial_index=6, baselines=["none"],
+                              reference_net=True)
+    assert "reference network" in comparison.runs
+    run = comparison.runs["reference network"]
+    assert run.status in ("completed", "blew up") and len(run.times) >= 1
+    with pytest.raises(OptionError, match="--reference-net runs a model's stored network"):
+        les.simulate(None, turb_file, initial_index=6, baselines=["none"], reference_net=True)
+
+
 def test_on_smooth_fields_the_network_does_not_beat_the_gradient_model(smooth_file):
     pytest.importorskip("torch", reason=NEEDS_TORCH)
     # Smooth fields and a Gaussian filter: tau_ij = (D^2/12) d_k u_i d_k u_j + O(D^4)

@@ -164,6 +164,30 @@ def test_queued_job_over_http_equals_discover(stack, client, data):
     assert sha256_file(data) == before
 
 
+def test_one_file_per_snapshot_by_glob_over_http_equals_discover(stack, client, data):
+    # the usual DNS layout: one file per snapshot, named by a glob under the data root; the
+    # queued model equals in-process discovery of the same glob, and the dataset's checksum
+    # is the combined one of closure.io.input_sha256
+    import xarray as xr
+
+    from closure.io import input_files, input_sha256
+
+    folder = data.parent / "per_snapshot"
+    folder.mkdir(exist_ok=True)
+    with xr.open_dataset(data) as ds:
+        for i in range(ds.sizes["time"]):
+            ds.isel(time=slice(i, i + 1)).to_netcdf(folder / f"snap_{i:02d}.nc")
+    pattern = str(folder / "snap_*.nc")
+    spec = {**spec_dict(pattern, seed=7)}
+    job = client.submit(spec)
+    doc = client.wait(job["id"], poll=0.1, timeout=120)
+    assert doc["state"] == "succeeded", doc
+    model = client.closure_model(doc["model_id"])
+    assert_same_model(model, spec)
+    assert model.provenance["sha256"] == input_sha256(input_files(pattern))
+    assert len(model.provenance["inputs"]) == N_SNAPSHOTS
+
+
 def test_cli_client_commands(stack, data, tmp_path):
     env = {**os.environ, "CLOSURE_SERVER": stack.server_url}
     cli = [sys.executable, "-c", "import sys; from closure.cli import main; "

@@ -69,7 +69,9 @@ def check_input_file(path: str | os.PathLike) -> Path:
     if roots:
         allowed = [Path(r).resolve() for r in roots] + [
             (store().root / sub).resolve() for sub in ("datasets", "products")]
-        if not any(real == r or r in real.parents for r in allowed):
+        # a Zarr store: every file in it too (a link inside may lead anywhere)
+        inside = [real, *(f.resolve() for f in real.rglob("*"))] if real.is_dir() else [real]
+        if not all(any(f == r or r in f.parents for r in allowed) for f in inside):
             raise UserError(f"the input file {recorded} is not under the worker's data roots; "
                             "the job does not read it")
     return real
@@ -286,9 +288,10 @@ def map_task(job_id: str, indices: list[int]) -> dict:
         if q.is_canceled(conn, job_id):
             break
         try:
-            if int(i) in test and hasattr(pipeline, "_map"):
-                # keep the held-out snapshot's coarse fields for the scoring pass, as an
-                # in-process run does (saves coarse-graining it again in the reduce)
+            if (int(i) in test or spec.reference_net.enabled) and hasattr(pipeline, "_map"):
+                # keep the held-out snapshot's coarse fields for the scoring pass (and, for
+                # the reference network, the training snapshots' for its training), as an
+                # in-process run does (saves coarse-graining them again in the reduce)
                 stats, coarse = pipeline._map(spec, plan, int(i), source=source)
                 _keep_held_out(work, plan, coarse)
             else:

@@ -82,6 +82,9 @@ def les(
     energy_bound: float = typer.Option(10.0, "--energy-bound",
                                        help="stop when energy exceeds this x the initial"),
     json_out: Path | None = typer.Option(None, "--json", help="write runs and metrics here"),
+    reference_net: bool = typer.Option(
+        False, "--reference-net", help="also run the model's stored neural reference closure "
+        "(needs torch==2.13.0)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="no progress bar or table"),
 ) -> None:
     """Run a closure (and baselines) in the 2-D or 3-D coarse solver from filtered-DNS initial
@@ -110,7 +113,8 @@ def les(
             smagorinsky_constant=smagorinsky_constant, dealias=dealias, cfl=cfl,
             energy_bound=energy_bound, progress=progress, input_options=options,
             long_duration=long_duration, spinup=spinup, sample_interval=sample_interval,
-            hypoviscosity=hypoviscosity, hypoviscosity_order=hypoviscosity_order)
+            hypoviscosity=hypoviscosity, hypoviscosity_order=hypoviscosity_order,
+            reference_net=reference_net)
     for w in comparison.settings["warnings"]:
         if w.startswith("ASSUMED"):  # said even with --quiet: the comparison is qualitative
             typer.echo(f"warning: {w}", err=True)
