@@ -3,7 +3,6 @@ standard names, level stacks, curvilinear grids; xarray is the independent reade
 
 import hashlib
 import json
-from types import SimpleNamespace
 
 import netCDF4
 import numpy as np
