@@ -85,7 +85,8 @@ def inline_local_library(spec_dict: dict) -> dict:
     return {**spec_dict, "library": data}
 
 
-def spec_from_options(path: str | os.PathLike | None = None, *, dataset_id: str | None = None,
+def spec_from_options(path: str | os.PathLike | list | None = None, *,
+                      dataset_id: str | None = None,
                       filter: str | None = None, width: float | None = None,
                       width_units: str | None = None, ratio: int | None = None,
                       target: str | None = None, library: str | None = None,
@@ -100,7 +101,8 @@ def spec_from_options(path: str | os.PathLike | None = None, *, dataset_id: str 
     spec: dict = {k: (dict(v) if isinstance(v, dict) else v) for k, v in (base or {}).items()}
     inp = spec.setdefault("input", {})
     if path is not None:
-        inp["path"] = os.fspath(path)
+        inp["path"] = ([os.fspath(p) for p in path] if isinstance(path, list | tuple)
+                       else os.fspath(path))
         inp.pop("dataset_id", None)
     if dataset_id is not None:
         inp["dataset_id"] = dataset_id
@@ -201,7 +203,7 @@ class Client:
             "Content-Type": "application/octet-stream",
             "Content-Length": str(path.stat().st_size)})
 
-    def submit(self, spec: JobSpec | dict | str | os.PathLike, *, name: str | None = None,
+    def submit(self, spec: JobSpec | dict | str | os.PathLike | list, *, name: str | None = None,
                upload: bool | None = None, **options) -> dict:
         """Submit a job; returns its status (``id``, ``state``, ``reused`` ...).
 
@@ -216,8 +218,8 @@ class Client:
             spec_dict = spec_from_options(spec, **options)
         params = {"name": name} if name else None
         local = spec_dict.get("input", {}).get("path")
-        if isinstance(local, list):  # several inputs go by path (no upload of several files)
-            local = None
+        if isinstance(local, list):  # several local files: by path, else one upload each
+            return self._submit_several(spec_dict, local, params, upload)
         if local is not None and upload is not False and (upload or Path(local).is_file()):
             if not upload:
                 try:
@@ -235,6 +237,33 @@ class Client:
                                                "dataset_id": ds["id"]})
         spec_dict = inline_local_library(spec_dict)
         parse_spec(spec_dict)  # the same message locally as the server would give
+        return self._json("POST", "/jobs", json=spec_dict, params=params)
+
+    def _submit_several(self, spec_dict: dict, local: list, params, upload) -> dict:
+        """A job over several local files: by path when they lie under the server's data
+        roots, else each uploaded and the job reads the datasets as one input."""
+        files = [Path(p) for p in local]
+        if upload is False or not all(f.is_file() for f in files):
+            spec_dict = inline_local_library(spec_dict)
+            parse_spec(spec_dict)
+            return self._json("POST", "/jobs", json=spec_dict, params=params)
+        if not upload:
+            by_path = dict(spec_dict, input={**spec_dict["input"],
+                                             "path": [str(f.resolve()) for f in files]})
+            by_path = inline_local_library(by_path)
+            parse_spec(by_path)
+            try:
+                return self._json("POST", "/jobs", json=by_path, params=params)
+            except ServiceError as exc:
+                if exc.status != 403:
+                    raise
+        inp = spec_dict["input"]
+        ids = [self.upload(f, variables=inp.get("variables"), scalars=inp.get("scalars") or (),
+                           periodic=inp.get("periodic", True))["id"] for f in files]
+        spec_dict = dict(spec_dict, input={**{k: v for k, v in inp.items() if k != "path"},
+                                           "dataset_id": ids})
+        spec_dict = inline_local_library(spec_dict)
+        parse_spec(spec_dict)
         return self._json("POST", "/jobs", json=spec_dict, params=params)
 
     def status(self, job_id: str) -> dict:

@@ -52,7 +52,9 @@ class InputSpec(_Strict):
     path: str | list[str] | None = Field(
         None, description="netCDF file, glob, folder or Zarr store, or a list of them "
         "(under a data root for the service)")
-    dataset_id: str | None = Field(None, description="id of an uploaded dataset (service only)")
+    dataset_id: str | list[str] | None = Field(
+        None, description="id of an uploaded dataset, or a list of them read as one input in "
+        "time order (service only)")
     variables: dict[str, str] = Field(
         default_factory=dict,
         description="our name -> the file's name, e.g. {'u': 'U', 'v': 'V'}; scalars by name")
@@ -82,6 +84,16 @@ class InputSpec(_Strict):
                 raise ValueError("input.path lists an empty string")
         elif v is not None and not v:
             raise ValueError("input.path is empty")
+        return v
+
+    @field_validator("dataset_id")
+    @classmethod
+    def _dataset_ids(cls, v):
+        if isinstance(v, list):
+            if not v:
+                raise ValueError("input.dataset_id is an empty list: give at least one id")
+            if len(set(v)) != len(v):
+                raise ValueError("input.dataset_id lists a dataset more than once")
         return v
 
     @field_validator("group", "mask")

@@ -95,6 +95,36 @@ def test_submit_outside_the_roots_uploads_instead(client, turb2d_file, tmp_path)
     assert forced["dataset_id"] == doc["dataset_id"]  # same content, same dataset
 
 
+def test_several_files_outside_the_roots_are_uploaded_and_read_as_one_input(
+        client, app, turb2d_file, tmp_path):  # noqa: F811
+    # one file per snapshot, outside the roots: each is uploaded, and the job reads the
+    # datasets as one input whose checksum is the combined one (closure.io.input_sha256)
+    import xarray as xr
+
+    from closure.io import input_sha256
+
+    files = []
+    with xr.open_dataset(turb2d_file) as ds:
+        for i in range(ds.sizes["time"]):
+            files.append(tmp_path / f"snap_{i}.nc")
+            ds.isel(time=slice(i, i + 1)).to_netcdf(files[-1])
+    doc = client.submit([str(f) for f in files])
+    assert doc["state"] == "queued"
+    spec = doc["spec"]["input"]
+    assert isinstance(spec["path"], list) and len(spec["path"]) == len(files)
+    assert client.dataset(doc["dataset_id"])["sha256"] == input_sha256(files)
+    # the same files by path under the roots need no upload
+    inside = turb2d_file.parent / "split"
+    inside.mkdir(exist_ok=True)
+    for f in files:
+        (inside / f.name).write_bytes(f.read_bytes())
+    by_path = client.submit([str(inside / f.name) for f in files], seed=5)
+    assert by_path["spec"]["input"]["path"] == [str((inside / f.name).resolve()) for f in files]
+    with pytest.raises(ServiceError) as err:
+        client.submit({"input": {"dataset_id": [doc["dataset_id"], "d-" + "0" * 20]}})
+    assert err.value.status == 404
+
+
 def test_wait_raises_job_failed_after_cancel(client, turb2d_file):  # noqa: F811
     doc = client.submit(str(turb2d_file))
     client.cancel(doc["id"])

@@ -71,7 +71,7 @@ def product_as_dataset(spec, store: Store):
     (the pipeline then reads the coarse fields and exact terms instead of the fine data).
     Any other spec is returned as it is."""
     inp = getattr(spec, "input", None)
-    if inp is None or not (inp.dataset_id or "").startswith("pr-"):
+    if inp is None or not isinstance(inp.dataset_id, str) or not inp.dataset_id.startswith("pr-"):
         return spec
     row = store.get_product(inp.dataset_id)
     path = store.product_dir(row["id"]) / "product.nc"
