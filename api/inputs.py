@@ -181,7 +181,14 @@ def describe_fields(path: Path, variables: dict | None = None, scalars: Sequence
     and describe it: grid, number of snapshots, velocity components and scalars. Reads the
     header and coordinates only. ``options``: open_fields' group, mask, levels and spacing."""
     from closure.io import open_fields
+    from closure.products import open_coarse_input
 
+    coarse = open_coarse_input(path) if isinstance(path, Path) and path.is_file() else None
+    if coarse is not None:  # a coarse product read for discovery: its fine grid decides
+        with coarse:
+            return {"grid": coarse.coarse_graining.fine.to_dict(),
+                    "n_snapshots": int(coarse.n_snapshots), "velocity": list(coarse.velocity),
+                    "scalars": list(coarse.scalars)}
     with open_fields(path, variables=variables or None, scalars=tuple(scalars),
                      periodic=periodic, **options) as src:
         return {"grid": src.grid.to_dict(), "n_snapshots": int(src.n_snapshots),
@@ -356,6 +363,13 @@ def resolve_input(spec: JobSpec, store: Store, settings) -> tuple[JobSpec, dict]
     run_spec = spec.model_copy(update={"input": run_input, "library": library})
     try:
         pipeline.check_options(run_spec, grid, info["velocity"], info["n_snapshots"])
+        if isinstance(path, Path) and path.is_file():
+            from closure.products import check_coarse_input, open_coarse_input
+
+            coarse = open_coarse_input(path)
+            if coarse is not None:  # a product: the job's filter must be the one it was made with
+                with coarse:
+                    check_coarse_input(coarse, pipeline._coarse_graining(run_spec, grid))
     except UserError as exc:
         if isinstance(inp.dataset_id, str):
             raise _as_dataset(exc, path, ds["id"]) from None

@@ -218,20 +218,20 @@ def test_cli_client_commands(stack, data, tmp_path):
     # an option the data cannot take is refused at submission: status 2, nothing queued
     r = run("submit", str(data), "--snapshots", "3", "--seed", "3", check=False)
     assert r.returncode == 2 and "at least 2" in r.stderr
-    # a job that fails in a worker (a NaN in a later snapshot, found when it is read): wait
-    # exits 1 with the error
+    # a job that fails in a worker (an Inf in a later snapshot, found when it is read; NaN
+    # would be land): wait exits 1 with the error
     import xarray as xr
 
     with xr.open_dataset(data) as ds:
         ds = ds.load()
-    ds["u"][-1, 0, 0] = float("nan")
+    ds["u"][-1, 0, 0] = float("inf")
     from closure.io import write_netcdf
 
     broken = write_netcdf(ds, data.parent / "broken.nc")
     out = run("submit", str(broken), "--seed", "3").stdout
     bad = out.strip().splitlines()[-1]
     r = run("wait", bad, "-q", check=False)
-    assert r.returncode == 1 and "NaN" in r.stderr
+    assert r.returncode == 1 and "Inf" in r.stderr
     # a user error in the options: status 2 and the field named
     r = run("submit", str(data), "--filter", "tophat", check=False)
     assert r.returncode == 2 and "filter.kind" in r.stderr
