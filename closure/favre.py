@@ -29,8 +29,10 @@ otherwise, as in closure.residuals) and every output is sampled every ``ratio``-
 averaging forms the block means on the coarse grid and takes the derivatives of ``u~`` there;
 ``d_k u_k`` inside ``bar(p d_k u_k)`` is always the fine-grid dilatation.
 
-The density-weighted filter ``bar(rho f) / bar(rho)`` is the same operation as a mask-weighted
-filter ``bar(w f) / bar(w)``; masks (land points) are not supported here yet.
+The density-weighted filter ``bar(rho f) / bar(rho)`` is the mask-weighted filter
+``bar(w f) / bar(w)`` of closure.filters (``CoarseGraining.weighted_filter`` and
+``weighted_block_mean``) with the density as the weight; masks (land points) are not
+supported here yet.
 """
 
 from __future__ import annotations
@@ -62,6 +64,9 @@ if TYPE_CHECKING:
 DENSITY = "rho"
 PRESSURE = "p"
 TEMPERATURE = "T"
+
+#: Products Favre-averaged in one call of the weighted filter (speed against peak memory).
+FAVRE_STACK = 4
 
 
 def favre_target_names(dims: Sequence[str]) -> list[str]:
@@ -155,27 +160,34 @@ def favre_coarse_grain(snapshot: Snapshot, cg: CoarseGraining,
     vel = {i: np.asarray(snapshot.fields[VELOCITY_OF[i]], dtype=float) for i in dirs}
     p, T = thermodynamic_fields(snapshot.fields, gas_constant)
 
-    # the filtered quantities the wanted targets need, one at a time (peak memory: a few
-    # fine-grid fields, not all products at once)
-    quantities = {"rho": lambda: rho, "p": lambda: p, "rhoT": lambda: rho * T}
+    # the filtered quantities the wanted targets need; Favre averages bar(rho f) / bar(rho)
+    # by the weighted filter of closure.filters (the one masks use), FAVRE_STACK products at
+    # a time (the weight is filtered once per stack; peak memory a few stacks of fine fields)
+    if cg.kind == "block":
+        grid, plain, weighted = cg.coarse, cg.block_mean, cg.weighted_block_mean
+    else:
+        grid, plain, weighted = fine, cg.filter, cg.weighted_filter
+    products = {"T": lambda: T}
     for i in dirs:
-        quantities[("m", i)] = lambda i=i: rho * vel[i]
+        products[("u", i)] = lambda i=i: vel[i]
     if any(t.startswith(("tau_", "force_")) or t == "pi" for t in want):
         for i, j in stress_pairs(fine.dims):
-            quantities[("uu", i, j)] = lambda i=i, j=j: rho * vel[i] * vel[j]
+            products[("uu", i, j)] = lambda i=i, j=j: vel[i] * vel[j]
     if any(t.startswith("heat_flux_") for t in want):
         for j in dirs:
-            quantities[("uT", j)] = lambda j=j: rho * vel[j] * T
+            products[("uT", j)] = lambda j=j: vel[j] * T
+    tilde = {}
+    keys = list(products)
+    for start in range(0, len(keys), FAVRE_STACK):
+        chunk = keys[start:start + FAVRE_STACK]
+        averaged = weighted(np.stack([products[k]() for k in chunk]), rho)
+        tilde.update(zip(chunk, averaged, strict=True))
+        del averaged
+    bar = {"rho": plain(rho), "p": plain(p)}
     if "pressure_dilatation" in want:
-        quantities["pdiv"] = lambda: p * sum(derivative(vel[i], fine, i, 1, scheme)
-                                             for i in dirs)
-    if cg.kind == "block":
-        grid, apply = cg.coarse, cg.block_mean
-    else:
-        grid, apply = fine, cg.filter
-    bar = {key: apply(make()) for key, make in quantities.items()}
+        bar["pdiv"] = plain(p * sum(derivative(vel[i], fine, i, 1, scheme) for i in dirs))
 
-    fields, out = favre_terms(bar, grid, dirs, want, fine_scheme(grid))
+    fields, out = favre_terms(bar, tilde, grid, dirs, want, fine_scheme(grid))
     if cg.kind != "block":
         fields = {k: cg.sample(v) for k, v in fields.items()}
         out = {k: cg.sample(v) for k, v in out.items()}
@@ -184,20 +196,25 @@ def favre_coarse_grain(snapshot: Snapshot, cg: CoarseGraining,
     return CoarseSnapshot(fields, out, cg.coarse, cg, snapshot.index, snapshot.time)
 
 
-def favre_terms(bar: Mapping, grid: Grid, dirs: Sequence[str], want: Sequence[str],
-                scheme: str) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
-    """Fields and wanted targets from the filtered quantities ``bar`` (all on ``grid``)."""
+def favre_terms(bar: Mapping, tilde: Mapping, grid: Grid, dirs: Sequence[str],
+                want: Sequence[str], scheme: str) -> tuple[dict[str, np.ndarray],
+                                                           dict[str, np.ndarray]]:
+    """Fields and wanted targets from the filtered quantities ``bar`` (``rho``, ``p``, and
+    ``pdiv`` = bar(p d_k u_k)) and the Favre averages ``tilde`` (``("u", i)``, ``T``,
+    ``("uu", i, j)``, ``("uT", j)``), all on ``grid``."""
     rho_bar = bar["rho"]
-    ut = {i: bar[("m", i)] / rho_bar for i in dirs}
-    Tt = bar["rhoT"] / rho_bar
+    ut = {i: tilde[("u", i)] for i in dirs}
+    Tt = tilde["T"]
     fields = {DENSITY: rho_bar, **{VELOCITY_OF[i]: ut[i] for i in dirs},
               PRESSURE: bar["p"], TEMPERATURE: Tt}
-    stress = ({f"tau_{i}{j}": bar[("uu", i, j)] - rho_bar * ut[i] * ut[j]
-               for i, j in stress_pairs(grid.dims)} if ("uu", dirs[0], dirs[0]) in bar else {})
+    # bar(rho f g) - bar(rho) f~ g~ = bar(rho) ((f g)~ - f~ g~)
+    stress = ({f"tau_{i}{j}": rho_bar * (tilde[("uu", i, j)] - ut[i] * ut[j])
+               for i, j in stress_pairs(grid.dims)}
+              if ("uu", dirs[0], dirs[0]) in tilde else {})
     out = dict(stress)
     for j in dirs:
-        if ("uT", j) in bar:
-            out[f"heat_flux_{j}"] = bar[("uT", j)] - rho_bar * ut[j] * Tt
+        if ("uT", j) in tilde:
+            out[f"heat_flux_{j}"] = rho_bar * (tilde[("uT", j)] - ut[j] * Tt)
     want = set(want)
     if want & {"pi", "pressure_dilatation"}:
         grad = {}
