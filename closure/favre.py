@@ -37,7 +37,7 @@ supported here yet.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -104,6 +104,60 @@ def thermodynamic_fields(fields: Mapping[str, np.ndarray],
     raise UserError(f"compressible coarse-graining needs pressure 'p' and temperature 'T': the "
                     f"snapshot has no {missing}; map them with --var, or give the gas "
                     "constant so that one follows from p = rho R T")
+
+
+#: Global attributes of a compressible file recorded in models and coarse files
+#: (closure synth writes them); gamma, gas_constant and prandtl can be given as options.
+GAS_ATTRIBUTES = ("gamma", "gas_constant", "prandtl", "specific_heat_pressure",
+                  "viscosity_reference", "viscosity_reference_temperature", "viscosity_exponent")
+
+
+def gas_constants(src, given: Mapping[str, float] | None = None) -> dict[str, float]:
+    """The gas constants among an opened input's global attributes (numbers only), each
+    replaced by ``given``'s (the --gamma / --gas-constant / --prandtl options)."""
+    out, attrs = {}, getattr(src, "attrs", None) or {}
+    for k in GAS_ATTRIBUTES:
+        try:
+            out[k] = float(attrs[k])
+        except (KeyError, TypeError, ValueError):
+            continue
+    out.update({str(k): float(v) for k, v in (given or {}).items()})
+    return out
+
+
+def open_compressible(opener: Callable[[tuple[str, ...]], object],
+                      given: Mapping[str, float] | None = None, scalars: Sequence[str] = (),
+                      variables: Mapping[str, str] | None = None):
+    """Open a compressible input with rho, p and T besides the velocity and ``scalars``:
+    ``opener(scalars)`` opens it (closure.io.open_input / open_fields with the input options).
+    With the gas constant known (``given`` or the file's ``gas_constant`` attribute) one of p
+    and T suffices, the other following from p = rho R T (:func:`thermodynamic_fields`);
+    ``variables`` (the --var mapping) names fields whose absence is an error as it stands.
+    UserError naming what is missing otherwise."""
+    from closure.errors import InputFileError
+
+    every = tuple(dict.fromkeys((*scalars, DENSITY, PRESSURE, TEMPERATURE)))
+    try:
+        return opener(every)
+    except InputFileError as exc:
+        first = exc
+    mapped = variables or {}
+    for drop in (TEMPERATURE, PRESSURE):
+        if drop in mapped:  # a variable the user named: its absence is the error to report
+            continue
+        try:
+            src = opener(tuple(s for s in every if s != drop))
+        except InputFileError:
+            continue
+        if gas_constants(src, given).get("gas_constant") is None:
+            src.close()
+            what = "temperature" if drop == TEMPERATURE else "pressure"
+            raise UserError(f"the input has no {what} {drop!r}: give the gas constant "
+                            "(--gas-constant, spec gas.gas_constant, or a global attribute "
+                            f"gas_constant) so that it follows from p = rho R T, or map {drop} "
+                            "with --var") from None
+        return src
+    raise first
 
 
 def _check(snapshot: Snapshot, cg: CoarseGraining) -> None:

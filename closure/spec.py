@@ -175,6 +175,25 @@ class ReferenceNetSpec(_Strict):
         return v
 
 
+class GasSpec(_Strict):
+    """Gas constants of compressible data (a compressible library): each one given here
+    overrides the input file's global attribute of the same name; all are recorded in the
+    model. With ``gas_constant`` known, the input needs only one of pressure and temperature
+    (the other from p = rho R T)."""
+
+    gamma: Annotated[float, Field(gt=1, le=10)] | None = Field(
+        None, description="ratio of specific heats c_p / c_v")
+    gas_constant: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = Field(
+        None, description="specific gas constant R in p = rho R T, in the input's units "
+        "(J kg-1 K-1 for SI data)")
+    prandtl: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = Field(
+        None, description="Prandtl number")
+
+    def given(self) -> dict[str, float]:
+        """The constants set here (name -> value)."""
+        return {k: float(v) for k, v in self.model_dump().items() if v is not None}
+
+
 class JobSpec(_Strict):
     """A closure-discovery job: read, coarse-grain, fit, score, store."""
 
@@ -196,6 +215,9 @@ class JobSpec(_Strict):
     fine_float32: bool = Field(
         False, description="run the fine-grid pass in float32 by slabs (half the memory; "
         "relative error about 1e-6 against float64)")
+    gas: GasSpec | None = Field(
+        None, description="gas constants of compressible data, overriding the input file's "
+        "attributes (compressible libraries only)")
 
     @field_validator("target")
     @classmethod
@@ -231,6 +253,8 @@ class JobSpec(_Strict):
         d["input"] = {k: v for k, v in d["input"].items() if k not in ("path", "dataset_id")}
         if not d["reference_net"]["enabled"]:
             del d["reference_net"]  # jobs without a network keep their earlier fingerprint
+        if d.get("gas") is None or not any(v is not None for v in d["gas"].values()):
+            d.pop("gas", None)  # nor do jobs without gas constants
         return d
 
 
