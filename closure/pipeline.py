@@ -506,7 +506,8 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
 
                 out.append(favre_coarse_grain(
                     snap, cg, targets=plan["components"],
-                    gas_constant=(plan.get("gas") or {}).get("gas_constant")))
+                    gas_constant=(plan.get("gas") or {}).get("gas_constant"),
+                    scheme=spec.scheme, derivative_passes=derivative_passes(library)))
             elif _by_slabs(spec, src):
                 from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
 
@@ -905,11 +906,14 @@ def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStat
 
     train, test = excluded(plan["train"]), excluded(plan["test"])
     total = per * len(plan["snapshots"])
+    # Favre coarse-graining has one land convention: filters normalised over the fluid
+    # (weight rho times the mask, closure.favre)
+    convention = "fluid" if _compressible(spec) else spec.filter.land
     note = (f"land: {train + test} of {total} coarse points ({(train + test) / total:.1%}; "
             f"{train} fitted, {test} held out) left out of the fit and scores because their "
             f"filter footprint or {spec.scheme} derivative stencil touches land (convention "
-            f"'{spec.filter.land}')")
-    return {"convention": spec.filter.land, "coarse_points": total,
+            f"'{convention}')")
+    return {"convention": convention, "coarse_points": total,
             "excluded_points": train + test, "excluded_train": train, "excluded_test": test,
             "rule": "footprint (Gaussian to 6 standard deviations, box support, block) or "
                     "derivative stencil touches land", "note": note}

@@ -215,3 +215,49 @@ def test_report_of_a_model_fitted_on_pressure_only_data(demo, tmp_path):
     report = json.loads((tmp_path / "report" / "report.json").read_text())
     assert report["apriori"]["agreement"]["heat_flux_x"]["r2"] == pytest.approx(
         model.scores["test"]["r2_heat_flux_x"], rel=1e-9)
+
+
+# ------------------------------------------------------------------ land
+
+@pytest.fixture(scope="module")
+def land_file(demo, tmp_path_factory):
+    """The demo with an island: NaN in every variable there (NaN marks land, closure.io)."""
+    with xr.open_dataset(demo) as ds:
+        out = ds.load()
+    for name in ("rho", "u", "v", "p", "T"):
+        out[name][:, 10:16, 4:12] = np.nan
+    path = tmp_path_factory.mktemp("land") / "island.nc"
+    out.to_netcdf(path)
+    return path
+
+
+def test_coarse_grain_compressible_with_land(land_file, tmp_path, capsys):
+    out = tmp_path / "coarse.nc"
+    assert main(["coarse-grain", str(land_file), "-o", str(out), "--compressible", "--ratio",
+                 "2", "--filter", "box"]) == 0
+    assert "touched by land" in capsys.readouterr().out
+    src = open_fields(land_file, scalars=("rho", "p", "T"))
+    cg = make_coarse_graining("box", src.grid, 2)
+    coarse = open_coarse(out)
+    try:
+        want = favre_coarse_grain(src.snapshot(1), cg)
+        got = coarse.snapshot(1)
+        assert want.valid is not None and not want.valid.all()
+        np.testing.assert_array_equal(got.valid, want.valid)
+        for name in want.targets:
+            np.testing.assert_array_equal(got.targets[name][want.valid],
+                                          want.targets[name][want.valid])
+    finally:
+        coarse.close()
+        src.close()
+
+
+def test_discover_compressible_with_land(land_file, capsys):
+    spec = _spec(land_file, scheme="fd4")
+    model = discover(spec)
+    land = model.settings["land"]
+    assert land["convention"] == "fluid" and land["excluded_points"] > 0
+    assert any("land:" in w for w in model.warnings)
+    assert np.isfinite(model.scores["test"]["r2"])
+    with pytest.raises(UserError, match="use --scheme fd2 or fd4"):
+        discover(_spec(land_file))

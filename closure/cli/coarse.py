@@ -166,15 +166,12 @@ def _coarse_grain_compressible(inputs, output: Path, *, filter, width, width_uni
     if scalar:
         raise OptionError("--scalar with --compressible: the Favre coarse-graining carries "
                           "rho, the velocity, p and T only; drop --scalar")
-    if mask is not None:
-        raise OptionError("--mask with --compressible: Favre coarse-graining does not support "
-                          "land points yet; give data without missing values")
     if float32:
         raise OptionError("--float32 with --compressible: the Favre pass runs in float64 in "
                           "memory; drop --float32")
     inp = InputSpec.model_validate(input_dict(
-        inputs, var=var, group=group, levels=levels, spacing=spacing, snapshots=snapshots,
-        non_periodic=non_periodic))
+        inputs, var=var, group=group, mask=mask, levels=levels, spacing=spacing,
+        snapshots=snapshots, non_periodic=non_periodic))
     with open_compressible(lambda scalars: open_input(inp, scalars), gas,
                            variables=inp.variables) as src:
         for p in src.paths:
@@ -198,7 +195,7 @@ def _coarse_grain_compressible(inputs, output: Path, *, filter, width, width_uni
             source = src.describe()
             if level is not None:
                 source["level"] = level
-            pi_sum, back, count = 0.0, 0, 0
+            pi_sum, back, count, excluded = 0.0, 0, 0, 0
             with CoarseWriter(target, source, gas=constants) as writer, \
                     _progress(len(indices)) as advance:
                 for i in indices:
@@ -206,16 +203,22 @@ def _coarse_grain_compressible(inputs, output: Path, *, filter, width, width_uni
                                             gas_constant=constants.get("gas_constant"))
                     writer.append(cs)
                     pi = cs.targets["pi"]
+                    if cs.valid is not None:  # land: only points whose footprint avoids it
+                        excluded += int(cs.valid.size - np.count_nonzero(cs.valid))
+                        pi = pi[cs.valid]
                     pi_sum += float(pi.sum())
                     back += int(np.count_nonzero(pi < 0))
                     count += pi.size
                     advance()
             shape = " x ".join(map(str, cg.coarse.shape))
             recorded = ", ".join(f"{k} {v:g}" for k, v in constants.items()) or "none recorded"
+            stats = (f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}"
+                     if count else "no coarse point clear of land")
+            land_note = (f"; {excluded} coarse point(s) touched by land (NaN subgrid terms, "
+                         "filters normalised over the fluid)" if excluded else "")
             typer.echo(f"wrote {target}: {len(indices)} snapshot(s), coarse grid {shape} "
                        f"({', '.join(cg.coarse.dims)}), Favre ({cg.kind} filter, ratio "
-                       f"{cg.ratio}), mean pi {pi_sum / count:.4g}, backscatter fraction "
-                       f"{back / count:.3f}; gas constants: {recorded}")
+                       f"{cg.ratio}), {stats}{land_note}; gas constants: {recorded}")
 
 
 def _progress(total: int):

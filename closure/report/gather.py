@@ -155,6 +155,7 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
     from closure.library_compressible import PRESETS
 
+    passes = derivative_passes(model.library)
     if model.library.name in PRESETS:  # compressible models: Favre targets
         from closure.favre import favre_coarse_grain
 
@@ -162,11 +163,11 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
         def coarse(snap):
             return favre_coarse_grain(snap, cg, targets=model.components,
-                                      gas_constant=gas.get("gas_constant"))
+                                      gas_constant=gas.get("gas_constant"),
+                                      scheme=model.scheme, derivative_passes=passes)
     else:
         land = str((getattr(model, "settings", None) or {}).get("land", {}).get("convention")
                    or "zero")
-        passes = derivative_passes(model.library)
 
         def coarse(snap):
             return coarse_grain_snapshot(snap, cg, info["scalars"], land=land,
