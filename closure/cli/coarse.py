@@ -64,7 +64,9 @@ def coarse_grain(
     compressible: bool = typer.Option(
         False, "--compressible", help="compressible data: read rho, u, v[, w], p and T (one "
         "of p and T suffices with the gas constant) and write Favre-filtered fields and the "
-        "exact Favre subgrid terms (stress, force, heat flux, pressure-dilatation, transfer)"),
+        "exact Favre subgrid terms (stress, force, heat flux, pressure-dilatation, transfer); "
+        "land is always filtered over the fluid only (weight rho times the mask), whatever "
+        "--land says"),
     gamma: float | None = GAMMA,
     gas_constant: float | None = GAS_CONSTANT,
     prandtl: float | None = PRANDTL,
