@@ -207,10 +207,11 @@ def library_refused(raw: str) -> str:
     """The one answer to a library that is neither a preset nor a readable terms file under
     the data roots, whatever the reason (missing, unreadable, outside, not a terms file), so
     the answer tells nothing about files the caller may not read."""
-    from closure.library import PRESETS
+    from closure.library_compressible import every_preset
 
+    presets = every_preset()
     shown = raw if len(raw) <= 200 else raw[:200] + "..."
-    return (f"library {shown!r} is not a preset ({', '.join(PRESETS)}) nor a readable terms "
+    return (f"library {shown!r} is not a preset ({', '.join(presets)}) nor a readable terms "
             "file (.json, .yaml) under the server's data roots: give a preset, the term "
             "definitions inline (the terms file's content as JSON), or a terms file under a "
             "data root")
@@ -221,10 +222,11 @@ def resolve_library(spec: JobSpec, roots: Sequence[Path], dims: Sequence[str]):
     A terms file named by path must lie under the data roots; it is read here and its
     content put inline, so no worker ever reads a library file. Any failure to read or parse
     it answers :func:`library_refused`, never quoting the file."""
-    from closure.library import PRESETS, terms_from_inline
+    from closure.library import terms_from_inline
+    from closure.library_compressible import every_preset
 
     lib = spec.library
-    if not isinstance(lib, str) or lib in PRESETS:
+    if not isinstance(lib, str) or lib in every_preset():
         return lib
     check_path_text(lib, "library")
     try:

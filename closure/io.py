@@ -1275,15 +1275,54 @@ def _long_name(name: str) -> str:
     return f"filtered {name}"
 
 
-def _units_of(name: str, units: Mapping[str, str], length: str | None) -> str | None:
+#: Favre targets (closure.favre) as length^a time^b times powers of rho, p and T
+_FAVRE_UNITS = {"tau_": (2, -2, {"rho": 1}), "force_": (1, -2, {"rho": 1}),
+                "heat_flux_": (1, -1, {"rho": 1, "T": 1}),
+                "pressure_dilatation": (0, -1, {"p": 1}), "pi": (2, -3, {"rho": 1})}
+
+
+def _units_of(name: str, units: Mapping[str, str], length: str | None,
+              compressible: bool = False) -> str | None:
     """Units of an output variable from the input's units, simplified (closure.units); None
-    where not derivable."""
-    from closure.units import variable_units
+    where not derivable. ``compressible``: the Favre targets of closure.favre (stress rho u u,
+    heat flux rho u T, pressure-dilatation p / time, transfer rho u^3 / length)."""
+    from closure.units import Units, simplify, variable_units
 
     try:
+        for key, (a, b, powers) in _FAVRE_UNITS.items() if compressible else ():
+            if name == key or (key.endswith("_") and name.startswith(key)):
+                vel = {simplify(units[c]) for c in ("u", "v", "w") if units.get(c)}
+                base = Units(simplify(length), vel.pop() if len(vel) == 1 else None, None,
+                             {c: str(units[c]) for c in powers if units.get(c)})
+                if any(c not in base.scalars for c in powers):
+                    return None
+                return base.dims(a, b, **powers)
         return variable_units(name, units, length)
     except (ValueError, KeyError):  # units closure.units does not parse: say nothing
         return None
+
+
+def _favre_long_name(name: str) -> str:
+    """Long names of the fields and targets of a Favre-filtered (compressible) coarse file."""
+    if name in ("u", "v", "w"):
+        return f"Favre-filtered {DIRECTION_OF[name]} velocity bar(rho {name}) / bar(rho)"
+    fixed = {"rho": "filtered density bar(rho)", "p": "filtered pressure bar(p)",
+             "T": "Favre-filtered temperature bar(rho T) / bar(rho)",
+             "pressure_dilatation": "subgrid pressure-dilatation bar(p d_k u_k) - bar(p) "
+                                    "d_k u~_k",
+             "pi": "subgrid energy transfer -tau_ij S~_ij of the Favre strain rate (dilatation "
+                   "included; positive: resolved energy drained to subgrid scales)"}
+    if name in fixed:
+        return fixed[name]
+    if name.startswith("tau_"):
+        i, j = VELOCITY_OF[name[4]], VELOCITY_OF[name[5]]
+        return f"Favre subgrid stress bar(rho {i} {j}) - bar(rho) {i}~ {j}~"
+    if name.startswith("force_"):
+        return f"subgrid force d_j tau_{name[6:]}j (divergence of the Favre subgrid stress)"
+    if name.startswith("heat_flux_"):
+        u = VELOCITY_OF[name[-1]]
+        return f"subgrid heat flux along {name[-1]}: bar(rho {u} T) - bar(rho) {u}~ T~"
+    return _long_name(name)
 
 
 def _filter_attrs(cg: CoarseGraining) -> dict:
@@ -1325,6 +1364,11 @@ def _filter_attrs(cg: CoarseGraining) -> dict:
     return attrs
 
 
+#: global attribute of coarse files of compressible data (closure.favre)
+FAVRE_NOTE = ("compressible data, density-weighted (Favre) filtering: rho and p are filtered, "
+              "u, v, w and T are Favre averages bar(rho f) / bar(rho); the subgrid terms are "
+              "the exact Favre ones (closure.favre)")
+
 #: global attribute of coarse files written from data with land
 LAND_NOTE = ("land is NaN: filtered fields where the coarse point is land, subgrid terms "
              "wherever the filter footprint (or a fine-grid derivative stencil) touches land")
@@ -1347,8 +1391,11 @@ class CoarseWriter:
     ``closure_name`` / ``closure_role`` attributes so the file reads back with our names.
     """
 
-    def __init__(self, path: str | os.PathLike, source: Mapping | None = None, title: str = ""):
+    def __init__(self, path: str | os.PathLike, source: Mapping | None = None, title: str = "",
+                 gas: Mapping[str, float] | None = None):
         self.path = Path(path)
+        # compressible (Favre) snapshots: Favre names and units, the gas constants recorded
+        self.gas = None if gas is None else {str(k): float(v) for k, v in gas.items()}
         self.source = dict(source or {})
         inputs = list(self.source.get("files") or [])
         if not inputs and self.source.get("file"):
@@ -1405,8 +1452,8 @@ class CoarseWriter:
                 taken.add(theirs)
                 var = nc.createVariable(theirs, "f8", (TIME, *grid.dims), zlib=True,
                                         complevel=1, chunksizes=chunks)
-                var.long_name = _long_name(ours)
-                un = _units_of(ours, units, grid.units)
+                var.long_name = _long_name(ours) if self.gas is None else _favre_long_name(ours)
+                un = _units_of(ours, units, grid.units, compressible=self.gas is not None)
                 if un:
                     var.units = un
                 var.closure_name = ours
@@ -1421,6 +1468,10 @@ class CoarseWriter:
             "source": f"closure {_version()}",
         }
         attrs.update(_filter_attrs(cs.coarse_graining))
+        if self.gas is not None:
+            attrs["closure_compressible"] = np.int32(1)
+            attrs["favre_note"] = FAVRE_NOTE
+            attrs.update(self.gas)  # gamma, gas_constant, prandtl, ... as the input names them
         if cs.land is not None:
             attrs["land_convention"] = cs.land
             attrs["land_note"] = LAND_NOTE

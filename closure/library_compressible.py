@@ -89,6 +89,15 @@ from closure.library import (
 )
 
 PRESETS = ("compressible", "compressible_classic", "compressible_minimal")
+
+
+def every_preset() -> tuple[str, ...]:
+    """Every preset library name (closure.library's and the compressible ones): what a queued
+    job may name besides inline term definitions."""
+    from closure.library import PRESETS as PLAIN
+
+    return (*PLAIN, *PRESETS)
+
 TARGETS = ("stress", "heat_flux", "pressure_dilatation")
 #: Fields of a Favre coarse snapshot that terms may use besides the velocity.
 THERMO = ("rho", "p", "T")

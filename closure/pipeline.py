@@ -136,7 +136,41 @@ def _open(spec: JobSpec):
         coarse = open_coarse_input(paths[0])  # a coarse product: no second fine pass
         if coarse is not None:
             return coarse
+    if _compressible(spec):
+        return _open_compressible(spec)
     return open_input(spec.input, _scalars(spec))
+
+
+def _open_compressible(spec: JobSpec):
+    """The input of a compressible job (closure.favre.open_compressible)."""
+    from closure.favre import open_compressible
+    from closure.io import open_input
+
+    return open_compressible(lambda scalars: open_input(spec.input, scalars),
+                             spec.gas.given() if spec.gas is not None else None,
+                             spec.input.scalars, spec.input.variables)
+
+
+def _gas(spec: JobSpec, src) -> dict:
+    """Gas constants of a compressible job: the file's attributes, overridden by spec.gas."""
+    from closure.favre import gas_constants
+
+    return gas_constants(src, spec.gas.given() if spec.gas is not None else None)
+
+
+def _check_gas(spec: JobSpec) -> None:
+    if spec.gas is not None and spec.gas.given() and not _compressible(spec):
+        from closure.library_compressible import PRESETS
+
+        raise UserError(f"gas constants (spec gas) are for compressible data: choose a "
+                        f"compressible library ({', '.join(PRESETS)}), or drop them")
+
+
+def _read_scalars(spec: JobSpec, src) -> list[str]:
+    """The scalars the plan reads: in compressible mode only those of p and T the input has."""
+    if not _compressible(spec) or hasattr(src, "coarse_graining"):
+        return list(_scalars(spec))
+    return [s for s in _scalars(spec) if s in src.scalars]
 
 
 def open_planned(plan: Mapping):
@@ -262,6 +296,7 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
     n_test = min(n_test, len(chosen) - 1)
     train, test = chosen[:len(chosen) - n_test], chosen[len(chosen) - n_test:]
 
+    _check_gas(spec)
     cg = _coarse_graining(spec, grid)
     if getattr(spec, "device", "numpy") != "numpy":
         from closure.backend import get_backend
@@ -295,7 +330,7 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "input": {"path": str(first), "paths": [str(q) for q in src.paths], "sha256": sha,
                   **(_stamp(first) if first.is_file() else {}),
                   "files": input_stamps(src.paths),
-                  "variables": dict(spec.input.variables), "scalars": list(_scalars(spec)),
+                  "variables": dict(spec.input.variables), "scalars": _read_scalars(spec, src),
                   "periodic": bool(spec.input.periodic), "n_snapshots": int(n),
                   "options": {"group": spec.input.group, "mask": spec.input.mask,
                               "levels": levels,
@@ -321,24 +356,8 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         "warnings": list(src.warnings) + list(cg.warnings()) +
         _compressibility_warning(src, chosen[0], library, levels, spec),
         "notes": list(src.notes),
-        **({"gas": _gas_constants(src)} if _compressible(spec) else {}),
+        **({"gas": _gas(spec, src)} if _compressible(spec) else {}),
     }
-
-
-#: Global attributes of a compressible file recorded in the model (closure synth writes them).
-GAS_ATTRIBUTES = ("gamma", "gas_constant", "prandtl", "specific_heat_pressure",
-                  "viscosity_reference", "viscosity_reference_temperature", "viscosity_exponent")
-
-
-def _gas_constants(src) -> dict:
-    """The gas constants among the file's global attributes (numbers only)."""
-    out, attrs = {}, getattr(src, "attrs", None) or {}
-    for k in GAS_ATTRIBUTES:
-        try:
-            out[k] = float(attrs[k])
-        except (KeyError, TypeError, ValueError):
-            continue
-    return out
 
 
 def check_options(spec: JobSpec, grid: Grid, velocity, n_snapshots: int) -> None:
@@ -350,6 +369,7 @@ def check_options(spec: JobSpec, grid: Grid, velocity, n_snapshots: int) -> None
     if chosen < 2:
         raise UserError(f"{chosen} snapshot(s) selected: a held-out score needs at least 2 "
                         "(one to fit, one to test); add snapshots")
+    _check_gas(spec)
     cg = _coarse_graining(spec, grid)
     check_scheme(spec.scheme, cg.coarse)
     check_coarse_points(spec.scheme, cg.coarse, spec.filter.ratio)
@@ -488,7 +508,10 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
             if _compressible(spec):
                 from closure.favre import favre_coarse_grain
 
-                out.append(favre_coarse_grain(snap, cg, targets=plan["components"]))
+                out.append(favre_coarse_grain(
+                    snap, cg, targets=plan["components"],
+                    gas_constant=(plan.get("gas") or {}).get("gas_constant"),
+                    scheme=spec.scheme, derivative_passes=derivative_passes(library)))
             elif _on_backend(spec, snap, cg):
                 out.append(_backend_coarse(spec, plan, snap, cg))
             elif _by_slabs(spec, src):
@@ -908,11 +931,14 @@ def land_record(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStat
 
     train, test = excluded(plan["train"]), excluded(plan["test"])
     total = per * len(plan["snapshots"])
+    # Favre coarse-graining has one land convention: filters normalised over the fluid
+    # (weight rho times the mask, closure.favre)
+    convention = "fluid" if _compressible(spec) else spec.filter.land
     note = (f"land: {train + test} of {total} coarse points ({(train + test) / total:.1%}; "
             f"{train} fitted, {test} held out) left out of the fit and scores because their "
             f"filter footprint or {spec.scheme} derivative stencil touches land (convention "
-            f"'{spec.filter.land}')")
-    return {"convention": spec.filter.land, "coarse_points": total,
+            f"'{convention}')")
+    return {"convention": convention, "coarse_points": total,
             "excluded_points": train + test, "excluded_train": train, "excluded_test": test,
             "rule": "footprint (Gaussian to 6 standard deviations, box support, block) or "
                     "derivative stencil touches land", "note": note}

@@ -187,6 +187,25 @@ class ReferenceNetSpec(_Strict):
         return v
 
 
+class GasSpec(_Strict):
+    """Gas constants of compressible data (a compressible library): each one given here
+    overrides the input file's global attribute of the same name; all are recorded in the
+    model. With ``gas_constant`` known, the input needs only one of pressure and temperature
+    (the other from p = rho R T)."""
+
+    gamma: Annotated[float, Field(gt=1, le=10)] | None = Field(
+        None, description="ratio of specific heats c_p / c_v")
+    gas_constant: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = Field(
+        None, description="specific gas constant R in p = rho R T, in the input's units "
+        "(J kg-1 K-1 for SI data)")
+    prandtl: Annotated[float, Field(gt=0, allow_inf_nan=False)] | None = Field(
+        None, description="Prandtl number")
+
+    def given(self) -> dict[str, float]:
+        """The constants set here (name -> value)."""
+        return {k: float(v) for k, v in self.model_dump().items() if v is not None}
+
+
 class JobSpec(_Strict):
     """A closure-discovery job: read, coarse-grain, fit, score, store."""
 
@@ -211,6 +230,9 @@ class JobSpec(_Strict):
     device: Literal["numpy", "cpu", "cuda", "auto"] = Field(
         "numpy", description="array backend of the fine-grid pass of periodic data: numpy, or "
         "torch on cpu, cuda, or auto (cuda when available); results agree to 1e-10")
+    gas: GasSpec | None = Field(
+        None, description="gas constants of compressible data, overriding the input file's "
+        "attributes (compressible libraries only)")
 
     @field_validator("target")
     @classmethod
@@ -251,6 +273,8 @@ class JobSpec(_Strict):
             d.pop(key, None)
         if not d.get("fine_float32"):
             d.pop("fine_float32", None)
+        if d.get("gas") is None or not any(v is not None for v in d["gas"].values()):
+            d.pop("gas", None)  # nor do jobs without gas constants
         return d
 
 

@@ -272,9 +272,17 @@ def test_user_errors_say_what_to_change():
         favre_coarse_grain(only_u, cg)
     with pytest.raises(UserError, match="choose from"):
         favre_coarse_grain(snap, cg, targets=["flux_c_x"])
-    masked = Snapshot(snap.fields, grid, 0, None, mask=np.ones(grid.shape, bool))
-    with pytest.raises(UserError, match="mask"):
-        favre_coarse_grain(masked, cg)
+    land = np.ones(grid.shape, bool)
+    land[:3, :3] = False
+    masked = Snapshot(snap.fields, grid, 0, None, mask=land)
+    with pytest.raises(UserError, match="use --filter gaussian or box"):
+        favre_coarse_grain(masked, make_coarse_graining("spectral", grid, 2))
+    with pytest.raises(UserError, match="use --scheme fd2 or fd4"):
+        favre_coarse_grain(masked, cg, scheme="spectral")
+    bad_land = Snapshot({**snap.fields, "rho": np.where(land, -1.0, 1.0)}, grid, 0, None,
+                        mask=land)
+    with pytest.raises(UserError, match="at every fluid point"):
+        favre_coarse_grain(bad_land, cg)
     other = make_coarse_graining("gaussian", Grid.regular((32, 32), TWO_PI, dims=("y", "x")), 2)
     with pytest.raises(UserError, match="does not match"):
         favre_coarse_grain(snap, other)
@@ -306,3 +314,40 @@ def test_asking_for_some_targets_gives_the_same_values(kind):
                                        atol=1e-13 * np.max(np.abs(full.targets[name])))
         for name, value in full.fields.items():
             np.testing.assert_allclose(part.fields[name], value, rtol=1e-13)
+
+
+def _with_land(snap, land):
+    """The snapshot with land where ``land`` is True: NaN in every field there, and the mask."""
+    fields = {k: np.where(land, np.nan, v) for k, v in snap.fields.items()}
+    return Snapshot(fields, snap.grid, snap.index, snap.time, mask=~land)
+
+
+@pytest.mark.parametrize("kind", ["gaussian", "box", "block"])
+def test_land_leaves_the_valid_points_as_without_land(kind):
+    # the valid-point rule (closure.residuals.land_validity, here favre_validity): a coarse
+    # point whose filter footprint and derivative stencils see no land has the values of the
+    # same data without land. Bounded grid: real-space filters and fd4 derivatives either way
+    grid = Grid.regular((48, 48), TWO_PI, dims=("y", "x"), periodic=False)
+    snap = compressible_snapshot(grid, np.random.default_rng(11), top_mode=5, density_rms=0.3)
+    land = np.zeros(grid.shape, bool)
+    land[18:26, 20:30] = True
+    cg = make_coarse_graining(kind, grid, 2)
+    plain = favre_coarse_grain(snap, cg)
+    wet = favre_coarse_grain(_with_land(snap, land), cg, scheme="fd4")
+    assert wet.land == "fluid"
+    valid = wet.valid
+    assert 0 < valid.sum() < valid.size
+    for group, ref in ((wet.targets, plain.targets), (wet.fields, plain.fields)):
+        for name, a in group.items():
+            assert np.all(np.isfinite(a)), name
+            scale = float(np.max(np.abs(ref[name])))
+            np.testing.assert_allclose(a[valid], ref[name][valid], rtol=0,
+                                       atol=1e-11 * scale, err_msg=name)
+    # the coarse land points hold 0
+    assert np.all(wet.fields["rho"][~wet.fluid] == 0)
+    # an all-fluid mask is no mask: bit for bit the result without one
+    none = favre_coarse_grain(Snapshot(snap.fields, grid, 0, None,
+                                       mask=np.ones(grid.shape, bool)), cg)
+    for name in plain.targets:
+        np.testing.assert_array_equal(none.targets[name], plain.targets[name])
+    assert none.valid is None

@@ -168,12 +168,13 @@ def plan_task(job_id: str) -> dict:
     st.update_job(job_id, state="running", only_if_active=True)
     q.set_progress(conn, job_id, phase="plan")
     from closure import pipeline
-    from closure.library import PRESETS
+    from closure.library_compressible import every_preset
 
-    if isinstance(spec.library, str) and spec.library not in PRESETS:
+    presets = every_preset()
+    if isinstance(spec.library, str) and spec.library not in presets:
         # the API puts a terms file's content inline: a queued job never names a file
         return _fail(conn, job_id, f"library {spec.library_label[:200]!r}: a queued job takes "
-                     f"a preset ({', '.join(PRESETS)}) or term definitions inline, not a file")
+                     f"a preset ({', '.join(presets)}) or term definitions inline, not a file")
     try:
         for path in spec.input.paths if spec.input.path is not None else [""]:
             check_input_file(path)

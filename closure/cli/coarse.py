@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 import typer
 
+from closure.cli.discover import GAMMA, GAS_CONSTANT, PRANDTL
 from closure.cli.inputs import (
     GROUP,
     INPUTS,
@@ -60,9 +61,18 @@ def coarse_grain(
         "TMPDIR (default: half the machine's memory)", show_default=False),
     float32: bool = typer.Option(False, "--float32",
                                  help="fine-grid pass in float32 (relative error ~1e-6)"),
+    compressible: bool = typer.Option(
+        False, "--compressible", help="compressible data: read rho, u, v[, w], p and T (one "
+        "of p and T suffices with the gas constant) and write Favre-filtered fields and the "
+        "exact Favre subgrid terms (stress, force, heat flux, pressure-dilatation, transfer); "
+        "land is always filtered over the fluid only (weight rho times the mask), whatever "
+        "--land says"),
+    gamma: float | None = GAMMA,
+    gas_constant: float | None = GAS_CONSTANT,
+    prandtl: float | None = PRANDTL,
 ) -> None:
     """Filter and coarsen every snapshot; write filtered fields and exact subgrid terms."""
-    from closure.cli.discover import check_output, level_output
+    from closure.cli.discover import check_output, gas_options, level_output
     from closure.filters import LAND_CONVENTIONS, make_coarse_graining
     from closure.io import CoarseWriter
     from closure.outofcore import (
@@ -78,6 +88,15 @@ def coarse_grain(
 
     limit = parse_memory(memory_limit)
     check_output(output, inputs)
+    gas = gas_options(gamma, gas_constant, prandtl)
+    if compressible:
+        return _coarse_grain_compressible(
+            inputs, output, filter=filter, width=width, width_units=width_units, ratio=ratio,
+            var=var, scalar=scalar, group=group, mask=mask, levels=levels, spacing=spacing,
+            snapshots=snapshots, non_periodic=non_periodic, float32=float32, gas=gas)
+    if gas:
+        raise OptionError("--gamma, --gas-constant and --prandtl are gas constants of "
+                          "compressible data: add --compressible, or drop them")
     with open_options(inputs, var=var, scalar=scalar, group=group, mask=mask, levels=levels,
                       spacing=spacing, snapshots=snapshots, non_periodic=non_periodic) as src:
         for p in src.paths:
@@ -132,6 +151,76 @@ def coarse_grain(
             typer.echo(f"wrote {target}: {n} snapshot(s), coarse grid {shape} "
                        f"({', '.join(cg.coarse.dims)}), {cg.kind} filter, ratio {cg.ratio}, "
                        f"{stats}{land_note}")
+
+
+def _coarse_grain_compressible(inputs, output: Path, *, filter, width, width_units, ratio, var,
+                               scalar, group, mask, levels, spacing, snapshots, non_periodic,
+                               float32, gas) -> None:
+    """``coarse-grain --compressible``: Favre filtering (closure.favre) of every snapshot, in
+    memory; the gas constants (file attributes, overridden by the options) go into the file."""
+    from closure.cli.discover import level_output
+    from closure.cli.inputs import input_dict
+    from closure.favre import favre_coarse_grain, gas_constants, open_compressible
+    from closure.filters import make_coarse_graining
+    from closure.io import CoarseWriter, open_input
+    from closure.spec import InputSpec
+
+    if scalar:
+        raise OptionError("--scalar with --compressible: the Favre coarse-graining carries "
+                          "rho, the velocity, p and T only; drop --scalar")
+    if float32:
+        raise OptionError("--float32 with --compressible: the Favre pass runs in float64 in "
+                          "memory; drop --float32")
+    inp = InputSpec.model_validate(input_dict(
+        inputs, var=var, group=group, mask=mask, levels=levels, spacing=spacing,
+        snapshots=snapshots, non_periodic=non_periodic))
+    with open_compressible(lambda scalars: open_input(inp, scalars), gas,
+                           variables=inp.variables) as src:
+        for p in src.paths:
+            if output.exists() and output.resolve() == p.resolve():
+                raise OptionError(f"the output {output} is the input file: choose another -o "
+                                  "(input files are never written)")
+        echo_notes(src.notes, src.warnings)
+        constants = gas_constants(src, gas)
+        cg = make_coarse_graining(filter, src.grid, ratio, width, width_units)
+        for w in cg.warnings():
+            typer.echo(f"warning: {w}", err=True)
+        chosen = parse_indices(snapshots)
+        indices = list(range(src.n_snapshots)) if chosen is None else chosen
+        bad = [i for i in indices if not 0 <= i < src.n_snapshots]
+        if bad:
+            raise OptionError(f"--snapshots {bad} out of range: the input has "
+                              f"{src.n_snapshots} snapshot(s), indices 0..{src.n_snapshots - 1}")
+        stack = [None] if src.levels is None else list(src.levels)
+        for level in stack:
+            target = output if level is None else level_output(output, level)
+            source = src.describe()
+            if level is not None:
+                source["level"] = level
+            pi_sum, back, count, excluded = 0.0, 0, 0, 0
+            with CoarseWriter(target, source, gas=constants) as writer, \
+                    _progress(len(indices)) as advance:
+                for i in indices:
+                    cs = favre_coarse_grain(src.snapshot(i, level), cg,
+                                            gas_constant=constants.get("gas_constant"))
+                    writer.append(cs)
+                    pi = cs.targets["pi"]
+                    if cs.valid is not None:  # land: only points whose footprint avoids it
+                        excluded += int(cs.valid.size - np.count_nonzero(cs.valid))
+                        pi = pi[cs.valid]
+                    pi_sum += float(pi.sum())
+                    back += int(np.count_nonzero(pi < 0))
+                    count += pi.size
+                    advance()
+            shape = " x ".join(map(str, cg.coarse.shape))
+            recorded = ", ".join(f"{k} {v:g}" for k, v in constants.items()) or "none recorded"
+            stats = (f"mean pi {pi_sum / count:.4g}, backscatter fraction {back / count:.3f}"
+                     if count else "no coarse point clear of land")
+            land_note = (f"; {excluded} coarse point(s) touched by land (NaN subgrid terms, "
+                         "filters normalised over the fluid)" if excluded else "")
+            typer.echo(f"wrote {target}: {len(indices)} snapshot(s), coarse grid {shape} "
+                       f"({', '.join(cg.coarse.dims)}), Favre ({cg.kind} filter, ratio "
+                       f"{cg.ratio}), {stats}{land_note}; gas constants: {recorded}")
 
 
 def _progress(total: int):

@@ -34,6 +34,46 @@ LAND_OPTION_HELP = ("land points (mask, NaN or fill values): zero (land as zero 
                     "Aluie, Hecht & Vallis 2018) or fluid (filter normalised over fluid points); "
                     "points whose footprint or stencil touches land are left out either way")
 
+#: gas constants of compressible data (discover and coarse-grain --compressible); each one
+#: overrides the input file's global attribute of the same name (closure.spec.GasSpec)
+GAMMA = typer.Option(None, "--gamma", help="compressible data: ratio of specific heats "
+                     "(default: the file's 'gamma' attribute)", show_default=False)
+GAS_CONSTANT = typer.Option(
+    None, "--gas-constant", help="compressible data: gas constant R in p = rho R T, in the "
+    "data's units (default: the file's 'gas_constant' attribute); with it, one of p and T "
+    "suffices", show_default=False)
+PRANDTL = typer.Option(None, "--prandtl", help="compressible data: Prandtl number (default: "
+                       "the file's 'prandtl' attribute)", show_default=False)
+
+
+def gas_options(gamma: float | None, gas_constant: float | None, prandtl: float | None,
+                library: str | None = None) -> dict | None:
+    """The ``gas`` of a JobSpec from --gamma / --gas-constant / --prandtl (None: none given).
+    Refused (OptionError) with a library that is not compressible."""
+    given = {k: v for k, v in (("gamma", gamma), ("gas_constant", gas_constant),
+                               ("prandtl", prandtl)) if v is not None}
+    if not given:
+        return None
+    if library is not None:
+        from closure.library_compressible import PRESETS
+
+        if library not in PRESETS:
+            raise OptionError(f"--{next(iter(given)).replace('_', '-')} sets a gas constant of "
+                              f"compressible data: choose a compressible library "
+                              f"({', '.join(PRESETS)}), or drop it")
+    from pydantic import ValidationError
+
+    from closure.spec import GasSpec
+
+    try:
+        GasSpec(**given)
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        raise OptionError(f"--{str(err['loc'][0]).replace('_', '-')}: {err['msg']} (got "
+                          f"{given[err['loc'][0]]!r})") from None
+    return given
+
+
 _LABELS = {"plan": "planning", "map": "snapshots", "fit": "fitting",
            "network": "training the reference network (epochs)",
            "score": "scoring held-out snapshots"}
@@ -47,7 +87,8 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
                per_level: bool = False, spacing: str | None = None, land: str = "zero",
                reference_net: bool = False, net_epochs: int | None = None,
                net_seconds: float | None = None, memory_limit: str | None = None,
-               fine_float32: bool = False, device: str = "numpy"):
+               fine_float32: bool = False, device: str = "numpy",
+               gas: dict | None = None):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option).
 
     ``input``: one path or a list of them (files, globs, a folder, a Zarr store)."""
@@ -79,6 +120,7 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
         "memory_limit": parse_memory(memory_limit),
         "fine_float32": bool(fine_float32),
         "device": device,
+        **({"gas": gas} if gas else {}),
     })
 
 
@@ -163,6 +205,9 @@ def discover(
         "numpy, or torch on cpu, cuda or auto (needs torch==2.13.0; agrees to 1e-10)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
     land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
+    gamma: float | None = GAMMA,
+    gas_constant: float | None = GAS_CONSTANT,
+    prandtl: float | None = PRANDTL,
 ) -> None:
     """Fit a sparse closure from candidate terms, score it on held-out snapshots, write it."""
     from closure import pipeline
@@ -179,7 +224,8 @@ def discover(
                       levels=levels, per_level=per_level, spacing=spacing, land=land,
                       reference_net=reference_net, net_epochs=net_epochs,
                       net_seconds=net_seconds, memory_limit=memory_limit, fine_float32=float32,
-                      device=device)
+                      device=device,
+                      gas=gas_options(gamma, gas_constant, prandtl, library))
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         if spec.input.per_level:
             results = pipeline.discover_levels(spec, progress=progress)

@@ -118,9 +118,20 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
     if "variables" in overrides:
         info["variables"] = dict(overrides.pop("variables"))
     opts.update(overrides)
-    src = open_fields(input_path, info["variables"] or None, info["scalars"],
-                      bool(info["periodic"]), group=opts["group"], mask=opts["mask"],
-                      levels=opts["levels"], spacing=opts["spacing"])
+    def opener(scalars):
+        return open_fields(input_path, info["variables"] or None, scalars,
+                           bool(info["periodic"]), group=opts["group"], mask=opts["mask"],
+                           levels=opts["levels"], spacing=opts["spacing"])
+
+    from closure.library_compressible import PRESETS
+
+    if model.library.name in PRESETS:  # one of p and T suffices with the gas constant
+        from closure.favre import open_compressible
+
+        src = open_compressible(opener, (model.provenance or {}).get("gas"),
+                                variables=info["variables"])
+    else:
+        src = opener(info["scalars"])
     try:
         cg = coarse_graining_of(model, src.grid)
         if indices is None:
@@ -144,15 +155,19 @@ def held_out_snapshots(model, input_path, indices=None, progress: Progress | Non
 
     from closure.library_compressible import PRESETS
 
+    passes = derivative_passes(model.library)
     if model.library.name in PRESETS:  # compressible models: Favre targets
         from closure.favre import favre_coarse_grain
 
+        gas = (getattr(model, "provenance", None) or {}).get("gas") or {}
+
         def coarse(snap):
-            return favre_coarse_grain(snap, cg, targets=model.components)
+            return favre_coarse_grain(snap, cg, targets=model.components,
+                                      gas_constant=gas.get("gas_constant"),
+                                      scheme=model.scheme, derivative_passes=passes)
     else:
         land = str((getattr(model, "settings", None) or {}).get("land", {}).get("convention")
                    or "zero")
-        passes = derivative_passes(model.library)
 
         def coarse(snap):
             return coarse_grain_snapshot(snap, cg, info["scalars"], land=land,
