@@ -138,5 +138,5 @@ def test_apply_writes_favre_units_and_names(demo, tmp_path):
     # any netCDF of filtered fields rho, u, v, p, T works as the coarse input
     assert main(["apply", str(path), str(demo), "-o", str(out)]) == 0
     with xr.open_dataset(out) as ds:
-        assert ds["heat_flux_x"].attrs["units"] == "(kg m-3) (m s-1) (K)"
+        assert ds["heat_flux_x"].attrs["units"] == "kg K m-2 s-1"  # (kg m-3) (m s-1) (K)
         assert "heat flux" in ds["heat_flux_x"].attrs["long_name"]

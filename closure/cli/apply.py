@@ -217,11 +217,19 @@ def _compressible_units(component: str, units: dict) -> str | None:
     vel = {units.get(c) for c in ("u", "v", "w") if units.get(c)}
     U = vel.pop() if len(vel) == 1 else None
     rho, T = units.get("rho"), units.get("T")
-    if component.startswith("tau_"):
-        return f"({rho}) ({U})^2" if rho and U else None
-    if component.startswith("heat_flux_"):
-        return f"({rho}) ({U}) ({T})" if rho and U and T else None
-    return None
+    text = None
+    if component.startswith("tau_") and rho and U:
+        text = f"({rho}) ({U})^2"
+    elif component.startswith("heat_flux_") and rho and U and T:
+        text = f"({rho}) ({U}) ({T})"
+    if text is None:
+        return None
+    from closure.units import simplify
+
+    try:
+        return simplify(text)  # e.g. kg m-1 s-2 for the stress, as coarse-grain writes it
+    except (ValueError, KeyError):
+        return text
 
 
 def _long_name(component: str) -> str:
