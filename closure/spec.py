@@ -146,6 +146,39 @@ class FitSpec(_Strict):
     selection: Literal["one_se", "min"] = Field(
         "one_se", description="sparsest path point within one standard error of the best "
         "held-out error, or the best")
+    select: Literal["apriori", "aposteriori"] = Field(
+        "apriori", description="apriori: the path point chosen by held-out error (above); "
+        "aposteriori: candidates along the sparse paths at transfer_weights each run long in "
+        "the coarse solver, the sparsest stable one within tolerance of the best long-run "
+        "statistics is stored (closure.selection)")
+    duration: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="length of each candidate's coarse run, s (select aposteriori)")
+    spinup: Annotated[float, Field(ge=0)] = Field(
+        0.0, description="time left out before the long-run statistics, s")
+    tolerance: Annotated[float, Field(ge=0)] = Field(
+        0.1, description="relative tolerance on the best stable long-run score")
+    transfer_weights: list[Annotated[float, Field(ge=0)]] = Field(
+        default_factory=lambda: [0.0, 1.0], min_length=1, max_length=8,
+        description="transfer weights whose sparse paths give the candidates")
+    max_candidates: Annotated[int, Field(ge=1, le=32)] = Field(
+        4, description="sparsest candidates taken from each path")
+
+    @model_validator(mode="after")
+    def _aposteriori(self):
+        if self.select == "aposteriori":
+            if self.duration is None:
+                raise ValueError("fit.select aposteriori needs fit.duration (the length of "
+                                 "each candidate's coarse run, s)")
+            if self.spinup >= self.duration:
+                raise ValueError(f"fit.spinup ({self.spinup:g}) must be shorter than "
+                                 f"fit.duration ({self.duration:g})")
+        return self
+
+    @property
+    def selection_fields(self) -> tuple[str, ...]:
+        """The fields that only matter when select is aposteriori."""
+        return ("select", "duration", "spinup", "tolerance", "transfer_weights",
+                "max_candidates")
 
 
 class ReferenceNetSpec(_Strict):
@@ -220,6 +253,13 @@ class JobSpec(_Strict):
                              f"{MAX_INLINE_LIBRARY} characters as JSON; use fewer terms")
         return v
 
+    @model_validator(mode="after")
+    def _selection_needs_one_model(self):
+        if self.fit.select == "aposteriori" and self.input.per_level:
+            raise ValueError("fit.select aposteriori runs one coarse simulation per candidate: "
+                             "it does not combine with input.per_level; select one level")
+        return self
+
     @property
     def library_label(self) -> str:
         """The library's name for messages and provenance ("inline terms" when inline)."""
@@ -231,6 +271,9 @@ class JobSpec(_Strict):
         d["input"] = {k: v for k, v in d["input"].items() if k not in ("path", "dataset_id")}
         if not d["reference_net"]["enabled"]:
             del d["reference_net"]  # jobs without a network keep their earlier fingerprint
+        if self.fit.select == "apriori":  # jobs without coarse runs keep theirs too
+            for key in self.fit.selection_fields:
+                del d["fit"][key]
         return d
 
 
@@ -437,7 +480,16 @@ class SweepSpec(_Strict):
         d = self.model_dump(mode="json")
         d["input"] = self.discovery.fingerprint()["input"]
         d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
+        for key in self.discovery.fit.selection_fields:  # sweeps select a priori
+            del d["discovery"]["fit"][key]
         return d
+
+    @model_validator(mode="after")
+    def _apriori_only(self):
+        if self.discovery.fit.select != "apriori":
+            raise ValueError("a sweep selects each width's model a priori: leave "
+                             "discovery.fit.select at 'apriori'")
+        return self
 
 
 def parse_sweep_spec(data: dict | str) -> SweepSpec:

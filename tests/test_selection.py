@@ -121,3 +121,60 @@ def test_discover_and_select_runs_the_path_candidates(tmp_path):
     assert d["settings"]["aposteriori_selection"]["chosen"] == selection.chosen
     assert len(d["settings"]["aposteriori_selection"]["candidates"]) == len(
         selection.candidates)
+
+
+def test_the_spec_carries_the_selection_without_changing_earlier_fingerprints():
+    from closure.spec import parse_spec, parse_sweep_spec
+
+    plain = parse_spec({"input": {"path": "a.nc"}})
+    fp = plain.fingerprint()
+    # a job that selects a priori keeps the fingerprint it had before these fields existed
+    assert set(fp["fit"]) == {"method", "test_fraction", "resamples", "transfer_weight", "seed",
+                              "folds", "selection"}
+    spec = parse_spec({"input": {"path": "a.nc"},
+                       "fit": {"select": "aposteriori", "duration": 3.0, "spinup": 1.0}})
+    assert spec.fit.transfer_weights == [0.0, 1.0] and spec.fit.tolerance == 0.1
+    assert spec.fingerprint()["fit"]["duration"] == 3.0
+    longer = parse_spec({"input": {"path": "a.nc"},
+                         "fit": {"select": "aposteriori", "duration": 6.0, "spinup": 1.0}})
+    assert longer.fingerprint() != spec.fingerprint()
+    with pytest.raises(OptionError, match="fit.duration"):
+        parse_spec({"input": {"path": "a.nc"}, "fit": {"select": "aposteriori"}})
+    with pytest.raises(OptionError, match="shorter than"):
+        parse_spec({"input": {"path": "a.nc"},
+                    "fit": {"select": "aposteriori", "duration": 1.0, "spinup": 2.0}})
+    with pytest.raises(OptionError, match="per_level"):
+        parse_spec({"input": {"path": "a.nc", "levels": [0, 1], "per_level": True},
+                    "fit": {"select": "aposteriori", "duration": 1.0}})
+    with pytest.raises(OptionError, match="a priori"):
+        parse_sweep_spec({"discovery": spec.model_dump(mode="json"), "widths": [2.0]})
+    sweep = parse_sweep_spec({"discovery": plain.model_dump(mode="json"), "widths": [2.0]})
+    assert "select" not in sweep.fingerprint()["discovery"]["fit"]
+
+
+def test_discover_cli_selects_by_coarse_runs(tmp_path, capsys):
+    from closure.cli import main
+    from closure.model import ClosureModel
+
+    path = tmp_path / "dns.nc"
+    write(turb2d(n=32, snapshots=5, interval=0.3, spinup=0.6, viscosity=2e-3,
+                 forcing_wavenumber=3, seed=2), path)
+    out = tmp_path / "model.json"
+    rc = main(["discover", str(path), "--ratio", "2", "--resamples", "0", "-o", str(out),
+               "--select", "aposteriori", "--duration", "0.8", "--spinup", "0.2",
+               "--selection-weights", "0", "--selection-tolerance", "0.2"])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert "rule: sparsest candidate stable" in text and f"written: {out}" in text
+    record = ClosureModel.load(out).settings["aposteriori_selection"]
+    assert record["tolerance"] == 0.2 and record["settings"]["long_duration"] == 0.8
+    assert all(r["transfer_weight"] == 0.0 for r in record["candidates"])
+    # the options of the selection are refused without --select aposteriori, and it needs a
+    # run length
+    assert main(["discover", str(path), "-o", str(out), "--duration", "1"]) == 2
+    assert "add --select aposteriori" in capsys.readouterr().err
+    assert main(["discover", str(path), "-o", str(out), "--select", "aposteriori"]) == 2
+    assert "--duration T" in capsys.readouterr().err
+    assert main(["discover", str(path), "-o", str(out), "--select", "aposteriori",
+                 "--duration", "1", "--selection-weights", "x"]) == 2
+    assert "--selection-weights" in capsys.readouterr().err
