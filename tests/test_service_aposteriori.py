@@ -405,6 +405,11 @@ def test_demo_ends_with_the_report_path_and_the_aposteriori_table(tmp_path):
     assert report.is_file() and report.name == "index.html"
     assert home / "demo" in report.parents  # the state folder, kept after the demo
     assert "aposteriori_spectra.png" in report.read_text()
+    # the stored model was chosen by coarse runs, and the report shows the long runs
+    assert "Selection by coarse runs" in out and re.search(r"\schosen$", out, re.M)
+    page = report.read_text()
+    for name in ("selection_front.png", "long_run_spectra.png", "long_run_stability.png"):
+        assert name in page, name
     table = out.split("A posteriori", 1)[1]
     for name in ("model", *BASELINES):
         assert re.search(rf"^{re.escape(name)}\s+(completed|blew up)", table, re.M), name

@@ -145,3 +145,20 @@ def test_a_candidate_whose_input_vanished_fails_the_job_with_its_reason(env, tmp
     assert doc["state"] == "failed"
     assert "is gone since the job was submitted" in doc["error"]
     assert "candidate" in doc["error"]
+
+
+def test_canceling_during_the_coarse_runs_stops_them_and_stores_nothing(env, dns):
+    from rq.job import JobStatus
+
+    conn, store = env
+    job_id = submit(conn, store, spec_dict(dns))
+    run_burst(conn, store, max_jobs=3)
+    n = q.status(store, conn, job_id)["progress"]["phase_total"]
+    assert q.cancel(store, conn, job_id)
+    for k in range(n):  # the queued coarse runs and the choice are canceled, not run
+        assert q.fetch(conn, selection.run_id(job_id, k)).get_status() == JobStatus.CANCELED
+    assert q.fetch(conn, selection.choose_id(job_id)).get_status() == JobStatus.CANCELED
+    run_burst(conn, store)
+    doc = q.status(store, conn, job_id)
+    assert doc["state"] == "canceled" and doc["model_id"] is None
+    assert not store.job_dir(job_id).exists()
