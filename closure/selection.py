@@ -10,10 +10,14 @@ solver (:func:`closure.les.simulate` with ``long_duration``), one after another,
     ``tolerance`` (relative) of the best stable candidate's score; ties go to the lower
     score. None is chosen when no candidate is stable.
 
-:func:`plan_candidates` is a pure function of the fitted paths (what a queue would fan out);
-:func:`choose` a pure function of the candidates' figures; :func:`select_by_coarse_runs`
-runs them and returns a :class:`Selection` that records every candidate with its a priori
-and a posteriori figures. Long-run statistics on one flow are evidence, not a guarantee.
+:func:`plan_candidates` is a pure function of the fitted paths and :func:`plan_from_stats`
+of a mapped job's statistics (what the queue fans out); :func:`run_candidate` is one
+candidate's run (one queued task each in worker/selection.py, one after another in
+:func:`select_by_coarse_runs`); :func:`choose` and :func:`conclude` are pure functions of the
+candidates' records, and return a :class:`Selection` that records every candidate with its
+a priori and a posteriori figures. The candidates start from the first snapshot of the job's
+first input and are compared with the statistics of every snapshot of that input. Long-run
+statistics on one flow are evidence, not a guarantee.
 """
 
 from __future__ import annotations

@@ -178,3 +178,46 @@ def test_discover_cli_selects_by_coarse_runs(tmp_path, capsys):
     assert main(["discover", str(path), "-o", str(out), "--select", "aposteriori",
                  "--duration", "1", "--selection-weights", "x"]) == 2
     assert "--selection-weights" in capsys.readouterr().err
+
+
+def test_selection_by_coarse_runs_runs_3d_candidates(tmp_path):
+    from closure.selection import discover_and_select
+    from closure.spec import parse_spec
+    from closure.synth import turb3d
+
+    path = tmp_path / "box.nc"
+    write(turb3d(n=16, snapshots=4), path)
+    spec = parse_spec({"input": {"path": str(path)}, "filter": {"ratio": 2},
+                       "fit": {"resamples": 0, "folds": 2, "select": "aposteriori",
+                               "duration": 0.5, "spinup": 0.1, "max_candidates": 2}})
+    _, selection, chosen = discover_and_select(spec)
+    assert {r["transfer_weight"] for r in selection.candidates} == {0.0, 1.0}
+    assert all(r["long_run"]["duration"] == 0.5 for r in selection.candidates)
+    assert selection.chosen == choose(selection.candidates, 0.1)
+    assert chosen is not None and chosen.grid.ndim == 3
+
+
+def test_when_no_candidate_is_stable_the_a_priori_model_says_so(tmp_path):
+    from closure.filters import make_coarse_graining
+    from closure.library import make_library
+    from closure.model import ClosureModel
+    from closure.selection import Selection, conclude, unselected_model
+
+    fine = Grid.regular((32, 32), TWO_PI, dims=("y", "x"))
+    cg = make_coarse_graining("gaussian", fine, 2, 4.0)
+    lib = make_library("default", "stress", ("y", "x"))
+    coef = tuple(1.0 if n == "gradient_model" else 0.0 for n in lib.names)
+    base = ClosureModel(lib, coef, filter=cg, grid=cg.coarse, scheme="spectral",
+                        delta=cg.delta)
+    cand = Candidate("only", 0.0, 0.0, coef, tuple(lib.names))
+    records = [dict(record("only", 1, False, None, None), score=None)]
+    selection, chosen = conclude(base, [cand], records, long_duration=3.0)
+    assert chosen is None and isinstance(selection, Selection) and selection.chosen is None
+    model = unselected_model(base, selection)
+    assert "NOT chosen by coarse runs" in model.provenance["notes"][-1]
+    assert "3 s" in model.provenance["notes"][-1]
+    assert model.settings["aposteriori_selection"]["chosen"] is None
+    assert model.coefficients_scaled.tolist() == list(coef)
+    # the file keeps the record and the note
+    again = ClosureModel.load(model.save(tmp_path / "m.json"))
+    assert again.settings["aposteriori_selection"]["candidates"][0]["label"] == "only"
