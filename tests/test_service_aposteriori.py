@@ -474,3 +474,23 @@ def test_queued_long_run_with_a_modes_forcing_equals_in_process(service, turb2d_
         assert runs[name]["long_run"]["stable"] == direct["runs"][name]["long_run"]["stable"]
         np.testing.assert_allclose(runs[name]["energy"], direct["runs"][name]["energy"],
                                    rtol=1e-12)
+
+
+@pytest.mark.slow
+def test_a_3d_model_runs_a_posteriori_on_the_queue(service, turb2d_file):
+    from closure import pipeline
+    from closure.synth import turb3d, write
+
+    box = write(turb3d(n=16, snapshots=3), turb2d_file.parent / "box.nc")
+    spec = parse_spec({"input": {"path": str(box)}, "filter": {"ratio": 2},
+                       "fit": {"resamples": 0, "folds": 2}})
+    model_id = add(service.store, spec, pipeline.discover(spec), "c")
+    r = service.post(f"/models/{model_id}/les", json={
+        "input": {"path": box.name}, "baselines": ["none", "smagorinsky"],
+        "long_duration": 0.5, "spinup": 0.1})
+    assert r.status_code == 202, r.text
+    run_burst(service)
+    out = service.get(f"/models/{model_id}/les").json()
+    assert out["result"]["settings"]["grid"]["shape"] == [8, 8, 8]
+    for name in ("model", "none", "smagorinsky"):
+        assert out["result"]["runs"][name]["long_run"]["duration"] == 0.5
