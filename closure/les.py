@@ -459,6 +459,8 @@ class Trajectory:
     message: str = ""
     steps: int = 0
     diagnostics: dict = field(default_factory=dict)
+    #: wall-clock seconds the run took (set by compare_runs)
+    wall_seconds: float | None = None
     statistics: dict | None = None
     long_series: dict | None = None
     long_plan: LongRunPlan | None = None
@@ -666,11 +668,17 @@ def reference_statistics(fields: Sequence[Mapping[str, np.ndarray]], grid: Grid,
 
     flow = _flow(grid, dealias=dealias)
     stats = FlowStatistics(grid, edges)
+    spectra = []
     for f in fields:
         q, out = _projected_fields(flow, f)
-        stats.add([out[n] for n in velocity_names(grid)], out["vorticity"],
-                  flow.transfer_density(q))
-    return stats.summary()
+        velocity = [out[n] for n in velocity_names(grid)]
+        stats.add(velocity, out["vorticity"], flow.transfer_density(q))
+        spectra.append(energy_spectrum(velocity, grid)[1])
+    summary = stats.summary()
+    if spectra:  # the band the snapshots span, drawn around the time-mean in reports
+        summary["E_min"] = np.min(spectra, axis=0)
+        summary["E_max"] = np.max(spectra, axis=0)
+    return summary
 
 
 def long_run_edges(fields: Sequence[Mapping[str, np.ndarray]], grid: Grid,
@@ -835,6 +843,8 @@ class Comparison:
                 "message": t.message,
                 "steps": t.steps,
             }
+            if t.wall_seconds is not None:
+                entry["wall_seconds"] = t.wall_seconds
             if t.diagnostics:
                 entry["diagnostics"] = t.diagnostics
             if t.name in self.metrics:
@@ -939,7 +949,9 @@ def statistics_json(s: dict) -> dict:
     counts = np.asarray(s["pdf"]["counts"])
     return {
         "samples": int(s["samples"]),
-        "spectrum": {"k": np.asarray(s["k"]).tolist(), "E": np.asarray(s["E"]).tolist()},
+        "spectrum": {"k": np.asarray(s["k"]).tolist(), "E": np.asarray(s["E"]).tolist(),
+                     **{key: np.asarray(s[key]).tolist() for key in ("E_min", "E_max")
+                        if key in s}},
         "transfer": None if s["T"] is None else {"k": np.asarray(s["k"]).tolist(),
                                                  "T": np.asarray(s["T"]).tolist()},
         "vorticity_pdf": {"x": (0.5 * (edges[1:] + edges[:-1])).tolist(),
@@ -980,6 +992,13 @@ def long_run_figures(run_: Trajectory, reference: dict | None) -> dict:
     }
 
 
+def _is_number(v) -> bool:
+    try:
+        return math.isfinite(float(v))
+    except (TypeError, ValueError):
+        return False
+
+
 def _fmt_quantile(v) -> str:
     if v is not None and math.isinf(v):
         return "beyond"
@@ -1001,10 +1020,14 @@ def compare_runs(initial: Mapping[str, np.ndarray], grid: Grid, times: Sequence[
     """Run each closure (label -> closure, None for no model) from ``initial`` at ``times``
     with the same ``solver`` options (see :func:`run`, ``long_run`` included) and score them
     against ``reference`` (and, after long runs, against ``reference_stats``)."""
+    import time
+
     runs, metrics, long_runs = {}, {}, {}
     for label, closure in closures.items():
+        start = time.perf_counter()
         runs[label] = run(initial, grid, times, closure=closure, name=label, progress=progress,
                           **solver)
+        runs[label].wall_seconds = time.perf_counter() - start
         if reference is not None:
             metrics[label] = compare(runs[label], reference)
         if runs[label].long_plan is not None:
@@ -1346,6 +1369,11 @@ def simulate(model, initial, reference=None, *, model_label: str = "model",
         "energy_bound": energy_bound, "smagorinsky_constant": smagorinsky_constant,
         "times": [float(t) for t in times], "warnings": warnings,
         "assumed_physics": physics["assumed"], "qualitative": bool(physics["assumed"]),
+        # the fine run's cost, when the file states it (wall seconds, steps, grid points)
+        "fine_cost": {k: attrs[k] for k in ("wall_seconds", "steps", "simulated_time")
+                      if k in attrs and _is_number(attrs[k])} or None,
+        "fine_points": int(np.prod(grid.shape)) * int(init.coarse_graining.get("ratio", 1))
+        ** grid.ndim,
         "long_run": None if plan is None else {
             "duration": plan.duration, "spinup": plan.spinup,
             "sample_interval": plan.sample_interval,

@@ -226,8 +226,12 @@ def _library(spec: JobSpec, dims: tuple[str, ...]):
 
 
 def _blocks(spec: JobSpec, dims) -> tuple[str, ...]:
-    """Transfer statistics to gather: all transfers when the fit is transfer-weighted."""
-    return transfer_names(spec.target, tuple(dims)) if spec.fit.transfer_weight > 0 else ()
+    """Transfer statistics to gather: all transfers when the fit is transfer-weighted (or a
+    selection by coarse runs fits paths at a positive transfer weight)."""
+    weights = [spec.fit.transfer_weight]
+    if spec.fit.select == "aposteriori":
+        weights += list(spec.fit.transfer_weights)
+    return transfer_names(spec.target, tuple(dims)) if max(weights) > 0 else ()
 
 
 def _stamp(path: Path) -> dict:

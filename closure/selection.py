@@ -10,10 +10,14 @@ solver (:func:`closure.les.simulate` with ``long_duration``), one after another,
     ``tolerance`` (relative) of the best stable candidate's score; ties go to the lower
     score. None is chosen when no candidate is stable.
 
-:func:`plan_candidates` is a pure function of the fitted paths (what a queue would fan out);
-:func:`choose` a pure function of the candidates' figures; :func:`select_by_coarse_runs`
-runs them and returns a :class:`Selection` that records every candidate with its a priori
-and a posteriori figures. Long-run statistics on one flow are evidence, not a guarantee.
+:func:`plan_candidates` is a pure function of the fitted paths and :func:`plan_from_stats`
+of a mapped job's statistics (what the queue fans out); :func:`run_candidate` is one
+candidate's run (one queued task each in worker/selection.py, one after another in
+:func:`select_by_coarse_runs`); :func:`choose` and :func:`conclude` are pure functions of the
+candidates' records, and return a :class:`Selection` that records every candidate with its
+a priori and a posteriori figures. The candidates start from the first snapshot of the job's
+first input and are compared with the statistics of every snapshot of that input. Long-run
+statistics on one flow are evidence, not a guarantee.
 """
 
 from __future__ import annotations
@@ -164,6 +168,79 @@ def candidate_model(base, candidate: Candidate):
                         settings={**base.settings, "candidate": candidate.label})
 
 
+def candidate_to_dict(candidate: Candidate) -> dict:
+    """A candidate as plain JSON (what the queue carries)."""
+    return {"label": candidate.label, "transfer_weight": candidate.transfer_weight,
+            "parameter": candidate.parameter, "coefficients": list(candidate.coefficients),
+            "terms": list(candidate.terms), "apriori": candidate.apriori}
+
+
+def candidate_from_dict(d: Mapping) -> Candidate:
+    """The inverse of :func:`candidate_to_dict`."""
+    return Candidate(str(d["label"]), float(d["transfer_weight"]), float(d["parameter"]),
+                     tuple(float(x) for x in d["coefficients"]), tuple(d["terms"]),
+                     dict(d.get("apriori") or {}))
+
+
+def run_candidate(base, candidate: Candidate, initial, reference=None, *,
+                  long_duration: float, spinup: float | None = None,
+                  **simulate_options) -> dict:
+    """One candidate's coarse run (:func:`closure.les.simulate` with ``long_duration``, no
+    baselines) and its record: label, n_terms, terms, transfer_weight, parameter, apriori,
+    long_run figures and score (plain JSON)."""
+    from closure.les import simulate
+
+    model = candidate_model(base, candidate)
+    c = simulate(model, initial, reference, model_label=candidate.label, baselines=[],
+                 long_duration=long_duration, spinup=spinup, **simulate_options)
+    figures = {k: v for k, v in c.long_runs[candidate.label].items()
+               if k not in ("series", "statistics")}
+    return _plain({"label": candidate.label, "n_terms": candidate.n_terms,
+                   "terms": candidate.active_terms,
+                   "transfer_weight": candidate.transfer_weight,
+                   "parameter": candidate.parameter, "apriori": dict(candidate.apriori),
+                   "long_run": figures, "score": score(figures)})
+
+
+def conclude(base, candidates: Sequence[Candidate], records: Sequence[Mapping], *,
+             long_duration: float, spinup: float | None = None,
+             tolerance: float = TOLERANCE) -> tuple[Selection, object | None]:
+    """Choose among the run ``records`` (in candidate order) and build the chosen model,
+    which records the selection in ``settings["aposteriori_selection"]`` (None when no
+    candidate is stable)."""
+    chosen = choose(records, tolerance)
+    selection = Selection([dict(r) for r in records], chosen, float(tolerance),
+                          {"long_duration": float(long_duration),
+                           "spinup": 0.0 if spinup is None else float(spinup)})
+    model = None
+    if chosen is not None:
+        cand = next(c for c in candidates if c.label == chosen)
+        model = candidate_model(base, cand)
+        model.settings["aposteriori_selection"] = _plain(selection.to_dict())
+        if "test" in cand.apriori:
+            model.scores = {"test": cand.apriori["test"]}
+    return selection, model
+
+
+def unselected_model(base, selection: Selection):
+    """The a priori model, kept when no candidate was stable: it records the selection and
+    says in its notes that it was not chosen by coarse runs."""
+    model = candidate_model(base, Candidate("a priori", 0.0, 0.0,
+                                            tuple(float(x) for x in base.coefficients_scaled),
+                                            tuple(base.library.names)))
+    model.scores = getattr(base, "scores", None)
+    model.settings["aposteriori_selection"] = _plain(selection.to_dict())
+    notes = list((model.provenance or {}).get("notes") or [])
+    notes.append(NO_STABLE_NOTE.format(duration=selection.settings["long_duration"]))
+    model.provenance = {**(model.provenance or {}), "notes": notes}
+    return model
+
+
+NO_STABLE_NOTE = ("no candidate was stable for the whole {duration:g} s coarse run: this is "
+                  "the a priori model, NOT chosen by coarse runs; expect it to blow up in a "
+                  "long simulation of this flow")
+
+
 def select_by_coarse_runs(base, candidates: Sequence[Candidate], initial, reference=None, *,
                           long_duration: float, spinup: float | None = None,
                           tolerance: float = TOLERANCE,
@@ -176,35 +253,25 @@ def select_by_coarse_runs(base, candidates: Sequence[Candidate], initial, refere
     when no candidate is stable), which records the selection in
     ``settings["aposteriori_selection"]``.
     """
-    from closure.les import simulate
-
     if not candidates:
         raise UserError("no candidate models to run: the sparse path is empty")
+    if not tolerance >= 0:
+        raise OptionError(f"the selection tolerance must be >= 0, got {tolerance}")
     records = []
     for done, cand in enumerate(candidates):
         if progress is not None:
-            progress("candidates", done, len(candidates))
-        model = candidate_model(base, cand)
-        c = simulate(model, initial, reference, model_label=cand.label, baselines=[],
-                     long_duration=long_duration, spinup=spinup, **simulate_options)
-        figures = {k: v for k, v in c.long_runs[cand.label].items()
-                   if k not in ("series", "statistics")}
-        records.append({"label": cand.label, "n_terms": cand.n_terms,
-                        "terms": cand.active_terms, "transfer_weight": cand.transfer_weight,
-                        "parameter": cand.parameter, "apriori": dict(cand.apriori),
-                        "long_run": figures, "score": score(figures)})
+            progress(PHASE, done, len(candidates))
+        records.append(run_candidate(base, cand, initial, reference,
+                                     long_duration=long_duration, spinup=spinup,
+                                     **simulate_options))
     if progress is not None:
-        progress("candidates", len(candidates), len(candidates))
-    chosen = choose(records, tolerance)
-    selection = Selection(records, chosen, float(tolerance),
-                          {"long_duration": float(long_duration),
-                           "spinup": 0.0 if spinup is None else float(spinup)})
-    model = None
-    if chosen is not None:
-        cand = next(c for c in candidates if c.label == chosen)
-        model = candidate_model(base, cand)
-        model.settings["aposteriori_selection"] = _plain(selection.to_dict())
-    return selection, model
+        progress(PHASE, len(candidates), len(candidates))
+    return conclude(base, candidates, records, long_duration=long_duration, spinup=spinup,
+                    tolerance=tolerance)
+
+
+#: the progress phase of the candidates' coarse runs
+PHASE = "coarse runs"
 
 
 def _plain(obj):
@@ -213,31 +280,93 @@ def _plain(obj):
     return _finite(obj)
 
 
-def discover_and_select(spec, *, long_duration: float, spinup: float | None = None,
-                        transfer_weights: Sequence[float] = (0.0, 1.0),
-                        max_per_path: int | None = 4, tolerance: float = TOLERANCE,
-                        initial=None, reference=None,
-                        progress: Callable[[str, int, int], None] | None = None,
-                        **simulate_options):
-    """Discovery with selection by coarse runs, in process (``discover --select aposteriori``).
+def input_options(spec) -> dict:
+    """The coarse solver's input options (closure.les.simulate) from a job spec's input."""
+    inp = spec.input
+    if inp.levels is not None and (inp.levels == "all" or len(inp.levels) != 1):
+        raise OptionError("selection by coarse runs runs one 2-D level: give one level "
+                          "(input.levels / --levels), e.g. 0")
+    return {"variables": dict(inp.variables), "group": inp.group, "mask": inp.mask,
+            "levels": inp.levels, "spacing": inp.spacing}
 
-    Plans and maps the job ``spec`` (closure.pipeline), fits the a priori model (reduce), then
-    the sparse paths at ``transfer_weights`` (closure.regression.fit_closure on the same
-    statistics), plans the candidates (:func:`plan_candidates`, each with its held-out a
-    priori scores) and runs them long from ``initial`` (default: the job's input file),
-    against ``reference`` (default: the same), with :func:`select_by_coarse_runs`.
-    Returns (a priori model, Selection, chosen model or None).
-    """
-    from closure.pipeline import _flat_scores, map_snapshot, plan, reduce
+
+def initial_path(spec, plan: Mapping | None = None) -> str:
+    """The file the candidates start from and are compared with: the job's first input
+    (resolved as the plan read it, when a plan is given)."""
+    if plan is not None:
+        inp = plan.get("input") or {}
+        paths = inp.get("paths") or ([inp["path"]] if inp.get("path") else [])
+        if paths:
+            return str(paths[0])
+    paths = spec.input.paths
+    if not paths:
+        raise UserError("selection by coarse runs needs the input file's path")
+    return paths[0]
+
+
+def plan_from_stats(spec, plan: Mapping, stats: Mapping, *,
+                    transfer_weights: Sequence[float] = (0.0, 1.0),
+                    max_per_path: int | None = 4) -> list[Candidate]:
+    """The candidates of a mapped job (pure given the statistics): the sparse paths at
+    ``transfer_weights`` fitted on the plan's training snapshots (closure.regression.
+    fit_closure, as the reduce fits), one candidate per support (:func:`plan_candidates`),
+    each with its held-out a priori scores under ``apriori["test"]``."""
+    from closure.pipeline import _flat_scores
     from closure.regression import fit_closure
     from closure.scores import prediction_scores
     from closure.stats import SufficientStats
 
     if not transfer_weights or any(not (w >= 0) for w in transfer_weights):
         raise OptionError(f"transfer weights must be >= 0, got {list(transfer_weights)}")
+    train = [int(i) for i in plan["train"]]
+    stats = {int(k): v for k, v in stats.items()}
+    test_stats = SufficientStats.merge([stats[int(i)] for i in sorted(plan["test"])])
+    fits = {float(w): fit_closure(stats, train, spec.fit.method, transfer_weight=float(w),
+                                  n_folds=spec.fit.folds, resamples=0, seed=spec.fit.seed,
+                                  rule=spec.fit.selection)
+            for w in dict.fromkeys(float(w) for w in transfer_weights)}
+    out = []
+    for c in plan_candidates(fits, max_per_path):
+        scores = _flat_scores(prediction_scores(test_stats, np.asarray(c.coefficients)))
+        out.append(Candidate(c.label, c.transfer_weight, c.parameter, c.coefficients,
+                             c.terms, _plain({**c.apriori, "test": scores})))
+    return out
+
+
+def discover_and_select(spec, *, long_duration: float | None = None,
+                        spinup: float | None = None,
+                        transfer_weights: Sequence[float] | None = None,
+                        max_per_path: int | None = None, tolerance: float | None = None,
+                        initial=None, reference=None,
+                        progress: Callable[[str, int, int], None] | None = None,
+                        **simulate_options):
+    """Discovery with selection by coarse runs, in process (``discover --select aposteriori``).
+
+    Plans and maps the job ``spec`` (closure.pipeline), fits the a priori model (reduce), then
+    the candidates (:func:`plan_from_stats`) and runs them long from ``initial`` (default:
+    the job's input file), against ``reference`` (default: the same), with
+    :func:`select_by_coarse_runs`. Options left None come from ``spec.fit`` (duration,
+    spinup, transfer_weights, max_candidates, tolerance). Returns (a priori model, Selection,
+    chosen model or None).
+    """
+    from closure.pipeline import map_snapshot, plan, reduce
+
+    f = spec.fit
+    long_duration = f.duration if long_duration is None else long_duration
+    if long_duration is None:
+        raise OptionError("selection by coarse runs needs a run length: --duration T")
+    spinup = f.spinup if spinup is None else spinup
+    transfer_weights = tuple(f.transfer_weights if transfer_weights is None
+                             else transfer_weights)
+    max_per_path = f.max_candidates if max_per_path is None else max_per_path
+    tolerance = f.tolerance if tolerance is None else tolerance
+    if not transfer_weights or any(not (w >= 0) for w in transfer_weights):
+        raise OptionError(f"transfer weights must be >= 0, got {list(transfer_weights)}")
     # map once with the transfer statistics when a positive weight needs them
     top = max(float(w) for w in transfer_weights)
-    mapping = spec if top <= 0 or spec.fit.transfer_weight > 0 else spec.model_copy(
+    has = spec.fit.transfer_weight > 0 or (f.select == "aposteriori"
+                                           and max(f.transfer_weights) > 0)
+    mapping = spec if top <= 0 or has else spec.model_copy(
         update={"fit": spec.fit.model_copy(update={"transfer_weight": top})})
     p = plan(mapping)
     indices = sorted(p["snapshots"])
@@ -247,22 +376,12 @@ def discover_and_select(spec, *, long_duration: float, spinup: float | None = No
             progress("map", done, len(indices))
         stats[i] = map_snapshot(mapping, p, i)
     apriori_model = reduce(spec, p, stats, progress)
-    train = list(p["train"])
-    test_stats = SufficientStats.merge([stats[i] for i in sorted(p["test"])])
-    fits = {float(w): fit_closure(stats, train, spec.fit.method, transfer_weight=float(w),
-                                  n_folds=spec.fit.folds, resamples=0, seed=spec.fit.seed,
-                                  rule=spec.fit.selection)
-            for w in dict.fromkeys(transfer_weights)}
-    candidates = []
-    for c in plan_candidates(fits, max_per_path):
-        scores = _flat_scores(prediction_scores(test_stats, np.asarray(c.coefficients)))
-        candidates.append(Candidate(c.label, c.transfer_weight, c.parameter, c.coefficients,
-                                    c.terms, {**c.apriori, "test": scores}))
-    source = initial if initial is not None else spec.input.path
+    candidates = plan_from_stats(spec, p, stats, transfer_weights=transfer_weights,
+                                 max_per_path=max_per_path)
+    if "input_options" not in simulate_options:
+        simulate_options["input_options"] = input_options(spec)
+    source = initial if initial is not None else initial_path(spec, p)
     selection, chosen = select_by_coarse_runs(
         apriori_model, candidates, source, reference, long_duration=long_duration,
         spinup=spinup, tolerance=tolerance, progress=progress, **simulate_options)
-    if chosen is not None:
-        chosen.scores = {"test": next(c.apriori["test"] for c in candidates
-                                      if c.label == selection.chosen)}
     return apriori_model, selection, chosen

@@ -158,6 +158,39 @@ class FitSpec(_Strict):
     selection: Literal["one_se", "min"] = Field(
         "one_se", description="sparsest path point within one standard error of the best "
         "held-out error, or the best")
+    select: Literal["apriori", "aposteriori"] = Field(
+        "apriori", description="apriori: the path point chosen by held-out error (above); "
+        "aposteriori: candidates along the sparse paths at transfer_weights each run long in "
+        "the coarse solver, the sparsest stable one within tolerance of the best long-run "
+        "statistics is stored (closure.selection)")
+    duration: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="length of each candidate's coarse run, s (select aposteriori)")
+    spinup: Annotated[float, Field(ge=0)] = Field(
+        0.0, description="time left out before the long-run statistics, s")
+    tolerance: Annotated[float, Field(ge=0)] = Field(
+        0.1, description="relative tolerance on the best stable long-run score")
+    transfer_weights: list[Annotated[float, Field(ge=0)]] = Field(
+        default_factory=lambda: [0.0, 1.0], min_length=1, max_length=8,
+        description="transfer weights whose sparse paths give the candidates")
+    max_candidates: Annotated[int, Field(ge=1, le=32)] = Field(
+        4, description="sparsest candidates taken from each path")
+
+    @model_validator(mode="after")
+    def _aposteriori(self):
+        if self.select == "aposteriori":
+            if self.duration is None:
+                raise ValueError("fit.select aposteriori needs fit.duration (the length of "
+                                 "each candidate's coarse run, s)")
+            if self.spinup >= self.duration:
+                raise ValueError(f"fit.spinup ({self.spinup:g}) must be shorter than "
+                                 f"fit.duration ({self.duration:g})")
+        return self
+
+    @property
+    def selection_fields(self) -> tuple[str, ...]:
+        """The fields that only matter when select is aposteriori."""
+        return ("select", "duration", "spinup", "tolerance", "transfer_weights",
+                "max_candidates")
 
 
 class ReferenceNetSpec(_Strict):
@@ -257,6 +290,13 @@ class JobSpec(_Strict):
                              f"{MAX_INLINE_LIBRARY} characters as JSON; use fewer terms")
         return v
 
+    @model_validator(mode="after")
+    def _selection_needs_one_model(self):
+        if self.fit.select == "aposteriori" and self.input.per_level:
+            raise ValueError("fit.select aposteriori runs one coarse simulation per candidate: "
+                             "it does not combine with input.per_level; select one level")
+        return self
+
     @property
     def library_label(self) -> str:
         """The library's name for messages and provenance ("inline terms" when inline)."""
@@ -275,6 +315,9 @@ class JobSpec(_Strict):
             d.pop("fine_float32", None)
         if d.get("gas") is None or not any(v is not None for v in d["gas"].values()):
             d.pop("gas", None)  # nor do jobs without gas constants
+        if self.fit.select == "apriori":  # jobs without coarse runs keep theirs too
+            for key in self.fit.selection_fields:
+                del d["fit"][key]
         return d
 
 
@@ -286,7 +329,12 @@ class JobSpec(_Strict):
 Baseline = Literal["none", "smagorinsky", "dynamic", "gradient", "gradient-clipped"]
 _NUMBER = r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?"
 _FORCING = re.compile(rf"^(file|none|shell:{_NUMBER}:{_NUMBER}(:\d+)?"
-                      rf"|kolmogorov:{_NUMBER}:{_NUMBER})$")
+                      rf"|kolmogorov:{_NUMBER}:{_NUMBER}"
+                      rf"|steady:{_NUMBER}:{_NUMBER}(:\d+)?|power:{_NUMBER}:{_NUMBER}"
+                      r"|modes:[^\x00]{1,4096})$")
+FORCING_HELP = ("file, none, modes:PATH (a table of Fourier modes; for the service a path "
+                "under its data roots); 2-D: shell:K:A[:SEED] or kolmogorov:K:A; 3-D: "
+                "steady:K:A[:SEED] or power:K:P")
 
 
 class FileSpec(_Strict):
@@ -304,9 +352,11 @@ class FileSpec(_Strict):
 
 
 class AposterioriSpec(_Strict):
-    """An a posteriori run of a stored model in the 2-D coarse solver (closure.les.simulate),
-    against the baselines, from filtered-DNS initial fields. Every field has a default: an
-    empty spec runs the model from the first snapshot of its own input file."""
+    """An a posteriori run of a stored model in the 2-D or 3-D coarse solver
+    (closure.les.simulate), against the baselines, from filtered-DNS initial fields; with
+    ``long_duration`` every run also continues that long and its time-averaged statistics
+    after ``spinup`` are compared with those of every reference snapshot. Every field has a
+    default: an empty spec runs the model from the first snapshot of its own input file."""
 
     version: Literal[1] = SPEC_VERSION
     kind: Literal["aposteriori"] = "aposteriori"
@@ -322,7 +372,11 @@ class AposterioriSpec(_Strict):
     drag: Annotated[float, Field(ge=0)] | None = Field(
         None, description="linear drag, s-1 (default: the file's, else 0)")
     hyperviscosity_order: Annotated[int, Field(ge=1, le=8)] | None = None
-    forcing: str = Field("file", description="file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+    hypoviscosity: Annotated[float, Field(ge=0)] | None = Field(
+        None, description="large-scale damping nu_h |k|^(-2q) (default: the file's, else 0)")
+    hypoviscosity_order: Annotated[int, Field(ge=1, le=8)] | None = Field(
+        None, description="q of the hypoviscosity (default: the file's, else 1)")
+    forcing: str = Field("file", description=FORCING_HELP)
     time: Annotated[float, Field(gt=0)] | None = Field(
         None, description="run length, s (default: to the reference's last snapshot)")
     interval: Annotated[float, Field(gt=0)] | None = Field(
@@ -335,19 +389,52 @@ class AposterioriSpec(_Strict):
     cfl: Annotated[float, Field(gt=0, le=2)] = 0.5
     energy_bound: Annotated[float, Field(gt=1)] = Field(
         10.0, description="a run stops as blown up past this multiple of its initial energy")
+    long_duration: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="long run: run this long (s) and compare time-averaged statistics "
+        "with every reference snapshot")
+    spinup: Annotated[float, Field(ge=0)] | None = Field(
+        None, description="long run: statistics start after this time (s; default 0)")
+    sample_interval: Annotated[float, Field(gt=0)] | None = Field(
+        None, description="long run: sampling interval of the statistics (s; default: 200 "
+        "samples)")
 
     @field_validator("forcing")
     @classmethod
     def _forcing(cls, v: str) -> str:
         if not _FORCING.match(v.strip()):
-            raise ValueError("forcing must be file, none, shell:K:A[:SEED] or kolmogorov:K:A")
+            raise ValueError(f"forcing must be {FORCING_HELP}")
         return v.strip()
 
+    @model_validator(mode="after")
+    def _long_run(self):
+        if self.long_duration is None and (self.spinup is not None
+                                           or self.sample_interval is not None):
+            raise ValueError("spinup and sample_interval belong to a long run: give "
+                             "long_duration too")
+        if self.long_duration is not None and self.spinup is not None \
+                and self.spinup >= self.long_duration:
+            raise ValueError(f"spinup ({self.spinup:g}) must be shorter than long_duration "
+                             f"({self.long_duration:g})")
+        return self
+
+    @property
+    def modes_path(self) -> str | None:
+        """The forcing's table of Fourier modes (``modes:PATH``), else None."""
+        return self.forcing[len("modes:"):] if self.forcing.startswith("modes:") else None
+
     def fingerprint(self) -> dict:
-        """The fields that determine the result, without the files' locations."""
+        """The fields that determine the result, without the files' locations (a modes
+        table by its content: the caller adds its SHA-256). Options left unset are left out,
+        so runs stored before they existed keep their fingerprints."""
         d = self.model_dump(mode="json")
         for key in ("input", "reference"):
             d[key] = None if d[key] is None else "file"
+        if self.modes_path is not None:
+            d["forcing"] = "modes:file"
+        for key in ("hypoviscosity", "hypoviscosity_order", "long_duration", "spinup",
+                    "sample_interval"):
+            if d[key] is None:
+                del d[key]
         return d
 
 
@@ -481,7 +568,16 @@ class SweepSpec(_Strict):
         d = self.model_dump(mode="json")
         d["input"] = self.discovery.fingerprint()["input"]
         d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
+        for key in self.discovery.fit.selection_fields:  # sweeps select a priori
+            del d["discovery"]["fit"][key]
         return d
+
+    @model_validator(mode="after")
+    def _apriori_only(self):
+        if self.discovery.fit.select != "apriori":
+            raise ValueError("a sweep selects each width's model a priori: leave "
+                             "discovery.fit.select at 'apriori'")
+        return self
 
 
 def parse_sweep_spec(data: dict | str) -> SweepSpec:

@@ -504,3 +504,76 @@ def test_apriori_scatter_is_capped_but_scores_use_every_point():
     assert data.agreement()["tau_xx"]["r2"] == pytest.approx(r2_score(exact, pred), rel=1e-10)
     assert any("every" in n for n in data.notes)
     np.testing.assert_array_equal(data.exact["tau_xx"], exact[::data.stride])
+
+
+# ---------------------------------------------------------------- long runs and selection
+
+def test_long_run_figures_are_pngs_with_the_band_the_stability_and_the_front(tmp_path):
+    k = np.arange(1.0, 17.0)
+    e = k ** -3.0
+    fig = plots.long_run_spectra({"reference": (k, e), "model": (k, 1.2 * e)}, "reference",
+                                 band=(k, 0.5 * e, 2.0 * e))
+    ax = fig.axes[0]
+    assert any("range of the snapshots" in h.get_label() for h in ax.collections)
+    assert_png(plots.save_png(fig, tmp_path / "spec.png"))
+    fig = plots.stability_lines({"model": {"duration": 10.0, "stable": True},
+                                 "none": {"duration": 10.0, "stable": False,
+                                          "blowup_time": 3.5}})
+    texts = [t.get_text() for t in fig.axes[0].texts]
+    assert "stable for 10" in texts and "blew up at 3.5" in texts
+    ends = sorted(max(line.get_xdata()) for line in fig.axes[0].get_lines())
+    assert ends[0] == 3.5 and ends[-1] == 10.0
+    plots.save_png(fig, tmp_path / "stab.png")
+    cands = [{"label": "a", "n_terms": 1, "score": None, "apriori": {"test": {
+                 "relative_error": 0.5}}, "long_run": {"stable": False}},
+             {"label": "b", "n_terms": 2, "score": 0.3, "apriori": {"test": {
+                 "relative_error": 0.4}}, "long_run": {"stable": True}}]
+    fig = plots.selection_front(cands, "b")
+    right = fig.axes[1]
+    # the unstable candidate sits at the top of the long-run panel, drawn as x
+    xs = [line for line in right.get_lines() if line.get_marker() == "x"]
+    assert xs and xs[0].get_ydata()[0] == pytest.approx(1.2 * 0.3)
+    assert_png(plots.save_png(fig, tmp_path / "front.png"))
+
+
+def test_report_with_long_runs_and_a_model_chosen_by_coarse_runs(fitted, tmp_path):
+    from closure.les import simulate
+    from closure.selection import Candidate, select_by_coarse_runs
+
+    model = fitted["model"]
+    names = tuple(model.library.names)
+    unstable = tuple(5.0 if n == "smagorinsky" else 0.0 for n in names)
+    cands = [Candidate("unstable", 0.0, 0.0, unstable, names, {"test": {"relative_error": 2}}),
+             Candidate("fitted", 0.0, 0.0, tuple(float(c) for c in model.coefficients_scaled),
+                       names, {"test": {"relative_error": 0.5}})]
+    selection, chosen = select_by_coarse_runs(model, cands, fitted["data"], long_duration=1.0,
+                                              spinup=0.2)
+    assert selection.chosen == "fitted"
+    comparison = simulate(chosen, fitted["data"], baselines=["none"], long_duration=1.0,
+                          spinup=0.2)
+    out = write_report(chosen, tmp_path / "rep", les_result=comparison)
+    links = check_report_folder(out)
+    for name in ("long_run_spectra.png", "long_run_vorticity_pdf.png",
+                 "long_run_stability.png", "selection_front.png"):
+        assert name in links
+    page = (out / "index.html").read_text()
+    assert "Selection by coarse runs" in page and "Chosen: <code>fitted</code>" in page
+    assert "does not guarantee a stable or accurate coarse simulation" in page
+    assert "wall-clock time (s)" in page and "does not state the fine run" in page
+    numbers = json.loads((out / "report.json").read_text())
+    assert numbers["selection"]["chosen"] == "fitted"
+    assert numbers["aposteriori"]["long_runs"]["model"]["duration"] == 1.0
+    # the band is the range of the reference snapshots' spectra, computed directly here
+    from closure.les import coarse_data
+    from closure.report.aposteriori import as_runs
+    from closure.report.page import reference_band
+    from closure.spectral import energy_spectrum
+
+    band = reference_band(as_runs(comparison.to_dict()))
+    data = coarse_data(fitted["data"], "gaussian", 2, None, "grid", None)
+    direct = np.array([energy_spectrum([f["u"], f["v"]], data.grid)[1] for f in data.fields])
+    # the solver's reference is dealiased (2/3 rule): compare on the shells it keeps
+    # (the mean mode k = 0 holds round-off only)
+    keep = (band[0] > 0) & (band[0] < data.grid.shape[0] / 3 - 1)
+    np.testing.assert_allclose(band[2][keep], direct.max(axis=0)[keep], rtol=1e-8)
+    np.testing.assert_allclose(band[1][keep], direct.min(axis=0)[keep], rtol=1e-8)

@@ -121,3 +121,103 @@ def test_discover_and_select_runs_the_path_candidates(tmp_path):
     assert d["settings"]["aposteriori_selection"]["chosen"] == selection.chosen
     assert len(d["settings"]["aposteriori_selection"]["candidates"]) == len(
         selection.candidates)
+
+
+def test_the_spec_carries_the_selection_without_changing_earlier_fingerprints():
+    from closure.spec import parse_spec, parse_sweep_spec
+
+    plain = parse_spec({"input": {"path": "a.nc"}})
+    fp = plain.fingerprint()
+    # a job that selects a priori keeps the fingerprint it had before these fields existed
+    assert set(fp["fit"]) == {"method", "test_fraction", "resamples", "transfer_weight", "seed",
+                              "folds", "selection"}
+    spec = parse_spec({"input": {"path": "a.nc"},
+                       "fit": {"select": "aposteriori", "duration": 3.0, "spinup": 1.0}})
+    assert spec.fit.transfer_weights == [0.0, 1.0] and spec.fit.tolerance == 0.1
+    assert spec.fingerprint()["fit"]["duration"] == 3.0
+    longer = parse_spec({"input": {"path": "a.nc"},
+                         "fit": {"select": "aposteriori", "duration": 6.0, "spinup": 1.0}})
+    assert longer.fingerprint() != spec.fingerprint()
+    with pytest.raises(OptionError, match="fit.duration"):
+        parse_spec({"input": {"path": "a.nc"}, "fit": {"select": "aposteriori"}})
+    with pytest.raises(OptionError, match="shorter than"):
+        parse_spec({"input": {"path": "a.nc"},
+                    "fit": {"select": "aposteriori", "duration": 1.0, "spinup": 2.0}})
+    with pytest.raises(OptionError, match="per_level"):
+        parse_spec({"input": {"path": "a.nc", "levels": [0, 1], "per_level": True},
+                    "fit": {"select": "aposteriori", "duration": 1.0}})
+    with pytest.raises(OptionError, match="a priori"):
+        parse_sweep_spec({"discovery": spec.model_dump(mode="json"), "widths": [2.0]})
+    sweep = parse_sweep_spec({"discovery": plain.model_dump(mode="json"), "widths": [2.0]})
+    assert "select" not in sweep.fingerprint()["discovery"]["fit"]
+
+
+def test_discover_cli_selects_by_coarse_runs(tmp_path, capsys):
+    from closure.cli import main
+    from closure.model import ClosureModel
+
+    path = tmp_path / "dns.nc"
+    write(turb2d(n=32, snapshots=5, interval=0.3, spinup=0.6, viscosity=2e-3,
+                 forcing_wavenumber=3, seed=2), path)
+    out = tmp_path / "model.json"
+    rc = main(["discover", str(path), "--ratio", "2", "--resamples", "0", "-o", str(out),
+               "--select", "aposteriori", "--duration", "0.8", "--spinup", "0.2",
+               "--selection-weights", "0", "--selection-tolerance", "0.2"])
+    text = capsys.readouterr().out
+    assert rc == 0, text
+    assert "rule: sparsest candidate stable" in text and f"written: {out}" in text
+    record = ClosureModel.load(out).settings["aposteriori_selection"]
+    assert record["tolerance"] == 0.2 and record["settings"]["long_duration"] == 0.8
+    assert all(r["transfer_weight"] == 0.0 for r in record["candidates"])
+    # the options of the selection are refused without --select aposteriori, and it needs a
+    # run length
+    assert main(["discover", str(path), "-o", str(out), "--duration", "1"]) == 2
+    assert "add --select aposteriori" in capsys.readouterr().err
+    assert main(["discover", str(path), "-o", str(out), "--select", "aposteriori"]) == 2
+    assert "--duration T" in capsys.readouterr().err
+    assert main(["discover", str(path), "-o", str(out), "--select", "aposteriori",
+                 "--duration", "1", "--selection-weights", "x"]) == 2
+    assert "--selection-weights" in capsys.readouterr().err
+
+
+def test_selection_by_coarse_runs_runs_3d_candidates(tmp_path):
+    from closure.selection import discover_and_select
+    from closure.spec import parse_spec
+    from closure.synth import turb3d
+
+    path = tmp_path / "box.nc"
+    write(turb3d(n=16, snapshots=4), path)
+    spec = parse_spec({"input": {"path": str(path)}, "filter": {"ratio": 2},
+                       "fit": {"resamples": 0, "folds": 2, "select": "aposteriori",
+                               "duration": 0.5, "spinup": 0.1, "max_candidates": 2}})
+    _, selection, chosen = discover_and_select(spec)
+    assert {r["transfer_weight"] for r in selection.candidates} == {0.0, 1.0}
+    assert all(r["long_run"]["duration"] == 0.5 for r in selection.candidates)
+    assert selection.chosen == choose(selection.candidates, 0.1)
+    assert chosen is not None and chosen.grid.ndim == 3
+
+
+def test_when_no_candidate_is_stable_the_a_priori_model_says_so(tmp_path):
+    from closure.filters import make_coarse_graining
+    from closure.library import make_library
+    from closure.model import ClosureModel
+    from closure.selection import Selection, conclude, unselected_model
+
+    fine = Grid.regular((32, 32), TWO_PI, dims=("y", "x"))
+    cg = make_coarse_graining("gaussian", fine, 2, 4.0)
+    lib = make_library("default", "stress", ("y", "x"))
+    coef = tuple(1.0 if n == "gradient_model" else 0.0 for n in lib.names)
+    base = ClosureModel(lib, coef, filter=cg, grid=cg.coarse, scheme="spectral",
+                        delta=cg.delta)
+    cand = Candidate("only", 0.0, 0.0, coef, tuple(lib.names))
+    records = [dict(record("only", 1, False, None, None), score=None)]
+    selection, chosen = conclude(base, [cand], records, long_duration=3.0)
+    assert chosen is None and isinstance(selection, Selection) and selection.chosen is None
+    model = unselected_model(base, selection)
+    assert "NOT chosen by coarse runs" in model.provenance["notes"][-1]
+    assert "3 s" in model.provenance["notes"][-1]
+    assert model.settings["aposteriori_selection"]["chosen"] is None
+    assert model.coefficients_scaled.tolist() == list(coef)
+    # the file keeps the record and the note
+    again = ClosureModel.load(model.save(tmp_path / "m.json"))
+    assert again.settings["aposteriori_selection"]["candidates"][0]["label"] == "only"

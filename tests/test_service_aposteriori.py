@@ -405,7 +405,92 @@ def test_demo_ends_with_the_report_path_and_the_aposteriori_table(tmp_path):
     assert report.is_file() and report.name == "index.html"
     assert home / "demo" in report.parents  # the state folder, kept after the demo
     assert "aposteriori_spectra.png" in report.read_text()
+    # the stored model was chosen by coarse runs, and the report shows the long runs
+    assert "Selection by coarse runs" in out and re.search(r"\schosen$", out, re.M)
+    page = report.read_text()
+    for name in ("selection_front.png", "long_run_spectra.png", "long_run_stability.png"):
+        assert name in page, name
     table = out.split("A posteriori", 1)[1]
     for name in ("model", *BASELINES):
         assert re.search(rf"^{re.escape(name)}\s+(completed|blew up)", table, re.M), name
     assert "does not guarantee a stable or accurate coarse simulation" in out
+
+
+# --------------------------------------------------------------------------- long runs
+
+def test_aposteriori_spec_takes_long_runs_physics_and_forcing_families():
+    spec = parse_aposteriori_spec({"long_duration": 5.0, "spinup": 1.0, "sample_interval": 0.1,
+                                   "hypoviscosity": 0.2, "hypoviscosity_order": 2})
+    assert spec.long_duration == 5.0 and spec.hypoviscosity_order == 2
+    for forcing in ("steady:2:0.5", "steady:2:0.5:7", "power:2:0.1", "modes:forcing.txt"):
+        assert parse_aposteriori_spec({"forcing": forcing}).forcing == forcing
+    assert parse_aposteriori_spec({"forcing": "modes:a/b.txt"}).modes_path == "a/b.txt"
+    for bad in ("steady:2", "power:x:1", "modes:"):
+        with pytest.raises(Exception, match="steady:K:A"):
+            parse_aposteriori_spec({"forcing": bad})
+    with pytest.raises(Exception, match="give long_duration too"):
+        parse_aposteriori_spec({"spinup": 1.0})
+    with pytest.raises(Exception, match="shorter than long_duration"):
+        parse_aposteriori_spec({"long_duration": 1.0, "spinup": 1.0})
+    # options left unset keep the fingerprints of runs stored before they existed; a modes
+    # table counts by its content, not its location
+    assert "long_duration" not in AposterioriSpec().fingerprint()
+    assert spec.fingerprint()["long_duration"] == 5.0
+    assert parse_aposteriori_spec({"forcing": "modes:/a.txt"}).fingerprint()["forcing"] == \
+        "modes:file"
+    fp = ap.fingerprint("m", AposterioriSpec(), "0" * 64, None)
+    assert fp == ap.fingerprint("m", AposterioriSpec(), "0" * 64, None, None)
+    assert fp != ap.fingerprint("m", AposterioriSpec(), "0" * 64, None, "1" * 64)
+
+
+def test_a_modes_table_must_lie_under_the_data_roots(service, tmp_path):
+    outside = tmp_path / "modes.txt"
+    outside.write_text("0 3 1.0 0.0\n")
+    r = service.post(f"/models/{service.good}/les", json={"forcing": f"modes:{outside}"})
+    assert r.status_code == 403 and "forcing modes path" in r.json()["detail"]
+    assert "outside the data roots" in r.json()["detail"]
+    r = service.post(f"/models/{service.good}/les", json={"forcing": "modes:nothing-here.txt"})
+    assert r.status_code == 422 and "no such file" in r.json()["detail"]
+
+
+@pytest.mark.slow
+def test_queued_long_run_with_a_modes_forcing_equals_in_process(service, turb2d_file, fitted):
+    modes = turb2d_file.parent / "modes.txt"
+    modes.write_text("# m_y m_x a b\n0 3 0.5 0.0\n3 0 0.0 0.5\n")
+    body = {"baselines": ["none"], "long_duration": 1.0, "spinup": 0.2,
+            "forcing": f"modes:{modes.name}", "hypoviscosity": 0.01}
+    r = service.post(f"/models/{service.good}/les", json=body)
+    assert r.status_code == 202, r.text
+    assert r.json()["spec"]["forcing"] == f"modes:{modes.resolve()}"
+    run_burst(service)
+    out = service.get(f"/models/{service.good}/les").json()
+    runs = out["result"]["runs"]
+    assert set(runs) >= {"model", "none"}
+    _, model = fitted
+    direct = simulate(model, turb2d_file, baselines=["none"], long_duration=1.0, spinup=0.2,
+                      forcing=f"modes:{modes.resolve()}", hypoviscosity=0.01).to_dict()
+    for name in ("model", "none"):
+        assert runs[name]["long_run"]["duration"] == 1.0
+        assert runs[name]["long_run"]["stable"] == direct["runs"][name]["long_run"]["stable"]
+        np.testing.assert_allclose(runs[name]["energy"], direct["runs"][name]["energy"],
+                                   rtol=1e-12)
+
+
+@pytest.mark.slow
+def test_a_3d_model_runs_a_posteriori_on_the_queue(service, turb2d_file):
+    from closure import pipeline
+    from closure.synth import turb3d, write
+
+    box = write(turb3d(n=16, snapshots=3), turb2d_file.parent / "box.nc")
+    spec = parse_spec({"input": {"path": str(box)}, "filter": {"ratio": 2},
+                       "fit": {"resamples": 0, "folds": 2}})
+    model_id = add(service.store, spec, pipeline.discover(spec), "c")
+    r = service.post(f"/models/{model_id}/les", json={
+        "input": {"path": box.name}, "baselines": ["none", "smagorinsky"],
+        "long_duration": 0.5, "spinup": 0.1})
+    assert r.status_code == 202, r.text
+    run_burst(service)
+    out = service.get(f"/models/{model_id}/les").json()
+    assert out["result"]["settings"]["grid"]["shape"] == [8, 8, 8]
+    for name in ("model", "none", "smagorinsky"):
+        assert out["result"]["runs"][name]["long_run"]["duration"] == 0.5

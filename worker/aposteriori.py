@@ -1,5 +1,6 @@
 """A posteriori runs on the queue: one rq task runs a stored model and the baselines in the 2-D
-coarse solver (closure.les.simulate) and stores the comparison beside the model.
+or 3-D coarse solver (closure.les.simulate), optionally long with statistics compared after a
+spin-up, and stores the comparison beside the model.
 
 One user-visible job id (``j-...``, a catalog row like a discovery job's, its spec an
 :class:`closure.spec.AposterioriSpec`, its ``model_id`` set at submission) has one task::
@@ -55,12 +56,15 @@ def is_aposteriori(row: dict) -> bool:
 
 
 def fingerprint(model_id: str, spec: AposterioriSpec, input_sha256: str,
-                reference_sha256: str | None) -> str:
+                reference_sha256: str | None, modes_sha256: str | None = None) -> str:
     """Hex SHA-256 of what determines an a posteriori result: the model, the spec's
-    options (not the files' locations) and the contents of the input and reference files."""
-    text = json.dumps({"model_id": model_id, "spec": {**spec.fingerprint(), "model_id": None},
-                       "input_sha256": input_sha256, "reference_sha256": reference_sha256},
-                      sort_keys=True, separators=(",", ":"))
+    options (not the files' locations) and the contents of the input and reference files
+    (and of the forcing's modes table, when there is one)."""
+    data = {"model_id": model_id, "spec": {**spec.fingerprint(), "model_id": None},
+            "input_sha256": input_sha256, "reference_sha256": reference_sha256}
+    if modes_sha256 is not None:  # left out otherwise: earlier runs keep their fingerprints
+        data["modes_sha256"] = modes_sha256
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
 
 
@@ -137,6 +141,8 @@ def _check_files(store: Store, spec: AposterioriSpec, row: dict) -> None:
     tasks.check_input_file(initial)
     if spec.reference is not None:
         tasks.check_input_file(spec.reference.path)
+    if spec.modes_path is not None:
+        tasks.check_input_file(spec.modes_path)
     if row.get("input_sha256") and sha256_file(initial) != row["input_sha256"]:
         raise UserError("the input file changed since the run was submitted (its SHA-256 "
                         "differs from the one recorded then); it is not read: resubmit")
@@ -157,7 +163,10 @@ def run(store: Store, spec: AposterioriSpec, progress=None):
         hyperviscosity_order=spec.hyperviscosity_order, forcing=spec.forcing,
         duration=spec.time, interval=spec.interval, baselines=list(spec.baselines),
         smagorinsky_constant=spec.smagorinsky_constant, dealias=spec.dealias, cfl=spec.cfl,
-        energy_bound=spec.energy_bound, progress=progress)
+        energy_bound=spec.energy_bound, progress=progress,
+        long_duration=spec.long_duration, spinup=spec.spinup,
+        sample_interval=spec.sample_interval, hypoviscosity=spec.hypoviscosity,
+        hypoviscosity_order=spec.hypoviscosity_order)
 
 
 def model_input_path(store: Store, model_id: str) -> Path:

@@ -273,7 +273,8 @@ def reconcile(store, conn: redis.Redis, row: dict) -> dict:
 
     if aposteriori.is_aposteriori(row):  # one task of its own, not plan/map/reduce
         return aposteriori.reconcile(store, conn, row)
-    for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting")):
+    for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting"),
+                        (f"{row['id']}-choose", "choosing by coarse runs")):
         job = fetch(conn, rq_id)
         if job is None:
             if rq_id.endswith("-plan") and time.time() - row["created"] > 30 \
@@ -370,8 +371,11 @@ def cancel(store, conn: redis.Redis, job_id: str) -> bool:
 
 def stop_tasks(conn: redis.Redis, job_id: str) -> None:
     """Cancel every pending task of a job and stop the running ones."""
-    ids = [plan_id(job_id), reduce_id(job_id)]
+    ids = [plan_id(job_id), reduce_id(job_id), f"{job_id}-choose"]
     ids += [map_id(job_id, k) for k in range(len(map_tasks(conn, job_id)))]
+    total = conn.hget(progress_key(job_id), "phase_total")
+    if conn.hget(progress_key(job_id), "phase") == b"coarse runs" and total:
+        ids += [f"{job_id}-run-{k}" for k in range(int(total))]  # worker.selection's tasks
     for rq_id in ids:
         job = fetch(conn, rq_id)
         if job is None:

@@ -360,6 +360,10 @@ def reduce_task(job_id: str) -> dict:
         return _fail(conn, job_id, str(exc))
     if _lease_lost():
         return {"job": job_id, "lease_lost": True}
+    from worker import selection
+
+    if selection.wanted(spec):  # coarse runs choose the stored model (worker.selection)
+        return selection.start(conn, job_id, spec, plan, stats, model)
     model_row = st.add_model(
         model=model, fingerprint=row["fingerprint"], dataset_sha256=row["input_sha256"],
         spec=spec, plan=plan, job_id=job_id, stats_dir=work / "stats", name=row["name"])

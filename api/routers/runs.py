@@ -27,7 +27,8 @@ def submit_aposteriori(model_id: str, response: Response,
                            "may be empty)"),
                        settings: Settings = Depends(get_settings),
                        store: Store = Depends(get_store), conn=Depends(get_redis)) -> dict:
-    """Run the model from filtered-DNS initial fields in the 2-D coarse solver, with the same
+    """Run the model from filtered-DNS initial fields in the 2-D or 3-D coarse solver (with
+    ``long_duration``: also long, its statistics compared after ``spinup``), with the same
     options for each baseline, and compare every run with the filtered DNS (202, a job to
     follow with GET /jobs/{id}; the result is at GET /models/{id}/les). The input defaults to
     the model's own input file. The same request again is answered from the store or from
@@ -39,19 +40,28 @@ def submit_aposteriori(model_id: str, response: Response,
                           f"{model_id!r}: leave it out")
     row = store.get_model(model_id)
     dims = (read_json(Path(row["path"]) / "model.json").get("dims") or [])
-    if list(dims) != ["y", "x"]:
+    if list(dims) not in (["y", "x"], ["z", "y", "x"]):
         raise OptionError(f"model {model_id} is a {len(dims)}-D ({', '.join(dims)}) model: the "
-                          "a posteriori coarse solver runs 2-D (y, x) periodic flows only")
+                          "a posteriori coarse solvers run 2-D (y, x) and 3-D (z, y, x) "
+                          "periodic flows only")
     initial, initial_ds = _resolve(spec.input, "input", store, settings)
     if initial is None:
         initial = ap.model_input_path(store, model_id)
     reference, _ = _resolve(spec.reference, "reference", store, settings)
-    run_spec = spec.model_copy(update={
-        "model_id": model_id, "input": FileSpec(path=os.fspath(initial)),
-        "reference": None if reference is None else FileSpec(path=os.fspath(reference))})
+    update = {"model_id": model_id, "input": FileSpec(path=os.fspath(initial)),
+              "reference": None if reference is None else FileSpec(path=os.fspath(reference))}
+    modes = None
+    if spec.modes_path is not None:  # a forcing table is read by the worker: same roots
+        modes = resolve_under_roots(spec.modes_path, settings.data_roots, "forcing modes path")
+        if not modes.is_file():
+            raise InputFileError(f"forcing modes:{spec.modes_path}: no such file under the "
+                                 "data roots; give the path of a table of Fourier modes")
+        update["forcing"] = f"modes:{os.fspath(modes)}"
+    run_spec = spec.model_copy(update=update)
     sha_in = _sha256(store, initial)
     fp = ap.fingerprint(model_id, run_spec, sha_in,
-                        None if reference is None else _sha256(store, reference))
+                        None if reference is None else _sha256(store, reference),
+                        None if modes is None else _sha256(store, modes))
     row_fields = dict(spec=run_spec.model_dump(mode="json"), fingerprint=fp,
                       input_sha256=sha_in, dataset_id=initial_ds, model_id=model_id)
     done = ap.read_result(store, model_id, fp)

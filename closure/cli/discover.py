@@ -88,7 +88,9 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
                reference_net: bool = False, net_epochs: int | None = None,
                net_seconds: float | None = None, memory_limit: str | None = None,
                fine_float32: bool = False, device: str = "numpy",
-               gas: dict | None = None):
+               gas: dict | None = None, select: str = "apriori",
+               duration: float | None = None, spinup: float | None = None,
+               tolerance: float | None = None, transfer_weights: str | None = None):
     """The JobSpec of a ``closure discover`` command line (OptionError naming a bad option).
 
     ``input``: one path or a list of them (files, globs, a folder, a Zarr store)."""
@@ -105,6 +107,27 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
     if net_seconds is not None:
         net["seconds"] = net_seconds
     inputs = [str(input)] if isinstance(input, str | Path) else [str(p) for p in input]
+    fit = {"method": method, "test_fraction": test_fraction, "resamples": resamples,
+           "transfer_weight": transfer_weight, "seed": seed, "select": select}
+    if select != "aposteriori":
+        given = [name for name, v in (("--duration", duration), ("--spinup", spinup),
+                                      ("--selection-tolerance", tolerance),
+                                      ("--selection-weights", transfer_weights))
+                 if v is not None]
+        if given:
+            raise OptionError(f"{', '.join(given)} set the selection by coarse runs: add "
+                              "--select aposteriori, or leave them out")
+    else:
+        if duration is None:
+            raise OptionError("--select aposteriori runs every candidate in the coarse solver: "
+                              "give the run length with --duration T (s)")
+        fit["duration"] = duration
+        if spinup is not None:
+            fit["spinup"] = spinup
+        if tolerance is not None:
+            fit["tolerance"] = tolerance
+        if transfer_weights is not None:
+            fit["transfer_weights"] = _weights(transfer_weights)
     return parse_spec({
         "input": input_dict(inputs, var=var, scalar=scalar, group=group, mask=mask,
                             levels=levels, per_level=per_level, spacing=spacing,
@@ -114,14 +137,24 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
         "target": target,
         "library": library,
         "scheme": scheme,
-        "fit": {"method": method, "test_fraction": test_fraction, "resamples": resamples,
-                "transfer_weight": transfer_weight, "seed": seed},
+        "fit": fit,
         "reference_net": net,
         "memory_limit": parse_memory(memory_limit),
         "fine_float32": bool(fine_float32),
         "device": device,
         **({"gas": gas} if gas else {}),
     })
+
+
+def _weights(text: str) -> list[float]:
+    try:
+        out = [float(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        out = []
+    if not out:
+        raise OptionError(f"--selection-weights takes comma-separated transfer weights such "
+                          f"as 0,1; got {text!r}")
+    return out
 
 
 def check_output(output: Path, inputs, what: str = "-o") -> None:
@@ -208,6 +241,22 @@ def discover(
     gamma: float | None = GAMMA,
     gas_constant: float | None = GAS_CONSTANT,
     prandtl: float | None = PRANDTL,
+    select: str = typer.Option(
+        "apriori", "--select", help="apriori (held-out error picks the path point) or "
+        "aposteriori (candidates along the sparse paths run long in the coarse solver; the "
+        "sparsest stable one within the tolerance of the best long-run statistics is kept)"),
+    duration: float | None = typer.Option(
+        None, "--duration", help="--select aposteriori: each candidate's run length (s)",
+        show_default=False),
+    spinup: float | None = typer.Option(
+        None, "--spinup", help="--select aposteriori: statistics start after this time "
+        "(s; default 0)", show_default=False),
+    selection_tolerance: float | None = typer.Option(
+        None, "--selection-tolerance", help="--select aposteriori: relative tolerance on the "
+        "best stable long-run score (default 0.1)", show_default=False),
+    selection_weights: str | None = typer.Option(
+        None, "--selection-weights", help="--select aposteriori: transfer weights of the "
+        "candidate paths, comma-separated (default 0,1)", show_default=False),
 ) -> None:
     """Fit a sparse closure from candidate terms, score it on held-out snapshots, write it."""
     from closure import pipeline
@@ -225,7 +274,12 @@ def discover(
                       reference_net=reference_net, net_epochs=net_epochs,
                       net_seconds=net_seconds, memory_limit=memory_limit, fine_float32=float32,
                       device=device,
-                      gas=gas_options(gamma, gas_constant, prandtl, library))
+                      gas=gas_options(gamma, gas_constant, prandtl, library),
+                      select=select, duration=duration, spinup=spinup,
+                      tolerance=selection_tolerance, transfer_weights=selection_weights)
+    if spec.fit.select == "aposteriori":
+        _discover_and_select(spec, output, quiet)
+        return
     with progress_bar(not quiet, "planning", _LABELS) as progress:
         if spec.input.per_level:
             results = pipeline.discover_levels(spec, progress=progress)
@@ -239,3 +293,23 @@ def discover(
                 typer.echo(f"--- level {level}")
             typer.echo(model.summary())
         typer.echo(f"written: {path}")
+
+
+def _discover_and_select(spec, output: Path, quiet: bool) -> None:
+    """``--select aposteriori``: closure.selection.discover_and_select, in this process."""
+    from closure.selection import PHASE, discover_and_select, unselected_model
+
+    labels = {**_LABELS, PHASE: "coarse runs (candidates)"}
+    with progress_bar(not quiet, "planning", labels) as progress:
+        apriori, selection, chosen = discover_and_select(spec, progress=progress)
+    echo_notes(apriori.provenance.get("notes") or [])
+    model = chosen if chosen is not None else unselected_model(apriori, selection)
+    path = model.save(output)
+    if not quiet:
+        typer.echo(model.summary())
+        typer.echo(selection.table())
+        typer.echo("A priori skill does not guarantee a stable or accurate coarse simulation; "
+                   "the chosen model was stable on this flow for this run length only.")
+    if chosen is None:
+        typer.echo(f"warning: {model.provenance['notes'][-1]}", err=True)
+    typer.echo(f"written: {path}")

@@ -428,13 +428,19 @@ def demo(
     snapshots: int = typer.Option(6, "--snapshots", help="snapshots of demo data"),
     workers: int = typer.Option(2, "--workers", min=1, max=16),
     ratio: int = typer.Option(4, "--ratio"),
+    duration: float = typer.Option(5.0, "--duration", help="length of each coarse run, s: "
+                                   "the candidates' (selection) and the long a posteriori "
+                                   "runs'; statistics after the first fifth"),
 ) -> None:
     """Discover a closure for generated 2-D turbulence through a local stack, end to end.
 
-    Starts Redis, the API and workers in the demo folder, submits the discovery job, queues an
-    a posteriori run of the model against the baselines, has the service build the model's
-    report, prints the model, the report's path and the a posteriori table, and stops the
-    stack. Everything stays in the folder (run it again and the stored results are reused)."""
+    Starts Redis, the API and workers in the demo folder, submits the discovery job with
+    selection by coarse runs (the candidates along the sparse paths each run ``--duration``
+    in the coarse solver, as queued tasks; the sparsest stable one within the tolerance of
+    the best long-run statistics is stored), queues a long a posteriori run of the model
+    against the baselines, has the service build the model's report, prints the model, the
+    candidates, the report's path and the a posteriori tables, and stops the stack.
+    Everything stays in the folder (run it again and the stored results are reused)."""
     from closure.client import Client, JobFailedError
     from closure.localstack import LocalStack, default_state_dir
 
@@ -456,15 +462,18 @@ def demo(
     with stack:
         typer.echo(f"service at {stack.server_url}")
         with Client(stack.server_url) as c:
-            job = c.submit(str(path), ratio=ratio, name="demo")
+            spinup = duration / 5
+            job = c.submit({"input": {"path": str(path)}, "filter": {"ratio": ratio},
+                            "fit": {"select": "aposteriori", "duration": duration,
+                                    "spinup": spinup, "max_candidates": 3}}, name="demo")
             typer.echo(f"job {job['id']} queued")
             with _progress(True) as update:
                 doc = c.wait(job["id"], progress=update, timeout=600)
             model_id = doc["model_id"]
             model = c.model(model_id)
-            run = c.run_aposteriori(model_id)
+            run = c.run_aposteriori(model_id, long_duration=duration, spinup=spinup)
             typer.echo(f"a posteriori run {run['id']} queued (the model and the baselines "
-                       "in the coarse solver)")
+                       f"in the coarse solver, {duration:g} s long)")
             try:
                 with _progress(True) as update:
                     c.wait(run["id"], progress=update, timeout=600)
@@ -476,12 +485,25 @@ def demo(
     typer.echo("")
     typer.echo(model["summary"])
     typer.echo("")
+    from closure.model import ClosureModel
+    from closure.selection import Selection
+
+    record = ClosureModel.load(where / "model.json").settings.get("aposteriori_selection")
+    if record:
+        typer.echo("Selection by coarse runs: every candidate along the sparse paths ran "
+                   f"{duration:g} s in the coarse solver (one queued task each):")
+        typer.echo(Selection(record["candidates"], record["chosen"], record["tolerance"],
+                             record.get("settings") or {}).table())
+        if record["chosen"] is None:
+            typer.echo("no candidate was stable: the stored model is the a priori one")
+        typer.echo("")
     typer.echo(f"model {model_id} stored in {where}")
     typer.echo(f"report: {where / 'report' / 'index.html'}")
     typer.echo("")
     if les is not None:
         typer.echo("A posteriori: the model and the baselines in the coarse solver (run on the "
-                   "queue), from the filtered first snapshot, against the filtered DNS:")
+                   "queue), from the filtered first snapshot, against the filtered DNS; then "
+                   f"long-run statistics after {spinup:g} s against every filtered snapshot:")
         typer.echo(les["table"])
         for name, r in (les.get("runs") or {}).items():
             if r.get("status") == "blew up":

@@ -435,6 +435,15 @@ def write_report(model, out_dir: str | os.PathLike, coarse_test_snapshots=None,
             numbers["aposteriori"] = runs.summary()
             numbers["aposteriori"]["units"] = run_base.to_dict()
             numbers["aposteriori"]["coinciding"] = coincide
+            long_text, long_numbers = long_run_section(runs, tmp, run_base, raw)
+            if long_text:
+                sections.append(long_text)
+                numbers["aposteriori"]["long_runs"] = long_numbers
+        selection = (mdict.get("settings") or {}).get("aposteriori_selection")
+        if isinstance(selection, Mapping) and selection.get("candidates"):
+            sections.append(selection_section(selection, tmp))
+            numbers["selection"] = {k: selection.get(k) for k in
+                                    ("rule", "tolerance", "chosen", "settings")}
         if note_items:
             sections.append("<h2>Notes</h2><ul>" + "".join(
                 f"<li>{html.escape(str(n))}</li>" for n in note_items) + "</ul>")
@@ -750,3 +759,157 @@ def _aposteriori_section(runs: AposterioriRuns, tmp: Path, base: Units | None = 
 
 def _notes_text(groups: list[tuple[list[str], str, str]]) -> str:
     return "".join(short for _, short, _ in groups)
+
+
+# ------------------------------------------------------------------ long runs and selection
+
+#: what a long-run comparison shows, said under its table
+LONG_RUN_TEXT = ("Each run continued for the stated time; its statistics after the spin-up "
+                 "(time-mean energy spectrum, vorticity PDF, mean energy and enstrophy) are "
+                 "compared with those of every filtered fine-grid snapshot. This is evidence "
+                 "about this flow, this resolution and this run length: a run that stayed "
+                 "stable here may still blow up longer, on another flow or at another "
+                 "resolution, and a priori skill does not guarantee a stable or accurate "
+                 "coarse simulation.")
+
+
+def _long_records(runs: AposterioriRuns) -> dict[str, dict]:
+    """The runs that were long runs (a ``stable`` figure), reference left out."""
+    return {lab: r.long_run for lab, r in runs.runs.items()
+            if lab != runs.reference and isinstance(r.long_run, Mapping)
+            and "stable" in r.long_run}
+
+
+def reference_band(runs: AposterioriRuns) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+    """(k, E_min, E_max): the range of the reference snapshots' energy spectra, when the
+    result records it (``closure les --duration`` does)."""
+    ref = runs.runs.get(runs.reference) if runs.reference else None
+    spec = (((ref.long_run if ref is not None else None) or {}).get("statistics") or {}
+            ).get("spectrum") or {}
+    if not all(key in spec for key in ("k", "E_min", "E_max")):
+        return None
+    return tuple(np.asarray([math.nan if v is None else v for v in spec[key]], dtype=float)
+                 for key in ("k", "E_min", "E_max"))
+
+
+def cost_rows(raw: Mapping) -> tuple[list[list], str]:
+    """Rows (run, wall seconds, steps, coarse points, coarse/fine cost) and a sentence on
+    the fine run's cost: the coarse/fine ratio is given only when the input file states the
+    fine run's wall-clock time (``wall_seconds``) and simulated time (``simulated_time``)."""
+    settings = raw.get("settings") or {}
+    shape = ((settings.get("grid") or {}).get("shape")) or []
+    points = int(np.prod(shape)) if shape else None
+    fine = settings.get("fine_cost") or {}
+    long_settings = settings.get("long_run") or {}
+    fine_rate = None
+    if fine.get("wall_seconds") and fine.get("simulated_time"):
+        fine_rate = float(fine["wall_seconds"]) / float(fine["simulated_time"])
+    rows = []
+    for lab, r in (raw.get("runs") or {}).items():
+        if lab == raw.get("reference") or r.get("wall_seconds") is None:
+            continue
+        t = r.get("time") or []
+        simulated = (r.get("long_run") or {}).get("reached")
+        if simulated is None and len(t) > 1:
+            simulated = float(t[-1]) - float(t[0])
+        ratio = None
+        if fine_rate and simulated:
+            ratio = float(r["wall_seconds"]) / simulated / fine_rate
+        rows.append([lab, r["wall_seconds"], r.get("steps"), points, ratio])
+    if fine_rate:
+        text = (f"The fine run took {fine['wall_seconds']:.4g} s of wall-clock time for "
+                f"{fine['simulated_time']:.4g} s of simulated time (as its file states); the "
+                "last column is the coarse run's wall-clock time per simulated second over "
+                "the fine run's.")
+    else:
+        text = ("The input file does not state the fine run's wall-clock and simulated time, "
+                "so the coarse/fine cost ratio is left out" + (
+                    f"; the fine grid has {settings['fine_points']} points" if
+                    settings.get("fine_points") else "") + ".")
+    if long_settings.get("duration"):
+        text += " Wall-clock times were measured on the machine that ran the comparison."
+    return rows, text
+
+
+def long_run_section(runs: AposterioriRuns, tmp: Path, base: Units | None = None,
+                     raw: Mapping | None = None) -> tuple[str, dict]:
+    """The long-run HTML (table, spectra with the reference band, vorticity PDFs on a log
+    scale, a stability line per run, cost) and its numbers; ("", {}) without long runs."""
+    records = _long_records(runs)
+    if not records:
+        return "", {}
+    base = base or Units()
+    t_units = base.time or base.of("time")
+    out = ["<h2>A posteriori: long runs</h2>", f"<p>{html.escape(LONG_RUN_TEXT)}</p>"]
+    rows = [[lab, "stable" if r.get("stable") else "blew up", r.get("duration"),
+             r.get("blowup_time"), r.get("spectrum_error"), r.get("vorticity_pdf_distance"),
+             r.get("mean_energy_ratio"), r.get("mean_enstrophy_ratio")]
+            for lab, r in records.items()]
+    out.append(_table(["run", "stability", label("duration", t_units), label("blow-up time",
+                       t_units), "spectrum error (1)", "vorticity PDF distance (1)",
+                       "mean energy / reference (1)", "mean enstrophy / reference (1)"], rows))
+    spectra = runs.long_run_curves("spectrum")
+    band = reference_band(runs)
+    if spectra:
+        ku, eu = base.of("wavenumber"), base.of("energy_spectrum")
+        plots.save_png(plots.long_run_spectra(spectra, runs.reference, band, k_units=ku,
+                                              units=eu), tmp / "long_run_spectra.png")
+        out.append(_figure("long_run_spectra.png", "Time-mean energy spectra of the long runs "
+                           "after the spin-up" + (", with the range of the reference "
+                                                  "snapshots shaded" if band else "") + ".",
+                           ku, eu))
+    pdfs = runs.long_run_curves("vorticity_pdf")
+    if pdfs:
+        wu, pu = base.of("vorticity"), base.of("vorticity_pdf")
+        fig = plots.pdfs(pdfs, "vorticity", runs.reference, units=wu, density_units=pu)
+        fig.axes[0].set_title("Long runs: vorticity PDF after the spin-up (log scale)")
+        plots.save_png(fig, tmp / "long_run_vorticity_pdf.png")
+        out.append(_figure("long_run_vorticity_pdf.png", "Time-mean vorticity PDFs of the "
+                           "long runs on a log density axis, tails included.", wu, pu))
+    plots.save_png(plots.stability_lines(records, time_units=t_units),
+                   tmp / "long_run_stability.png")
+    out.append(_figure("long_run_stability.png", "Stability of each long run: stable for the "
+                       "whole run, or the time it blew up.", t_units))
+    numbers = {lab: {k: r.get(k) for k in ("stable", "duration", "blowup_time",
+                                            "spectrum_error", "vorticity_pdf_distance",
+                                            "mean_energy_ratio", "mean_enstrophy_ratio")}
+               for lab, r in records.items()}
+    if raw:
+        cost, text = cost_rows(raw)
+        if cost:
+            out.append("<h3>Cost</h3>" + _table(
+                ["run", "wall-clock time (s)", "steps", "coarse grid points",
+                 "coarse / fine cost per simulated second"], cost) + f"<p>{html.escape(text)}</p>")
+    return "".join(out), numbers
+
+
+def selection_section(selection: Mapping, tmp: Path) -> str:
+    """The candidates of a model chosen by coarse runs: the front (number of terms vs a
+    priori error vs long-run score) and the table of every candidate."""
+    chosen = selection.get("chosen")
+    cands = list(selection.get("candidates") or [])
+    plots.save_png(plots.selection_front(cands, chosen), tmp / "selection_front.png")
+    rows = []
+    for c in cands:
+        f = c.get("long_run") or {}
+        rows.append([c.get("label"), c.get("n_terms"), c.get("transfer_weight"),
+                     ((c.get("apriori") or {}).get("test") or {}).get("relative_error"),
+                     "stable" if f.get("stable") else "blew up", f.get("blowup_time"),
+                     f.get("spectrum_error"), f.get("vorticity_pdf_distance"), c.get("score"),
+                     "chosen" if c.get("label") == chosen else ""])
+    settings = selection.get("settings") or {}
+    head = (f"<p>Every candidate along the sparse paths ran {settings.get('long_duration', '?')}"
+            f" s in the coarse solver (statistics after {settings.get('spinup', 0)} s). Rule: "
+            f"{html.escape(str(selection.get('rule', '')))} (tolerance "
+            f"{selection.get('tolerance')}). " + (
+                f"Chosen: <code>{html.escape(str(chosen))}</code>." if chosen else
+                "<strong>No candidate was stable: this model was not chosen by coarse runs."
+                "</strong>") + "</p>")
+    return ("<h2>Selection by coarse runs</h2>" + head
+            + _figure("selection_front.png", "Number of terms against the a priori held-out "
+                      "error and the long-run score (both dimensionless); x: blew up; "
+                      "circled: chosen.")
+            + _table(["candidate", "terms", "transfer weight", "a priori error (1)",
+                      "stability", "blow-up time", "spectrum error (1)", "PDF distance (1)",
+                      "score (1)", ""], rows)
+            + f"<p>{html.escape(selection.get('note') or CAUTION)}</p>")

@@ -381,3 +381,102 @@ def pdfs(curves: Mapping[str, tuple[np.ndarray, np.ndarray]], variable: str,
     ax.set_title(f"A posteriori PDF of the {variable}")
     ax.legend(fontsize=8)
     return fig
+
+
+def long_run_spectra(curves: Mapping[str, tuple[np.ndarray, np.ndarray]],
+                     reference: str | None = None,
+                     band: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
+                     figsize=FIGSIZE, *, k_units: str | None = None,
+                     units: str | None = None) -> Figure:
+    """Time-mean energy spectra of long runs (``curves[label] = (k, E)``, log-log) with the
+    reference drawn black and, when given, ``band = (k, E_min, E_max)``: the range the
+    reference snapshots span, shaded grey. Values below :data:`SPECTRUM_FLOOR` times the
+    largest are left out, as in :func:`aposteriori_spectra`."""
+    fig = aposteriori_spectra(curves, reference, figsize, k_units=k_units, units=units)
+    ax = fig.axes[0]
+    if band is not None:
+        k, lo, hi = (np.asarray(a, dtype=float) for a in band)
+        peak = float(np.nanmax(hi, initial=0.0))
+        keep = (k > 0) & (lo > SPECTRUM_FLOOR * peak) & np.isfinite(lo) & np.isfinite(hi)
+        ax.fill_between(k[keep], lo[keep], hi[keep], color="0.8", zorder=1,
+                        label=f"{reference or 'reference'}: range of the snapshots")
+        ax.legend(fontsize=8)
+    ax.set_title("Long runs: time-mean energy spectra after the spin-up")
+    return fig
+
+
+def stability_lines(runs: Mapping[str, Mapping], figsize=FIGSIZE, *,
+                    time_units: str | None = None) -> Figure:
+    """One horizontal line per run (``runs[label] = {"duration", "stable", "blowup_time"}``,
+    times from the run's start): solid to the end when it was stable ("stable for T"), else
+    to its blow-up time, ending in an x ("blew up at t")."""
+    labels = list(runs)
+    fig = Figure(figsize=figsize, layout="constrained")
+    ax = fig.subplots()
+    top = 0.0
+    for i, label in enumerate(labels):
+        r = runs[label]
+        duration = float(r.get("duration") or 0.0)
+        top = max(top, duration)
+        y = len(labels) - 1 - i
+        if r.get("stable"):
+            ax.plot([0, duration], [y, y], color="tab:green", lw=4, solid_capstyle="butt")
+            text = f"stable for {duration:.4g}"
+        else:
+            tb = r.get("blowup_time")
+            end = float(tb) if tb is not None else 0.0
+            ax.plot([0, end], [y, y], color="tab:red", lw=4, solid_capstyle="butt")
+            ax.plot([end], [y], "x", color="tab:red", ms=12, mew=3)
+            text = f"blew up at {end:.4g}" if tb is not None else "blew up"
+        ax.annotate(text, (0, y), xytext=(4, 7), textcoords="offset points", fontsize=8)
+    ax.set_yticks(range(len(labels)), labels[::-1])
+    ax.set_ylim(-0.7, len(labels) - 0.3)
+    ax.set_xlim(0, top * 1.02 if top > 0 else 1.0)
+    ax.set_xlabel(_label("time since the start of the run", time_units))
+    ax.set_title("Stability of the long runs")
+    return fig
+
+
+def selection_front(candidates: Sequence[Mapping], chosen: str | None = None,
+                    figsize=FIGSIZE) -> Figure:
+    """The front of a selection by coarse runs: number of terms against the a priori
+    (held-out relative) error and against the long-run score (spectrum error + vorticity
+    PDF distance), one point per candidate; candidates that blew up are drawn as x at the top
+    of the long-run panel, the chosen one circled. Every quantity is dimensionless."""
+    fig = Figure(figsize=figsize, layout="constrained")
+    left, right = fig.subplots(1, 2, sharex=True)
+    n = [int(c["n_terms"]) for c in candidates]
+    apriori = [_num(((c.get("apriori") or {}).get("test") or {}).get("relative_error"))
+               for c in candidates]
+    score = [_num(c.get("score")) for c in candidates]
+    stable = [bool((c.get("long_run") or {}).get("stable")) for c in candidates]
+    finite = [s for s, ok in zip(score, stable, strict=True) if ok and np.isfinite(s)]
+    ceiling = 1.2 * max(finite) if finite else 1.0
+    for i, c in enumerate(candidates):
+        mark = "o" if stable[i] else "x"
+        colour = "tab:blue" if stable[i] else "tab:red"
+        if np.isfinite(apriori[i]):
+            left.plot(n[i], apriori[i], mark, color=colour, ms=8, mew=2)
+        y = score[i] if stable[i] and np.isfinite(score[i]) else ceiling
+        right.plot(n[i], y, mark, color=colour, ms=8, mew=2)
+        if c.get("label") == chosen:
+            for ax, v in ((left, apriori[i]), (right, y)):
+                if np.isfinite(v):
+                    ax.plot(n[i], v, "o", ms=16, mfc="none", mec="black", mew=1.5)
+        right.annotate(str(c.get("label", "")), (n[i], y), xytext=(4, 4),
+                       textcoords="offset points", fontsize=7)
+    left.set_xlabel("number of terms")
+    right.set_xlabel("number of terms")
+    left.set_ylabel("a priori held-out relative error (1)")
+    right.set_ylabel("long-run score: spectrum error + PDF distance (1)")
+    left.set_title("A priori")
+    right.set_title("Long coarse runs (x: blew up)")
+    left.xaxis.set_major_locator(matplotlib.ticker.MaxNLocator(integer=True))
+    return fig
+
+
+def _num(v) -> float:
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return float("nan")
