@@ -389,7 +389,11 @@ class CoarseGrainSpec(_Strict):
         "default: every one")
     dtype: Literal["float64", "float32"] = Field(
         "float64", description="type of the stored fields and terms (coordinates stay float64)")
-    format: Literal["netcdf"] = Field("netcdf", description="product file format")
+    format: Literal["netcdf", "zarr"] = Field(
+        "netcdf", description="product file format: netcdf (one CF netCDF-4 file), or zarr "
+        "for big products (one zip of a Zarr v3 store, one group per setting, the same "
+        "variables, attributes and values; open it with "
+        "xarray.open_zarr(zarr.storage.ZipStore(path, mode='r'), group=...))")
 
     @field_validator("targets")
     @classmethod

@@ -157,6 +157,50 @@ def test_download_and_range_requests(api, data):
     assert api.get(f"/products/{row['id']}").status_code == 404
 
 
+def test_zarr_product_download_and_range_requests(api, data, tmp_path):
+    """A Zarr product is served as one zip (application/zip, ``<id>.zarr.zip``), with range
+    requests; the client names the file by its format and refuses a netCDF name."""
+    from closure.client import Client
+
+    spec = parse_coarse_grain_spec(cg_spec(data["small"], [{"ratio": 2}, {"ratio": 4}],
+                                           format="zarr", targets=["stress"], transfers=[]))
+    out = products.coarse_grain_product(spec, data["root"] / "ranged.zarr.zip")
+    plan = products.plan(spec)
+    row = api.store.add_product(file=out, fingerprint="e" * 64, dataset_sha256=plan["sha256"],
+                                spec=spec.model_dump(mode="json"), plan=plan, job_id=None)
+    assert row["format"] == "zarr"
+    body = (api.store.product_dir(row["id"]) / "product.nc").read_bytes()
+    assert body[:4] == b"PK\x03\x04"  # a zip (PKWARE APPNOTE, 4.3.7: local file header)
+    r = api.get(f"/products/{row['id']}/data")
+    assert r.status_code == 200 and r.content == body
+    assert r.headers["content-type"] == "application/zip"
+    assert f'filename="{row["id"]}.zarr.zip"' in r.headers["content-disposition"]
+    assert r.headers["x-product-format"] == "zarr"
+    # RFC 9110, section 14: a byte range answers 206 with Content-Range
+    r = api.get(f"/products/{row['id']}/data", headers={"Range": "bytes=10-1033"})
+    assert r.status_code == 206 and r.content == body[10:1034]
+    assert r.headers["content-range"] == f"bytes 10-1033/{len(body)}"
+    r = api.get(f"/products/{row['id']}/data", headers={"Range": f"bytes={len(body)}-"})
+    assert r.status_code == 416
+    # the client: a folder gets <id>.zarr.zip; a .nc name is refused before writing
+    c = Client("http://testserver")
+    c._http = api
+    down = tmp_path / "down"
+    down.mkdir()
+    got = c.fetch(row["id"], down)
+    assert got == down / f"{row['id']}.zarr.zip" and got.read_bytes() == body
+    with products.open_product(got, "setting_1") as ds:
+        assert ds.sizes["x"] == 8 and ds.attrs["coarsening_ratio"] == 4
+    from closure.errors import UserError
+
+    with pytest.raises(UserError, match=r"is a Zarr product .* name the file out.zarr.zip"):
+        c.fetch(row["id"], down / "out.nc")
+    assert sorted(p.name for p in down.iterdir()) == [got.name]
+    # discovery reads netCDF products only: a clear 4xx
+    r = api.post("/jobs", json={"input": {"dataset_id": row["id"]}})
+    assert r.status_code == 400 and "is a Zarr product" in r.json()["detail"], r.text
+
+
 def test_openapi_documents_products_and_the_job_kind(api):
     doc = api.get("/openapi.json").json()
     paths = doc["paths"]
@@ -166,6 +210,10 @@ def test_openapi_documents_products_and_the_job_kind(api):
     assert {"200", "206", "404", "416"} <= set(data_get["responses"])
     assert "404" in paths["/products/{product_id}"]["delete"]["responses"]
     assert "CoarseGrainSpec" in doc["components"]["schemas"]
+    fmt = doc["components"]["schemas"]["CoarseGrainSpec"]["properties"]["format"]
+    assert fmt["enum"] == ["netcdf", "zarr"] and "ZipStore" in fmt["description"]
+    assert {"application/x-netcdf", "application/zip"} <= set(
+        data_get["responses"]["200"]["content"])
     body = paths["/jobs"]["post"]["requestBody"]["content"]["application/json"]["schema"]
     refs = str(body)
     assert "CoarseGrainSpec" in refs and "JobSpec" in refs
