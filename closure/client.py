@@ -589,10 +589,11 @@ def coarse_spec_from_options(path: str | os.PathLike | None = None, *,
                              targets=None, transfers=None, dtype: str | None = None,
                              variables: dict[str, str] | None = None, scalars=None,
                              snapshots=None, periodic: bool | None = None,
-                             base: dict | None = None) -> dict:
+                             base: dict | None = None, format: str | None = None) -> dict:
     """A coarse-graining spec dict (:class:`closure.spec.CoarseGrainSpec`) from options, on
-    top of ``base``. ``widths`` x ``ratios`` (each a number or a list) give one filter
-    setting per pair; validation is :func:`closure.spec.parse_coarse_grain_spec`'s."""
+    top of ``base`` (``format``: netcdf or zarr). ``widths`` x ``ratios`` (each a number or
+    a list) give one filter setting per pair; validation is
+    :func:`closure.spec.parse_coarse_grain_spec`'s."""
     spec = spec_from_options(path, dataset_id=dataset_id, variables=variables, scalars=scalars,
                              snapshots=snapshots, periodic=periodic,
                              base={k: v for k, v in (base or {}).items()})
@@ -612,7 +613,7 @@ def coarse_spec_from_options(path: str | os.PathLike | None = None, *,
                 settings.append(s)
         spec["filters"] = settings
     for key, value in (("targets", listed(targets)), ("transfers", listed(transfers)),
-                       ("dtype", dtype)):
+                       ("dtype", dtype), ("format", format)):
         if value is not None:
             spec[key] = value
     return spec

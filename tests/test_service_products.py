@@ -297,6 +297,35 @@ def test_queued_products_equal_coarse_grain(stack, client, data, tmp_path):
     assert not any((stack.store / "jobs").iterdir())
 
 
+def test_queued_zarr_product_equals_the_netcdf_product(stack, client, data, tmp_path):
+    """The same job with format zarr: the downloaded zip holds the netCDF product's groups,
+    variables, attributes and values to the last bit (float64), read with xarray."""
+    import zarr
+
+    jobs = {fmt: client.submit_coarse_grain(cg_spec(data["small"], SEVERAL, False,
+                                                    format=fmt))
+            for fmt in ("netcdf", "zarr")}
+    ids = {fmt: client.wait(j["id"], timeout=180, poll=0.2)["product_id"]
+           for fmt, j in jobs.items()}
+    assert ids["netcdf"] != ids["zarr"]
+    assert client.product(ids["zarr"])["format"] == "zarr"
+    nc = client.fetch(ids["netcdf"], tmp_path)
+    zp = client.fetch(ids["zarr"], tmp_path)
+    assert nc.name.endswith(".nc") and zp.name == f"{ids['zarr']}.zarr.zip"
+    for group in (None, *(f"setting_{k}" for k in range(len(SEVERAL)))):
+        with xr.open_dataset(nc, group=group) as a, \
+                xr.open_zarr(zarr.storage.ZipStore(zp, mode="r"), group=group) as b:
+            assert set(a.variables) == set(b.variables)
+            for name, var in a.variables.items():
+                assert var.dtype == b[name].dtype and var.dims == b[name].dims, name
+                assert var.values.tobytes() == b[name].values.tobytes(), name
+                assert var.attrs == b[name].attrs, name
+            for key in set(a.attrs) - {"history", "closure_product_id", "closure_job_id",
+                                       "closure_spec"}:
+                assert np.array_equal(a.attrs[key], b.attrs[key]), key
+            assert b.attrs.get("closure_product_id", ids["zarr"]) == ids["zarr"]
+
+
 def _map_horse(stack, conn, job_id: str) -> int | None:
     """The pid of a work-horse running one of the job's map tasks, if any."""
     from rq import Worker
@@ -452,8 +481,28 @@ def test_cli_submit_list_and_fetch(stack, data, tmp_path):
             "tau_xx", "tau_xy", "tau_yy", "pi"]
     out = run("submit-sweep", str(data["small"]), "--widths", "4,6", "--ratios", "2",
               "--resamples", "2", "--seed", "31", "--wait").stdout
-    assert out.strip().splitlines()[-1].startswith("sw-")
+    sweep_id = out.strip().splitlines()[-1]
+    assert sweep_id.startswith("sw-")
     assert "a priori skill does not guarantee" in out
+    # the sweep's report, built by the server: the sweep figures against the filter width
+    page = run("sweep-report", sweep_id, "-o", str(tmp_path / "sweep")).stdout.strip()
+    assert page == str(tmp_path / "sweep" / "index.html")
+    assert {"index.html", "sweep_coefficients.png"} <= {
+        p.name for p in (tmp_path / "sweep").iterdir()}
+    r = run("sweep-report", "sw-nope", "-o", str(tmp_path / "none"), check=False)
+    assert r.returncode == 2 and "no sweep with id 'sw-nope'" in r.stderr
+    # a Zarr product: fetched into a folder under its own name, opened with xarray
+    out = run("submit-coarse-grain", str(data["small"]), "--ratio", "2", "--target", "stress",
+              "--transfer", "pi", "--format", "zarr", "--wait").stdout
+    zarr_id = out.strip().splitlines()[-1]
+    assert zarr_id != product_id
+    down = tmp_path / "down"
+    down.mkdir()
+    assert f"{zarr_id}.zarr.zip" in run("fetch", zarr_id, "-o", str(down)).stdout
+    with products.open_product(down / f"{zarr_id}.zarr.zip") as ds:
+        assert ds.attrs["closure_product_id"] == zarr_id and "pi" in ds
+    r = run("fetch", zarr_id, "-o", str(tmp_path / "z.nc"), check=False)
+    assert r.returncode == 2 and "is a Zarr product" in r.stderr
     r = run("submit-coarse-grain", str(data["small"]), "--ratio", "64", check=False)
     assert r.returncode == 2 and "filters[0]" in r.stderr
     r = run("fetch", "pr-nope", "-o", str(tmp_path / "x.nc"), check=False)
@@ -509,6 +558,74 @@ def test_sweep_user_errors_are_4xx(api, data):
     assert not any((api.store.root / "jobs").iterdir())
 
 
+def _stored_sweep(store: Store, path, widths, ratios) -> dict:
+    """A sweep stored as worker.sweeps stores one: each width's model from
+    closure.pipeline.discover, then the SweepResult of the stored models with model_ids."""
+    from closure import pipeline
+    from closure.io import sha256_file
+    from closure.spec import parse_sweep_spec
+    from closure.store import fingerprint_hash
+    from closure.sweep import SweepResult, _entry, sweep_specs
+
+    spec = parse_sweep_spec({"kind": "sweep", "widths": widths, "ratios": ratios,
+                             "discovery": {"input": {"path": str(path)},
+                                           "fit": {"resamples": 2, "seed": 5}}})
+    sha = sha256_file(path)
+    specs = sweep_specs(spec.discovery, spec.widths, spec.ratios)
+    ids = []
+    for s in specs:
+        row = store.add_model(model=pipeline.discover(s), fingerprint=fingerprint_hash(s, sha),
+                              dataset_sha256=sha, spec=s, plan=pipeline.check(s), job_id=None)
+        ids.append(row["id"])
+    result = SweepResult(spec.discovery.model_dump(mode="json"),
+                         [_entry(store.load_model(m), s.filter.ratio)
+                          for m, s in zip(ids, specs, strict=True)]).to_dict()
+    result["model_ids"] = ids
+    return store.add_sweep(result=result, fingerprint=fingerprint_hash(spec, sha), job_id=None)
+
+
+def test_sweep_report_is_built_once_and_served(api, data):
+    """GET /sweeps/{id}/report: the first width's model report with the sweep figures
+    (scaled coefficients and held-out scores against the filter width), cached in the
+    sweep's folder; 404 for an unknown sweep, 403 for a path, in the OpenAPI document."""
+    sweep = _stored_sweep(api.store, data["small"], [4, 6], [2])
+    sid = sweep["id"]
+    r = api.get(f"/sweeps/{sid}/report", follow_redirects=False)
+    assert r.status_code == 307 and r.headers["location"].endswith(f"/sweeps/{sid}/report/")
+    listing = api.get(f"/sweeps/{sid}/report", params={"format": "json"}).json()
+    assert {"index.html", "sweep_coefficients.png", "sweep_scores.png"} <= set(
+        listing["files"]), listing
+    folder = api.store.sweep_dir(sid) / "report"
+    built = (folder / "index.html").stat().st_mtime_ns
+    page = api.get(f"/sweeps/{sid}/report/")
+    assert page.status_code == 200 and page.headers["content-type"].startswith("text/html")
+    html = page.text
+    assert "Filter-width sweep" in html and 'src="sweep_coefficients.png"' in html
+    assert "A priori skill does not guarantee a stable or accurate coarse simulation" in html
+    png = api.get(f"/sweeps/{sid}/report/sweep_coefficients.png")
+    assert png.status_code == 200 and png.content[:8] == b"\x89PNG\r\n\x1a\n"  # PNG spec
+    assert (folder / "index.html").stat().st_mtime_ns == built  # cached, not rebuilt
+    assert api.get(f"/sweeps/{sid}/report/nothere.png").status_code == 404
+    assert api.get(f"/sweeps/{sid}/report/..%2Fsweep.json").status_code in (403, 404)
+    assert api.get(f"/sweeps/{sid}/report/.source.json").status_code == 403
+    for url in ("/sweeps/sw-nope/report", "/sweeps/sw-nope/report/",
+                "/sweeps/sw-nope/report/index.html"):
+        r = api.get(url, params={"format": "json"})
+        assert r.status_code == 404, (url, r.text)
+        assert "no sweep with id 'sw-nope'" in r.json()["detail"]
+    paths = api.get("/openapi.json").json()["paths"]
+    assert "404" in paths["/sweeps/{sweep_id}/report"]["get"]["responses"]
+    assert {"403", "404"} <= set(paths["/sweeps/{sweep_id}/report/{filename}"]["get"][
+        "responses"])
+    # the client writes the folder
+    from closure.client import Client
+
+    c = Client("http://testserver")
+    c._http = api
+    out = c.download_sweep_report(sid, data["root"] / "sweep-report")
+    assert (out / "sweep_coefficients.png").read_bytes() == png.content
+
+
 @pytest.mark.slow
 def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data):
     from closure.sweep import run_sweep
@@ -535,6 +652,10 @@ def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data)
     again = client.submit_sweep(base, [4, 6, 8], ratios=[2])
     assert again["reused"] and again["sweep_id"] == doc["sweep_id"]
     assert doc["sweep_id"] in [s["id"] for s in client.sweeps()]
+    # its report, built by the API from the stored sweep: the sweep figures
+    assert {"index.html", "sweep_coefficients.png", "sweep_scores.png"} <= set(
+        client.sweep_report_files(doc["sweep_id"]))
+    assert b"Filter-width sweep" in client.sweep_report_file(doc["sweep_id"], "index.html")
 
 
 @pytest.mark.slow

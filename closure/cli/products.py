@@ -1,7 +1,7 @@
 """CLI commands for coarse-graining jobs on a service and their products
 (``closure submit-coarse-grain``, ``closure products``, ``closure fetch``,
 ``closure delete-product``), and for filter-width sweeps on the queue
-(``closure submit-sweep``)."""
+(``closure submit-sweep``, ``closure sweep-report``)."""
 
 from __future__ import annotations
 
@@ -32,6 +32,8 @@ def submit_coarse_grain(
     transfer: list[str] = typer.Option(None, "--transfer", help="pi or enstrophy_transfer; "
                                        "repeat (default: every one)"),
     dtype: str = typer.Option(None, "--dtype", help="float64 (default) or float32"),
+    format: str = typer.Option(None, "--format", help="netcdf (default) or zarr (big "
+                               "products: one zip of a Zarr store, fetched as ID.zarr.zip)"),
     var: list[str] = typer.Option(None, "--var", help="OURS=THEIRS name mapping, e.g. u=U"),
     scalar: list[str] = typer.Option(None, "--scalar", help="passive scalar to carry"),
     snapshots: str = typer.Option(None, "--snapshots", help="time indices, e.g. 0-7 or 0,2,4"),
@@ -59,7 +61,7 @@ def submit_coarse_grain(
     spec = coarse_spec_from_options(
         input, dataset_id=dataset, filter=filter, widths=width or None,
         ratios=ratio or None, width_units=width_units, targets=target or None,
-        transfers=transfer or None, dtype=dtype, variables=parse_var_options(var),
+        transfers=transfer or None, dtype=dtype, format=format, variables=parse_var_options(var),
         scalars=scalar or None, snapshots=parse_indices(snapshots),
         periodic=False if non_periodic else None, base=base)
     if input is not None and input.is_file():
@@ -107,10 +109,13 @@ def products(dataset: str = typer.Option(None, "--dataset", help="dataset id or 
 
 
 def fetch(product_id: str = typer.Argument(..., help="product id"),
-          output: Path = typer.Option(..., "-o", "--output", help="file to write (netCDF)",
-                                      show_default=False),
+          output: Path = typer.Option(None, "-o", "--output", help="file to write, or a "
+                                      "folder to write ID.nc (netCDF) or ID.zarr.zip (Zarr) "
+                                      "in (default: the current folder)", show_default=False),
           server: str = SERVER, token: str = TOKEN) -> None:
-    """Download a product (streamed; its SHA-256 is checked)."""
+    """Download a product (streamed; its SHA-256 is checked). Open it with
+    closure.products.open_product(path, group), or a Zarr product with
+    xarray.open_zarr(zarr.storage.ZipStore(path, mode="r"), group=...)."""
     with _client(server, token) as c:
         path = c.fetch(product_id, output)
     typer.echo(f"wrote {path} ({path.stat().st_size / 1e6:.2f} MB)")
@@ -179,6 +184,19 @@ def submit_sweep(
     typer.echo(doc["sweep_id"])
 
 
+def sweep_report(sweep_id: str = typer.Argument(..., help="sweep id (sw-...)"),
+                 output: Path = typer.Option(..., "-o", "--output", help="report folder to "
+                                             "write (index.html + PNGs; an earlier report "
+                                             "there is replaced)", show_default=False),
+                 server: str = SERVER, token: str = TOKEN) -> None:
+    """Download a stored sweep's HTML report (built by the server): the first width's model
+    with the scaled coefficients and held-out scores against the filter width. A priori skill
+    does not guarantee a stable or accurate coarse simulation."""
+    with _client(server, token) as c:
+        out = c.download_sweep_report(sweep_id, output)
+    typer.echo(str(out / "index.html"))
+
+
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
     app.command("submit-coarse-grain")(submit_coarse_grain)
@@ -186,3 +204,4 @@ def register(app: typer.Typer) -> None:
     app.command("fetch")(fetch)
     app.command("delete-product")(delete_product)
     app.command("submit-sweep")(submit_sweep)
+    app.command("sweep-report")(sweep_report)
