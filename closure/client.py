@@ -502,11 +502,12 @@ class Client:
 
     # -- filter-width sweeps
 
-    def submit_sweep(self, spec, widths, *, ratios=None, name: str | None = None,
+    def submit_sweep(self, spec, widths, *, ratios=None, filters=None, name: str | None = None,
                      upload: bool | None = None, **options) -> dict:
         """Submit a filter-width sweep: the discovery job ``spec`` (a JobSpec, its dict, or
-        an input file path with discover ``options``) at each of ``widths``; returns the
-        job's status (``sweep_id`` once done). One task per width, spread over the workers."""
+        an input file path with discover ``options``) at each of ``widths``, for each filter
+        kind of ``filters`` (default: the spec's kind); returns the job's status
+        (``sweep_id`` once done). One task per kind and width, spread over the workers."""
         from closure.spec import parse_sweep_spec
 
         if isinstance(spec, JobSpec):
@@ -519,7 +520,8 @@ class Client:
 
         def post(discovery: dict) -> dict:
             body = {"kind": "sweep", "discovery": discovery, "widths": list(widths),
-                    **({"ratios": list(ratios)} if ratios else {})}
+                    **({"ratios": list(ratios)} if ratios else {}),
+                    **({"filters": list(filters)} if filters else {})}
             parse_sweep_spec(body)  # the same message locally as the server would give
             return self._json("POST", "/jobs", json=body, params=params)
 

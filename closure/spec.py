@@ -451,14 +451,33 @@ class SweepSpec(_Strict):
     discovery: JobSpec
     widths: list[Annotated[float, Field(gt=0)]] = Field(..., min_length=1, max_length=32)
     ratios: list[Annotated[int, Field(ge=1, le=1024)]] | None = None
+    filters: list[FilterKind] | None = Field(
+        None, min_length=1, max_length=4,
+        description="filter kinds to sweep, each at every width (one task per kind and "
+        "width); default: the discovery's filter.kind alone")
+
+    @field_validator("filters")
+    @classmethod
+    def _kinds(cls, v: list[str] | None) -> list[str] | None:
+        if v is not None and len(set(v)) != len(v):
+            raise ValueError(f"filter kinds repeat: {v}; give each once")
+        return v
 
     @property
     def input(self) -> InputSpec:
         return self.discovery.input
 
+    @property
+    def kinds(self) -> list[str]:
+        """The filter kinds swept, in order (``filters``, or the discovery's kind)."""
+        return list(self.filters) if self.filters else [self.discovery.filter.kind]
+
     def fingerprint(self) -> dict:
-        """The fields that determine the result, without the file's location."""
+        """The fields that determine the result, without the file's location (``filters``
+        only when given, so a one-kind sweep keeps the fingerprint it had before)."""
         d = self.model_dump(mode="json")
+        if d.get("filters") is None:
+            d.pop("filters", None)
         d["input"] = self.discovery.fingerprint()["input"]
         d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
         return d

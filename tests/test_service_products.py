@@ -626,6 +626,58 @@ def test_sweep_report_is_built_once_and_served(api, data):
     assert (out / "sweep_coefficients.png").read_bytes() == png.content
 
 
+def test_sweep_over_several_filter_kinds_spec_and_errors(api, data):
+    """``filters``: one task spec per (kind, width), kind by kind; a one-kind sweep keeps its
+    fingerprint; repeated kinds and a kind the widths do not suit are clear 4xx."""
+    from closure.spec import parse_sweep_spec
+    from worker.sweeps import _specs
+
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 2}}
+    one = parse_sweep_spec({"kind": "sweep", "discovery": base, "widths": [4, 6]})
+    assert one.kinds == ["gaussian"] and "filters" not in one.fingerprint()
+    two = parse_sweep_spec({"kind": "sweep", "discovery": base, "widths": [4, 6],
+                            "filters": ["gaussian", "box"]})
+    specs = _specs(two)
+    assert [(s.filter.kind, s.filter.width, s.filter.ratio) for s in specs] == [
+        ("gaussian", 4, 2), ("gaussian", 6, 3), ("box", 4, 2), ("box", 6, 3)]
+    assert two.fingerprint()["filters"] == ["gaussian", "box"]
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 6],
+                                "filters": ["box", "box"]})
+    assert r.status_code == 422 and "filter kinds repeat" in r.json()["detail"], r.text
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 6],
+                                "ratios": [2], "filters": ["gaussian", "block"]})
+    assert r.status_code in (400, 422), r.text
+    assert r.json()["detail"].startswith("filter block: block averaging has width = ratio")
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 64],
+                                "filters": ["gaussian", "box"]})
+    assert r.status_code == 400 and r.json()["detail"].startswith(
+        "filter gaussian, widths[1] (64): "), r.text
+    assert not any((api.store.root / "jobs").iterdir())
+
+
+@pytest.mark.slow
+def test_sweep_over_two_filter_kinds_equals_run_sweep_per_kind(stack, client, data):
+    from closure.sweep import run_sweep
+
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 2, "seed": 9}}
+    job = client.submit_sweep(base, [4, 6], ratios=[2], filters=["gaussian", "box"])
+    doc = client.wait(job["id"], timeout=300, poll=0.2)
+    result = client.sweep(doc["sweep_id"])
+    assert result["filters"] == ["gaussian", "box"]
+    assert [p["filter_kind"] for p in result["by_filter"]] == ["gaussian", "box"]
+    assert result["entries"] == result["by_filter"][0]["entries"]  # the first kind on top
+    for part in result["by_filter"]:
+        direct = run_sweep({**base, "filter": {"kind": part["filter_kind"]}}, [4, 6],
+                           [2]).to_dict()
+        assert len(part["model_ids"]) == 2 and part["spec"]["filter"]["kind"] == \
+            part["filter_kind"]
+        for got, want in zip(part["entries"], direct["entries"], strict=True):
+            assert got["filter"]["kind"] == part["filter_kind"]
+            for name, t in want["terms"].items():
+                a, b = got["terms"][name]["coefficient_scaled"], t["coefficient_scaled"]
+                assert abs(a - b) <= 1e-10 * max(1.0, abs(b)), (name, a, b)
+
+
 @pytest.mark.slow
 def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data):
     from closure.sweep import run_sweep

@@ -27,17 +27,18 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
                  store: Store, conn) -> dict:
     """POST /jobs for ``kind: "sweep"``: check every width against the input, answer an
     identical earlier sweep (200, ``reused``), else queue it (202)."""
-    from closure.sweep import sweep_specs
     from worker import queue as q
     from worker import sweeps as tasks
 
     discovery, dataset = resolve_input(spec.discovery, store, settings)
     run_spec = spec.model_copy(update={"discovery": discovery})
-    for k, s in enumerate(sweep_specs(discovery, spec.widths, spec.ratios)):
+    n = len(spec.widths)
+    for k, s in enumerate(tasks._specs(run_spec)):  # one per (filter kind, width)
         try:
             resolve_input(s, store, settings)  # a width the data cannot take: 4xx now (header)
         except UserError as exc:
-            raise type(exc)(f"widths[{k}] ({spec.widths[k]:g}): {exc}") from None
+            kind = f"filter {spec.kinds[k // n]}, " if len(spec.kinds) > 1 else ""
+            raise type(exc)(f"{kind}widths[{k % n}] ({spec.widths[k % n]:g}): {exc}") from None
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     existing = None
     if store.sweep_by_fingerprint(fingerprint) is not None:

@@ -137,6 +137,8 @@ def submit_sweep(
                                "width (default: width / 2)"),
     spec_file: Path = typer.Option(None, "--spec", help="the discovery spec JSON to sweep"),
     filter: str = typer.Option(None, "--filter", help="box, gaussian, spectral or block"),
+    filters: str = typer.Option(None, "--filters", help="several filter kinds to sweep, "
+                                "each at every width, e.g. gaussian,box"),
     target: str = typer.Option(None, "--target", help="stress, force, vorticity or flux:NAME"),
     resamples: int = typer.Option(None, "--resamples", help="resamples for uncertainty"),
     seed: int = typer.Option(None, "--seed"),
@@ -166,7 +168,8 @@ def submit_sweep(
     with _client(server, token) as c:
         doc = c.submit_sweep(spec, numbers(widths, float, "--widths"),
                              ratios=numbers(ratios, int, "--ratios") if ratios else None,
-                             name=name)
+                             filters=[f.strip() for f in filters.split(",") if f.strip()]
+                             if filters else None, name=name)
         if not wait:
             typer.echo(doc["id"])
             return
@@ -176,10 +179,12 @@ def submit_sweep(
             typer.echo(f"error: {exc}", err=True)
             raise typer.Exit(1) from None
         result = c.sweep(doc["sweep_id"])
-    for e, model_id in zip(result["entries"], result["model_ids"], strict=True):
-        r2 = e["test_scores"].get("r2")
-        typer.echo(f"D = {e['delta']:.4g} (ratio {e['ratio']}): model {model_id}, held-out "
-                   f"R^2 {'-' if r2 is None else format(r2, '.3f')}")
+    for part in result.get("by_filter") or [result]:
+        for e, model_id in zip(part["entries"], part["model_ids"], strict=True):
+            r2 = e["test_scores"].get("r2")
+            typer.echo(f"{e['filter'].get('kind', '')} D = {e['delta']:.4g} (ratio "
+                       f"{e['ratio']}): model {model_id}, held-out "
+                       f"R^2 {'-' if r2 is None else format(r2, '.3f')}")
     typer.echo("a priori skill does not guarantee a stable or accurate coarse simulation")
     typer.echo(doc["sweep_id"])
 
