@@ -50,7 +50,7 @@ PRODUCT_FILE_KIND = "closure coarse-grained product"
 #: file name suffix and media type of each product format (downloads)
 SUFFIX = {"netcdf": ".nc", "zarr": ".zarr.zip"}
 MEDIA_TYPE = {"netcdf": "application/x-netcdf", "zarr": "application/zip"}
-#: snapshots per block when converting to Zarr (memory: one block of one variable)
+#: snapshots per block when converting to Zarr (memory: one block of one group's variables)
 ZARR_BLOCK = 16
 
 
