@@ -435,32 +435,46 @@ class Client:
         return self._json("DELETE", f"/products/{product_id}")
 
 
-    def fetch(self, product_id: str, path: str | os.PathLike, *, chunk_size: int = 1 << 20,
-               verify: bool = True) -> Path:
-        """Download a product's file to ``path``, streamed in chunks (constant memory), through a
+    def fetch(self, product_id: str, path: str | os.PathLike | None = None, *,
+              chunk_size: int = 1 << 20, verify: bool = True) -> Path:
+        """Download a product's file, streamed in chunks (constant memory), through a
         temporary file renamed into place; its SHA-256 is checked against the server's record.
-        Returns ``path``."""
+        ``path``: the file to write, or a folder (None: the current one) to write it in under
+        the server's name, ``<id>.nc`` for a netCDF product, ``<id>.zarr.zip`` for a Zarr one
+        (a zipped Zarr store: open it with :func:`closure.products.open_product`). A file name
+        whose ending contradicts the product's format (``.nc`` for Zarr, ``.zip`` for netCDF)
+        is refused before anything is written. Returns the path written."""
         import hashlib
         import tempfile
 
-        path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".part", dir=path.parent)
+        from closure.products import SUFFIX
+
+        given = Path(path) if path is not None else Path.cwd()
         digest = hashlib.sha256()
+        tmp = None
         try:
-            with os.fdopen(fd, "wb") as out:
-                try:
-                    with self._http.stream("GET", f"/products/{product_id}/data") as r:
-                        if r.status_code >= 400:
-                            r.read()
-                            self._raise_for(r)
-                        expected = r.headers.get("x-content-sha256")
+            try:
+                with self._http.stream("GET", f"/products/{product_id}/data") as r:
+                    if r.status_code >= 400:
+                        r.read()
+                        self._raise_for(r)
+                    expected = r.headers.get("x-content-sha256")
+                    fmt = r.headers.get("x-product-format") or (
+                        "zarr" if r.headers.get("content-type", "").startswith(
+                            "application/zip") else "netcdf")
+                    target = given / f"{product_id}{SUFFIX.get(fmt, '.nc')}" \
+                        if given.is_dir() else given
+                    _check_suffix(target, fmt, product_id)
+                    target.parent.mkdir(parents=True, exist_ok=True)
+                    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part",
+                                               dir=target.parent)
+                    with os.fdopen(fd, "wb") as out:
                         for block in r.iter_bytes(chunk_size):
                             out.write(block)
                             digest.update(block)
-                except httpx.TransportError as exc:
-                    raise ServiceError(f"the download of product {product_id} from {self.server} "
-                                       f"broke off ({exc}); run it again") from None
+            except httpx.TransportError as exc:
+                raise ServiceError(f"the download of product {product_id} from {self.server} "
+                                   f"broke off ({exc}); run it again") from None
             if verify and expected and digest.hexdigest() != expected:
                 raise ServiceError(f"product {product_id}: the downloaded file's SHA-256 "
                                    f"{digest.hexdigest()} is not the server's {expected}; "
@@ -468,12 +482,11 @@ class Client:
             from closure.atomic import ordinary_mode
 
             ordinary_mode(tmp)
-            os.replace(tmp, path)
+            os.replace(tmp, target)
         finally:
-            if os.path.exists(tmp):
+            if tmp is not None and os.path.exists(tmp):
                 os.unlink(tmp)
-        return path
-
+        return target
 
     def _raise_for(self, r: httpx.Response) -> None:
         """Raise the ServiceError of an error answer (``_request``'s message)."""
@@ -489,11 +502,12 @@ class Client:
 
     # -- filter-width sweeps
 
-    def submit_sweep(self, spec, widths, *, ratios=None, name: str | None = None,
+    def submit_sweep(self, spec, widths, *, ratios=None, filters=None, name: str | None = None,
                      upload: bool | None = None, **options) -> dict:
         """Submit a filter-width sweep: the discovery job ``spec`` (a JobSpec, its dict, or
-        an input file path with discover ``options``) at each of ``widths``; returns the
-        job's status (``sweep_id`` once done). One task per width, spread over the workers."""
+        an input file path with discover ``options``) at each of ``widths``, for each filter
+        kind of ``filters`` (default: the spec's kind); returns the job's status
+        (``sweep_id`` once done). One task per kind and width, spread over the workers."""
         from closure.spec import parse_sweep_spec
 
         if isinstance(spec, JobSpec):
@@ -506,7 +520,8 @@ class Client:
 
         def post(discovery: dict) -> dict:
             body = {"kind": "sweep", "discovery": discovery, "widths": list(widths),
-                    **({"ratios": list(ratios)} if ratios else {})}
+                    **({"ratios": list(ratios)} if ratios else {}),
+                    **({"filters": list(filters)} if filters else {})}
             parse_sweep_spec(body)  # the same message locally as the server would give
             return self._json("POST", "/jobs", json=body, params=params)
 
@@ -533,6 +548,40 @@ class Client:
     def sweeps(self) -> list[dict]:
         return self._json("GET", "/sweeps")
 
+    def sweep_report_files(self, sweep_id: str) -> list[str]:
+        """The files of a sweep's HTML report (the server builds it when needed)."""
+        return self._json("GET", f"/sweeps/{sweep_id}/report",
+                          params={"format": "json"})["files"]
+
+    def sweep_report_file(self, sweep_id: str, name: str) -> bytes:
+        """One file of a sweep's report (``index.html`` or a figure)."""
+        return self._request("GET", f"/sweeps/{sweep_id}/report/{name}").content
+
+    def download_sweep_report(self, sweep_id: str, out_dir: str | os.PathLike) -> Path:
+        """Write a sweep's report folder (index.html and its PNGs, among them the scaled
+        coefficients against the filter width) to ``out_dir``, replacing an earlier report
+        there; returns ``out_dir``."""
+        from closure.report.page import _atomic_folder
+
+        out_dir = Path(out_dir)
+        names = self.sweep_report_files(sweep_id)
+        with _atomic_folder(out_dir) as tmp:
+            for name in names:
+                (tmp / name).write_bytes(self.sweep_report_file(sweep_id, name))
+        return out_dir
+
+
+def _check_suffix(path: Path, fmt: str, product_id: str) -> None:
+    """UserError when a download's file name says the other format."""
+    name = path.name.lower()
+    if fmt == "zarr" and name.endswith((".nc", ".nc4", ".netcdf")):
+        raise UserError(f"product {product_id} is a Zarr product (a zipped Zarr store), not "
+                        f"netCDF: name the file {path.with_suffix('.zarr.zip').name}, or give a "
+                        "folder to write it in")
+    if fmt == "netcdf" and name.endswith(".zip"):
+        raise UserError(f"product {product_id} is a netCDF product: name the file "
+                        f"{product_id}.nc, or give a folder to write it in")
+
 
 # --------------------------------------------------------------------------- coarse-graining
 
@@ -542,10 +591,11 @@ def coarse_spec_from_options(path: str | os.PathLike | None = None, *,
                              targets=None, transfers=None, dtype: str | None = None,
                              variables: dict[str, str] | None = None, scalars=None,
                              snapshots=None, periodic: bool | None = None,
-                             base: dict | None = None) -> dict:
+                             base: dict | None = None, format: str | None = None) -> dict:
     """A coarse-graining spec dict (:class:`closure.spec.CoarseGrainSpec`) from options, on
-    top of ``base``. ``widths`` x ``ratios`` (each a number or a list) give one filter
-    setting per pair; validation is :func:`closure.spec.parse_coarse_grain_spec`'s."""
+    top of ``base`` (``format``: netcdf or zarr). ``widths`` x ``ratios`` (each a number or
+    a list) give one filter setting per pair; validation is
+    :func:`closure.spec.parse_coarse_grain_spec`'s."""
     spec = spec_from_options(path, dataset_id=dataset_id, variables=variables, scalars=scalars,
                              snapshots=snapshots, periodic=periodic,
                              base={k: v for k, v in (base or {}).items()})
@@ -565,7 +615,7 @@ def coarse_spec_from_options(path: str | os.PathLike | None = None, *,
                 settings.append(s)
         spec["filters"] = settings
     for key, value in (("targets", listed(targets)), ("transfers", listed(transfers)),
-                       ("dtype", dtype)):
+                       ("dtype", dtype), ("format", format)):
         if value is not None:
             spec[key] = value
     return spec

@@ -19,6 +19,12 @@ root attribute ``closure_settings`` lists the groups and their filters. Groups, 
 a ``filter_width`` dimension, because settings with different ratios have different coarse
 grids, and one layout serves every combination.
 
+With ``format: "zarr"`` the product is one file too: a zip of a Zarr (v3) store, the layout
+:class:`zarr.storage.ZipStore` reads, with the same groups, variables, attributes and values
+(bit for bit) as the netCDF product; it is converted from the assembled netCDF file in blocks
+of snapshots, so memory stays bounded. Open either with :func:`open_product`, or a Zarr
+product with ``xr.open_zarr(zarr.storage.ZipStore(path, mode="r"), group="setting_1")``.
+
 Pure functions of files: no Redis, no store.
 """
 
@@ -41,6 +47,11 @@ from closure.spec import CoarseGrainSpec
 #: group name of setting k in a product with several settings
 GROUP = "setting_{}"
 PRODUCT_FILE_KIND = "closure coarse-grained product"
+#: file name suffix and media type of each product format (downloads)
+SUFFIX = {"netcdf": ".nc", "zarr": ".zarr.zip"}
+MEDIA_TYPE = {"netcdf": "application/x-netcdf", "zarr": "application/zip"}
+#: snapshots per block when converting to Zarr (memory: one block of one group's variables)
+ZARR_BLOCK = 16
 
 
 def _no_progress(phase: str, done: int, total: int) -> None:
@@ -271,8 +282,26 @@ def assemble(plan: dict, folder: str | os.PathLike, output: str | os.PathLike,
              attrs: dict | None = None,
              progress: Callable[[str, int, int], None] = _no_progress) -> Path:
     """Concatenate the pieces under ``folder`` into the product file ``output`` (written to a
-    temporary name beside it and renamed into place). ``attrs`` are added to the root's global
-    attributes (product id, job id ...). Raises UserError naming missing pieces."""
+    temporary name beside it and renamed into place), in the plan's ``format`` (netcdf, or
+    zarr: the netCDF file converted to a zipped Zarr store). ``attrs`` are added to the root's
+    global attributes (product id, job id ...). Raises UserError naming missing pieces."""
+    if plan.get("format", "netcdf") != "zarr":
+        return _assemble_netcdf(plan, folder, output, attrs, progress)
+    output = Path(output)
+    output.parent.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix=f".{output.name}.", dir=output.parent))
+    try:
+        nc = _assemble_netcdf(plan, folder, work / "product.nc", attrs, progress)
+        groups = [None] + ([s["group"] for s in plan["settings"]]
+                           if len(plan["settings"]) > 1 else [])
+        return netcdf_to_zarr_zip(nc, output, groups, progress=progress)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+
+
+def _assemble_netcdf(plan: dict, folder: str | os.PathLike, output: str | os.PathLike,
+                     attrs: dict | None = None,
+                     progress: Callable[[str, int, int], None] = _no_progress) -> Path:
     missing = missing_pieces(plan, folder)
     if missing:
         raise UserError(f"pieces missing for snapshots {missing[:10]}"
@@ -357,6 +386,104 @@ def coarse_grain_product(spec: CoarseGrainSpec, output: str | os.PathLike,
         shutil.rmtree(work, ignore_errors=True)
 
 
+# --------------------------------------------------------------------------- Zarr
+
+def netcdf_to_zarr_zip(source: str | os.PathLike, output: str | os.PathLike,
+                       groups: Sequence[str | None] = (None,), block: int = ZARR_BLOCK,
+                       progress: Callable[[str, int, int], None] = _no_progress) -> Path:
+    """Copy the netCDF groups ``groups`` (None: the root) of ``source`` into a zipped Zarr v3
+    store ``output``: same variables, dimensions, attributes (read undecoded, so written as
+    they are) and values, and the netCDF chunks; consolidated metadata at the root. Written
+    ``block`` snapshots at a time to a store folder beside ``output``, zipped (stored, not
+    recompressed: the chunks are compressed already) to a temporary name and renamed."""
+    import warnings
+    import zipfile
+
+    import xarray as xr
+    import zarr
+
+    output = Path(output)
+    output.parent.mkdir(parents=True, exist_ok=True)
+    work = Path(tempfile.mkdtemp(prefix=f".{output.name}.", dir=output.parent))
+    folder = work / "store"
+    try:
+        for k, group in enumerate(groups):
+            with xr.open_dataset(source, group=group, decode_cf=False) as ds:
+                encoding = {}
+                for name, var in ds.variables.items():
+                    chunks = var.encoding.get("chunksizes")
+                    encoding[name] = {"chunks": tuple(int(c) for c in chunks)} if chunks else {}
+                n = ds.sizes.get("time", 0)
+                for start in range(0, max(n, 1), block):
+                    part = ds.isel(time=slice(start, start + block)) if n else ds
+                    part = part.load()
+                    for var in part.variables.values():
+                        var.encoding = {}
+                    if start == 0:
+                        part.to_zarr(folder, group=group, mode="w" if k == 0 else "a",
+                                     zarr_format=3, consolidated=False, encoding=encoding)
+                    else:
+                        part = part.drop_vars([v for v, var in part.variables.items()
+                                               if "time" not in var.dims])
+                        part.to_zarr(folder, group=group, append_dim="time",
+                                     consolidated=False)
+                    progress("zarr", k * max(n, 1) + min(start + block, max(n, 1)),
+                             len(groups) * max(n, 1))
+        with warnings.catch_warnings():
+            # consolidated metadata is a zarr-python extension of Zarr 3; xarray reads it
+            warnings.filterwarnings("ignore", message="Consolidated metadata",
+                                    category=UserWarning)
+            zarr.consolidate_metadata(str(folder))
+        tmp = work / "product.zip"
+        with zipfile.ZipFile(tmp, "w", zipfile.ZIP_STORED, allowZip64=True) as z:
+            for root, dirs, files in os.walk(folder):
+                dirs.sort()
+                for name in sorted(files):
+                    path = Path(root) / name
+                    z.write(path, path.relative_to(folder).as_posix())
+        from closure.atomic import ordinary_mode
+
+        ordinary_mode(tmp)
+        os.replace(tmp, output)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return output
+
+
+def product_format(path: str | os.PathLike) -> str:
+    """``"zarr"`` for a zipped Zarr store, ``"netcdf"`` otherwise."""
+    import zipfile
+
+    return "zarr" if zipfile.is_zipfile(path) else "netcdf"
+
+
+def open_product(path: str | os.PathLike, group: str | None = None):
+    """A product file (netCDF, or a zipped Zarr store) opened with xarray: the root (the first
+    setting) or ``group`` (``setting_0``, ``setting_1`` ...). A Zarr product opens as
+    ``xr.open_zarr(zarr.storage.ZipStore(path, mode="r"), group=group)`` does; UserError for a
+    missing file or group."""
+    import xarray as xr
+
+    path = Path(path)
+    if not path.is_file():
+        raise UserError(f"no product file {path}")
+    if product_format(path) == "zarr":
+        from zarr.storage import ZipStore
+
+        store = ZipStore(path, mode="r")
+        try:
+            return xr.open_zarr(store, group=group, chunks=None)
+        except (KeyError, FileNotFoundError) as exc:  # zarr's NodeNotFoundError is one
+            store.close()
+            raise UserError(f"{path} has no group {group!r} ({exc}); a product's groups are "
+                            "listed in its root attribute closure_settings") from None
+    try:
+        return xr.open_dataset(path, group=group)
+    except OSError as exc:
+        raise UserError(f"{path}: cannot open group {group!r} ({exc}); a product's groups "
+                        "are listed in its root attribute closure_settings") from None
+
+
 # --------------------------------------------------------------------------- discovery input
 
 def open_coarse_input(path: str | os.PathLike):
@@ -365,6 +492,10 @@ def open_coarse_input(path: str | os.PathLike):
     None when the file is not a coarse file (then it holds fine-grid fields)."""
     from closure.io import COARSE_FILE_KIND, open_coarse
 
+    if Path(path).is_file() and product_format(path) == "zarr":
+        raise UserError(f"{path} is a Zarr product (a zipped Zarr store); discovery reads "
+                        "netCDF products: make the product with format netcdf, or discover "
+                        "from the fine data")
     try:
         with netCDF4.Dataset(path) as nc:
             kind = getattr(nc, "closure_file", None)

@@ -500,7 +500,11 @@ class CoarseGrainSpec(_Strict):
         "default: every one")
     dtype: Literal["float64", "float32"] = Field(
         "float64", description="type of the stored fields and terms (coordinates stay float64)")
-    format: Literal["netcdf"] = Field("netcdf", description="product file format")
+    format: Literal["netcdf", "zarr"] = Field(
+        "netcdf", description="product file format: netcdf (one CF netCDF-4 file), or zarr "
+        "for big products (one zip of a Zarr v3 store, one group per setting, the same "
+        "variables, attributes and values; open it with "
+        "xarray.open_zarr(zarr.storage.ZipStore(path, mode='r'), group=...))")
 
     @field_validator("targets")
     @classmethod
@@ -558,14 +562,33 @@ class SweepSpec(_Strict):
     discovery: JobSpec
     widths: list[Annotated[float, Field(gt=0)]] = Field(..., min_length=1, max_length=32)
     ratios: list[Annotated[int, Field(ge=1, le=1024)]] | None = None
+    filters: list[FilterKind] | None = Field(
+        None, min_length=1, max_length=4,
+        description="filter kinds to sweep, each at every width (one task per kind and "
+        "width); default: the discovery's filter.kind alone")
+
+    @field_validator("filters")
+    @classmethod
+    def _kinds(cls, v: list[str] | None) -> list[str] | None:
+        if v is not None and len(set(v)) != len(v):
+            raise ValueError(f"filter kinds repeat: {v}; give each once")
+        return v
 
     @property
     def input(self) -> InputSpec:
         return self.discovery.input
 
+    @property
+    def kinds(self) -> list[str]:
+        """The filter kinds swept, in order (``filters``, or the discovery's kind)."""
+        return list(self.filters) if self.filters else [self.discovery.filter.kind]
+
     def fingerprint(self) -> dict:
-        """The fields that determine the result, without the file's location."""
+        """The fields that determine the result, without the file's location (``filters``
+        only when given, so a one-kind sweep keeps the fingerprint it had before)."""
         d = self.model_dump(mode="json")
+        if d.get("filters") is None:
+            d.pop("filters", None)
         d["input"] = self.discovery.fingerprint()["input"]
         d["discovery"] = {k: v for k, v in d["discovery"].items() if k != "input"}
         for key in self.discovery.fit.selection_fields:  # sweeps select a priori

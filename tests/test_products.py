@@ -142,8 +142,8 @@ def test_spec_errors_name_the_field():
                                  "filters": [{"ratio": 2}, {"ratio": 2}]})
     with pytest.raises(OptionError, match=r"dtype: must be one of 'float64' or 'float32'"):
         parse_coarse_grain_spec({"input": {"path": "a.nc"}, "dtype": "float16"})
-    with pytest.raises(OptionError, match=r"format: must be one of 'netcdf'"):
-        parse_coarse_grain_spec({"input": {"path": "a.nc"}, "format": "zarr"})
+    with pytest.raises(OptionError, match=r"format: must be one of 'netcdf' or 'zarr'"):
+        parse_coarse_grain_spec({"input": {"path": "a.nc"}, "format": "hdf"})
     with pytest.raises(OptionError, match=r"filters: .*at least 1"):
         parse_coarse_grain_spec({"input": {"path": "a.nc"}, "filters": []})
 
@@ -269,3 +269,87 @@ def test_discovery_from_a_product_needs_its_filter_and_target(fine, tmp_path):
                                         r"this target"):
         pipeline.discover(parse_spec({"input": {"path": str(tmp_path / "p.nc")},
                                       "target": "vorticity", "fit": {"resamples": 2}}))
+
+
+# --------------------------------------------------------------------------- Zarr products
+
+def test_zarr_product_equals_the_netcdf_product(fine, tmp_path):
+    """A Zarr product holds the netCDF product's groups, variables, attributes and values, to
+    the last bit in float64, as xarray (the reference reader of both formats) reads them."""
+    import zipfile
+
+    import zarr
+
+    base = {"input": {"path": str(fine), "periodic": False},
+            "filters": [{"ratio": 4, "width": 6}, {"ratio": 2, "kind": "box"}]}
+    nc = products.coarse_grain_product(parse_coarse_grain_spec(base), tmp_path / "p.nc",
+                                       attrs={"closure_product_id": "pr-test"})
+    spec = parse_coarse_grain_spec({**base, "format": "zarr"})
+    assert spec.format == "zarr" and spec.fingerprint() != parse_coarse_grain_spec(
+        base).fingerprint()  # another product
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # writing and reading it warns of nothing
+        zp = products.coarse_grain_product(spec, tmp_path / "p.zarr.zip",
+                                           attrs={"closure_product_id": "pr-test"},
+                                           progress=lambda *a: None)
+        assert zipfile.is_zipfile(zp) and products.product_format(zp) == "zarr"
+        assert products.product_format(nc) == "netcdf"
+        assert sorted(p.name for p in tmp_path.iterdir()) == ["p.nc", "p.zarr.zip"]
+        for group in (None, "setting_0", "setting_1"):
+            with xr.open_dataset(nc, group=group) as a, \
+                    xr.open_zarr(zarr.storage.ZipStore(zp, mode="r"), group=group) as b, \
+                    products.open_product(zp, group) as c:
+                assert set(a.variables) == set(b.variables) == set(c.variables)
+                assert set(a.coords) == set(b.coords) == {"time", "y", "x"}
+                for name, var in a.variables.items():
+                    got = b[name].values
+                    assert var.dims == b[name].dims and var.dtype == got.dtype, name
+                    assert var.values.tobytes() == got.tobytes(), name
+                    assert var.values.tobytes() == c[name].values.tobytes(), name
+                    assert var.attrs == b[name].attrs, name
+                assert a.attrs.keys() == b.attrs.keys()
+                for key, value in a.attrs.items():
+                    if key == "history":
+                        continue  # the netCDF and Zarr files are written at other times
+                    assert np.array_equal(value, b.attrs[key]), key
+                # the netCDF chunks: one snapshot per chunk
+                assert b["tau_xy"].encoding["chunks"] == (1, *a["tau_xy"].shape[1:])
+        with products.open_product(nc, "setting_1") as box:
+            assert box.attrs["filter_kind"] == "box" and box.sizes["x"] == 16
+    with xr.open_zarr(zarr.storage.ZipStore(zp, mode="r")) as root:
+        assert root.attrs["closure_product_id"] == "pr-test"
+        assert root.attrs["Conventions"] == "CF-1.8"
+        assert root.attrs["source_sha256"] == products.plan(spec)["sha256"]
+
+
+def test_zarr_blocks_and_float32(fine, tmp_path):
+    """Snapshots written in several blocks (block 3 of 4 snapshots) give the same values;
+    float32 products convert too."""
+    spec = parse_coarse_grain_spec({"input": {"path": str(fine)}, "filters": [{"ratio": 4}],
+                                    "dtype": "float32", "targets": ["stress"]})
+    nc = products.coarse_grain_product(spec, tmp_path / "p.nc")
+    zp = products.netcdf_to_zarr_zip(nc, tmp_path / "p.zarr.zip", block=3)
+    with xr.open_dataset(nc) as a, products.open_product(zp) as b:
+        assert b.sizes["time"] == 4 and b["tau_xx"].dtype == np.float32
+        for name, var in a.variables.items():
+            assert var.values.tobytes() == b[name].values.tobytes(), name
+
+
+def test_open_product_errors(fine, tmp_path):
+    spec = parse_coarse_grain_spec({"input": {"path": str(fine)}, "filters": [{"ratio": 4}],
+                                    "format": "zarr", "targets": ["stress"], "transfers": []})
+    zp = products.coarse_grain_product(spec, tmp_path / "p.zarr.zip")
+    with pytest.raises(UserError, match="no product file"):
+        products.open_product(tmp_path / "none.zarr.zip")
+    with pytest.raises(UserError, match="has no group 'setting_5'.*closure_settings"):
+        products.open_product(zp, "setting_5")
+    with pytest.raises(OptionError, match="format"):
+        parse_coarse_grain_spec({"input": {"path": str(fine)}, "format": "hdf"})
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    with pytest.raises(UserError, match="is a Zarr product .* make the product with format "
+                                        "netcdf"):
+        pipeline.check(parse_spec({"input": {"path": str(zp)}, "filter": {"ratio": 4}}))

@@ -157,6 +157,50 @@ def test_download_and_range_requests(api, data):
     assert api.get(f"/products/{row['id']}").status_code == 404
 
 
+def test_zarr_product_download_and_range_requests(api, data, tmp_path):
+    """A Zarr product is served as one zip (application/zip, ``<id>.zarr.zip``), with range
+    requests; the client names the file by its format and refuses a netCDF name."""
+    from closure.client import Client
+
+    spec = parse_coarse_grain_spec(cg_spec(data["small"], [{"ratio": 2}, {"ratio": 4}],
+                                           format="zarr", targets=["stress"], transfers=[]))
+    out = products.coarse_grain_product(spec, data["root"] / "ranged.zarr.zip")
+    plan = products.plan(spec)
+    row = api.store.add_product(file=out, fingerprint="e" * 64, dataset_sha256=plan["sha256"],
+                                spec=spec.model_dump(mode="json"), plan=plan, job_id=None)
+    assert row["format"] == "zarr"
+    body = (api.store.product_dir(row["id"]) / "product.nc").read_bytes()
+    assert body[:4] == b"PK\x03\x04"  # a zip (PKWARE APPNOTE, 4.3.7: local file header)
+    r = api.get(f"/products/{row['id']}/data")
+    assert r.status_code == 200 and r.content == body
+    assert r.headers["content-type"] == "application/zip"
+    assert f'filename="{row["id"]}.zarr.zip"' in r.headers["content-disposition"]
+    assert r.headers["x-product-format"] == "zarr"
+    # RFC 9110, section 14: a byte range answers 206 with Content-Range
+    r = api.get(f"/products/{row['id']}/data", headers={"Range": "bytes=10-1033"})
+    assert r.status_code == 206 and r.content == body[10:1034]
+    assert r.headers["content-range"] == f"bytes 10-1033/{len(body)}"
+    r = api.get(f"/products/{row['id']}/data", headers={"Range": f"bytes={len(body)}-"})
+    assert r.status_code == 416
+    # the client: a folder gets <id>.zarr.zip; a .nc name is refused before writing
+    c = Client("http://testserver")
+    c._http = api
+    down = tmp_path / "down"
+    down.mkdir()
+    got = c.fetch(row["id"], down)
+    assert got == down / f"{row['id']}.zarr.zip" and got.read_bytes() == body
+    with products.open_product(got, "setting_1") as ds:
+        assert ds.sizes["x"] == 8 and ds.attrs["coarsening_ratio"] == 4
+    from closure.errors import UserError
+
+    with pytest.raises(UserError, match=r"is a Zarr product .* name the file out.zarr.zip"):
+        c.fetch(row["id"], down / "out.nc")
+    assert sorted(p.name for p in down.iterdir()) == [got.name]
+    # discovery reads netCDF products only: a clear 4xx
+    r = api.post("/jobs", json={"input": {"dataset_id": row["id"]}})
+    assert r.status_code == 400 and "is a Zarr product" in r.json()["detail"], r.text
+
+
 def test_openapi_documents_products_and_the_job_kind(api):
     doc = api.get("/openapi.json").json()
     paths = doc["paths"]
@@ -166,6 +210,10 @@ def test_openapi_documents_products_and_the_job_kind(api):
     assert {"200", "206", "404", "416"} <= set(data_get["responses"])
     assert "404" in paths["/products/{product_id}"]["delete"]["responses"]
     assert "CoarseGrainSpec" in doc["components"]["schemas"]
+    fmt = doc["components"]["schemas"]["CoarseGrainSpec"]["properties"]["format"]
+    assert fmt["enum"] == ["netcdf", "zarr"] and "ZipStore" in fmt["description"]
+    assert {"application/x-netcdf", "application/zip"} <= set(
+        data_get["responses"]["200"]["content"])
     body = paths["/jobs"]["post"]["requestBody"]["content"]["application/json"]["schema"]
     refs = str(body)
     assert "CoarseGrainSpec" in refs and "JobSpec" in refs
@@ -247,6 +295,35 @@ def test_queued_products_equal_coarse_grain(stack, client, data, tmp_path):
     assert again["product_id"] == client.status(jobs[3]["id"])["product_id"]
     # the work areas are gone
     assert not any((stack.store / "jobs").iterdir())
+
+
+def test_queued_zarr_product_equals_the_netcdf_product(stack, client, data, tmp_path):
+    """The same job with format zarr: the downloaded zip holds the netCDF product's groups,
+    variables, attributes and values to the last bit (float64), read with xarray."""
+    import zarr
+
+    jobs = {fmt: client.submit_coarse_grain(cg_spec(data["small"], SEVERAL, False,
+                                                    format=fmt))
+            for fmt in ("netcdf", "zarr")}
+    ids = {fmt: client.wait(j["id"], timeout=180, poll=0.2)["product_id"]
+           for fmt, j in jobs.items()}
+    assert ids["netcdf"] != ids["zarr"]
+    assert client.product(ids["zarr"])["format"] == "zarr"
+    nc = client.fetch(ids["netcdf"], tmp_path)
+    zp = client.fetch(ids["zarr"], tmp_path)
+    assert nc.name.endswith(".nc") and zp.name == f"{ids['zarr']}.zarr.zip"
+    for group in (None, *(f"setting_{k}" for k in range(len(SEVERAL)))):
+        with xr.open_dataset(nc, group=group) as a, \
+                xr.open_zarr(zarr.storage.ZipStore(zp, mode="r"), group=group) as b:
+            assert set(a.variables) == set(b.variables)
+            for name, var in a.variables.items():
+                assert var.dtype == b[name].dtype and var.dims == b[name].dims, name
+                assert var.values.tobytes() == b[name].values.tobytes(), name
+                assert var.attrs == b[name].attrs, name
+            for key in set(a.attrs) - {"history", "closure_product_id", "closure_job_id",
+                                       "closure_spec"}:
+                assert np.array_equal(a.attrs[key], b.attrs[key]), key
+            assert b.attrs.get("closure_product_id", ids["zarr"]) == ids["zarr"]
 
 
 def _map_horse(stack, conn, job_id: str) -> int | None:
@@ -404,8 +481,28 @@ def test_cli_submit_list_and_fetch(stack, data, tmp_path):
             "tau_xx", "tau_xy", "tau_yy", "pi"]
     out = run("submit-sweep", str(data["small"]), "--widths", "4,6", "--ratios", "2",
               "--resamples", "2", "--seed", "31", "--wait").stdout
-    assert out.strip().splitlines()[-1].startswith("sw-")
+    sweep_id = out.strip().splitlines()[-1]
+    assert sweep_id.startswith("sw-")
     assert "a priori skill does not guarantee" in out
+    # the sweep's report, built by the server: the sweep figures against the filter width
+    page = run("sweep-report", sweep_id, "-o", str(tmp_path / "sweep")).stdout.strip()
+    assert page == str(tmp_path / "sweep" / "index.html")
+    assert {"index.html", "sweep_coefficients.png"} <= {
+        p.name for p in (tmp_path / "sweep").iterdir()}
+    r = run("sweep-report", "sw-nope", "-o", str(tmp_path / "none"), check=False)
+    assert r.returncode == 2 and "no sweep with id 'sw-nope'" in r.stderr
+    # a Zarr product: fetched into a folder under its own name, opened with xarray
+    out = run("submit-coarse-grain", str(data["small"]), "--ratio", "2", "--target", "stress",
+              "--transfer", "pi", "--format", "zarr", "--wait").stdout
+    zarr_id = out.strip().splitlines()[-1]
+    assert zarr_id != product_id
+    down = tmp_path / "down"
+    down.mkdir()
+    assert f"{zarr_id}.zarr.zip" in run("fetch", zarr_id, "-o", str(down)).stdout
+    with products.open_product(down / f"{zarr_id}.zarr.zip") as ds:
+        assert ds.attrs["closure_product_id"] == zarr_id and "pi" in ds
+    r = run("fetch", zarr_id, "-o", str(tmp_path / "z.nc"), check=False)
+    assert r.returncode == 2 and "is a Zarr product" in r.stderr
     r = run("submit-coarse-grain", str(data["small"]), "--ratio", "64", check=False)
     assert r.returncode == 2 and "filters[0]" in r.stderr
     r = run("fetch", "pr-nope", "-o", str(tmp_path / "x.nc"), check=False)
@@ -461,6 +558,126 @@ def test_sweep_user_errors_are_4xx(api, data):
     assert not any((api.store.root / "jobs").iterdir())
 
 
+def _stored_sweep(store: Store, path, widths, ratios) -> dict:
+    """A sweep stored as worker.sweeps stores one: each width's model from
+    closure.pipeline.discover, then the SweepResult of the stored models with model_ids."""
+    from closure import pipeline
+    from closure.io import sha256_file
+    from closure.spec import parse_sweep_spec
+    from closure.store import fingerprint_hash
+    from closure.sweep import SweepResult, _entry, sweep_specs
+
+    spec = parse_sweep_spec({"kind": "sweep", "widths": widths, "ratios": ratios,
+                             "discovery": {"input": {"path": str(path)},
+                                           "fit": {"resamples": 2, "seed": 5}}})
+    sha = sha256_file(path)
+    specs = sweep_specs(spec.discovery, spec.widths, spec.ratios)
+    ids = []
+    for s in specs:
+        row = store.add_model(model=pipeline.discover(s), fingerprint=fingerprint_hash(s, sha),
+                              dataset_sha256=sha, spec=s, plan=pipeline.check(s), job_id=None)
+        ids.append(row["id"])
+    result = SweepResult(spec.discovery.model_dump(mode="json"),
+                         [_entry(store.load_model(m), s.filter.ratio)
+                          for m, s in zip(ids, specs, strict=True)]).to_dict()
+    result["model_ids"] = ids
+    return store.add_sweep(result=result, fingerprint=fingerprint_hash(spec, sha), job_id=None)
+
+
+def test_sweep_report_is_built_once_and_served(api, data):
+    """GET /sweeps/{id}/report: the first width's model report with the sweep figures
+    (scaled coefficients and held-out scores against the filter width), cached in the
+    sweep's folder; 404 for an unknown sweep, 403 for a path, in the OpenAPI document."""
+    sweep = _stored_sweep(api.store, data["small"], [4, 6], [2])
+    sid = sweep["id"]
+    r = api.get(f"/sweeps/{sid}/report", follow_redirects=False)
+    assert r.status_code == 307 and r.headers["location"].endswith(f"/sweeps/{sid}/report/")
+    listing = api.get(f"/sweeps/{sid}/report", params={"format": "json"}).json()
+    assert {"index.html", "sweep_coefficients.png", "sweep_scores.png"} <= set(
+        listing["files"]), listing
+    folder = api.store.sweep_dir(sid) / "report"
+    built = (folder / "index.html").stat().st_mtime_ns
+    page = api.get(f"/sweeps/{sid}/report/")
+    assert page.status_code == 200 and page.headers["content-type"].startswith("text/html")
+    html = page.text
+    assert "Filter-width sweep" in html and 'src="sweep_coefficients.png"' in html
+    assert "A priori skill does not guarantee a stable or accurate coarse simulation" in html
+    png = api.get(f"/sweeps/{sid}/report/sweep_coefficients.png")
+    assert png.status_code == 200 and png.content[:8] == b"\x89PNG\r\n\x1a\n"  # PNG spec
+    assert (folder / "index.html").stat().st_mtime_ns == built  # cached, not rebuilt
+    assert api.get(f"/sweeps/{sid}/report/nothere.png").status_code == 404
+    assert api.get(f"/sweeps/{sid}/report/..%2Fsweep.json").status_code in (403, 404)
+    assert api.get(f"/sweeps/{sid}/report/.source.json").status_code == 403
+    for url in ("/sweeps/sw-nope/report", "/sweeps/sw-nope/report/",
+                "/sweeps/sw-nope/report/index.html"):
+        r = api.get(url, params={"format": "json"})
+        assert r.status_code == 404, (url, r.text)
+        assert "no sweep with id 'sw-nope'" in r.json()["detail"]
+    paths = api.get("/openapi.json").json()["paths"]
+    assert "404" in paths["/sweeps/{sweep_id}/report"]["get"]["responses"]
+    assert {"403", "404"} <= set(paths["/sweeps/{sweep_id}/report/{filename}"]["get"][
+        "responses"])
+    # the client writes the folder
+    from closure.client import Client
+
+    c = Client("http://testserver")
+    c._http = api
+    out = c.download_sweep_report(sid, data["root"] / "sweep-report")
+    assert (out / "sweep_coefficients.png").read_bytes() == png.content
+
+
+def test_sweep_over_several_filter_kinds_spec_and_errors(api, data):
+    """``filters``: one task spec per (kind, width), kind by kind; a one-kind sweep keeps its
+    fingerprint; repeated kinds and a kind the widths do not suit are clear 4xx."""
+    from closure.spec import parse_sweep_spec
+    from worker.sweeps import _specs
+
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 2}}
+    one = parse_sweep_spec({"kind": "sweep", "discovery": base, "widths": [4, 6]})
+    assert one.kinds == ["gaussian"] and "filters" not in one.fingerprint()
+    two = parse_sweep_spec({"kind": "sweep", "discovery": base, "widths": [4, 6],
+                            "filters": ["gaussian", "box"]})
+    specs = _specs(two)
+    assert [(s.filter.kind, s.filter.width, s.filter.ratio) for s in specs] == [
+        ("gaussian", 4, 2), ("gaussian", 6, 3), ("box", 4, 2), ("box", 6, 3)]
+    assert two.fingerprint()["filters"] == ["gaussian", "box"]
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 6],
+                                "filters": ["box", "box"]})
+    assert r.status_code == 422 and "filter kinds repeat" in r.json()["detail"], r.text
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 6],
+                                "ratios": [2], "filters": ["gaussian", "block"]})
+    assert r.status_code in (400, 422), r.text
+    assert r.json()["detail"].startswith("filter block: block averaging has width = ratio")
+    r = api.post("/jobs", json={"kind": "sweep", "discovery": base, "widths": [4, 64],
+                                "filters": ["gaussian", "box"]})
+    assert r.status_code == 400 and r.json()["detail"].startswith(
+        "filter gaussian, widths[1] (64): "), r.text
+    assert not any((api.store.root / "jobs").iterdir())
+
+
+@pytest.mark.slow
+def test_sweep_over_two_filter_kinds_equals_run_sweep_per_kind(stack, client, data):
+    from closure.sweep import run_sweep
+
+    base = {"input": {"path": str(data["small"])}, "fit": {"resamples": 2, "seed": 9}}
+    job = client.submit_sweep(base, [4, 6], ratios=[2], filters=["gaussian", "box"])
+    doc = client.wait(job["id"], timeout=300, poll=0.2)
+    result = client.sweep(doc["sweep_id"])
+    assert result["filters"] == ["gaussian", "box"]
+    assert [p["filter_kind"] for p in result["by_filter"]] == ["gaussian", "box"]
+    assert result["entries"] == result["by_filter"][0]["entries"]  # the first kind on top
+    for part in result["by_filter"]:
+        direct = run_sweep({**base, "filter": {"kind": part["filter_kind"]}}, [4, 6],
+                           [2]).to_dict()
+        assert len(part["model_ids"]) == 2 and part["spec"]["filter"]["kind"] == \
+            part["filter_kind"]
+        for got, want in zip(part["entries"], direct["entries"], strict=True):
+            assert got["filter"]["kind"] == part["filter_kind"]
+            for name, t in want["terms"].items():
+                a, b = got["terms"][name]["coefficient_scaled"], t["coefficient_scaled"]
+                assert abs(a - b) <= 1e-10 * max(1.0, abs(b)), (name, a, b)
+
+
 @pytest.mark.slow
 def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data):
     from closure.sweep import run_sweep
@@ -487,6 +704,10 @@ def test_sweep_runs_across_two_workers_and_equals_run_sweep(stack, client, data)
     again = client.submit_sweep(base, [4, 6, 8], ratios=[2])
     assert again["reused"] and again["sweep_id"] == doc["sweep_id"]
     assert doc["sweep_id"] in [s["id"] for s in client.sweeps()]
+    # its report, built by the API from the stored sweep: the sweep figures
+    assert {"index.html", "sweep_coefficients.png", "sweep_scores.png"} <= set(
+        client.sweep_report_files(doc["sweep_id"]))
+    assert b"Filter-width sweep" in client.sweep_report_file(doc["sweep_id"], "index.html")
 
 
 @pytest.mark.slow

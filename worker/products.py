@@ -205,7 +205,7 @@ def reduce_task(job_id: str) -> dict:
              "closure_spec": json.dumps(spec, sort_keys=True),
              "history": f"{_now()} closure {__version__} coarse-grain (queued job {job_id}, "
                         f"product {product_id})"}
-    out = work / "product.nc"
+    out = work / "product.nc"  # the store's file name; a Zarr product is a zip under it
     products.assemble(plan, _pieces(job_id), out, attrs, progress=progress)
     if q.is_canceled(conn, job_id):  # canceled during the assembly: nothing is stored
         _drop_work(job_id)

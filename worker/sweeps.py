@@ -43,9 +43,33 @@ def enqueue(conn, job_id: str) -> None:
 
 
 def _specs(spec):
+    """One discovery spec per (filter kind, width), kind by kind (SweepSpec.kinds)."""
     from closure.sweep import sweep_specs
 
-    return sweep_specs(spec.discovery, spec.widths, spec.ratios)
+    out = []
+    for kind in spec.kinds:
+        base = spec.discovery.model_copy(
+            update={"filter": spec.discovery.filter.model_copy(update={"kind": kind})})
+        try:
+            out += sweep_specs(base, spec.widths, spec.ratios)
+        except UserError as exc:
+            if len(spec.kinds) == 1:
+                raise
+            raise type(exc)(f"filter {kind}: {exc}") from None
+    return out
+
+
+def _specs_base(spec, kind: str) -> dict:
+    d = spec.discovery.model_dump(mode="json")
+    d["filter"]["kind"] = kind
+    return d
+
+
+def _label(spec, k: int) -> str:
+    """Task k's kind and width, for messages."""
+    n = len(spec.widths)
+    kind = spec.kinds[k // n]
+    return f"width {spec.widths[k % n]:g}" + (f" ({kind})" if len(spec.kinds) > 1 else "")
 
 
 def plan_task(job_id: str) -> dict:
@@ -93,7 +117,7 @@ def plan_task(job_id: str) -> dict:
     parts = [queue.enqueue_call(
         "worker.sweeps.width_task", args=(job_id, k), job_id=q.map_id(job_id, k),
         timeout=q.MAP_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
-        failure_ttl=q.PROGRESS_TTL_S, description=f"sweep {job_id} width {k}")
+        failure_ttl=q.PROGRESS_TTL_S, description=f"sweep {job_id} {_label(spec, k)}")
         for k in range(len(specs))]
     queue.enqueue_call(
         "worker.sweeps.collect_task", args=(job_id,), job_id=q.reduce_id(job_id),
@@ -155,15 +179,22 @@ def collect_task(job_id: str) -> dict:
     missing = [k for k, m in enumerate(ids) if st.get_model(m, missing_ok=True) is None]
     if missing:
         errors = {a.decode(): b.decode() for a, b in conn.hgetall(q.errors_key(job_id)).items()}
-        why = "; ".join(f"width {spec.widths[k]:g}: "
+        why = "; ".join(f"{_label(spec, k)}: "
                         f"{errors.get(str(k), 'its task failed after retries')}"
                         for k in missing)
         return _fail(conn, job_id, why)
     q.set_progress(conn, job_id, phase="reduce")
     entries = [_entry(st.load_model(m), s.filter.ratio) for m, s in zip(ids, specs,
                                                                           strict=True)]
-    result = SweepResult(spec.discovery.model_dump(mode="json"), entries).to_dict()
-    result["model_ids"] = ids
+    n = len(spec.widths)
+    by_filter = [{"filter_kind": kind, "model_ids": ids[j * n:(j + 1) * n],
+                  **SweepResult(_specs_base(spec, kind), entries[j * n:(j + 1) * n]).to_dict()}
+                 for j, kind in enumerate(spec.kinds)]
+    # the top level is the first kind's sweep (a SweepResult dict, as for one kind)
+    result = {k: v for k, v in by_filter[0].items() if k != "filter_kind"}
+    if len(spec.kinds) > 1:
+        result["filters"] = spec.kinds
+        result["by_filter"] = by_filter
     result["note"] = ("a priori skill at every width does not guarantee a stable or accurate "
                       "coarse simulation: validate the models a posteriori")
     stored = st.add_sweep(result=result, fingerprint=row["fingerprint"], job_id=job_id)

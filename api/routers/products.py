@@ -10,7 +10,7 @@ from fastapi.responses import FileResponse
 from api.deps import Settings, get_store, require_token
 from api.inputs import resolve_input
 from closure import products
-from closure.errors import InputFileError
+from closure.errors import InputFileError, UserError
 from closure.spec import CoarseGrainSpec
 from closure.store import Store, fingerprint_hash, new_job_id
 
@@ -74,6 +74,10 @@ def product_as_dataset(spec, store: Store):
     if inp is None or not isinstance(inp.dataset_id, str) or not inp.dataset_id.startswith("pr-"):
         return spec
     row = store.get_product(inp.dataset_id)
+    if row["format"] == "zarr":
+        raise UserError(f"product {row['id']} is a Zarr product; discovery reads netCDF "
+                        "products: submit its coarse-graining job with format netcdf, or "
+                        "discover from the fine data")
     path = store.product_dir(row["id"]) / "product.nc"
     if not path.is_file():
         raise InputFileError(f"product {row['id']}: its file is gone from the store; "
@@ -104,25 +108,36 @@ def get_product(product_id: str, store: Store = Depends(get_store)) -> dict:
     return {**{k: row[k] for k in _FIELDS}, "spec": row["spec"]}
 
 
+_DATA = {"application/x-netcdf": {"schema": {"type": "string", "format": "binary"}},
+         "application/zip": {"schema": {"type": "string", "format": "binary"}}}
+
+
 @router.get(
-    "/products/{product_id}/data", summary="Download a product (netCDF, range requests)",
+    "/products/{product_id}/data",
+    summary="Download a product (netCDF, or a zipped Zarr store; range requests)",
     response_class=FileResponse,
-    responses={200: {"content": {"application/x-netcdf": {}},
-                     "description": "the whole file, streamed"},
-               206: {"content": {"application/x-netcdf": {}},
+    responses={200: {"content": _DATA,
+                     "description": "the whole file, streamed: application/x-netcdf "
+                     "(<id>.nc) for format netcdf, application/zip (<id>.zarr.zip, a zipped "
+                     "Zarr v3 store) for format zarr"},
+               206: {"content": _DATA,
                      "description": "the requested byte range (Range: bytes=A-B)"},
                416: {"description": "the range lies outside the file"}, **_NOT_FOUND})
 def product_data(product_id: str, store: Store = Depends(get_store)) -> FileResponse:
     """The product file, streamed from disk in chunks (constant memory whatever its size).
     ``Range: bytes=A-B`` answers 206 with those bytes, so an interrupted download resumes;
-    the ETag and ``X-Content-SHA256`` (the whole file's SHA-256) let a client check it."""
+    the ETag and ``X-Content-SHA256`` (the whole file's SHA-256) let a client check it.
+    The record's ``format`` sets the type and name: a Zarr product is one zip of its store,
+    opened with ``xarray.open_zarr(zarr.storage.ZipStore(path, mode="r"), group=...)``."""
     row = store.get_product(product_id)
-    path = store.product_dir(product_id) / "product.nc"
+    path = store.product_dir(product_id) / "product.nc"  # the store's name for either format
     if not path.is_file():
         raise InputFileError(f"product {product_id}: its file is gone from the store; "
                              "delete the product and submit the job again")
-    return FileResponse(path, media_type="application/x-netcdf", filename=f"{product_id}.nc",
-                        headers={"X-Content-SHA256": row["sha256"]})
+    fmt = row["format"] if row["format"] in products.SUFFIX else "netcdf"
+    return FileResponse(path, media_type=products.MEDIA_TYPE[fmt],
+                        filename=f"{product_id}{products.SUFFIX[fmt]}",
+                        headers={"X-Content-SHA256": row["sha256"], "X-Product-Format": fmt})
 
 
 @router.delete("/products/{product_id}", summary="Delete a product", responses=_NOT_FOUND)

@@ -1,7 +1,7 @@
 """CLI commands for coarse-graining jobs on a service and their products
 (``closure submit-coarse-grain``, ``closure products``, ``closure fetch``,
 ``closure delete-product``), and for filter-width sweeps on the queue
-(``closure submit-sweep``)."""
+(``closure submit-sweep``, ``closure sweep-report``)."""
 
 from __future__ import annotations
 
@@ -32,6 +32,8 @@ def submit_coarse_grain(
     transfer: list[str] = typer.Option(None, "--transfer", help="pi or enstrophy_transfer; "
                                        "repeat (default: every one)"),
     dtype: str = typer.Option(None, "--dtype", help="float64 (default) or float32"),
+    format: str = typer.Option(None, "--format", help="netcdf (default) or zarr (big "
+                               "products: one zip of a Zarr store, fetched as ID.zarr.zip)"),
     var: list[str] = typer.Option(None, "--var", help="OURS=THEIRS name mapping, e.g. u=U"),
     scalar: list[str] = typer.Option(None, "--scalar", help="passive scalar to carry"),
     snapshots: str = typer.Option(None, "--snapshots", help="time indices, e.g. 0-7 or 0,2,4"),
@@ -59,7 +61,7 @@ def submit_coarse_grain(
     spec = coarse_spec_from_options(
         input, dataset_id=dataset, filter=filter, widths=width or None,
         ratios=ratio or None, width_units=width_units, targets=target or None,
-        transfers=transfer or None, dtype=dtype, variables=parse_var_options(var),
+        transfers=transfer or None, dtype=dtype, format=format, variables=parse_var_options(var),
         scalars=scalar or None, snapshots=parse_indices(snapshots),
         periodic=False if non_periodic else None, base=base)
     if input is not None and input.is_file():
@@ -107,10 +109,13 @@ def products(dataset: str = typer.Option(None, "--dataset", help="dataset id or 
 
 
 def fetch(product_id: str = typer.Argument(..., help="product id"),
-          output: Path = typer.Option(..., "-o", "--output", help="file to write (netCDF)",
-                                      show_default=False),
+          output: Path = typer.Option(None, "-o", "--output", help="file to write, or a "
+                                      "folder to write ID.nc (netCDF) or ID.zarr.zip (Zarr) "
+                                      "in (default: the current folder)", show_default=False),
           server: str = SERVER, token: str = TOKEN) -> None:
-    """Download a product (streamed; its SHA-256 is checked)."""
+    """Download a product (streamed; its SHA-256 is checked). Open it with
+    closure.products.open_product(path, group), or a Zarr product with
+    xarray.open_zarr(zarr.storage.ZipStore(path, mode="r"), group=...)."""
     with _client(server, token) as c:
         path = c.fetch(product_id, output)
     typer.echo(f"wrote {path} ({path.stat().st_size / 1e6:.2f} MB)")
@@ -132,6 +137,8 @@ def submit_sweep(
                                "width (default: width / 2)"),
     spec_file: Path = typer.Option(None, "--spec", help="the discovery spec JSON to sweep"),
     filter: str = typer.Option(None, "--filter", help="box, gaussian, spectral or block"),
+    filters: str = typer.Option(None, "--filters", help="several filter kinds to sweep, "
+                                "each at every width, e.g. gaussian,box"),
     target: str = typer.Option(None, "--target", help="stress, force, vorticity or flux:NAME"),
     resamples: int = typer.Option(None, "--resamples", help="resamples for uncertainty"),
     seed: int = typer.Option(None, "--seed"),
@@ -161,7 +168,8 @@ def submit_sweep(
     with _client(server, token) as c:
         doc = c.submit_sweep(spec, numbers(widths, float, "--widths"),
                              ratios=numbers(ratios, int, "--ratios") if ratios else None,
-                             name=name)
+                             filters=[f.strip() for f in filters.split(",") if f.strip()]
+                             if filters else None, name=name)
         if not wait:
             typer.echo(doc["id"])
             return
@@ -171,12 +179,27 @@ def submit_sweep(
             typer.echo(f"error: {exc}", err=True)
             raise typer.Exit(1) from None
         result = c.sweep(doc["sweep_id"])
-    for e, model_id in zip(result["entries"], result["model_ids"], strict=True):
-        r2 = e["test_scores"].get("r2")
-        typer.echo(f"D = {e['delta']:.4g} (ratio {e['ratio']}): model {model_id}, held-out "
-                   f"R^2 {'-' if r2 is None else format(r2, '.3f')}")
+    for part in result.get("by_filter") or [result]:
+        for e, model_id in zip(part["entries"], part["model_ids"], strict=True):
+            r2 = e["test_scores"].get("r2")
+            typer.echo(f"{e['filter'].get('kind', '')} D = {e['delta']:.4g} (ratio "
+                       f"{e['ratio']}): model {model_id}, held-out "
+                       f"R^2 {'-' if r2 is None else format(r2, '.3f')}")
     typer.echo("a priori skill does not guarantee a stable or accurate coarse simulation")
     typer.echo(doc["sweep_id"])
+
+
+def sweep_report(sweep_id: str = typer.Argument(..., help="sweep id (sw-...)"),
+                 output: Path = typer.Option(..., "-o", "--output", help="report folder to "
+                                             "write (index.html + PNGs; an earlier report "
+                                             "there is replaced)", show_default=False),
+                 server: str = SERVER, token: str = TOKEN) -> None:
+    """Download a stored sweep's HTML report (built by the server): the first width's model
+    with the scaled coefficients and held-out scores against the filter width. A priori skill
+    does not guarantee a stable or accurate coarse simulation."""
+    with _client(server, token) as c:
+        out = c.download_sweep_report(sweep_id, output)
+    typer.echo(str(out / "index.html"))
 
 
 def register(app: typer.Typer) -> None:
@@ -186,3 +209,4 @@ def register(app: typer.Typer) -> None:
     app.command("fetch")(fetch)
     app.command("delete-product")(delete_product)
     app.command("submit-sweep")(submit_sweep)
+    app.command("sweep-report")(sweep_report)
