@@ -456,6 +456,10 @@ def demo(
         from closure.synth import turb2d, write
 
         write(turb2d(n=n, snapshots=snapshots), path)
+    if n // ratio < 16:  # the coarse runs need the demo's forcing shell (modes 3..5) resolved
+        ratio = max(1, n // 16)
+        typer.echo(f"note: ratio {ratio} keeps a {n // ratio}x{n // ratio} coarse grid, which "
+                   "resolves the demo's forcing in the coarse runs")
     stack = LocalStack(root / "stack", port=0, workers=workers, data_roots=[data])
     typer.echo("starting a local stack (redis, API, workers) ...")
     les = les_error = None
