@@ -22,6 +22,7 @@ PostgreSQL schema (created if missing).
 from __future__ import annotations
 
 import contextlib
+import datetime as _dt
 import hashlib
 import json
 import math
@@ -42,6 +43,35 @@ from closure.errors import UserError
 JOB_STATES = ("queued", "running", "succeeded", "failed", "canceled")
 ACTIVE_STATES = ("queued", "running")
 TERMINAL_STATES = ("succeeded", "failed", "canceled")
+
+#: record fields that hold times: the catalog keeps epoch seconds (a Float column, so rows
+#: written by earlier versions stay valid and sort in SQL); records answer ISO 8601 UTC
+TIME_FIELDS = ("created", "updated", "started", "finished")
+
+
+def iso_time(value: float | str | None) -> str | None:
+    """An ISO 8601 UTC string (``2026-12-02T07:30:00Z``) for an epoch time; a string (already
+    ISO) and None pass through."""
+    if value is None or isinstance(value, str):
+        return value
+    return _dt.datetime.fromtimestamp(float(value), _dt.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def epoch_time(value: float | str | None) -> float | None:
+    """Epoch seconds of an ISO 8601 time (or of a number, returned as it is)."""
+    if value is None or isinstance(value, int | float):
+        return value
+    return _dt.datetime.fromisoformat(value.replace("Z", "+00:00")).timestamp()
+
+
+def _record(row) -> dict:
+    """A catalog row as the store answers it: times in ISO 8601 UTC."""
+    d = dict(row)
+    for key in TIME_FIELDS:
+        if key in d:
+            d[key] = iso_time(d[key])
+    return d
+
 
 _metadata = sa.MetaData()
 
@@ -371,7 +401,7 @@ class Store:
                 return None
             raise NotFoundError(f"no dataset with id {dataset_id!r}; upload the file with "
                                 "POST /datasets (`closure submit` does it for you)")
-        return dict(row)
+        return _record(row)
 
     def dataset_by_path(self, path: str | os.PathLike, size: int, mtime_ns: int) -> dict | None:
         """A recorded dataset at ``path`` with this size and modification time (its SHA-256
@@ -382,13 +412,13 @@ class Store:
                     datasets_table.c.path == str(path), datasets_table.c.size == int(size),
                     datasets_table.c.mtime_ns == int(mtime_ns))
                 .order_by(datasets_table.c.created.desc())).mappings().first()
-        return dict(row) if row else None
+        return _record(row) if row else None
 
     def list_datasets(self, limit: int = 100) -> list[dict]:
         with self.engine.connect() as conn:
             rows = conn.execute(sa.select(datasets_table).order_by(
                 datasets_table.c.created.desc()).limit(limit)).mappings().all()
-        return [dict(r) for r in rows]
+        return [_record(r) for r in rows]
 
     # -- jobs
 
@@ -417,7 +447,7 @@ class Store:
             if missing_ok:
                 return None
             raise NotFoundError(f"no job with id {job_id!r}")
-        return dict(row)
+        return _record(row)
 
     def update_job(self, job_id: str, *, only_if_active: bool = False, **fields) -> bool:
         """Update a job's columns; with ``only_if_active`` only while it is queued/running
@@ -443,14 +473,14 @@ class Store:
                 sa.select(jobs_table).where(jobs_table.c.fingerprint == fingerprint,
                                             jobs_table.c.state.in_(ACTIVE_STATES))
                 .order_by(jobs_table.c.created.desc())).mappings().first()
-        return dict(row) if row else None
+        return _record(row) if row else None
 
     def list_jobs(self, state: str | None = None, limit: int = 100) -> list[dict]:
         stmt = sa.select(jobs_table).order_by(jobs_table.c.created.desc()).limit(limit)
         if state:
             stmt = stmt.where(jobs_table.c.state == state)
         with self.engine.connect() as conn:
-            return [dict(r) for r in conn.execute(stmt).mappings().all()]
+            return [_record(r) for r in conn.execute(stmt).mappings().all()]
 
     # -- models
 
@@ -521,7 +551,7 @@ class Store:
             if missing_ok:
                 return None
             raise NotFoundError(f"no model with id {model_id!r}; list them with GET /models")
-        return dict(row)
+        return _record(row)
 
     def model_by_fingerprint(self, fingerprint: str) -> dict | None:
         return self.get_model(model_id_for(fingerprint), missing_ok=True)
@@ -557,7 +587,7 @@ class Store:
         if min_r2 is not None:
             stmt = stmt.where(c.test_r2 >= float(min_r2))
         with self.engine.connect() as conn:
-            return [dict(r) for r in conn.execute(stmt).mappings().all()]
+            return [_record(r) for r in conn.execute(stmt).mappings().all()]
 
     # -- coarse-grained products (coarse-graining jobs; closure.products makes the files)
 
@@ -618,7 +648,7 @@ class Store:
                 return None
             raise NotFoundError(f"no product with id {product_id!r}; list them with "
                                 "GET /products (`closure products`)")
-        return dict(row)
+        return _record(row)
 
     def product_by_fingerprint(self, fingerprint: str) -> dict | None:
         return self.get_product(product_id_for(fingerprint), missing_ok=True)
@@ -629,7 +659,7 @@ class Store:
         if dataset_sha256:
             stmt = stmt.where(products_table.c.dataset_sha256 == dataset_sha256)
         with self.engine.connect() as conn:
-            return [dict(r) for r in conn.execute(stmt).mappings().all()]
+            return [_record(r) for r in conn.execute(stmt).mappings().all()]
 
     def delete_product(self, product_id: str) -> dict:
         """Remove a product from the catalog, then its folder; returns the removed record.
@@ -660,7 +690,8 @@ class Store:
             tmp.mkdir()
             try:
                 write_json_atomic(tmp / "sweep.json", {**result, "id": sweep_id,
-                                                       "job_id": job_id, "created": time.time()})
+                                                       "job_id": job_id,
+                                                       "created": iso_time(time.time())})
                 try:
                     os.rename(tmp, final)
                 except OSError:
@@ -677,7 +708,8 @@ class Store:
             if missing_ok:
                 return None
             raise NotFoundError(f"no sweep with id {sweep_id!r}; list them with GET /sweeps")
-        return read_json(path)
+        doc = read_json(path)
+        return {**doc, "created": iso_time(doc.get("created"))}
 
     def sweep_by_fingerprint(self, fingerprint: str) -> dict | None:
         return self.get_sweep(sweep_id_for(fingerprint), missing_ok=True)
@@ -688,10 +720,11 @@ class Store:
         out = []
         for path in folder.glob("sw-*/sweep.json") if folder.is_dir() else ():
             d = read_json(path)
-            out.append({"id": d["id"], "job_id": d.get("job_id"), "created": d.get("created"),
+            out.append({"id": d["id"], "job_id": d.get("job_id"),
+                        "created": iso_time(d.get("created")),
                         "widths": [e.get("width_cells") for e in d.get("entries", [])],
                         "model_ids": d.get("model_ids", [])})
-        return sorted(out, key=lambda r: -(r["created"] or 0))
+        return sorted(out, key=lambda r: -(epoch_time(r["created"]) or 0))
 
     # -- leftovers
 

@@ -33,7 +33,7 @@ from rq import Callback, get_current_job
 
 from closure.errors import UserError
 from closure.spec import AposterioriSpec, parse_aposteriori_spec
-from closure.store import Store, read_json, write_json_atomic, write_text_atomic
+from closure.store import Store, epoch_time, read_json, write_json_atomic, write_text_atomic
 from worker import queue as q
 
 TASK_SUFFIX = "-les"
@@ -259,7 +259,8 @@ def reconcile(store: Store, conn, row: dict) -> dict:
     job = q.fetch(conn, task_id(row["id"]))
     message = None
     if job is None:
-        if time.time() - row["created"] > 30 and not conn.exists(q.progress_key(row["id"])):
+        if time.time() - epoch_time(row["created"]) > 30 \
+                and not conn.exists(q.progress_key(row["id"])):
             message = ("the queue no longer knows this run (Redis lost its data); "
                        "submit it again")
     elif job.get_status(refresh=False) in ("failed", "stopped"):

@@ -27,6 +27,8 @@ from rq.exceptions import InvalidJobOperation, NoSuchJobError
 from rq.job import Job, JobStatus
 from rq.serializers import JSONSerializer
 
+from closure.store import epoch_time
+
 QUEUE_NAME = "closure"
 KEY_PREFIX = "closure:job:"
 #: live-progress keys live on this long after a job ends (the catalog keeps the record)
@@ -276,7 +278,7 @@ def reconcile(store, conn: redis.Redis, row: dict) -> dict:
     for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting")):
         job = fetch(conn, rq_id)
         if job is None:
-            if rq_id.endswith("-plan") and time.time() - row["created"] > 30 \
+            if rq_id.endswith("-plan") and time.time() - epoch_time(row["created"]) > 30 \
                     and not conn.exists(progress_key(row["id"])):
                 message = ("the queue no longer knows this job (Redis lost its data, e.g. "
                            "restarted without appendonly persistence); submit it again")
