@@ -142,7 +142,7 @@ def test_spec_errors_name_the_field():
                                  "filters": [{"ratio": 2}, {"ratio": 2}]})
     with pytest.raises(OptionError, match=r"dtype: must be one of 'float64' or 'float32'"):
         parse_coarse_grain_spec({"input": {"path": "a.nc"}, "dtype": "float16"})
-    with pytest.raises(OptionError, match=r"format: must be one of 'netcdf'"):
+    with pytest.raises(OptionError, match=r"format: must be 'netcdf'"):
         parse_coarse_grain_spec({"input": {"path": "a.nc"}, "format": "zarr"})
     with pytest.raises(OptionError, match=r"filters: .*at least 1"):
         parse_coarse_grain_spec({"input": {"path": "a.nc"}, "filters": []})
