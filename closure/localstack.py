@@ -52,6 +52,25 @@ def read_state(state_dir: str | os.PathLike | None = None) -> dict | None:
     return state
 
 
+def stop_hint(state: dict) -> str:
+    """How to stop the stack of ``state``: signal the process that runs it (``closure up``,
+    the supervisor: it stops the API, the workers and its Redis), not one of its children."""
+    pid = state.get("pids", {}).get("supervisor")
+    if not pid:
+        return "stop it with Ctrl-C where it runs"
+    return (f"stop it with Ctrl-C where it runs, or `kill {pid}` (SIGTERM to the process that "
+            "runs it; it stops the API, the workers and its Redis)")
+
+
+def _lock_holder(path: Path) -> int | None:
+    """The live process the stack lock file names, if any."""
+    try:
+        pid = int(path.read_text().split()[0])
+    except (OSError, ValueError, IndexError):
+        return None
+    return pid if _alive(pid) else None
+
+
 def free_port(host: str = "127.0.0.1") -> int:
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind((host, 0))
@@ -240,19 +259,27 @@ class LocalStack:
         existing = read_state(self.state_dir)
         if existing is not None:
             raise UserError(f"a local stack is already running from {self.state_dir} "
-                            f"(API at {existing['server']}, pid {existing['pids']['api']}); "
-                            "stop it first or use another --state-dir")
+                            f"(API at {existing['server']}); {stop_hint(existing)}, or use "
+                            "another --state-dir")
         self.state_dir.mkdir(parents=True, exist_ok=True)
         (self.state_dir / "logs").mkdir(exist_ok=True)
-        self._lock = open(self.state_dir / "stack.lock", "w")
+        lock_path = self.state_dir / "stack.lock"
+        self._lock = open(lock_path, "a+")
         try:
             fcntl.flock(self._lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             self._lock.close()
             self._lock = None
+            holder = _lock_holder(lock_path)
+            hint = (f"stop it with Ctrl-C where it runs, or `kill {holder}` (SIGTERM to the "
+                    "process that runs it)" if holder else "stop it first")
             raise UserError(f"a local stack is already running (or starting) from "
-                            f"{self.state_dir}; stop it first or use another --state-dir") \
-                from None
+                            f"{self.state_dir}; {hint}, or use another --state-dir") from None
+        # the lock file names its holder, for the message above
+        self._lock.seek(0)
+        self._lock.truncate()
+        self._lock.write(f"{os.getpid()}\n")
+        self._lock.flush()
         try:
             self._sweep_store()
             if self.redis_url is None:

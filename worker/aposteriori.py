@@ -103,10 +103,12 @@ def les_task(job_id: str) -> dict:
     seen: list[str] = []
 
     def progress(name: str, done: int, total: int) -> None:
+        # a run counts as done once the next one starts (one that blows up never reaches
+        # its last output time) or when all of them have returned, below
         if name not in seen:
             seen.append(name)
         q.set_progress(conn, job_id, phase=f"les {name}", phase_done=len(seen) - 1,
-                       phase_total=n_runs)
+                       phase_total=max(n_runs, len(seen)))
 
     try:
         _check_files(st, spec, row)
@@ -121,7 +123,8 @@ def les_task(job_id: str) -> dict:
                "input_sha256": row["input_sha256"], "spec": spec.model_dump(mode="json")}
     folder = save_result(st, spec.model_id, comparison, request)
     st.update_job(job_id, state="succeeded", only_if_active=True)
-    q.set_progress(conn, job_id, phase="done")
+    total = max(n_runs, len(seen))
+    q.set_progress(conn, job_id, phase="done", phase_done=total, phase_total=total)
     return {"job": job_id, "model_id": spec.model_id, "run": folder.name,
             "status": {k: v.status for k, v in comparison.runs.items()}}
 

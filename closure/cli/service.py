@@ -118,7 +118,7 @@ def up(
     stack.start()
     typer.echo(f"closure service at {stack.server_url} (docs: {stack.server_url}/docs)")
     typer.echo(f"redis: {stack.redis_url}; store: {stack.store}; workers: {workers}")
-    typer.echo(f"state: {stack.state_dir}; stop with Ctrl-C")
+    typer.echo(f"state: {stack.state_dir}; stop with Ctrl-C (or `kill {os.getpid()}`)")
     raise typer.Exit(stack.supervise(echo=lambda m: typer.echo(m, err=True)))
 
 
