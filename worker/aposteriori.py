@@ -273,8 +273,3 @@ def reconcile(store: Store, conn, row: dict) -> dict:
         store.update_job(row["id"], state="failed", error=message, only_if_active=True)
         return store.get_job(row["id"])
     return row
-
-
-def status(store: Store, conn, job_id: str) -> dict:
-    """The status document of a job (closure's usual one; it reconciles a posteriori tasks)."""
-    return q.status(store, conn, job_id)
