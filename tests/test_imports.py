@@ -162,6 +162,36 @@ def test_science_imports_nothing_of_the_service_layers():
             assert not bad, f"{mod} imports {bad}"
 
 
+SERVICE = ("closure.service", "closure.store", "closure.localstack", "closure.client")
+
+
+def test_the_science_imports_nothing_of_closure_service():
+    # the tree shows the line: closure/service/ (store, local stack, client) sits beside the
+    # science, which never reaches into it (the command line does, to talk to a server)
+    graph = _both(import_graph())
+    for mod, targets in graph.items():
+        if mod.startswith("closure") and not mod.startswith(("closure.service", "closure.cli")) \
+                and mod not in SERVICE:
+            bad = sorted(t for t in targets if t.startswith(SERVICE))
+            assert not bad, f"{mod} imports {bad}"
+
+
+def test_the_old_service_paths_are_the_same_modules():
+    import closure.client
+    import closure.localstack
+    import closure.service.client
+    import closure.service.localstack
+    import closure.service.store
+    import closure.store
+
+    assert closure.store is closure.service.store
+    assert closure.localstack is closure.service.localstack
+    assert closure.client is closure.service.client
+    from closure.store import _record, iso_time  # private names too
+
+    assert iso_time(0.0) == "1970-01-01T00:00:00Z" and callable(_record)
+
+
 if __name__ == "__main__":
     g = import_graph()
     for level, edges in (("module-level", g["module"]), ("all", _both(g))):
