@@ -244,7 +244,9 @@ def _install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(RequestValidationError)
     async def _validation(request: Request, exc: RequestValidationError):
-        all_errors = exc.errors()
+        from closure.spec import merged_errors
+
+        all_errors = merged_errors(exc.errors())
         errors = [_describe(e) for e in all_errors[:MAX_ERRORS]]
         more = len(all_errors) - len(errors)
         text = "; ".join(f"{e['field']}: {e['message']}" for e in errors)
@@ -282,14 +284,11 @@ def _describe(err: dict) -> dict:
         loc = loc[1:]
     if where == "body" and loc[:1] in (["discover"], ["coarse-grain"], ["sweep"]):
         loc = loc[1:]  # the job kind pydantic puts first in a POST /jobs error
-    message = err.get("msg", "invalid")
+    message = err.get("msg", "invalid")  # in our words (closure.spec.merged_errors)
     if err.get("type") == "json_invalid":  # loc is (body, character offset)
         loc = []
         message = f"the request body is not valid JSON ({ctx_error(err)}); send the spec as JSON"
     field = bounded(".".join(loc), 200) or ("request body" if where == "body" else "request")
-    ctx = err.get("ctx") or {}
-    if err.get("type") == "literal_error" and "expected" in ctx:
-        message = f"must be one of {ctx['expected']}"
     if "input" in err and err.get("type") != "missing":
         given = err["input"]
         if isinstance(given, str | int | float | bool) or given is None:

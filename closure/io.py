@@ -35,34 +35,15 @@ import xarray as xr
 
 from closure.atomic import ordinary_mode
 from closure.errors import InputFileError, UserError
+from closure.fields import CoarseSnapshot, Snapshot  # re-exported: the types live there
 from closure.filters import CoarseGraining
 from closure.grid import DIRECTION_OF, SPATIAL_DIMS, VELOCITY_OF, Grid
-from closure.residuals import CoarseSnapshot
 
 TIME = "time"
 #: relative tolerance on the spacing of a coordinate for it to count as uniform
 UNIFORM_RTOL = 1e-6
 #: the value of the global attribute ``closure_file`` in coarse files we write
 COARSE_FILE_KIND = "coarse-grained fields and exact subgrid terms"
-
-
-@dataclass
-class Snapshot:
-    """One time step of fine-grid fields.
-
-    ``fields`` maps our names (``u, v, w`` and scalar names) to float64 arrays of
-    ``grid.shape``; ``index`` is the snapshot's position in the file; ``time`` its time
-    coordinate (file units) or None. ``mask``: a boolean array of ``grid.shape``, True where
-    the point is fluid (False on land or missing values), or None when every point is fluid.
-    """
-
-    fields: dict[str, np.ndarray]
-    grid: Grid
-    index: int
-    time: float | None
-    mask: np.ndarray | None = None
-    #: the z level of a level stack (``open_fields(..., levels=...)``), else None
-    level: int | None = None
 
 
 def sha256_file(path: str | os.PathLike, chunk_size: int = 1 << 20,

@@ -1,10 +1,12 @@
 """ClosureModel: a fitted closure and its versioned model file.
 
-Model file, schema version 1 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Schema)
+Model file, schema version 2 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Schema)
 ----------------------------------------------------------------------------------
 
 ``format``            ``"closure-model"``
-``schema_version``    1 (bumped when a field changes meaning; older readers refuse newer files)
+``schema_version``    2 (bumped when a field changes meaning; older readers refuse newer files,
+                      this reader converts version 1 files on load: their term ``expression``
+                      and ``latex`` were keyed by library key, ``xx``, ``x``, ``""``)
 ``target``            ``stress``, ``force``, ``vorticity``, ``flux:NAME``, ``heat_flux`` or
                       ``pressure_dilatation`` (compressible)
 ``components``        the target variables modelled, e.g. ``["tau_xx", "tau_xy", "tau_yy"]``
@@ -23,10 +25,12 @@ Model file, schema version 1 (JSON, UTF-8; :data:`MODEL_SCHEMA` is its JSON Sche
                       names, and the preset terms left out as exact combinations of them
 ``method``            the regression method; ``settings`` its and the selection's settings
 ``terms``             one record per library term: ``name, description, rank, delta_power,
-                      dimensionless, scaled_units, expression`` (sympy string per component key),
-                      ``latex`` (per component), ``coefficient`` (dimensional: multiplies the
-                      expression with Delta = 1), ``coefficient_scaled`` (multiplies the expression
-                      as written, with Delta; dimensionless where ``dimensionless``),
+                      dimensionless, scaled_units, expression`` (sympy string per target component,
+                      keyed like ``components`` and the exports: ``tau_xx``, ``force_x``),
+                      ``latex`` (per component, the same keys), ``coefficient`` (dimensional:
+                      multiplies the expression with Delta = 1), ``coefficient_scaled``
+                      (multiplies the expression as written, with Delta; dimensionless where
+                      ``dimensionless``),
                       ``std_error``, ``std_error_scaled``, ``selection_frequency`` (fraction of
                       resamples that selected the term, or null), ``active`` (non-zero
                       coefficient; only active terms are evaluated)
@@ -65,7 +69,9 @@ from closure.grid import Grid
 from closure.library import Library, Term, predict, target_components, terms_from_dicts
 
 MODEL_FORMAT = "closure-model"
-MODEL_SCHEMA_VERSION = 1
+MODEL_SCHEMA_VERSION = 2
+#: versions this reader loads (older ones are converted on load)
+READABLE_SCHEMA_VERSIONS = (1, 2)
 
 CAUTION = ("A priori skill (how well the model reproduces the exact subgrid terms of filtered "
            "data) does not guarantee a stable or accurate coarse simulation: validate the model "
@@ -104,7 +110,7 @@ TERM_SCHEMA = {
 #: JSON Schema (2020-12 vocabulary, the subset :func:`validate_schema` checks) of a model file.
 MODEL_SCHEMA = {
     "$schema": "https://json-schema.org/draft/2020-12/schema",
-    "title": "closure model file, schema version 1",
+    "title": f"closure model file, schema version {MODEL_SCHEMA_VERSION}",
     "type": "object",
     "required": ["format", "schema_version", "target", "components", "dims", "scalars",
                  "filter", "grid", "scheme", "delta", "provenance", "library", "method",
@@ -284,6 +290,49 @@ def _optional_array(values, n: int, name: str) -> np.ndarray:
     if a.size != n:
         raise ValueError(f"{name} has {a.size} values for {n} terms")
     return a
+
+
+def _upgrade_v1(d: Mapping) -> dict:
+    """A version 1 model dict as version 2: term expressions and LaTeX keyed by target
+    component (``tau_xx``) instead of library key (``xx``). Keys that do not fit are left for
+    the checks that follow to name."""
+    from closure.library import component_keys
+
+    d = dict(d)
+    try:
+        rename = dict(zip(component_keys(d["target"], d["dims"]),
+                          target_components(d["target"], d["dims"]), strict=True))
+    except (KeyError, TypeError, ValueError, UserError):
+        rename = {}
+    terms = []
+    for t in d.get("terms") or []:
+        if isinstance(t, Mapping):
+            t = dict(t)
+            for field_ in ("expression", "latex"):
+                if isinstance(t.get(field_), Mapping):
+                    t[field_] = {rename.get(k, k): v for k, v in t[field_].items()}
+        terms.append(t)
+    d["terms"] = terms
+    d["schema_version"] = MODEL_SCHEMA_VERSION
+    return d
+
+
+def _terms_by_library_key(terms: Sequence[Mapping], target: str, dims, source: str
+                          ) -> list[dict]:
+    """Term records with ``expression`` keyed by library key, as the term parser reads them;
+    UserError when a term's keys are not the model's components."""
+    from closure.library import component_keys
+
+    keys, comps = component_keys(target, dims), target_components(target, dims)
+    out = []
+    for n, t in enumerate(terms):
+        exprs = t["expression"]
+        if sorted(exprs) != sorted(comps):
+            raise UserError(f"{source}: terms[{n}] ({t.get('name')!r}): expression must have "
+                            f"the components {', '.join(comps)} (it has "
+                            f"{', '.join(exprs) or 'none'})")
+        out.append({**t, "expression": {k: exprs[c] for k, c in zip(keys, comps, strict=True)}})
+    return out
 
 
 @dataclass(frozen=True)
@@ -519,6 +568,10 @@ class ClosureModel:
         coef, se = self.coefficients, self.std_errors
         for k, t in enumerate(self.library.terms):
             rec = t.to_dict()
+            # keyed by target component, as in ``components`` and the exports
+            for field_ in ("expression", "latex"):
+                rec[field_] = {c: rec[field_][key] for key, c in
+                               zip(self.library.keys, self.components, strict=True)}
             rec.update({
                 "coefficient": float(coef[k]),
                 "coefficient_scaled": float(self.coefficients_scaled[k]),
@@ -562,10 +615,13 @@ class ClosureModel:
             raise UserError(f"{source} is not a closure model file (format is "
                             f"{d.get('format')!r}, expected {MODEL_FORMAT!r})")
         version = d.get("schema_version")
-        if version != MODEL_SCHEMA_VERSION:
+        if version not in READABLE_SCHEMA_VERSIONS:
             raise UserError(f"{source} has model schema version {version!r}; this closure "
-                            f"{_closure_version()} reads version {MODEL_SCHEMA_VERSION}: "
+                            f"{_closure_version()} reads versions "
+                            f"{', '.join(map(str, READABLE_SCHEMA_VERSIONS))}: "
                             "use the closure version that wrote it, or refit")
+        if version == 1:
+            d = _upgrade_v1(d)
         errors = validate_schema(d, MODEL_SCHEMA)
         if errors:
             more = f" (and {len(errors) - 5} more)" if len(errors) > 5 else ""
@@ -577,7 +633,8 @@ class ClosureModel:
                             f"{target} on dims {dims} ({expected})")
         if tuple(d["grid"]["dims"]) != dims:
             raise UserError(f"{source}: grid.dims {d['grid']['dims']} differ from dims {dims}")
-        lib = terms_from_dicts(d["terms"], target, dims, d["scalars"], name=source)
+        lib = terms_from_dicts(_terms_by_library_key(d["terms"], target, dims, source),
+                               target, dims, d["scalars"], name=source)
         lib = Library(d["library"]["name"], target, dims, lib.scalars, lib.terms,
                       tuple(d["library"].get("dropped", ())))
         delta = float(d["delta"])

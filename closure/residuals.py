@@ -60,54 +60,20 @@ A mask with every point fluid is no mask: the result is bit for bit the unmasked
 from __future__ import annotations
 
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
 
 from closure.derivatives import SCHEMES, derivative
 from closure.errors import UserError
+from closure.fields import CoarseSnapshot, Snapshot  # re-exported: the types live there
 from closure.filters import LAND_CONVENTIONS, CoarseGraining, land_as_zero
 from closure.grid import VELOCITY_OF, Grid
-
-if TYPE_CHECKING:  # the io module imports this one
-    from closure.io import Snapshot
 
 #: Direction pairs of the independent stress components, in output order.
 _PAIRS = (("x", "x"), ("x", "y"), ("y", "y"), ("x", "z"), ("y", "z"), ("z", "z"))
 # internal keys that no scalar name can collide with
 _OMEGA, _TAU = "<omega>", "<tau>"
-
-
-@dataclass
-class CoarseSnapshot:
-    """Filtered fields and exact subgrid terms of one snapshot, on the coarse grid.
-
-    ``fields``: filtered ``u, v[, w]``, scalars, and in 2-D ``vorticity``; ``targets``:
-    ``tau_*``, ``force_*``, ``flux_<c>_*``, ``pi`` and in 2-D ``vorticity_forcing``,
-    ``enstrophy_transfer``. Arrays are float64 of ``grid.shape`` (the coarse grid).
-    """
-
-    fields: dict[str, np.ndarray]
-    targets: dict[str, np.ndarray]
-    grid: Grid
-    coarse_graining: CoarseGraining
-    index: int
-    time: float | None
-    #: boolean array of the coarse grid's shape, True where the coarse point may enter fits
-    #: and scores (its filter footprint and derivative stencils see no land); None: all valid
-    valid: np.ndarray | None = None
-    #: boolean array of the coarse grid's shape, True where the coarse point itself is fluid
-    #: (filters: the fine point it samples; block averaging: a block with a fluid cell); land
-    #: points hold 0 in ``fields`` and ``targets``. None: no land
-    fluid: np.ndarray | None = None
-    #: the land convention used ("zero" or "fluid"), None when the snapshot had no land
-    land: str | None = None
-
-    @property
-    def velocity(self) -> tuple[str, ...]:
-        return tuple(c for c in ("u", "v", "w") if c in self.fields)
 
 
 def directions(dims: Sequence[str]) -> tuple[str, ...]:

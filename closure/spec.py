@@ -460,14 +460,110 @@ def parse_spec(data: dict | str) -> JobSpec:
         raise OptionError(format_validation_error(exc)) from None
 
 
+def _choices(values) -> str:
+    if isinstance(values, str):  # pydantic's ctx text: "'a', 'b' or 'c'"
+        return values
+    return ", ".join(repr(v) for v in values)
+
+
+#: pydantic error types in our own words; ``{name}`` fields come from the error's ctx
+_MESSAGES = {
+    "missing": "is required",
+    "extra_forbidden": "is not a field of this spec: remove it (or check its spelling)",
+    "int_type": "must be a whole number",
+    "int_parsing": "must be a whole number",
+    "int_from_float": "must be a whole number",
+    "float_type": "must be a number",
+    "float_parsing": "must be a number",
+    "finite_number": "must be a finite number",
+    "bool_type": "must be true or false",
+    "bool_parsing": "must be true or false",
+    "string_type": "must be text",
+    "list_type": "must be a list",
+    "tuple_type": "must be a list",
+    "set_type": "must be a list",
+    "dict_type": "must be an object (a JSON mapping of names to values)",
+    "model_type": "must be an object (a JSON mapping of names to values)",
+    "model_attributes_type": "must be an object (a JSON mapping of names to values)",
+    "none_required": "must be null",
+    "greater_than": "must be greater than {gt}",
+    "greater_than_equal": "must be at least {ge}",
+    "less_than": "must be less than {lt}",
+    "less_than_equal": "must be at most {le}",
+    "multiple_of": "must be a multiple of {multiple_of}",
+    "too_short": "must have at least {min_length} item(s)",
+    "too_long": "must have at most {max_length} item(s)",
+    "string_too_short": "must have at least {min_length} character(s)",
+    "string_too_long": "must have at most {max_length} character(s)",
+    "string_pattern_mismatch": "must match the pattern {pattern}",
+    "union_tag_not_found": "needs the field {discriminator}",
+    "frozen_instance": "cannot be changed",
+    "url_parsing": "must be a URL",
+    "json_invalid": "is not valid JSON",
+    "json_type": "must be JSON text",
+}
+#: the validation library's own openings, reworded when an unknown type keeps its text
+_PREFIXES = (("Value error, ", ""), ("Assertion failed, ", ""), ("Input should be ", "must be "),
+             ("Field required", "is required"))
+
+
+def validation_message(err: dict) -> str:
+    """One pydantic error (an entry of ``ValidationError.errors()``) in closure's words: what
+    the value must be, with the allowed values of a choice; the field path is the caller's."""
+    kind = err.get("type", "")
+    ctx = err.get("ctx") or {}
+    if kind in ("value_error", "assertion_error") and ctx.get("error") is not None:
+        return str(ctx["error"])  # our validators' own text
+    if kind in ("literal_error", "enum") and "expected" in ctx:
+        choices = _choices(ctx["expected"])
+        single = isinstance(ctx["expected"], str) and " or " not in choices
+        return f"must be {choices}" if single else f"must be one of {choices}"
+    if kind == "union_tag_invalid":
+        return (f"{ctx.get('discriminator', 'kind')} must be one of "
+                f"{_choices(ctx.get('expected_tags', ''))} (got {ctx.get('tag')!r})")
+    template = _MESSAGES.get(kind)
+    if template is not None:
+        try:
+            return template.format(**ctx)
+        except (KeyError, IndexError):
+            pass
+    message = str(err.get("msg", "invalid"))
+    for prefix, ours in _PREFIXES:
+        if message.startswith(prefix):
+            message = ours + message[len(prefix):]
+    return message or "invalid"
+
+
+_TYPE_SEGMENT = re.compile(r"^(str|int|float|bool|bytes|list|dict|set|tuple|none|"
+                           r"[a-z][a-z0-9_-]*\[.*\])$")
+
+
+def merged_errors(errors: list[dict]) -> list[dict]:
+    """pydantic's errors with our messages (``msg``) and without the names of union members
+    in the path (``input.path.str``, ``input.path.list[str]``): the errors of one field's
+    alternatives become one, "must be text or a list"."""
+    out: list[dict] = []
+    for err in errors:
+        loc = tuple(p for p in err.get("loc", ()) if not (isinstance(p, str) and
+                                                           _TYPE_SEGMENT.match(p)))
+        message = validation_message(err)
+        prev = out[-1] if out else None
+        if prev is not None and prev["loc"] == loc and prev.get("input") == err.get("input") \
+                and len(loc) < len(err.get("loc", ())):
+            alt = message[len("must be "):] if message.startswith("must be ") else message
+            prev["msg"] = f"{prev['msg']} or {alt}"
+            continue
+        out.append({**err, "loc": loc, "msg": message, "type": err.get("type")})
+    return out
+
+
 def format_validation_error(exc: ValidationError) -> str:
+    """A pydantic ValidationError as one line: ``field.path: message (got value)`` per error."""
     lines = []
-    for err in exc.errors():
+    for err in merged_errors(exc.errors()):
         path = ".".join(str(p) for p in err["loc"]) or "spec"
-        msg = err["msg"]
-        if err["type"] == "literal_error" and "expected" in err.get("ctx", {}):
-            msg = f"must be one of {err['ctx']['expected']}"
-        lines.append(f"{path}: {msg} (got {err.get('input')!r})")
+        got = "" if err.get("type") == "missing" else f" (got {err.get('input')!r})"
+        lines.append(f"{path}: {err['msg']}{got}")
     return "invalid job spec: " + "; ".join(lines)
 
 

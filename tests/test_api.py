@@ -412,3 +412,67 @@ def test_every_error_status_is_documented_with_the_error_body(client):
     assert r.json()["errors"][0]["field"] == "fit.seed"
     r = client.post("/jobs", content=b"\xff\xfe", headers={"Content-Type": "application/json"})
     assert r.status_code in (400, 422) and "error" in r.json()
+
+
+#: bad specs and what each message must say; together they raise most pydantic error types
+BAD_SPECS = [
+    ({"filter": {"kind": "tophat"}}, "filter.kind: must be one of 'box'"),
+    ({"filter": {"ratio": 0}}, "filter.ratio: must be at least 1"),
+    ({"filter": {"ratio": 4096}}, "filter.ratio: must be at most 1024"),
+    ({"filter": {"ratio": "four"}}, "filter.ratio: must be a whole number"),
+    ({"filter": {"ratio": 2.5}}, "filter.ratio: must be a whole number"),
+    ({"filter": {"width": -1.0}}, "filter.width: must be greater than 0"),
+    ({"filter": {"width": "wide"}}, "filter.width: must be a number"),
+    ({"filter": "gaussian"}, "filter: must be an object"),
+    ({"fit": {"test_fraction": 1.5}}, "fit.test_fraction: must be less than 1"),
+    ({"fit": {"resamples": [1]}}, "fit.resamples: must be a whole number"),
+    ({"fit": {"folds": 1}}, "fit.folds: must be at least 2"),
+    ({"fit": {"colour": "red"}}, "fit.colour: is not a field of this spec"),
+    ({"reference_net": {"enabled": "maybe"}}, "reference_net.enabled: must be true or false"),
+    ({"reference_net": {"kernel": 4}}, "reference_net.kernel: kernel must be odd"),
+    ({"scheme": 4}, "scheme: must be one of 'spectral'"),
+    ({"speed": "fast"}, "speed: is not a field of this spec"),
+    ({"input": {}}, "exactly one of input.path or input.dataset_id"),
+    ({"input": {"path": 7}}, "input.path: must be text or a list (got 7)"),
+    ({"input": {"path": "x.nc", "snapshots": "all"}}, "input.snapshots: must be a list"),
+    ({"kind": "transmogrify"}, "kind must be 'discover' (the default), 'coarse-grain'"),
+]
+#: the validation library's own wording, which must not reach a user
+LIBRARY_WORDING = ("Value error", "Input should", "Field required", "Extra inputs",
+                   "Assertion failed", "valid integer", "valid number", "unable to parse")
+
+
+@pytest.mark.parametrize("change,expected", BAD_SPECS)
+def test_422_messages_are_in_our_own_words(client, turb2d_file, change, expected):  # noqa: F811
+    spec = spec_for(turb2d_file)
+    for key, value in change.items():
+        if isinstance(value, dict) and isinstance(spec.get(key), dict):
+            spec[key] = {**spec[key], **value} if key != "input" or value else value
+        else:
+            spec[key] = value
+    r = client.post("/jobs", json=spec)
+    assert r.status_code == 422, r.text
+    body = r.json()
+    texts = [body["detail"], *(e["message"] for e in body.get("errors") or [])]
+    for text in texts:
+        assert not any(w in text for w in LIBRARY_WORDING), text
+    assert expected in body["detail"], body["detail"]
+    # the same words where the CLI and the client validate a spec locally
+    from closure.spec import parse_spec
+
+    if change.get("kind") is None:
+        with pytest.raises(UserError) as err:
+            parse_spec(spec)
+        assert not any(w in str(err.value) for w in LIBRARY_WORDING), str(err.value)
+        assert expected in str(err.value)
+
+
+def test_422_query_messages_are_in_our_own_words(client):
+    for url, expected in (("/models?min_r2=high", "min_r2: must be a number"),
+                          ("/models?limit=many", "limit: must be a whole number"),
+                          ("/models?limit=0", "limit: must be at least 1"),
+                          ("/models/m-x/export?lang=rust", "lang: must be one of")):
+        r = client.get(url)
+        assert r.status_code == 422, (url, r.text)
+        assert expected in r.json()["detail"], r.json()["detail"]
+        assert not any(w in r.json()["detail"] for w in LIBRARY_WORDING), r.json()["detail"]

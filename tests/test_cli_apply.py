@@ -158,20 +158,92 @@ def test_apply_errors_are_one_line(tmp_path, coarse_file, capsys):
         assert src.n_snapshots == 2
 
 
-def test_show_model_and_export_model(tmp_path, coarse_file, capsys):
+def test_show_and_export_a_model_file(tmp_path, coarse_file, capsys):
     path, cg, coarse = coarse_file
     mpath = fitted_model(coarse, cg).save(tmp_path / "m.json")
-    assert main(["show-model", str(mpath)]) == 0
+    assert main(["show", str(mpath)]) == 0
     text = capsys.readouterr().out
     assert "Closure model for stress" in text and "gradient_model" in text
     assert "Scores (test): r2 0.5" in text and "a posteriori" in text
     out = tmp_path / "code" / "model.f90"
-    assert main(["export-model", str(mpath), "--lang", "fortran", "-o", str(out)]) == 0
+    assert main(["export", str(mpath), "--lang", "fortran", "-o", str(out)]) == 0
     assert "module closure_model_mod" in out.read_text()
+    assert main(["export", str(mpath), "--lang", "c", "--name", "sgs"]) == 0
+    assert "void sgs(" in capsys.readouterr().out
+    # one default language for files and stored models: python
+    assert main(["export", str(mpath)]) == 0
+    assert "def closure_model(" in capsys.readouterr().out
+    assert main(["export", str(mpath), "--lang", "cobol"]) == 2
+    assert "unknown export language 'cobol'" in capsys.readouterr().err
+    assert main(["export", str(mpath), "-o", str(mpath)]) == 2
+    assert "is the model file" in capsys.readouterr().err
+
+
+def test_show_model_and_export_model_stay_as_hidden_aliases(tmp_path, coarse_file, capsys):
+    path, cg, coarse = coarse_file
+    mpath = fitted_model(coarse, cg).save(tmp_path / "m.json")
+    assert main(["show-model", str(mpath)]) == 0
+    assert "Closure model for stress" in capsys.readouterr().out
     assert main(["export-model", str(mpath), "--lang", "c"]) == 0
     assert "void closure_model(" in capsys.readouterr().out
-    assert main(["export-model", str(mpath), "--lang", "cobol"]) == 2
-    assert "unknown export language 'cobol'" in capsys.readouterr().err
+    assert main(["--help"]) == 0
+    help_text = capsys.readouterr().out
+    assert " show " in help_text and " export " in help_text
+    assert "show-model" not in help_text and "export-model" not in help_text
+
+
+class _FakeService:
+    """Stands in for the HTTP client: one stored model, 404 for any other id."""
+
+    def __init__(self, model):
+        self.model_doc = model
+        self.asked = []
+
+    def __call__(self, server, token):
+        return self
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
+
+    def model(self, model_id):
+        from closure.client import ServiceError
+
+        self.asked.append(model_id)
+        if model_id != "m-stored":
+            raise ServiceError(f"no model {model_id} (HTTP 404)", status=404)
+        return {"id": model_id, "model": self.model_doc.to_dict(),
+                "summary": "stored summary", "created": "2026-12-02T07:30:00Z"}
+
+
+def test_show_and_export_fetch_a_stored_model_id(tmp_path, coarse_file, capsys, monkeypatch):
+    import closure.cli.service as service
+
+    path, cg, coarse = coarse_file
+    model = fitted_model(coarse, cg)
+    fake = _FakeService(model)
+    monkeypatch.setattr(service, "_client", fake)
+    assert main(["show", "m-stored"]) == 0
+    assert capsys.readouterr().out.strip() == "stored summary"
+    assert main(["show", "m-stored", "--json"]) == 0
+    assert '"id": "m-stored"' in capsys.readouterr().out
+    out = tmp_path / "stored.py"
+    assert main(["export", "m-stored", "--name", "sgs", "-o", str(out)]) == 0
+    assert "def sgs(" in out.read_text()
+    assert f"wrote {out} (python)" in capsys.readouterr().out
+    # the same text as exporting the file itself
+    mpath = model.save(tmp_path / "m.json")
+    assert main(["export", str(mpath), "--name", "sgs"]) == 0
+    assert capsys.readouterr().out == out.read_text()
+    assert main(["show", "m-missing"]) == 2
+    err = capsys.readouterr().err
+    assert "'m-missing' is neither a model file" in err and "closure models" in err
+    # a path that exists is a file: the service is not asked
+    fake.asked.clear()
+    assert main(["show", str(mpath)]) == 0
+    assert fake.asked == []
 
 
 def test_apply_on_a_coarse_file_with_land_leaves_land_out(tmp_path, make_netcdf, capsys):

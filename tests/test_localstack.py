@@ -80,6 +80,36 @@ def test_state_file_of_a_dead_stack_is_ignored(tmp_path):
     assert read_state(tmp_path) is None
 
 
+def test_a_second_stack_names_the_process_to_signal(tmp_path):
+    # a running stack as its state file describes it: the supervisor (`closure up`) and its
+    # API child; the message must name the supervisor, which stops everything on SIGTERM
+    supervisor = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    api = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        (tmp_path / STATE_FILE).write_text(json.dumps({"server": "http://127.0.0.1:1", "pids": {
+            "supervisor": supervisor.pid, "api": api.pid, "redis": None, "workers": []}}))
+        with pytest.raises(UserError) as err:
+            LocalStack(tmp_path, port=0).start()
+        msg = str(err.value)
+        assert f"`kill {supervisor.pid}`" in msg and str(api.pid) not in msg
+        assert "another --state-dir" in msg
+        # a stack still starting (no state file yet) holds the lock, which names its pid
+        (tmp_path / STATE_FILE).unlink()
+        import fcntl
+
+        with open(tmp_path / "stack.lock", "w") as lock:
+            fcntl.flock(lock, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            lock.write(f"{supervisor.pid}\n")
+            lock.flush()
+            with pytest.raises(UserError, match=f"already running \\(or starting\\).*"
+                                                f"`kill {supervisor.pid}`"):
+                LocalStack(tmp_path, port=0).start()
+    finally:
+        for p in (supervisor, api):
+            p.kill()
+            p.wait()
+
+
 class FakeRedis:
     """A TCP listener that counts connections (standing in for someone else's Redis)."""
 

@@ -1,6 +1,7 @@
 import copy
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -72,8 +73,10 @@ def test_model_dict_matches_its_schema_and_records_everything():
     assert math.isclose(t0["coefficient"], -0.03 * 0.4**2)
     assert math.isclose(t1["std_error"], 0.02 * 0.4**2)
     assert t2["std_error"] is None and t2["selection_frequency"] == 0.1
-    assert set(t0["expression"]) == {"xx", "xy", "yy"} and "sqrt" in t0["expression"]["xx"]
-    assert t0["latex"]["xx"].startswith(r"\Delta^{2}")
+    # keyed by target component, like ``components`` and the exports
+    assert set(t0["expression"]) == {"tau_xx", "tau_xy", "tau_yy"}
+    assert "sqrt" in t0["expression"]["tau_xx"]
+    assert t0["latex"]["tau_xx"].startswith(r"\Delta^{2}")
     assert d["caution"] == CAUTION and "a posteriori" in d["caution"]
 
 
@@ -111,7 +114,7 @@ terms:
     L = make_library(str(terms), "flux:c", g.dims)
     m = ClosureModel.from_fit(L, [0.2, -0.1], filter={"kind": "box", "ratio": 2}, grid=g,
                               scheme="spectral", delta=0.7)
-    assert "Piecewise" in m.to_dict()["terms"][1]["expression"]["x"]
+    assert "Piecewise" in m.to_dict()["terms"][1]["expression"]["flux_c_x"]
     back = ClosureModel.load(m.save(tmp_path / "m.json"))
     assert back.to_dict()["terms"] == m.to_dict()["terms"]
     assert back.scalars == ("c",)
@@ -230,8 +233,8 @@ def test_load_errors_say_what_is_wrong(tmp_path):
 
     with pytest.raises(UserError, match="not a closure model file"):
         load({"format": "something-else"})
-    with pytest.raises(UserError, match="schema version 2; .* reads version 1"):
-        load({**good, "schema_version": 2})
+    with pytest.raises(UserError, match="schema version 3; .* reads versions 1, 2"):
+        load({**good, "schema_version": 3})
     d = copy.deepcopy(good)
     d["scheme"] = "fd6"
     d["terms"][0]["coefficient_scaled"] = "big"
@@ -243,7 +246,7 @@ def test_load_errors_say_what_is_wrong(tmp_path):
     assert "$.terms[0].coefficient_scaled: expected number" in msg
     assert "missing required field 'delta'" in msg
     d = copy.deepcopy(good)
-    d["terms"][0]["expression"]["xx"] = "Delta**2 * du_dq"
+    d["terms"][0]["expression"]["tau_xx"] = "Delta**2 * du_dq"
     with pytest.raises(UserError, match="unknown symbol 'du_dq'"):
         load(d)
     d = copy.deepcopy(good)
@@ -358,3 +361,46 @@ terms:
     assert m.warnings[0] in m.summary()
     back = ClosureModel.load(m.save(tmp_path / "m.json"))
     assert back.warnings == m.warnings  # read back once, not twice
+
+
+OLD_FILE = Path(__file__).parent / "data" / "model_v1_force.json"
+
+
+def test_a_version_1_model_file_loads_and_is_written_back_as_version_2(tmp_path):
+    # tests/data/model_v1_force.json was written by closure before schema version 2: its term
+    # expressions are keyed by library key ("x", "y"), the exports' by component ("force_x")
+    old = json.loads(OLD_FILE.read_text())
+    assert old["schema_version"] == 1 and set(old["terms"][0]["expression"]) == {"x", "y"}
+    m = ClosureModel.load(OLD_FILE)
+    assert m.names == ["div_smagorinsky", "div_gradient_model"]
+    assert list(m.coefficients_scaled) == [-0.03, 0.9]
+    d = m.to_dict()
+    assert d["schema_version"] == MODEL_SCHEMA_VERSION == 2
+    for t_old, t_new in zip(old["terms"], d["terms"], strict=True):
+        assert t_new["expression"] == {"force_x": t_old["expression"]["x"],
+                                       "force_y": t_old["expression"]["y"]}
+        assert t_new["latex"] == {"force_x": t_old["latex"]["x"],
+                                  "force_y": t_old["latex"]["y"]}
+    # the same keys as the JSON export
+    from closure.export import export_model
+
+    exported = json.loads(export_model(m, "json"))
+    assert set(exported["terms"][0]["expression"]) == set(d["terms"][0]["expression"])
+    # the old and the converted model predict the same on the same fields
+    back = ClosureModel.load(m.save(tmp_path / "m2.json"))
+    g = m.grid
+    f = smooth_fields(g, ["u", "v"])
+    a, b = m.evaluate(f, g), back.evaluate(f, g)
+    assert set(a) == {"force_x", "force_y"} and np.abs(a["force_x"]).max() > 0
+    assert all(np.array_equal(a[c], b[c]) for c in a)
+
+
+def test_a_model_file_with_the_wrong_expression_keys_is_refused(tmp_path):
+    m, _ = make_model()
+    d = m.to_dict()
+    d["terms"][0]["expression"] = {"xx": "0", "xy": "0", "yy": "0"}  # version 1 keys in 2
+    p = tmp_path / "m.json"
+    p.write_text(json.dumps(d))
+    with pytest.raises(UserError, match=r"terms\[0\] \('smagorinsky'\): expression must "
+                                        "have the components tau_xx, tau_xy, tau_yy"):
+        ClosureModel.load(p)

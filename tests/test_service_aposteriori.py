@@ -153,6 +153,7 @@ def test_queued_run_stores_every_baseline_and_equals_in_process(service, turb2d_
     run_burst(service)
     doc = service.get(f"/jobs/{job['id']}").json()
     assert doc["state"] == "succeeded" and doc["progress"]["phase"] == "done", doc
+    assert doc["progress"]["phase_done"] == doc["progress"]["phase_total"] == 1 + len(BASELINES)
 
     r = service.get(f"/models/{model_id}/les")
     assert r.status_code == 200, r.text

@@ -149,3 +149,26 @@ def test_coarse_grain_imports_no_plotting_web_fitting_or_symbolic_library(make_n
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout
     assert out.strip().splitlines()[-1] == "0 []"
+
+
+def test_the_cache_key_covers_every_module_of_the_library_package(tmp_path, monkeypatch):
+    # the terms depend on kinematics, build, pruning ... not only on presets.py: an edit of
+    # any module of closure.library must miss the entries written before it
+    import shutil
+
+    import closure.library.presets as presets
+
+    monkeypatch.setenv("CLOSURE_CACHE", str(tmp_path / "cache"))
+    sources = presets._cache_sources()
+    assert {p.name for p in sources} >= {"kinematics.py", "build.py", "pruning.py",
+                                         "presets.py", "terms.py"}
+    key = ("stress", ("x", "y"), (), True)
+    lib._default_terms.__wrapped__(*key)
+    assert lib._disk_cache("default_terms", key) is not None
+    copy = tmp_path / "src"
+    copy.mkdir()
+    for p in sources:
+        shutil.copy(p, copy / p.name)
+    (copy / "pruning.py").write_text((copy / "pruning.py").read_text() + "\n# edited\n")
+    monkeypatch.setattr(presets, "_cache_sources", lambda: sorted(copy.glob("*.py")))
+    assert lib._disk_cache("default_terms", key) is None

@@ -20,6 +20,7 @@ from closure.io import sha256_file
 from closure.spec import parse_spec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
+from worker import status as jobs_status
 from worker import tasks
 from worker.main import ClosureWorker
 
@@ -106,7 +107,7 @@ def test_queued_job_equals_in_process_discover(env, turb2d_file):  # noqa: F811
     before = sha256_file(turb2d_file)
     job_id = submit(conn, store, spec_dict(turb2d_file))
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "succeeded", doc
     assert doc["progress"]["snapshots_done"] == doc["progress"]["snapshots_total"] == 6
     stored = store.load_model(doc["model_id"])
@@ -150,7 +151,7 @@ def test_map_task_rerun_overwrites_its_stats_atomically(env, turb2d_file):  # no
         assert SufficientStats.load(path).equals(stats)  # ... with the same statistics
     assert not [p for p in done[0].parent.iterdir() if p.name.startswith(".")]
     run_burst(conn, store)
-    assert q.status(store, conn, job_id)["state"] == "succeeded"
+    assert jobs_status.status(store, conn, job_id)["state"] == "succeeded"
 
 
 def test_identical_job_in_the_plan_reuses_the_model(env, turb2d_file):  # noqa: F811
@@ -159,7 +160,7 @@ def test_identical_job_in_the_plan_reuses_the_model(env, turb2d_file):  # noqa: 
     run_burst(conn, store)
     second = submit(conn, store, spec_dict(turb2d_file))  # bypasses the API's check
     run_burst(conn, store)
-    a, b = q.status(store, conn, first), q.status(store, conn, second)
+    a, b = jobs_status.status(store, conn, first), jobs_status.status(store, conn, second)
     assert b["state"] == "succeeded" and b["reused"] and b["model_id"] == a["model_id"]
     assert len(store.find_models()) == 1
 
@@ -170,7 +171,7 @@ def test_user_error_in_plan_fails_the_job_with_its_message(env, turb2d_file):  #
     spec["input"]["snapshots"] = [3]
     job_id = submit(conn, store, spec)
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "at least 2" in doc["error"]
     assert doc["progress"]["phase"] == "failed"
     assert store.find_models() == [] and not any((store.root / "models").iterdir())
@@ -187,7 +188,7 @@ def test_input_changed_after_planning_fails_with_the_snapshots(env, turb2d_file,
     st = copy.stat()
     os.utime(copy, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed"
     assert "snapshot 0:" in doc["error"] and "changed since the job was planned" in doc["error"]
     assert store.find_models() == []
@@ -204,7 +205,7 @@ def test_cancel_stops_pending_tasks(env, turb2d_file):  # noqa: F811
     assert states == ["finished", "canceled"]
     assert q.fetch(conn, q.reduce_id(job_id)).get_status() == "canceled"
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "canceled" and doc["model_id"] is None
     assert store.find_models() == []
 
@@ -222,7 +223,7 @@ def test_task_that_keeps_failing_fails_the_job(env, turb2d_file):  # noqa: F811
 
     job_id = submit(conn, store, spec_dict(turb2d_file))
     run_burst(conn, store, patch=BROKEN_PLAN)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "RuntimeError: disk on fire" in doc["error"]
 
 
@@ -233,7 +234,7 @@ def test_status_reconciles_a_failure_rq_recorded_without_callback(env, turb2d_fi
     run_burst(conn, store, patch=BROKEN_PLAN
               + "\nimport worker.tasks as t; t.on_task_failure = lambda *a, **k: None")
     assert store.get_job(job_id)["state"] == "running"
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed"
     assert doc["error"].startswith("planning failed after")
     assert "RuntimeError: disk on fire" in doc["error"]
@@ -252,7 +253,7 @@ def test_queued_job_with_a_postgresql_catalog(tmp_path, redis_server, turb2d_fil
     try:
         job_id = submit(conn, store, spec_dict(turb2d_file, scheme="fd4"))
         run_burst(conn, store, db=["--db", POSTGRES_URL, "--db-schema", schema])
-        doc = q.status(store, conn, job_id)
+        doc = jobs_status.status(store, conn, job_id)
         assert doc["state"] == "succeeded", doc
         assert_same_model(store.load_model(doc["model_id"]),
                           pipeline.discover(parse_spec(spec_dict(turb2d_file, scheme="fd4"))))
@@ -281,7 +282,7 @@ def test_a_symlink_swapped_in_after_submission_is_not_read(env, turb2d_file, tmp
     inside.unlink()
     inside.symlink_to(outside)
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "leads elsewhere" in doc["error"], doc
     assert store.find_models() == []
 
@@ -298,7 +299,7 @@ def test_input_changed_after_submission_fails_on_its_checksum(env, turb2d_file, 
     with netCDF4.Dataset(copy, "a") as nc:  # still a valid file, other values
         nc["u"][0, 0, 0] = nc["u"][0, 0, 0] + 1.0
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "SHA-256 differs" in doc["error"], doc
     assert store.find_models() == []
 
@@ -309,7 +310,7 @@ def test_worker_data_roots_are_checked_when_a_task_opens_the_input(env, turb2d_f
     root.mkdir()
     job_id = submit(conn, store, spec_dict(turb2d_file))  # outside the worker's root
     run_burst(conn, store, db=["--data-root", str(root)])
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "not under the worker's data roots" in doc["error"]
 
 
@@ -319,7 +320,7 @@ def test_a_library_file_in_a_queued_spec_is_refused(env, turb2d_file, tmp_path):
     secret.write_text("password: hunter2-PRIVATE\n")
     job_id = submit(conn, store, spec_dict(turb2d_file, library=str(secret)))
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed" and "inline" in doc["error"]
     assert "hunter2" not in json.dumps(doc)
 

@@ -34,7 +34,7 @@ from rq import Callback, get_current_job
 
 from closure.errors import UserError
 from closure.spec import AposterioriSpec, parse_aposteriori_spec
-from closure.store import Store, read_json, write_json_atomic, write_text_atomic
+from closure.store import Store, epoch_time, read_json, write_json_atomic, write_text_atomic
 from worker import queue as q
 
 TASK_SUFFIX = "-les"
@@ -107,10 +107,12 @@ def les_task(job_id: str) -> dict:
     seen: list[str] = []
 
     def progress(name: str, done: int, total: int) -> None:
+        # a run counts as done once the next one starts (one that blows up never reaches
+        # its last output time) or when all of them have returned, below
         if name not in seen:
             seen.append(name)
         q.set_progress(conn, job_id, phase=f"les {name}", phase_done=len(seen) - 1,
-                       phase_total=n_runs)
+                       phase_total=max(n_runs, len(seen)))
 
     try:
         _check_files(st, spec, row)
@@ -125,7 +127,8 @@ def les_task(job_id: str) -> dict:
                "input_sha256": row["input_sha256"], "spec": spec.model_dump(mode="json")}
     folder = save_result(st, spec.model_id, comparison, request)
     st.update_job(job_id, state="succeeded", only_if_active=True)
-    q.set_progress(conn, job_id, phase="done")
+    total = max(n_runs, len(seen))
+    q.set_progress(conn, job_id, phase="done", phase_done=total, phase_total=total)
     return {"job": job_id, "model_id": spec.model_id, "run": folder.name,
             "status": {k: v.status for k, v in comparison.runs.items()}}
 
@@ -268,7 +271,8 @@ def reconcile(store: Store, conn, row: dict) -> dict:
     job = q.fetch(conn, task_id(row["id"]))
     message = None
     if job is None:
-        if time.time() - row["created"] > 30 and not conn.exists(q.progress_key(row["id"])):
+        if time.time() - epoch_time(row["created"]) > 30 \
+                and not conn.exists(q.progress_key(row["id"])):
             message = ("the queue no longer knows this run (Redis lost its data); "
                        "submit it again")
     elif job.get_status(refresh=False) in ("failed", "stopped"):
@@ -278,8 +282,3 @@ def reconcile(store: Store, conn, row: dict) -> dict:
         store.update_job(row["id"], state="failed", error=message, only_if_active=True)
         return store.get_job(row["id"])
     return row
-
-
-def status(store: Store, conn, job_id: str) -> dict:
-    """The status document of a job (closure's usual one; it reconciles a posteriori tasks)."""
-    return q.status(store, conn, job_id)

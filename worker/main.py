@@ -142,7 +142,7 @@ def die_with_parent(parent_pid: int | None) -> None:
 #: with them loaded (importing them costs about a second per task otherwise)
 PRELOAD = ("closure.pipeline", "closure.io", "closure.library", "closure.residuals",
            "closure.stats", "closure.regression", "closure.scores", "closure.model",
-           "closure.export", "closure.store", "netCDF4", "xarray", "sympy",
+           "closure.export", "closure.service.store", "netCDF4", "xarray", "sympy",
            "sklearn.linear_model", "scipy.optimize", "scipy.interpolate", "scipy.integrate",
            "scipy.linalg", "scipy.sparse")
 

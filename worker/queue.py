@@ -1,4 +1,7 @@
-"""The queue side of a job: Redis connections, submission, live progress, status, cancellation.
+"""The queue side of a job: Redis connections, submission, live progress, cancellation.
+
+(The status document of a job of any kind is worker.status.status, one floor up: it needs
+the modules of every kind of job, which all import this one.)
 
 One user-visible job id (``j-...``) fans out into rq tasks with derived ids::
 
@@ -26,6 +29,8 @@ from rq.command import send_stop_job_command
 from rq.exceptions import InvalidJobOperation, NoSuchJobError
 from rq.job import Job, JobStatus
 from rq.serializers import JSONSerializer
+
+from closure.store import epoch_time
 
 QUEUE_NAME = "closure"
 KEY_PREFIX = "closure:job:"
@@ -263,21 +268,18 @@ def enqueue_plan(conn: redis.Redis, job_id: str) -> None:
 
 # --------------------------------------------------------------------------- status
 
-def reconcile(store, conn: redis.Redis, row: dict) -> dict:
-    """Bring an active catalog row in line with the queue: a plan or reduce task that failed
-    for good (retries used up, worker lost) fails the job with an error the user can act on.
-    Returns the (possibly updated) row."""
+def reconcile_plan_reduce(store, conn: redis.Redis, row: dict) -> dict:
+    """Bring an active catalog row of a plan/map/reduce job in line with the queue: a plan or
+    reduce task that failed for good (retries used up, worker lost) fails the job with an
+    error the user can act on. Returns the (possibly updated) row. (worker.status.reconcile
+    picks the right one for each kind of job.)"""
     if row["state"] not in ("queued", "running"):
         return row
-    from worker import aposteriori  # imports this module
-
-    if aposteriori.is_aposteriori(row):  # one task of its own, not plan/map/reduce
-        return aposteriori.reconcile(store, conn, row)
     for rq_id, what in ((plan_id(row["id"]), "planning"), (reduce_id(row["id"]), "fitting"),
                         (f"{row['id']}-choose", "choosing by coarse runs")):
         job = fetch(conn, rq_id)
         if job is None:
-            if rq_id.endswith("-plan") and time.time() - row["created"] > 30 \
+            if rq_id.endswith("-plan") and time.time() - epoch_time(row["created"]) > 30 \
                     and not conn.exists(progress_key(row["id"])):
                 message = ("the queue no longer knows this job (Redis lost its data, e.g. "
                            "restarted without appendonly persistence); submit it again")
@@ -309,29 +311,6 @@ def last_error(job: Job) -> str:
             text = job.exc_info or ""
     lines = [ln for ln in str(text).strip().splitlines() if ln.strip()]
     return lines[-1].strip() if lines else "no error recorded (the worker was lost)"
-
-
-def status(store, conn: redis.Redis, job_id: str) -> dict:
-    """The user-facing status of a job: catalog state plus live progress."""
-    row = store.get_job(job_id)
-    row = reconcile(store, conn, row)
-    progress = read_progress(conn, job_id)
-    if row["state"] == "succeeded":
-        progress["phase"] = "done"
-    elif row["state"] in ("failed", "canceled"):
-        progress["phase"] = row["state"]
-    from worker import products, sweeps  # these kinds also report what they stored
-
-    extra = products.status_fields(store, row) if products.is_coarse_grain(row) else \
-        sweeps.status_fields(store, row) if sweeps.is_sweep(row) else {}
-    return {**extra,
-        "id": row["id"], "name": row["name"], "state": row["state"], "progress": progress,
-        "model_id": row["model_id"], "error": public_error(store, row),
-        "reused": bool(row["reused"]),
-        "input_sha256": row["input_sha256"], "dataset_id": row["dataset_id"],
-        "created": row["created"], "started": row["started"], "finished": row["finished"],
-        "spec": row["spec"],
-    }
 
 
 def public_error(store, row: dict) -> str | None:

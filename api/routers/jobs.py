@@ -13,6 +13,7 @@ from api.routers.sweeps import submit_sweep
 from closure.spec import AnyJobSpec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
+from worker import status as jobs_status
 
 router = APIRouter(tags=["jobs"], dependencies=[Depends(require_token)])
 
@@ -54,7 +55,7 @@ def submit_job(spec: AnyJobSpec, response: Response,
     existing = existing or store.find_active_job(fingerprint)
     if existing is not None:
         response.status_code = 200
-        return {**q.status(store, conn, existing["id"]), "reused": True}
+        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
     job_id = new_job_id()
     store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
                      fingerprint=fingerprint, input_sha256=dataset["sha256"],
@@ -64,7 +65,7 @@ def submit_job(spec: AnyJobSpec, response: Response,
     except Exception:
         store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
         raise
-    return q.status(store, conn, job_id)
+    return jobs_status.status(store, conn, job_id)
 
 
 @router.get("/jobs", summary="Recent jobs")
@@ -82,7 +83,7 @@ def get_job(job_id: str, store: Store = Depends(get_store),
     """State (queued, running, succeeded, failed, canceled), progress (phase, snapshots
     done/total), the model id once it succeeded, and the error when it failed."""
     # plain JSON types already: answer directly (this is the route clients poll)
-    return JSONResponse(q.status(store, conn, job_id))
+    return JSONResponse(jobs_status.status(store, conn, job_id))
 
 
 @router.delete("/jobs/{job_id}", summary="Cancel a job")
@@ -91,4 +92,4 @@ def cancel_job(job_id: str, store: Store = Depends(get_store), conn=Depends(get_
     if not q.cancel(store, conn, job_id):
         row = store.get_job(job_id)
         raise ConflictError(f"job {job_id} already ended ({row['state']}); nothing to cancel")
-    return q.status(store, conn, job_id)
+    return jobs_status.status(store, conn, job_id)

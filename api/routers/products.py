@@ -33,7 +33,7 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     """POST /jobs for ``kind: "coarse-grain"``: check the spec against its input, answer an
     identical earlier job or product (200, ``reused``), else queue the job (202)."""
     from worker import products as tasks
-    from worker import queue as q
+    from worker import status as jobs_status
 
     run_spec, dataset = resolve_input(spec, store, settings)
     products.check(run_spec)  # a ratio, width or target the data cannot take: 4xx now
@@ -52,7 +52,7 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     existing = existing or store.find_active_job(fingerprint)
     if existing is not None:
         response.status_code = 200
-        return {**q.status(store, conn, existing["id"]), "reused": True}
+        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
     job_id = new_job_id()
     store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
                      fingerprint=fingerprint, input_sha256=dataset["sha256"],
@@ -62,7 +62,7 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     except Exception:
         store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
         raise
-    return q.status(store, conn, job_id)
+    return jobs_status.status(store, conn, job_id)
 
 
 def product_as_dataset(spec, store: Store):

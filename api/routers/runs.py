@@ -14,7 +14,7 @@ from closure.errors import InputFileError, OptionError
 from closure.spec import AposterioriSpec, FileSpec
 from closure.store import NotFoundError, Store, new_job_id, read_json
 from worker import aposteriori as ap
-from worker import queue as q
+from worker import status as jobs_status
 
 router = APIRouter(tags=["a posteriori"], dependencies=[Depends(require_token)])
 
@@ -72,7 +72,7 @@ def submit_aposteriori(model_id: str, response: Response,
     existing = existing or store.find_active_job(fp)
     if existing is not None:
         response.status_code = 200
-        return {**ap.status(store, conn, existing["id"]), "reused": True}
+        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
     job_id = new_job_id()
     store.create_job(job_id=job_id, name="a posteriori", **row_fields)
     try:
@@ -80,7 +80,7 @@ def submit_aposteriori(model_id: str, response: Response,
     except Exception:
         store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
         raise
-    return q.status(store, conn, job_id)
+    return jobs_status.status(store, conn, job_id)
 
 
 @router.get("/models/{model_id}/les", summary="A model's latest a posteriori result")

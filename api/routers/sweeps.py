@@ -27,7 +27,7 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
                  store: Store, conn) -> dict:
     """POST /jobs for ``kind: "sweep"``: check every width against the input, answer an
     identical earlier sweep (200, ``reused``), else queue it (202)."""
-    from worker import queue as q
+    from worker import status as jobs_status
     from worker import sweeps as tasks
 
     discovery, dataset = resolve_input(spec.discovery, store, settings)
@@ -49,7 +49,7 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
     existing = existing or store.find_active_job(fingerprint)
     if existing is not None:
         response.status_code = 200
-        return {**q.status(store, conn, existing["id"]), "reused": True}
+        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
     job_id = new_job_id()
     store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
                      fingerprint=fingerprint, input_sha256=dataset["sha256"],
@@ -59,7 +59,7 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
     except Exception:
         store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
         raise
-    return q.status(store, conn, job_id)
+    return jobs_status.status(store, conn, job_id)
 
 
 @router.get("/sweeps", summary="Stored filter-width sweeps, newest first")

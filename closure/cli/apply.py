@@ -1,4 +1,7 @@
-"""CLI commands: apply a model to coarse fields, show a model, export a model as code."""
+"""CLI commands: apply a model to coarse fields, show a model, export a model as code.
+
+``show`` and ``export`` take a model file or a stored model id (fetched from the service).
+"""
 
 from __future__ import annotations
 
@@ -293,35 +296,82 @@ def _dataset(model, model_path, src, pred, times, stack=(None,)):
     return xr.Dataset(data, coords=coords, attrs=attrs)
 
 
-def show_model(
-    model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
-                                      show_default=False),
-) -> None:
-    """Print a model's terms, coefficients, scores, warnings and provenance."""
+DEFAULT_LANG = "python"
+MODEL_REF_HELP = ("a model file (.json) or a stored model id (a path that exists is read as a "
+                  "file; anything else is fetched from the service)")
+
+
+def _load_model_ref(ref: str, server: str | None, token: str | None):
+    """``(model, record, path)`` for a model file path or a stored model id.
+
+    ``record`` is the service's catalog record (None for a file); ``path`` the file (None for
+    an id)."""
     from closure.model import ClosureModel
 
-    typer.echo(ClosureModel.load(model_path).summary())
+    path = Path(ref)
+    if path.exists():
+        return ClosureModel.load(path), None, path
+    from closure.cli.service import _client
+    from closure.client import ServiceError
+
+    try:
+        with _client(server, token) as c:
+            record = c.model(ref)
+    except ServiceError as exc:
+        if exc.status == 404 or (exc.status is None and _looks_like_path(ref)):
+            raise OptionError(f"{ref!r} is neither a model file (no such file) nor a stored "
+                              f"model id ({exc}): give an existing .json model file or an "
+                              "id from `closure models`") from None
+        raise
+    return ClosureModel.from_dict(record["model"]), record, None
 
 
-def export_model_command(
-    model_path: Path = typer.Argument(..., metavar="MODEL", help="model file (.json)",
-                                      show_default=False),
-    lang: str = typer.Option("python", "--lang", help="json, python, c or fortran"),
+def _looks_like_path(ref: str) -> bool:
+    return ref.endswith(".json") or "/" in ref or "\\" in ref
+
+
+def show(
+    model: str = typer.Argument(..., metavar="MODEL", help=MODEL_REF_HELP, show_default=False),
+    as_json: bool = typer.Option(False, "--json", help="the model (and, for a stored model, "
+                                 "its catalog record) as JSON"),
+    server: str | None = typer.Option(None, "--server", help="service URL for a stored model "
+                                      "id (default: $CLOSURE_SERVER, the running local stack, "
+                                      "or http://127.0.0.1:8000)", show_default=False),
+    token: str | None = typer.Option(None, "--token", help="bearer token (default: "
+                                     "$CLOSURE_TOKEN)", show_default=False),
+) -> None:
+    """Print a model's terms, coefficients, scores, warnings and provenance."""
+    import json
+
+    m, record, _ = _load_model_ref(model, server, token)
+    if as_json:
+        typer.echo(json.dumps(record if record is not None else m.to_dict(), indent=1))
+    else:
+        typer.echo(record["summary"] if record is not None else m.summary())
+
+
+def export(
+    model: str = typer.Argument(..., metavar="MODEL", help=MODEL_REF_HELP, show_default=False),
+    lang: str = typer.Option(DEFAULT_LANG, "--lang", help="json, python, c or fortran"),
     output: Path | None = typer.Option(None, "-o", "--output",
                                        help="file to write (default: print)",
                                        show_default=False),
     name: str = typer.Option("closure_model", "--name", help="function name in the code"),
+    server: str | None = typer.Option(None, "--server", help="service URL for a stored model "
+                                      "id (default: $CLOSURE_SERVER, the running local stack, "
+                                      "or http://127.0.0.1:8000)", show_default=False),
+    token: str | None = typer.Option(None, "--token", help="bearer token (default: "
+                                     "$CLOSURE_TOKEN)", show_default=False),
 ) -> None:
     """Print (or write) a model as JSON coefficients or Python / C / Fortran source."""
     from closure.export import export_model
-    from closure.model import ClosureModel
 
-    model = ClosureModel.load(model_path)
-    text = export_model(model, lang, name)
+    m, _, path = _load_model_ref(model, server, token)
+    text = export_model(m, lang, name)
     if output is None:
         typer.echo(text, nl=False)
         return
-    if output.exists() and output.resolve() == model_path.resolve():
+    if path is not None and output.exists() and output.resolve() == path.resolve():
         raise OptionError(f"the output {output} is the model file: choose another -o")
     write_text(output, text)
     typer.echo(f"wrote {output} ({lang})")
@@ -330,5 +380,8 @@ def export_model_command(
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
     app.command("apply")(apply_model)
-    app.command("show-model")(show_model)
-    app.command("export-model")(export_model_command)
+    app.command("show")(show)
+    app.command("export")(export)
+    # the old names stay one release, hidden, as aliases of the commands above
+    app.command("show-model", hidden=True)(show)
+    app.command("export-model", hidden=True)(export)

@@ -2,7 +2,8 @@
 
 ``closure up`` runs Redis (its own), the API and N workers until Ctrl-C; ``closure api`` and
 ``closure worker`` run one server process each (what docker-compose runs); ``closure submit``,
-``status``, ``wait``, ``cancel``, ``models``, ``show`` and ``export`` talk to a server:
+``status``, ``wait``, ``cancel`` and ``models`` talk to a server (``show`` and ``export``,
+in closure/cli/apply.py, take a model file or a stored model id):
 ``--server URL``, else $CLOSURE_SERVER, else the running local stack's state file, else
 http://127.0.0.1:8000; the token comes from $CLOSURE_TOKEN (or --token).
 ``closure demo`` runs the whole thing once on generated data.
@@ -44,7 +45,7 @@ DB_SCHEMA = typer.Option(None, "--db-schema", help="PostgreSQL schema for the ca
 
 def register(app: typer.Typer) -> None:
     """Add this module's commands to the app."""
-    for fn in (up, demo, api, worker, submit, status, wait, cancel, models, show, export):
+    for fn in (up, demo, api, worker, submit, status, wait, cancel, models):
         app.command(name=fn.__name__)(fn)
 
 
@@ -117,7 +118,7 @@ def up(
     stack.start()
     typer.echo(f"closure service at {stack.server_url} (docs: {stack.server_url}/docs)")
     typer.echo(f"redis: {stack.redis_url}; store: {stack.store}; workers: {workers}")
-    typer.echo(f"state: {stack.state_dir}; stop with Ctrl-C")
+    typer.echo(f"state: {stack.state_dir}; stop with Ctrl-C (or `kill {os.getpid()}`)")
     raise typer.Exit(stack.supervise(echo=lambda m: typer.echo(m, err=True)))
 
 
@@ -380,35 +381,6 @@ def models(dataset: str = typer.Option(None, "--dataset", help="dataset id or SH
         typer.echo(f"{r['id']:24} {r['target']:10} {filt:16} {r['scheme']:8} {r['method']:9} "
                    f"{r['n_terms'] if r['n_terms'] is not None else '':>5} {r2:>8}  "
                    f"{r['dataset_sha256'][:12]}")
-
-
-def show(model_id: str = typer.Argument(..., help="model id"),
-         as_json: bool = typer.Option(False, "--json", help="the full record as JSON"),
-         server: str = SERVER, token: str = TOKEN) -> None:
-    """A stored model's summary."""
-    with _client(server, token) as c:
-        doc = c.model(model_id)
-    if as_json:
-        typer.echo(json.dumps(doc, indent=1))
-    else:
-        typer.echo(doc["summary"])
-
-
-def export(model_id: str = typer.Argument(..., help="model id"),
-           lang: str = typer.Option("json", "--lang", help="json, python, c or fortran"),
-           output: Path = typer.Option(None, "-o", "--output", help="write here (default: "
-                                       "stdout)"),
-           server: str = SERVER, token: str = TOKEN) -> None:
-    """A stored model as JSON, Python, C or Fortran source."""
-    with _client(server, token) as c:
-        text = c.export(model_id, lang)
-    if output is None:
-        typer.echo(text)
-    else:
-        from closure.store import write_text_atomic
-
-        write_text_atomic(output, text)
-        typer.echo(f"written: {output}")
 
 
 def fetch_report(model_id: str, output: Path, server: str | None = None,

@@ -11,6 +11,7 @@ from pathlib import Path
 from closure.errors import UserError
 from closure.filters import CoarseGraining, make_coarse_graining
 from closure.grid import Grid
+from closure.report.provenance import provenance_input  # re-exported: page.py uses it too
 
 Progress = Callable[[str, int, int], None]
 
@@ -37,39 +38,6 @@ def _json_file(path, what: str, command: str) -> dict:
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise UserError(f"{p} is not a {what} file ({exc}): give the JSON written by "
                         f"`{command}`") from None
-
-
-def provenance_input(model) -> dict:
-    """What the model says about its input: ``path``, ``sha256``, ``variables``, ``scalars``,
-    ``periodic``, ``test`` (held-out snapshot indices); None where not recorded."""
-    prov = dict(getattr(model, "provenance", None) or {})
-    spec = prov.get("spec") if isinstance(prov.get("spec"), Mapping) else {}
-    spec_in = spec.get("input") if isinstance(spec.get("input"), Mapping) else {}
-    inp = prov.get("input")
-    inp = dict(inp) if isinstance(inp, Mapping) else {"path": inp}
-    snaps = prov.get("snapshots") if isinstance(prov.get("snapshots"), Mapping) else {}
-    test = snaps.get("test", inp.get("test"))
-    scalars = list(getattr(model, "scalars", ()) or spec_in.get("scalars") or [])
-    target = getattr(model, "target", "")
-    if target.startswith("flux:") and target[5:] not in scalars:
-        scalars.append(target[5:])
-    path = inp.get("path") or spec_in.get("path")
-    paths = prov.get("inputs") if isinstance(prov.get("inputs"), list) else None
-    if not paths or (isinstance(path, str) and paths[0] != path):  # "input" edited by hand
-        paths = [path] if isinstance(path, str) else path
-    options = prov.get("input_options") if isinstance(prov.get("input_options"), Mapping) \
-        else {k: spec_in.get(k) for k in ("group", "mask", "levels", "spacing")}
-    return {
-        "path": paths[0] if paths else None,
-        "paths": list(paths or []),
-        "options": {k: options.get(k) for k in ("group", "mask", "levels", "spacing")},
-        "sha256": inp.get("sha256") or prov.get("sha256") or spec_in.get("sha256"),
-        "variables": dict(prov.get("variables") or spec_in.get("variables") or {}),
-        "scalars": scalars,
-        "periodic": spec_in.get("periodic", model.grid.periodic if hasattr(model, "grid")
-                                else True),
-        "test": None if test is None else [int(i) for i in test],
-    }
 
 
 def coarse_graining_of(model, fine: Grid) -> CoarseGraining:

@@ -257,7 +257,7 @@ def _with_units(value, units: str | None):
 
 
 def _summary_section(model, mdict, base: Units | None = None) -> str:
-    from closure.report.gather import provenance_input
+    from closure.report.provenance import provenance_input
 
     base = base or Units()
     filt = dict(_get(model, "filter", None) or mdict.get("filter") or {})
