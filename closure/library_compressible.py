@@ -96,7 +96,7 @@ PRESETS = ("compressible", "compressible_classic", "compressible_minimal")
 def every_preset() -> tuple[str, ...]:
     """Every preset library name (closure.library's and the compressible ones): what a queued
     job may name besides inline term definitions."""
-    from closure.library import PRESETS as PLAIN
+    from closure.library.presets import PRESETS as PLAIN
 
     return (*PLAIN, *PRESETS)
 

@@ -139,6 +139,13 @@ def test_no_cycles_among_module_level_imports():
     assert found == [], "import cycles: " + "; ".join(" <-> ".join(c) for c in found)
 
 
+def test_no_cycles_at_any_level():
+    # not even through imports inside functions: shared types go a floor down
+    # (closure/fields.py, worker/context.py), dispatchers a floor up (worker/status.py)
+    found = cycles(_both(import_graph()))
+    assert found == [], "import cycles: " + "; ".join(" <-> ".join(c) for c in found)
+
+
 def test_the_three_former_cycles_are_gone_at_every_level():
     # io <-> residuals, report.gather <-> report.page, worker.tasks/queue/aposteriori: not
     # even through imports inside functions

@@ -15,7 +15,7 @@ from closure.errors import UserError
 from closure.spec import parse_coarse_grain_spec
 from closure.store import read_json, write_json_atomic
 from worker import queue as q
-from worker.tasks import _conn, _fail, _failure_callback, _missing_message, store
+from worker.context import _conn, _fail, _failure_callback, _missing_message, store
 
 KIND = "coarse-grain"
 
@@ -75,7 +75,7 @@ def plan_task(job_id: str) -> dict:
     q.set_progress(conn, job_id, phase="plan")
     from closure import products
     from closure.store import fingerprint_hash
-    from worker.tasks import check_input_file
+    from worker.context import check_input_file
 
     try:
         for path in spec.input.paths if spec.input.path is not None else [""]:
@@ -134,7 +134,7 @@ def map_task(job_id: str, indices: list[int]) -> dict:
 
     errors: dict[int, str] = {}
     source = None
-    from worker.tasks import check_input_file
+    from worker.context import check_input_file
 
     try:
         check_input_file(plan["input"]["path"])

@@ -21,7 +21,7 @@ import time
 from closure.errors import UserError
 from closure.store import read_json, write_json_atomic
 from worker import queue as q
-from worker.tasks import (
+from worker.context import (
     _conn,
     _discard_if_ended,
     _fail,

@@ -13,7 +13,7 @@ from closure.errors import UserError
 from closure.spec import parse_sweep_spec
 from closure.store import fingerprint_hash, read_json, write_json_atomic
 from worker import queue as q
-from worker.tasks import _conn, _fail, _failure_callback, store
+from worker.context import _conn, _fail, _failure_callback, store
 
 KIND = "sweep"
 
@@ -87,7 +87,7 @@ def plan_task(job_id: str) -> dict:
     q.set_progress(conn, job_id, phase="plan")
     from closure import pipeline
     from closure.io import sha256_file
-    from worker.tasks import check_input_file
+    from worker.context import check_input_file
 
     try:
         check_input_file(spec.discovery.input.path or "")  # containment at open time
