@@ -19,6 +19,7 @@ from closure.io import sha256_file
 from closure.spec import parse_spec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
+from worker import status as jobs_status
 from worker import tasks
 
 pytestmark = pytest.mark.slow
@@ -91,14 +92,14 @@ def test_queued_compressible_jobs_equal_in_process_discover(env, data):
     jobs = [submit(conn, store, s) for s in specs]
     run_burst(conn, store)
     for job_id, spec in zip(jobs, specs, strict=True):
-        doc = q.status(store, conn, job_id)
+        doc = jobs_status.status(store, conn, job_id)
         assert doc["state"] == "succeeded", doc
         stored = store.load_model(doc["model_id"])
         direct = pipeline.discover(parse_spec(spec))
         assert_same_model(stored, direct)
         assert stored.provenance["gas"] == direct.provenance["gas"]
         assert stored.settings.get("equivalent_terms") == direct.settings.get("equivalent_terms")
-    gas = store.load_model(q.status(store, conn, jobs[1])["model_id"]).provenance["gas"]
+    gas = store.load_model(jobs_status.status(store, conn, jobs[1])["model_id"]).provenance["gas"]
     assert gas["gamma"] == 1.3 and gas["gas_constant"] == 287.05
 
 

@@ -18,6 +18,7 @@ from closure.spec import parse_spec
 from closure.store import Store, fingerprint_hash, new_job_id
 from worker import queue as q
 from worker import selection, tasks
+from worker import status as jobs_status
 
 pytestmark = pytest.mark.slow
 
@@ -94,16 +95,16 @@ def test_queued_selection_runs_each_candidate_and_equals_in_process(env, dns, mo
     conn, store = env
     job_id = submit(conn, store, spec_dict(dns))
     run_burst(conn, store, max_jobs=3)  # plan, map, reduce: the coarse runs are queued
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "running"
     n = doc["progress"]["phase_total"]
     assert doc["progress"]["phase"] == selection.PHASE and doc["progress"]["phase_done"] == 0
     assert n >= 2
     assert q.fetch(conn, selection.run_id(job_id, n - 1)) is not None
     run_burst(conn, store, max_jobs=1)
-    assert q.status(store, conn, job_id)["progress"]["phase_done"] == 1
+    assert jobs_status.status(store, conn, job_id)["progress"]["phase_done"] == 1
     run_burst(conn, store, workers=2)  # the other runs in parallel, then the choice
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "succeeded", doc
     stored = store.load_model(doc["model_id"])
     queued = stored.settings["aposteriori_selection"]
@@ -141,7 +142,7 @@ def test_a_candidate_whose_input_vanished_fails_the_job_with_its_reason(env, tmp
     run_burst(conn, store, max_jobs=3)
     shutil.move(src, tmp_path / "moved.nc")
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "failed"
     assert "is gone since the job was submitted" in doc["error"]
     assert "candidate" in doc["error"]
@@ -153,12 +154,12 @@ def test_canceling_during_the_coarse_runs_stops_them_and_stores_nothing(env, dns
     conn, store = env
     job_id = submit(conn, store, spec_dict(dns))
     run_burst(conn, store, max_jobs=3)
-    n = q.status(store, conn, job_id)["progress"]["phase_total"]
+    n = jobs_status.status(store, conn, job_id)["progress"]["phase_total"]
     assert q.cancel(store, conn, job_id)
     for k in range(n):  # the queued coarse runs and the choice are canceled, not run
         assert q.fetch(conn, selection.run_id(job_id, k)).get_status() == JobStatus.CANCELED
     assert q.fetch(conn, selection.choose_id(job_id)).get_status() == JobStatus.CANCELED
     run_burst(conn, store)
-    doc = q.status(store, conn, job_id)
+    doc = jobs_status.status(store, conn, job_id)
     assert doc["state"] == "canceled" and doc["model_id"] is None
     assert not store.job_dir(job_id).exists()
