@@ -102,7 +102,7 @@ def test_a_damaged_cache_entry_is_rebuilt_and_off_keeps_nothing(tmp_path, monkey
     build = lib._default_terms.__wrapped__
     fresh = build("stress", ("x", "y"), (), True)
     (entry,) = tmp_path.iterdir()
-    entry.write_bytes(b"not a pickle")
+    entry.write_bytes(b"not JSON")
     again = build("stress", ("x", "y"), (), True)
     assert _terms_dump(*again) == _terms_dump(*fresh)
     off = tmp_path / "off"
@@ -112,20 +112,25 @@ def test_a_damaged_cache_entry_is_rebuilt_and_off_keeps_nothing(tmp_path, monkey
     assert not off.exists()
 
 
-def test_a_cache_entry_others_could_write_is_never_read(tmp_path, monkeypatch):
-    # the entries are pickles: one that another user could have written is ignored
+def test_a_cache_entry_holds_nothing_but_terms(tmp_path, monkeypatch):
+    # entries are JSON read with the restricted expression parser of model files: code put in
+    # an entry is refused as an expression (the entry is rebuilt), never run
+    import json
+
     monkeypatch.setenv("CLOSURE_CACHE", str(tmp_path))
     build = lib._default_terms.__wrapped__
-    build("stress", ("x", "y"), (), True)
+    fresh = build("stress", ("x", "y"), (), True)
     (entry,) = tmp_path.iterdir()
-    assert entry.stat().st_mode & 0o777 == 0o600
-    assert lib._disk_cache("default_terms", ("stress", ("x", "y"), (), True)) is not None
-    entry.chmod(0o666)
+    doc = json.loads(entry.read_text())
+    assert {"terms", "dropped"} <= set(doc)
+    marker = tmp_path / "ran"
+    doc["terms"][0]["expression"] = {k: f"__import__('pathlib').Path('{marker}').touch()"
+                                     for k in doc["terms"][0]["expression"]}
+    entry.write_text(json.dumps(doc))
     assert lib._disk_cache("default_terms", ("stress", ("x", "y"), (), True)) is None
-    tmp_path.chmod(0o777)
-    entry.chmod(0o600)
-    assert lib._disk_cache("default_terms", ("stress", ("x", "y"), (), True)) is None
-    tmp_path.chmod(0o700)
+    again = build("stress", ("x", "y"), (), True)
+    assert not marker.exists()
+    assert _terms_dump(*again) == _terms_dump(*fresh)
 
 
 def test_help_and_coarse_grain_import_no_plotting_web_or_fitting_library():

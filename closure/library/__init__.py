@@ -151,7 +151,6 @@ from closure.library.presets import (
     _matrix_components,
     _preset,
     _preset_terms,
-    _private,
 )
 from closure.library.pruning import (
     Dependency,

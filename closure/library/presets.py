@@ -5,7 +5,6 @@ target, pruned once per (target, directions, scalars) and cached in process and 
 
 from __future__ import annotations
 
-import dataclasses
 from functools import lru_cache
 from pathlib import Path
 
@@ -13,8 +12,8 @@ import sympy
 
 from closure.errors import UserError
 from closure.library.build import _make_term
+from closure.library.expressions import Namespace, parse_expression
 from closure.library.kinematics import (
-    _INFO,
     DELTA,
     Kinematics,
     _axis_counts,
@@ -163,49 +162,57 @@ def _cache_sources() -> list[Path]:
     return sorted(Path(__file__).parent.glob("*.py"))
 
 
-def _private(path: Path) -> bool:
-    """Owned by this user and writable by nobody else (a cache entry we may unpickle)."""
-    import os
-
-    st = path.stat()
-    return st.st_uid == os.getuid() and not st.st_mode & 0o022
-
-
 def _disk_cache(kind: str, key: tuple, value=None):
     """Built preset terms (sympy expressions, pruning) stored between processes: building
     and pruning them took about a second of every command's start-up. Keyed by the sources of
     the closure.library package and the sympy version, so an edit of the presets never reads
     a stale entry. With ``value``: store it (best effort) and return it; without: the stored
-    value or None. The files are this user's own cache (pickles of sympy expressions), read
-    only when this user owns them and their folder and nobody else may write them."""
+    value or None. The entries are JSON: term expressions as text, read back with the
+    restricted expression parser of model files (closure.library.expressions), so a cache
+    entry can hold nothing but terms."""
     import hashlib
-    import pickle
+    import json
+    from fractions import Fraction
 
     folder = _cache_folder()
     if folder is None:
         return value
+    target, dirs, scalars, _ = key
     try:
         h = hashlib.sha256()
         for source in _cache_sources():
             h.update(source.name.encode() + b"\0" + source.read_bytes())
         h.update(repr((sympy.__version__, kind, key)).encode())
-        path = folder / f"{kind}-{h.hexdigest()[:32]}.pickle"
+        path = folder / f"{kind}-{h.hexdigest()[:32]}.json"
         if value is None:
-            if not path.exists() or not _private(path) or not _private(folder):
-                return None  # read only what this user alone could have written
-            terms, dropped, symbols = pickle.loads(path.read_bytes())
-            for f, counts in symbols:  # the symbol registry the terms' names resolve in
-                field_symbol(f, counts)
+            if not path.exists():
+                return None
+            doc = json.loads(path.read_text(encoding="utf-8"))
+            k = Kinematics(dirs, scalars)
+            ns = Namespace(k, allow_bare_velocity=True)
+            terms = tuple(
+                _make_term(t["name"], target, k,
+                           {c: parse_expression(e, ns, f"cache term {t['name']}")
+                            for c, e in t["expression"].items()},
+                           t["delta_power"], t["description"], "preset")
+                for t in doc["terms"])
+            dropped = tuple(
+                Dependency(d["term"], tuple((n, Fraction(c), float(p))
+                                            for n, c, p in d["combination"]),
+                           bool(d["incompressible"]), int(d["ndim"]))
+                for d in doc["dropped"])
             return terms, dropped
-        from closure.atomic import write_bytes
+        from closure.atomic import write_text
 
-        symbols = sorted({_INFO[s.name] for t in value[0] for s in t.symbols})
-        bare = tuple(dataclasses.replace(t, _cache={}) for t in value[0])  # no compiled code
-        folder.mkdir(mode=0o700, parents=True, exist_ok=True)
-        write_bytes(path, pickle.dumps((bare, value[1], symbols)))
-        path.chmod(0o600)
-    except (OSError, pickle.PickleError, EOFError, AttributeError, ValueError, TypeError,
-            KeyError, UserError):
+        doc = {"terms": [{"name": t.name, "delta_power": t.delta_power,
+                          "description": t.description, "expression": t.expressions()}
+                         for t in value[0]],
+               "dropped": [{"term": d.term, "incompressible": d.incompressible, "ndim": d.ndim,
+                            "combination": [[n, str(c), float(p)] for n, c, p in d.combination]}
+                           for d in value[1]]}
+        folder.mkdir(parents=True, exist_ok=True)
+        write_text(path, json.dumps(doc))
+    except (OSError, ValueError, TypeError, KeyError, UserError):
         pass  # a cache: any problem means building the terms again
     return value
 
