@@ -388,20 +388,26 @@ class Store:
                                variables=variables)
         return row, True
 
-    def get_dataset(self, dataset_id: str, missing_ok: bool = False) -> dict | None:
-        if not isinstance(dataset_id, str) or not _ID.fullmatch(dataset_id):  # never a query
+    def _row(self, table: sa.Table, what: str, row_id: str, missing_ok: bool,
+             hint: str = "") -> dict | None:
+        """The catalog row ``row_id`` of ``table`` as a record; a malformed id never reaches
+        a query. NotFoundError naming the ``what`` (and ``hint``), or None with ``missing_ok``."""
+        if not isinstance(row_id, str) or not _ID.fullmatch(row_id):
             if missing_ok:
                 return None
-            raise NotFoundError(f"{str(dataset_id)[:80]!r} is not a valid dataset id")
+            raise NotFoundError(f"{str(row_id)[:80]!r} is not a valid {what} id")
         with self.engine.connect() as conn:
-            row = conn.execute(sa.select(datasets_table).where(
-                datasets_table.c.id == dataset_id)).mappings().first()
+            row = conn.execute(sa.select(table).where(table.c.id == row_id)).mappings().first()
         if row is None:
             if missing_ok:
                 return None
-            raise NotFoundError(f"no dataset with id {dataset_id!r}; upload the file with "
-                                "POST /datasets (`closure submit` does it for you)")
+            raise NotFoundError(f"no {what} with id {row_id!r}{hint}")
         return _record(row)
+
+    def get_dataset(self, dataset_id: str, missing_ok: bool = False) -> dict | None:
+        return self._row(datasets_table, "dataset", dataset_id, missing_ok,
+                         "; upload the file with POST /datasets (`closure submit` does it for "
+                         "you)")
 
     def dataset_by_path(self, path: str | os.PathLike, size: int, mtime_ns: int) -> dict | None:
         """A recorded dataset at ``path`` with this size and modification time (its SHA-256
@@ -436,18 +442,7 @@ class Store:
         return self.get_job(job_id)
 
     def get_job(self, job_id: str, missing_ok: bool = False) -> dict | None:
-        if not isinstance(job_id, str) or not _ID.fullmatch(job_id):  # never a query
-            if missing_ok:
-                return None
-            raise NotFoundError(f"{str(job_id)[:80]!r} is not a valid job id")
-        with self.engine.connect() as conn:
-            row = conn.execute(sa.select(jobs_table).where(
-                jobs_table.c.id == job_id)).mappings().first()
-        if row is None:
-            if missing_ok:
-                return None
-            raise NotFoundError(f"no job with id {job_id!r}")
-        return _record(row)
+        return self._row(jobs_table, "job", job_id, missing_ok, "")
 
     def update_job(self, job_id: str, *, only_if_active: bool = False, **fields) -> bool:
         """Update a job's columns; with ``only_if_active`` only while it is queued/running
@@ -540,18 +535,8 @@ class Store:
         return self.get_model(model_id)
 
     def get_model(self, model_id: str, missing_ok: bool = False) -> dict | None:
-        if not isinstance(model_id, str) or not _ID.fullmatch(model_id):  # never a query
-            if missing_ok:
-                return None
-            raise NotFoundError(f"{str(model_id)[:80]!r} is not a valid model id")
-        with self.engine.connect() as conn:
-            row = conn.execute(sa.select(models_table).where(
-                models_table.c.id == model_id)).mappings().first()
-        if row is None:
-            if missing_ok:
-                return None
-            raise NotFoundError(f"no model with id {model_id!r}; list them with GET /models")
-        return _record(row)
+        return self._row(models_table, "model", model_id, missing_ok,
+                         "; list them with GET /models")
 
     def model_by_fingerprint(self, fingerprint: str) -> dict | None:
         return self.get_model(model_id_for(fingerprint), missing_ok=True)
@@ -640,15 +625,8 @@ class Store:
         return self.get_product(product_id)
 
     def get_product(self, product_id: str, missing_ok: bool = False) -> dict | None:
-        with self.engine.connect() as conn:
-            row = conn.execute(sa.select(products_table).where(
-                products_table.c.id == product_id)).mappings().first()
-        if row is None:
-            if missing_ok:
-                return None
-            raise NotFoundError(f"no product with id {product_id!r}; list them with "
-                                "GET /products (`closure products`)")
-        return _record(row)
+        return self._row(products_table, "product", product_id, missing_ok,
+                         "; list them with GET /products (`closure products`)")
 
     def product_by_fingerprint(self, fingerprint: str) -> dict | None:
         return self.get_product(product_id_for(fingerprint), missing_ok=True)
