@@ -92,6 +92,11 @@ def plan_indices(plan: dict) -> list[int]:
     raise KeyError("plan has no list of snapshots")
 
 
+#: why a job whose input's SHA-256 differs from the one recorded at submission fails
+INPUT_CHANGED = ("the input file changed since the job was submitted (its SHA-256 differs from "
+                 "the one recorded then); the job does not read it: resubmit the job")
+
+
 def _fail(conn, job_id: str, message: str) -> dict:
     store().update_job(job_id, state="failed", error=message, only_if_active=True)
     q.set_progress(conn, job_id, phase="failed")

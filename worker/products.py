@@ -15,7 +15,14 @@ from closure.errors import UserError
 from closure.spec import parse_coarse_grain_spec
 from closure.store import read_json, write_json_atomic
 from worker import queue as q
-from worker.context import _conn, _fail, _failure_callback, _missing_message, store
+from worker.context import (
+    INPUT_CHANGED,
+    _conn,
+    _fail,
+    _failure_callback,
+    _missing_message,
+    store,
+)
 
 KIND = "coarse-grain"
 
@@ -36,14 +43,7 @@ def status_fields(st, row: dict) -> dict:
 
 def enqueue(conn, job_id: str) -> None:
     """Put a coarse-graining job's plan task on the queue."""
-    import time
-
-    q.set_progress(conn, job_id, phase="queued", submitted=time.time())
-    q.get_queue(conn).enqueue_call(
-        "worker.products.plan_task", args=(job_id,), job_id=q.plan_id(job_id),
-        timeout=q.PLAN_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
-        failure_ttl=q.PROGRESS_TTL_S, description=f"plan coarse-grain {job_id}",
-        on_failure=_failure_callback())
+    q.enqueue_plan(conn, job_id, "worker.products.plan_task", "coarse-grain")
 
 
 def _pieces(job_id: str):
@@ -84,9 +84,7 @@ def plan_task(job_id: str) -> dict:
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
     if plan["sha256"] != row["input_sha256"]:
-        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
-                     "SHA-256 differs from the one recorded then); the job does not read it: "
-                     "resubmit the job")
+        return _fail(conn, job_id, INPUT_CHANGED)
     fingerprint = fingerprint_hash(spec, plan["sha256"])
     if fingerprint != row["fingerprint"]:
         st.update_job(job_id, fingerprint=fingerprint)

@@ -256,13 +256,15 @@ class Lease:
 
 # --------------------------------------------------------------------------- submit
 
-def enqueue_plan(conn: redis.Redis, job_id: str) -> None:
-    """Put a job's first task on the queue (the plan task enqueues the rest)."""
+def enqueue_plan(conn: redis.Redis, job_id: str, task: str = "worker.tasks.plan_task",
+                 what: str = "") -> None:
+    """Put a job's first task on the queue (the plan task enqueues the rest); ``task`` is the
+    plan task of the job's kind, ``what`` names the kind in the task's description."""
     set_progress(conn, job_id, phase="queued", submitted=time.time())
     get_queue(conn).enqueue_call(
-        "worker.tasks.plan_task", args=(job_id,), job_id=plan_id(job_id),
+        task, args=(job_id,), job_id=plan_id(job_id),
         timeout=PLAN_TIMEOUT_S, retry=retry_policy(), result_ttl=PROGRESS_TTL_S,
-        failure_ttl=PROGRESS_TTL_S, description=f"plan {job_id}",
+        failure_ttl=PROGRESS_TTL_S, description=f"plan {what + ' ' if what else ''}{job_id}",
         on_failure=Callback("worker.tasks.on_task_failure"))
 
 

@@ -13,7 +13,7 @@ from closure.errors import UserError
 from closure.spec import parse_sweep_spec
 from closure.store import fingerprint_hash, read_json, write_json_atomic
 from worker import queue as q
-from worker.context import _conn, _fail, _failure_callback, store
+from worker.context import INPUT_CHANGED, _conn, _fail, _failure_callback, store
 
 KIND = "sweep"
 
@@ -32,14 +32,8 @@ def status_fields(st, row: dict) -> dict:
 
 
 def enqueue(conn, job_id: str) -> None:
-    import time
-
-    q.set_progress(conn, job_id, phase="queued", submitted=time.time())
-    q.get_queue(conn).enqueue_call(
-        "worker.sweeps.plan_task", args=(job_id,), job_id=q.plan_id(job_id),
-        timeout=q.PLAN_TIMEOUT_S, retry=q.retry_policy(), result_ttl=q.PROGRESS_TTL_S,
-        failure_ttl=q.PROGRESS_TTL_S, description=f"plan sweep {job_id}",
-        on_failure=_failure_callback())
+    """Put a sweep's plan task on the queue."""
+    q.enqueue_plan(conn, job_id, "worker.sweeps.plan_task", "sweep")
 
 
 def _specs(spec):
@@ -98,9 +92,7 @@ def plan_task(job_id: str) -> dict:
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
     if sha != row["input_sha256"]:
-        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
-                     "SHA-256 differs from the one recorded then); the job does not read it: "
-                     "resubmit the job")
+        return _fail(conn, job_id, INPUT_CHANGED)
     fingerprint = fingerprint_hash(spec, sha)
     if fingerprint != row["fingerprint"]:
         st.update_job(job_id, fingerprint=fingerprint)

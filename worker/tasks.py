@@ -24,6 +24,7 @@ from closure.store import (
 )
 from worker import queue as q
 from worker.context import (  # noqa: F401 - re-exported: tasks.store(), tasks.configure() ...
+    INPUT_CHANGED,
     _conn,
     _discard_if_ended,
     _fail,
@@ -71,9 +72,7 @@ def plan_task(job_id: str) -> dict:
 
     sha = plan.get("sha256") or row["input_sha256"]
     if sha != row["input_sha256"]:
-        return _fail(conn, job_id, "the input file changed since the job was submitted (its "
-                     "SHA-256 differs from the one recorded then); the job does not read it: "
-                     "resubmit the job")
+        return _fail(conn, job_id, INPUT_CHANGED)
     fingerprint = fingerprint_hash(spec, sha)
     if fingerprint != row["fingerprint"]:
         st.update_job(job_id, fingerprint=fingerprint)

@@ -10,8 +10,9 @@ from api.errors import ConflictError
 from api.inputs import resolve_input
 from api.routers.products import product_as_dataset, submit_coarse_grain
 from api.routers.sweeps import submit_sweep
+from api.submission import reuse_or_queue
 from closure.spec import AnyJobSpec
-from closure.store import Store, fingerprint_hash, new_job_id
+from closure.store import Store, fingerprint_hash
 from worker import queue as q
 from worker import status as jobs_status
 
@@ -41,31 +42,8 @@ def submit_job(spec: AnyJobSpec, response: Response,
     run_spec, dataset = resolve_input(spec, store, settings)
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
     model = store.model_by_fingerprint(fingerprint)
-    existing = None
-    if model is not None:
-        existing = store.get_job(model["job_id"], missing_ok=True) if model["job_id"] else None
-        if existing is None or existing["state"] != "succeeded":
-            # e.g. the job that made it was canceled just after storing it: a finished job
-            # of its own points at the stored model
-            existing = store.create_job(
-                job_id=new_job_id(), spec=run_spec.model_dump(mode="json"),
-                fingerprint=fingerprint, input_sha256=dataset["sha256"],
-                dataset_id=dataset["id"], name=name, state="succeeded",
-                model_id=model["id"], reused=True)
-    existing = existing or store.find_active_job(fingerprint)
-    if existing is not None:
-        response.status_code = 200
-        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
-    job_id = new_job_id()
-    store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
-                     fingerprint=fingerprint, input_sha256=dataset["sha256"],
-                     dataset_id=dataset["id"], name=name)
-    try:
-        q.enqueue_plan(conn, job_id)
-    except Exception:
-        store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
-        raise
-    return jobs_status.status(store, conn, job_id)
+    return reuse_or_queue(store, conn, response, run_spec, dataset, fingerprint, name, model,
+                          q.enqueue_plan, **({"model_id": model["id"]} if model else {}))
 
 
 @router.get("/jobs", summary="Recent jobs")

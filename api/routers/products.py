@@ -9,10 +9,11 @@ from fastapi.responses import FileResponse
 
 from api.deps import Settings, get_store, require_token
 from api.inputs import resolve_input
+from api.submission import reuse_or_queue
 from closure import products
 from closure.errors import InputFileError, UserError
 from closure.spec import CoarseGrainSpec
-from closure.store import Store, fingerprint_hash, new_job_id
+from closure.store import Store, fingerprint_hash
 
 router = APIRouter(tags=["products"], dependencies=[Depends(require_token)])
 
@@ -33,36 +34,12 @@ def submit_coarse_grain(spec: CoarseGrainSpec, response: Response, name: str | N
     """POST /jobs for ``kind: "coarse-grain"``: check the spec against its input, answer an
     identical earlier job or product (200, ``reused``), else queue the job (202)."""
     from worker import products as tasks
-    from worker import status as jobs_status
 
     run_spec, dataset = resolve_input(spec, store, settings)
     products.check(run_spec)  # a ratio, width or target the data cannot take: 4xx now
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
-    existing = None
-    product = store.product_by_fingerprint(fingerprint)
-    if product is not None:
-        existing = store.get_job(product["job_id"], missing_ok=True) \
-            if product["job_id"] else None
-        if existing is None or existing["state"] != "succeeded":
-            # a finished job of its own points at the stored product
-            existing = store.create_job(
-                job_id=new_job_id(), spec=run_spec.model_dump(mode="json"),
-                fingerprint=fingerprint, input_sha256=dataset["sha256"],
-                dataset_id=dataset["id"], name=name, state="succeeded", reused=True)
-    existing = existing or store.find_active_job(fingerprint)
-    if existing is not None:
-        response.status_code = 200
-        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
-    job_id = new_job_id()
-    store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
-                     fingerprint=fingerprint, input_sha256=dataset["sha256"],
-                     dataset_id=dataset["id"], name=name)
-    try:
-        tasks.enqueue(conn, job_id)
-    except Exception:
-        store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
-        raise
-    return jobs_status.status(store, conn, job_id)
+    return reuse_or_queue(store, conn, response, run_spec, dataset, fingerprint, name,
+                          store.product_by_fingerprint(fingerprint), tasks.enqueue)
 
 
 def product_as_dataset(spec, store: Store):

@@ -13,9 +13,10 @@ from fastapi.responses import FileResponse, RedirectResponse
 
 from api.deps import Settings, get_settings, get_store, require_token
 from api.inputs import resolve_input
+from api.submission import reuse_or_queue
 from closure.errors import UserError
 from closure.spec import SweepSpec
-from closure.store import Store, fingerprint_hash, new_job_id
+from closure.store import Store, fingerprint_hash
 
 router = APIRouter(tags=["sweeps"], dependencies=[Depends(require_token)])
 
@@ -27,7 +28,6 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
                  store: Store, conn) -> dict:
     """POST /jobs for ``kind: "sweep"``: check every width against the input, answer an
     identical earlier sweep (200, ``reused``), else queue it (202)."""
-    from worker import status as jobs_status
     from worker import sweeps as tasks
 
     discovery, dataset = resolve_input(spec.discovery, store, settings)
@@ -40,26 +40,8 @@ def submit_sweep(spec: SweepSpec, response: Response, name: str | None, settings
             kind = f"filter {spec.kinds[k // n]}, " if len(spec.kinds) > 1 else ""
             raise type(exc)(f"{kind}widths[{k % n}] ({spec.widths[k % n]:g}): {exc}") from None
     fingerprint = fingerprint_hash(run_spec, dataset["sha256"])
-    existing = None
-    if store.sweep_by_fingerprint(fingerprint) is not None:
-        existing = store.create_job(
-            job_id=new_job_id(), spec=run_spec.model_dump(mode="json"), fingerprint=fingerprint,
-            input_sha256=dataset["sha256"], dataset_id=dataset["id"], name=name,
-            state="succeeded", reused=True)
-    existing = existing or store.find_active_job(fingerprint)
-    if existing is not None:
-        response.status_code = 200
-        return {**jobs_status.status(store, conn, existing["id"]), "reused": True}
-    job_id = new_job_id()
-    store.create_job(job_id=job_id, spec=run_spec.model_dump(mode="json"),
-                     fingerprint=fingerprint, input_sha256=dataset["sha256"],
-                     dataset_id=dataset["id"], name=name)
-    try:
-        tasks.enqueue(conn, job_id)
-    except Exception:
-        store.update_job(job_id, state="failed", error="the queue was unreachable at submission")
-        raise
-    return jobs_status.status(store, conn, job_id)
+    return reuse_or_queue(store, conn, response, run_spec, dataset, fingerprint, name,
+                          store.sweep_by_fingerprint(fingerprint), tasks.enqueue)
 
 
 @router.get("/sweeps", summary="Stored filter-width sweeps, newest first")
