@@ -258,22 +258,28 @@ class ReferenceNet:
 
 
 # ---------------------------------------------------------------------- training
-def _scales(x: np.ndarray, groups: Sequence[int]) -> np.ndarray:
-    """One RMS per group of channels over every snapshot and point of ``x`` (N, C, ...)."""
+def _scales(x: np.ndarray, groups: Sequence[int], mask: np.ndarray | None = None) -> np.ndarray:
+    """One RMS per group of channels over every snapshot and point of ``x`` (N, C, ...), or
+    over the points where ``mask`` (N, 1, ...) is 1."""
     groups = np.asarray(groups)
     scale = np.ones(x.shape[1])
     for g in np.unique(groups):
-        rms = float(np.sqrt(np.mean(x[:, groups == g] ** 2)))
+        sq = x[:, groups == g] ** 2
+        rms = float(np.sqrt(np.mean(sq) if mask is None
+                            else np.sum(sq * mask) / (sq.shape[1] * np.sum(mask))))
         scale[groups == g] = rms if rms > 0 and math.isfinite(rms) else 1.0
     return scale
 
 
-def train_reference_net(snapshots: Iterable[tuple[Mapping, Mapping]], grid: Grid,
+def train_reference_net(snapshots: Iterable[tuple], grid: Grid,
                         target: str, scheme: str, components: Sequence[str],
                         weights: Sequence[float], settings,
                         progress: Progress | None = None) -> ReferenceNet:
-    """Train a network on ``snapshots``: pairs of (coarse fields, exact target components) of
-    the training snapshots on the coarse ``grid``. ``settings``: a
+    """Train a network on ``snapshots``: (coarse fields, exact target components[, valid])
+    of the training snapshots on the coarse ``grid``. ``valid`` (booleans of the grid's shape,
+    or None for every point) marks the points the sparse fit uses on data with land: the loss
+    and the normalisation take those points only, as the sparse fit's statistics do, while
+    the network still sees its inputs (zero on land) around them. ``settings``: a
     :class:`closure.spec.ReferenceNetSpec`. Progress phase ``"network"`` counts epochs.
 
     Memory: every training snapshot's inputs and targets in float32 at once.
@@ -281,24 +287,33 @@ def train_reference_net(snapshots: Iterable[tuple[Mapping, Mapping]], grid: Grid
     torch = require_torch()
     progress = progress or _no_progress
     components = list(components)
-    xs, ys = [], []
-    for fields, targets in snapshots:
+    xs, ys, ms = [], [], []
+    for fields, targets, *rest in snapshots:
+        valid = rest[0] if rest else None
         xs.append(network_inputs(target, fields, grid, scheme))
         ys.append(np.stack([np.asarray(targets[c], dtype=np.float64) for c in components]))
+        ms.append(np.ones(grid.shape) if valid is None
+                  else np.asarray(valid, dtype=bool).reshape(grid.shape).astype(np.float64))
     if not xs:
         raise UserError("the reference network needs at least one training snapshot")
-    x, y = np.stack(xs), np.stack(ys)
-    del xs, ys
+    x, y, m = np.stack(xs), np.stack(ys), np.stack(ms)[:, None]
+    del xs, ys, ms
+    masked = not bool(np.all(m == 1.0))
+    if not m.any():
+        raise UserError("no training point of the reference network is valid (every coarse "
+                        "point touches land): use a smaller filter width or ratio, or leave "
+                        "out --reference-net")
     w = np.asarray(weights, dtype=np.float64)
-    in_scale = _scales(x, input_groups(target, grid.dims))
-    out_mean = y.mean(axis=tuple(a for a in range(y.ndim) if a != 1))
-    centred = y - out_mean.reshape(1, -1, *[1] * grid.ndim)
-    out_scale = float(np.sqrt(np.sum(w * np.mean(centred**2, axis=tuple(
-        a for a in range(y.ndim) if a != 1))) / w.sum()))
+    in_scale = _scales(x, input_groups(target, grid.dims), m if masked else None)
+    axes = tuple(a for a in range(y.ndim) if a != 1)
+    count = float(np.sum(m))
+    out_mean = np.sum(y * m, axis=axes) / count
+    shape = (1, -1, *[1] * grid.ndim)
+    centred = (y - out_mean.reshape(shape)) * m  # nothing to learn where the fit has no point
+    out_scale = float(np.sqrt(np.sum(w * np.sum(centred**2, axis=axes) / count) / w.sum()))
     if not (out_scale > 0 and math.isfinite(out_scale)):
         raise UserError("the training target is constant or not finite: the reference network "
                         "has nothing to learn")
-    shape = (1, -1, *[1] * grid.ndim)
     arch = architecture(settings, grid.ndim, x.shape[1], len(components), grid.periodic)
     started = time.monotonic()
     with _reproducible(torch, settings.seed, settings.threads):
@@ -306,6 +321,8 @@ def train_reference_net(snapshots: Iterable[tuple[Mapping, Mapping]], grid: Grid
         X = torch.from_numpy((x / in_scale.reshape(shape)).astype(np.float32))
         Y = torch.from_numpy((centred / out_scale).astype(np.float32))
         W = torch.from_numpy((w / w.sum()).astype(np.float32)).reshape(shape)
+        M = torch.from_numpy(m.astype(np.float32))
+        per_point = float(np.prod(grid.shape))
         del x, centred
         optimiser = torch.optim.Adam(module.parameters(), lr=settings.learning_rate)
         schedule = torch.optim.lr_scheduler.CosineAnnealingLR(optimiser, settings.epochs)
@@ -322,8 +339,10 @@ def train_reference_net(snapshots: Iterable[tuple[Mapping, Mapping]], grid: Grid
                 idx = order[start:start + batch]
                 optimiser.zero_grad()
                 err = module(X[idx]) - Y[idx]
-                # weighted mean square over components, mean over snapshots and points
-                loss = (W * err.pow(2)).sum(dim=1).mean()
+                # weighted mean square over components, mean over the valid points of the
+                # batch (every point without land)
+                sq = (W * err.pow(2) * M[idx]).sum(dim=1)
+                loss = sq.sum() / M[idx].sum() if masked else sq.mean()
                 loss.backward()
                 optimiser.step()
                 total += float(loss.detach()) * len(idx)
@@ -345,6 +364,8 @@ def train_reference_net(snapshots: Iterable[tuple[Mapping, Mapping]], grid: Grid
         "loss": "component-weighted mean square error of the normalised target",
         "final_loss": float(loss_value), "seed": int(settings.seed),
         "threads": int(settings.threads), "snapshots": int(n),
+        "points": int(count) if masked else int(n * per_point),
+        "masked": masked,
         "torch": str(torch.__version__),
     }
     return ReferenceNet(module, arch=arch, target=target, components=components,

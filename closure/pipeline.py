@@ -892,12 +892,7 @@ def _reference_net(spec: JobSpec, plan: Mapping, train, progress: Progress, sour
                 coarse_parts, _, _ = _coarse(spec, plan, i, source)
                 parts = [(cs.fields, cs.targets, cs.valid) for cs in coarse_parts]
             for fields, targets, valid in parts:
-                if valid is not None and not np.all(valid):
-                    raise OptionError("the reference network is trained on whole coarse fields "
-                                      "and does not take land masks yet: leave out "
-                                      "--reference-net (reference_net.enabled) for data with "
-                                      "land")
-                yield fields, {c: targets[c] for c in comps}
+                yield fields, {c: targets[c] for c in comps}, valid
 
     return train_reference_net(snapshots(), Grid.from_dict(plan["coarse_grid"]), spec.target,
                                spec.scheme, comps, plan["weights"], spec.reference_net,

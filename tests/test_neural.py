@@ -349,21 +349,72 @@ def test_report_without_torch_leaves_the_network_figures_out(net_model, smooth_f
     assert not (out / "apriori_hexbin_network.png").exists()
 
 
-def test_land_masked_snapshots_are_refused_with_a_clear_message(smooth_file):
-    # the network is trained on whole coarse fields; with land it would learn the coast
-    spec = _spec(smooth_file, net={"enabled": True, "epochs": 1})
-    plan = pipeline.plan(spec)
-    shape = tuple(plan["coarse_grid"]["shape"])
-    valid = np.ones(shape, dtype=bool)
-    valid[0, 0] = False
+def test_land_points_do_not_enter_the_loss_or_the_normalisation():
+    # The loss is taken over the valid points only, like the sparse fit's statistics: the
+    # target's values where the fit has no point cannot change a single weight, while the same
+    # values at valid points do (so this test can fail).
+    pytest.importorskip("torch", reason=NEEDS_TORCH)
+    from closure.neural import train_reference_net
 
-    class Kept:
-        def __contains__(self, index):
-            return True
+    grid, pairs = _tiny_data(shape=(12, 12), n=3)
+    valid = np.ones(grid.shape, dtype=bool)
+    valid[:, :4] = False  # a coast: the first four columns
+    settings = ReferenceNetSpec(enabled=True, epochs=10, width=8, depth=3, batch=2, seed=3)
+    comps = ["tau_xx", "tau_xy", "tau_yy"]
 
-        def get(self, index):
-            zeros = {c: np.zeros(shape) for c in ("u", "v", *plan["components"])}
-            return zeros, zeros, valid
+    def train(data):
+        return train_reference_net(data, grid, "stress", "fd4", comps, [1, 2, 1], settings)
 
-    with pytest.raises(OptionError, match="does not take land masks yet"):
-        pipeline._reference_net(spec, plan, plan["train"], lambda *a: None, held_out=Kept())
+    def spoil(where):
+        out = []
+        for fields, targets in pairs:
+            bad = {c: np.where(where, 1e6, t) for c, t in targets.items()}
+            out.append((fields, bad, valid))
+        return out
+
+    a = train([(f, t, valid) for f, t in pairs])
+    b = train(spoil(~valid))
+    assert a.weights_sha256() == b.weights_sha256()
+    assert a.training["masked"] and a.training["points"] == 3 * int(valid.sum())
+    assert a.output_mean == pytest.approx(b.output_mean, rel=0, abs=0)
+    changed = train(spoil(valid & (np.arange(12)[None, :] == 8)))
+    assert changed.weights_sha256() != a.weights_sha256()
+    # no valid point at all: said plainly
+    with pytest.raises(UserError, match="no training point of the reference network is valid"):
+        train([(f, t, np.zeros(grid.shape, bool)) for f, t in pairs])
+
+
+def test_discover_with_land_trains_and_scores_the_network_on_valid_points(tmp_path):
+    pytest.importorskip("torch", reason=NEEDS_TORCH)
+    from test_masks import basin, smooth_flow, with_land
+
+    from closure.io import write_netcdf
+
+    n, snapshots = 128, 5
+    g = Grid(("y", "x"), (n, n), (2 * np.pi / n,) * 2, periodic=False)
+    fluid = basin(g, frame=8, island=False)
+    frames = [with_land(smooth_flow(g, seed=s), fluid) for s in range(snapshots)]
+    import xarray as xr
+
+    c = g.coords("x")
+    ds = xr.Dataset({k: (("time", "y", "x"), np.array([f[k] for f in frames]))
+                     for k in ("u", "v")},
+                    coords={"time": np.arange(snapshots, dtype=float), "y": c, "x": c})
+    path = write_netcdf(ds, tmp_path / "basin.nc")
+    spec = parse_spec({"input": {"path": str(path), "periodic": False},
+                       "filter": {"kind": "gaussian", "ratio": 4, "width": 4},
+                       "scheme": "fd4", "fit": {"resamples": 0},
+                       "reference_net": {"enabled": True, "width": 8, "depth": 2,
+                                         "epochs": 20}})
+    model = pipeline.discover(spec)
+    net = model.reference_net
+    assert net["training"]["masked"] is True
+    excluded = model.settings["land"]["excluded_points"]
+    assert excluded > 0
+    total = net["training"]["snapshots"] * 32 * 32
+    assert net["training"]["points"] < total
+    test = model.scores["reference_net_test"]
+    # scored on the same valid held-out points as the sparse model
+    assert np.isfinite(test["r2"]) and test["points"] == model.scores["test"]["points"]
+    everywhere = len(model.provenance["snapshots"]["test"]) * 32 * 32
+    assert 0 < test["points"] < everywhere
