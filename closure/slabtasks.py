@@ -106,18 +106,22 @@ class _Piece:
 
     def write(self, name: str, index, value) -> None:
         # mapped only while written, so its pages count in the page cache, not this process
+        # (written back by the kernel; commit() syncs each file once)
         a = np.load(self.tmp / f"{name}.npy", mmap_mode="r+")
         try:
             a[index] = value
-            a.flush()
         finally:
             del a
 
     def commit(self) -> None:
         with open(self.tmp / "meta.json", "w") as fh:
             json.dump(self.meta, fh)
-            fh.flush()
-            os.fsync(fh.fileno())
+        for path in self.tmp.iterdir():  # on disk before the rename makes them visible
+            fd = os.open(path, os.O_RDONLY)
+            try:
+                os.fsync(fd)
+            finally:
+                os.close(fd)
         if self.final.exists():  # a re-run: the pieces already there are the same
             shutil.rmtree(self.tmp, ignore_errors=True)
             return
