@@ -122,10 +122,15 @@ class _Piece:
                 os.fsync(fd)
             finally:
                 os.close(fd)
-        if self.final.exists():  # a re-run: the pieces already there are the same
-            shutil.rmtree(self.tmp, ignore_errors=True)
-            return
-        os.replace(self.tmp, self.final)
+        if not self.final.exists():
+            try:
+                os.replace(self.tmp, self.final)
+                return
+            except OSError:
+                if not self.final.exists():
+                    raise
+        # a re-run (or a copy that finished first): the pieces already there are the same
+        shutil.rmtree(self.tmp, ignore_errors=True)
 
     def discard(self) -> None:
         shutil.rmtree(self.tmp, ignore_errors=True)
