@@ -243,38 +243,46 @@ class _Engine:
         return max(1, int(self.budget // 4 // row))
 
     # -------------------------------------------------------------- sampled (coarse) outputs
+    def coarse_per_slab(self, requests, n_inputs: int) -> int:
+        """Rows per slab of the sampled pass over ``requests``."""
+        return self.rows_per_slab(n_inputs + 6.0 * max(1, len(requests)))
+
+    def coarse_rows(self, requests, read: Callable, s0: int, s1: int):
+        """The directions other than the first over rows ``s0:s1``: yields (request number,
+        rest codes, X, spectral axes) for every request (see :meth:`coarse`)."""
+        last = self.g.ndim - 1
+        cache: dict = {}
+
+        def slab(name):
+            if name not in cache:
+                cache[name] = np.asarray(read(name, s0, s1), dtype=self.real)
+            return cache[name]
+
+        for n, (_, producer, ops) in enumerate(requests):
+            f = producer(slab)
+            for rest, (X, spectral) in self._slab_forward(f, ops, last).items():
+                yield n, rest, X, spectral
+            del f
+
     def coarse(self, requests, read: Callable, n_inputs: int) -> dict:
         """``requests``: list of (key, producer, ops); ``producer(slab)`` makes the fine field
         of a slab from ``slab(name)`` (the named inputs over the slab's rows). Returns
         ``{(key, op): coarse array}``, as CoarseGraining.separable(..., sample=True)."""
         g = self.g
-        last = g.ndim - 1
-        partial: dict = {}  # (key, rest codes) -> store (N0, ...)
+        partial: dict = {}  # (request, rest codes) -> store (N0, ...)
         spectral_of: dict = {}
-        per = self.rows_per_slab(n_inputs + 6.0 * max(1, len(requests)))
-        for s0, s1 in _steps(g.shape[0], per):
-            cache: dict = {}
-
-            def slab(name, s0=s0, s1=s1, cache=cache):
-                if name not in cache:
-                    cache[name] = np.asarray(read(name, s0, s1), dtype=self.real)
-                return cache[name]
-
-            for key, producer, ops in requests:
-                f = producer(slab)
-                for rest, (X, spectral) in self._slab_forward(f, ops, last).items():
-                    if (key, rest) not in partial:
-                        partial[(key, rest)] = self.stores.empty((g.shape[0], *X.shape[1:]),
-                                                                 X.dtype)
-                        spectral_of[(key, rest)] = spectral
-                    partial[(key, rest)][s0:s1] = X
-                del f
+        for s0, s1 in _steps(g.shape[0], self.coarse_per_slab(requests, n_inputs)):
+            for n, rest, X, spectral in self.coarse_rows(requests, read, s0, s1):
+                if (n, rest) not in partial:
+                    partial[(n, rest)] = self.stores.empty((g.shape[0], *X.shape[1:]), X.dtype)
+                    spectral_of[(n, rest)] = spectral
+                partial[(n, rest)][s0:s1] = X
         out = {}
-        for key, _, ops in requests:
+        for n, (key, _, ops) in enumerate(requests):
             for rest in {op[1:] for op in ops}:
                 members = [op for op in ops if op[1:] == rest]
-                store = partial.pop((key, rest))
-                res = self._first_direction(store, members, spectral_of[(key, rest)])
+                store = partial.pop((n, rest))
+                res = self._first_direction(store, members, spectral_of[(n, rest)])
                 out.update({(key, op): a for op, a in res.items()})
                 if isinstance(store, _FileArray):  # free its disk now, not at the end
                     os.unlink(store.path)
@@ -328,80 +336,124 @@ class _Engine:
             Y *= 1.0 / r
             self._middle(Y, direction - 1, members, (direction, *spectral), results)
 
+    def columns_per_chunk(self) -> int:
+        """Columns per chunk of the first direction's pass."""
+        return max(1, int(self.budget // 4 // (self.g.shape[0] * 16 * 3)))
+
+    def first_columns(self, block, code: str) -> np.ndarray:
+        """The first direction of a column block (N0, c) of a partial store: sampled every
+        r-th row (no operator along it) or transformed, multiplied by the operator ``code``
+        and folded onto the coarse wavenumbers; (N0 / r, c)."""
+        r, N0 = self.r, self.g.shape[0]
+        n0 = N0 // r
+        if not code:
+            return np.array(block[::r])
+        m = self.m[0][code]
+        T = scipy.fft.fft(block, axis=0, workers=-1)
+        Y = T[:n0] * m[:n0, None]
+        for q in range(1, r):
+            Y += T[q * n0:(q + 1) * n0] * m[q * n0:(q + 1) * n0, None]
+        Y *= 1.0 / r
+        return Y
+
+    def coarse_inverse(self, X, code: str, rest_shape, spectral) -> np.ndarray:
+        """The coarse field from the first direction's result ``X`` (N0 / r, columns) of a
+        store whose rows have ``rest_shape`` and are spectral along ``spectral``."""
+        g, r = self.g, self.r
+        X = X.reshape(g.shape[0] // r, *rest_shape)
+        axes = (*((0, *spectral) if code else spectral), g.ndim - 1)
+        shape = tuple(g.shape[b] // r for b in axes)
+        return np.asarray(scipy.fft.irfftn(X, s=shape, axes=axes, workers=-1), dtype=float)
+
     def _first_direction(self, store, ops, spectral) -> dict:
         """The first direction over column chunks of ``store`` (N0, ...), then the coarse
         inverse transform; {op: coarse array}."""
-        g, r = self.g, self.r
-        N0, n0 = g.shape[0], g.shape[0] // r
+        n0 = self.g.shape[0] // self.r
         cols = int(np.prod(store.shape[1:]))
         out = {}
         groups: dict = {}
         for op in ops:
             groups.setdefault(op[0], []).append(op)
-        per = max(1, int(self.budget // 4 // (N0 * 16 * 3)))
+        per = self.columns_per_chunk()
         for code, members in groups.items():
-            if not code:
-                X = np.asarray(store[::r]).view(np.ndarray)
-                axes0 = spectral
-            else:
-                m = self.m[0][code]
-                X = np.empty((n0, cols), dtype=np.result_type(store.dtype, self.complex))
-                for c0, c1 in _steps(cols, per):
-                    T = scipy.fft.fft(store.cols(c0, c1), axis=0, workers=-1)
-                    Y = T[:n0] * m[:n0, None]
-                    for q in range(1, r):
-                        Y += T[q * n0:(q + 1) * n0] * m[q * n0:(q + 1) * n0, None]
-                    Y *= 1.0 / r
-                    X[:, c0:c1] = Y
-                X = X.reshape(n0, *store.shape[1:])
-                axes0 = (0, *spectral)
-            axes = (*axes0, g.ndim - 1)
-            shape = tuple(g.shape[b] // r for b in axes)
-            result = scipy.fft.irfftn(X, s=shape, axes=axes, workers=-1)
+            X = np.empty((n0, cols), dtype=np.result_type(store.dtype, self.complex))
+            for c0, c1 in _steps(cols, per):
+                X[:, c0:c1] = self.first_columns(store.cols(c0, c1), code)
+            result = self.coarse_inverse(X, code, store.shape[1:], spectral)
             for op in members:
-                out[op] = np.asarray(result, dtype=float)
+                out[op] = result
         return out
 
     # -------------------------------------------------------------- fine-grid outputs
+    @property
+    def half(self) -> tuple[int, ...]:
+        """Shape of a fine field's spectrum along every direction but the first."""
+        g = self.g
+        return (*g.shape[:-1], g.shape[-1] // 2 + 1)
+
+    def fine_per_slab(self, key_terms, n_inputs: int) -> int:
+        return self.rows_per_slab(n_inputs + 4.0 * len(key_terms))
+
+    def fine_rows(self, key_terms, read: Callable, s0: int, s1: int) -> list[np.ndarray]:
+        """Rows ``s0:s1`` of each term's spectrum along every direction but the first, its
+        operators along them applied (see :meth:`fine`)."""
+        d = self.g.ndim
+        rest_axes = tuple(range(1, d))
+        cache: dict = {}
+
+        def slab(name):
+            if name not in cache:
+                cache[name] = np.asarray(read(name, s0, s1), dtype=self.real)
+            return cache[name]
+
+        out = []
+        for sign, producer, op in key_terms:
+            X = scipy.fft.rfftn(producer(slab), axes=rest_axes, workers=-1)
+            for a in rest_axes:
+                if op[a]:
+                    shape = [1] * d
+                    shape[a] = -1
+                    X = X * self.m[a][op[a]].reshape(shape)
+            out.append(X if sign == 1 else sign * X)
+        return out
+
+    def fine_columns_per_chunk(self, n_terms: int) -> int:
+        return max(1, int(self.budget // 4 // (self.g.shape[0] * 16 * (2 + n_terms))))
+
+    def fine_columns(self, blocks, key_terms) -> np.ndarray:
+        """The first direction over one column block (N0, c) of every term's spectrum: the
+        sum of the terms, transformed back along the first direction."""
+        acc = None
+        for block, (_, _, op) in zip(blocks, key_terms, strict=True):
+            T = scipy.fft.fft(block, axis=0, workers=-1)
+            if op[0]:
+                T *= self.m[0][op[0]][:, None]
+            acc = T if acc is None else acc + T
+        return scipy.fft.ifft(acc, axis=0, workers=-1)
+
+    def fine_inverse(self, rows) -> np.ndarray:
+        """Fine-grid rows from their spectrum along every direction but the first."""
+        g = self.g
+        return scipy.fft.irfftn(np.asarray(rows), s=g.shape[1:], axes=tuple(range(1, g.ndim)),
+                                workers=-1)
+
     def fine(self, key_terms, read: Callable, n_inputs: int):
         """A fine-grid field ``sum(sign * op(producer))`` over ``key_terms`` (sign, producer,
         op), every direction transformed (an n-D FFT, multiply, inverse); a store."""
         g = self.g
-        d = g.ndim
-        half = (*g.shape[:-1], g.shape[-1] // 2 + 1)
+        half = self.half
         specs = [self.stores.empty(half, self.complex) for _ in key_terms]
-        per = self.rows_per_slab(n_inputs + 4.0 * len(key_terms))
-        rest_axes = tuple(range(1, d))
+        per = self.fine_per_slab(key_terms, n_inputs)
         for s0, s1 in _steps(g.shape[0], per):
-            cache: dict = {}
-
-            def slab(name, s0=s0, s1=s1, cache=cache):
-                if name not in cache:
-                    cache[name] = np.asarray(read(name, s0, s1), dtype=self.real)
-                return cache[name]
-
-            for spec, (sign, producer, op) in zip(specs, key_terms, strict=True):
-                X = scipy.fft.rfftn(producer(slab), axes=rest_axes, workers=-1)
-                for a in rest_axes:
-                    if op[a]:
-                        shape = [1] * d
-                        shape[a] = -1
-                        X = X * self.m[a][op[a]].reshape(shape)
-                spec[s0:s1] = X if sign == 1 else sign * X
+            for spec, X in zip(specs, self.fine_rows(key_terms, read, s0, s1), strict=True):
+                spec[s0:s1] = X
         cols = int(np.prod(half[1:]))
-        per_c = max(1, int(self.budget // 4 // (g.shape[0] * 16 * (2 + len(key_terms)))))
-        for c0, c1 in _steps(cols, per_c):
-            acc = None
-            for spec, (_, _, op) in zip(specs, key_terms, strict=True):
-                T = scipy.fft.fft(spec.cols(c0, c1), axis=0, workers=-1)
-                if op[0]:
-                    T *= self.m[0][op[0]][:, None]
-                acc = T if acc is None else acc + T
-            specs[0].set_cols(c0, c1, scipy.fft.ifft(acc, axis=0, workers=-1))
+        for c0, c1 in _steps(cols, self.fine_columns_per_chunk(len(key_terms))):
+            specs[0].set_cols(c0, c1, self.fine_columns([s.cols(c0, c1) for s in specs],
+                                                        key_terms))
         out = self.stores.empty(g.shape, self.real)
         for s0, s1 in _steps(g.shape[0], per):
-            out[s0:s1] = scipy.fft.irfftn(np.asarray(specs[0][s0:s1]), s=g.shape[1:],
-                                          axes=rest_axes, workers=-1)
+            out[s0:s1] = self.fine_inverse(specs[0][s0:s1])
         return out
 
 
@@ -465,110 +517,150 @@ def _dirs(dims) -> tuple[str, ...]:
 
 def _spectral(slabs, cg, scalars, want, eng: _Engine):
     """closure.residuals._spectral_terms, by slabs (same operators, same arithmetic)."""
-    from closure.residuals import energy_transfer, stress_names, stress_pairs
-
-    fine = cg.fine
-    dims = fine.dims
-    dirs = _dirs(dims)
-    two_d = dims == ("y", "x")
-    pairs = stress_pairs(dims)
-    F = ("f",) * fine.ndim
-
-    def op(code, j):
-        return tuple(code if d == j else ("f" if "f" in code else "") for d in dims)
-
-    Fd = {j: op("fd", j) for j in dirs}
-    D = {j: op("d", j) for j in dirs}
-    V = {d: VELOCITY_OF[d] for d in dirs}
-    n_in = len(dirs) + len(scalars)
-    need_force = any(t.startswith("force_") for t in want)
-    need_vf = two_d and "vorticity_forcing" in want
-    need_sigma = two_d and bool(want & {"vorticity_forcing", "enstrophy_transfer"})
+    terms = SpectralTerms(cg, scalars, want)
     read = slabs.read
-
     # fine-grid fields first (files when large): filtered velocity, vorticity, its filter
-    fine_store: dict[str, np.ndarray] = {}
-    if need_force or need_vf:
-        for i in dirs:
-            fine_store[f"ubar:{i}"] = eng.fine([(1.0, _field(V[i]), F)], read, n_in)
-    if need_sigma:
-        ax, ay = ("", "d"), ("d", "")  # d_x, d_y on (y, x)
-        fine_store["omega"] = eng.fine([(1.0, _field("v"), ax), (-1.0, _field("u"), ay)],
-                                       read, n_in)
-        if need_vf:
-            fine_store["omega_bar"] = eng.fine([(1.0, _field("v"), ("f", "fd")),
-                                                (-1.0, _field("u"), ("fd", "f"))], read, n_in)
+    fine_store = {name: eng.fine(key_terms, read, terms.n_inputs)
+                  for name, key_terms in terms.fine_fields().items()}
 
     def read_all(name, s0, s1):
         if name in fine_store:
             return fine_store[name][s0:s1]
         return read(name, s0, s1)
 
-    req = []
-    for i in dirs:
-        js = [j for j in dirs if "pi" in want or (two_d and j != i)]
-        req.append((("u", i), _field(V[i]), [F, *(Fd[j] for j in js)]))
-    for c in scalars:
-        req.append((("c", c), _field(c), [F]))
-    stress = bool(want & {*stress_names(dims), "pi"} or need_force)
-    if stress:
-        for i, j in pairs:
-            js = sorted({i, j}) if need_force else []
-            req.append((("p", i, j), _product(V[i], V[j]), [F, *(Fd[d] for d in js)]))
-            if need_force:
-                req.append((("q", i, j), _product(f"ubar:{i}", f"ubar:{j}"), [D[d] for d in js]))
-    for c in scalars:
-        if want & {f"flux_{c}_{j}" for j in dirs}:
-            for j in dirs:
-                req.append((("flux", c, j), _product(V[j], c), [F]))
-    if need_sigma:
-        req.append((("omega",), _field("omega"), [F, *(Fd[j] for j in dirs)]))
-        for j in dirs:
-            req.append((("s", j), _product(V[j], "omega"), [F, *([Fd[j]] if need_vf else [])]))
-            if need_vf:
-                req.append((("t", j), _product(f"ubar:{j}", "omega_bar"), [D[j]]))
-    res = eng.coarse(req, read_all, n_in + len(fine_store))
+    res = eng.coarse(terms.requests(), read_all, terms.n_inputs + len(fine_store))
+    return terms.assemble(res)
 
-    ubar, grad = {}, {}
-    for i in dirs:
-        ubar[i] = res[(("u", i), F)]
-        for j in dirs:
-            if (("u", i), Fd[j]) in res and ("pi" in want or (two_d and j != i)):
-                grad[(i, j)] = res[(("u", i), Fd[j])]
-    fields = {V[d]: ubar[d] for d in dirs}
-    cbar = {}
-    for c in scalars:
-        cbar[c] = fields[c] = res[(("c", c), F)]
-    if two_d:
-        fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
-    out: dict = {}
-    if stress:
-        for i, j in pairs:
-            out[f"tau_{i}{j}"] = res[(("p", i, j), F)] - ubar[i] * ubar[j]
-            if need_force:
-                for d in sorted({i, j}):
-                    a, b = res[(("p", i, j), Fd[d])], res[(("q", i, j), D[d])]
-                    key = f"force_{j if d == i else i}"
-                    out[key] = out[key] + (a - b) if key in out else a - b
-    if "pi" in want:
-        strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in pairs}
-        out["pi"] = energy_transfer(out, strain, dims)
-    for c in scalars:
-        for j in dirs:
-            if (("flux", c, j), F) in res:
-                out[f"flux_{c}_{j}"] = res[(("flux", c, j), F)] - ubar[j] * cbar[c]
-    if need_sigma:
-        omega_bar = res[(("omega",), F)]
-        sigma, vf = {}, 0.0
-        for j in dirs:
-            sigma[j] = res[(("s", j), F)] - ubar[j] * omega_bar
+
+class SpectralTerms:
+    """What the periodic spectral pass computes for ``want``: the fine-grid fields it needs
+    first (:meth:`fine_fields`), the sampled coarse outputs (:meth:`requests`) and the terms
+    assembled from those (:meth:`assemble`); the same lists, in the same order, in process
+    and in the queue's slab tasks (closure.slabtasks)."""
+
+    def __init__(self, cg: CoarseGraining, scalars, want):
+        fine = cg.fine
+        self.dims = fine.dims
+        self.dirs = _dirs(self.dims)
+        self.scalars = tuple(scalars)
+        self.want = set(want)
+        self.two_d = self.dims == ("y", "x")
+        self.n_inputs = len(self.dirs) + len(self.scalars)
+        self.need_force = any(t.startswith("force_") for t in self.want)
+        self.need_vf = self.two_d and "vorticity_forcing" in self.want
+        self.need_sigma = self.two_d and bool(
+            self.want & {"vorticity_forcing", "enstrophy_transfer"})
+        self._F = ("f",) * fine.ndim
+
+    def _op(self, code, j):
+        return tuple(code if d == j else ("f" if "f" in code else "") for d in self.dims)
+
+    def fine_fields(self) -> dict:
+        """{name: key terms} of the fine-grid fields the sampled pass reads (see
+        _Engine.fine): the filtered velocity, the vorticity and its filter."""
+        out: dict = {}
+        if self.need_force or self.need_vf:
+            for i in self.dirs:
+                out[f"ubar:{i}"] = [(1.0, _field(VELOCITY_OF[i]), self._F)]
+        if self.need_sigma:
+            ax, ay = ("", "d"), ("d", "")  # d_x, d_y on (y, x)
+            out["omega"] = [(1.0, _field("v"), ax), (-1.0, _field("u"), ay)]
+            if self.need_vf:
+                out["omega_bar"] = [(1.0, _field("v"), ("f", "fd")),
+                                    (-1.0, _field("u"), ("fd", "f"))]
+        return out
+
+    def requests(self) -> list:
+        """The sampled outputs: (key, producer, ops), as _Engine.coarse takes them."""
+        from closure.residuals import stress_pairs
+
+        dirs, want, two_d, F = self.dirs, self.want, self.two_d, self._F
+        Fd = {j: self._op("fd", j) for j in dirs}
+        D = {j: self._op("d", j) for j in dirs}
+        V = {d: VELOCITY_OF[d] for d in dirs}
+        need_force, need_vf = self.need_force, self.need_vf
+        req = []
+        for i in dirs:
+            js = [j for j in dirs if "pi" in want or (two_d and j != i)]
+            req.append((("u", i), _field(V[i]), [F, *(Fd[j] for j in js)]))
+        for c in self.scalars:
+            req.append((("c", c), _field(c), [F]))
+        if self._stress():
+            for i, j in stress_pairs(self.dims):
+                js = sorted({i, j}) if need_force else []
+                req.append((("p", i, j), _product(V[i], V[j]), [F, *(Fd[d] for d in js)]))
+                if need_force:
+                    req.append((("q", i, j), _product(f"ubar:{i}", f"ubar:{j}"),
+                                [D[d] for d in js]))
+        for c in self.scalars:
+            if want & {f"flux_{c}_{j}" for j in dirs}:
+                for j in dirs:
+                    req.append((("flux", c, j), _product(V[j], c), [F]))
+        if self.need_sigma:
+            req.append((("omega",), _field("omega"), [F, *(Fd[j] for j in dirs)]))
+            for j in dirs:
+                req.append((("s", j), _product(V[j], "omega"),
+                            [F, *([Fd[j]] if need_vf else [])]))
+                if need_vf:
+                    req.append((("t", j), _product(f"ubar:{j}", "omega_bar"), [D[j]]))
+        return req
+
+    def _stress(self) -> bool:
+        from closure.residuals import stress_names
+
+        return bool(self.want & {*stress_names(self.dims), "pi"} or self.need_force)
+
+    def assemble(self, res: dict):
+        """(coarse fields, coarse targets) from the sampled outputs ``{(key, op): array}``."""
+        from closure.residuals import energy_transfer, stress_pairs
+
+        dirs, want, two_d, F = self.dirs, self.want, self.two_d, self._F
+        Fd = {j: self._op("fd", j) for j in dirs}
+        D = {j: self._op("d", j) for j in dirs}
+        V = {d: VELOCITY_OF[d] for d in dirs}
+        need_force, need_vf = self.need_force, self.need_vf
+        ubar, grad = {}, {}
+        for i in dirs:
+            ubar[i] = res[(("u", i), F)]
+            for j in dirs:
+                if (("u", i), Fd[j]) in res and ("pi" in want or (two_d and j != i)):
+                    grad[(i, j)] = res[(("u", i), Fd[j])]
+        fields = {V[d]: ubar[d] for d in dirs}
+        cbar = {}
+        for c in self.scalars:
+            cbar[c] = fields[c] = res[(("c", c), F)]
+        if two_d:
+            fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
+        out: dict = {}
+        pairs = stress_pairs(self.dims)
+        if self._stress():
+            for i, j in pairs:
+                out[f"tau_{i}{j}"] = res[(("p", i, j), F)] - ubar[i] * ubar[j]
+                if need_force:
+                    for d in sorted({i, j}):
+                        a, b = res[(("p", i, j), Fd[d])], res[(("q", i, j), D[d])]
+                        key = f"force_{j if d == i else i}"
+                        out[key] = out[key] + (a - b) if key in out else a - b
+        if "pi" in want:
+            strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in pairs}
+            out["pi"] = energy_transfer(out, strain, self.dims)
+        for c in self.scalars:
+            for j in dirs:
+                if (("flux", c, j), F) in res:
+                    out[f"flux_{c}_{j}"] = res[(("flux", c, j), F)] - ubar[j] * cbar[c]
+        if self.need_sigma:
+            omega_bar = res[(("omega",), F)]
+            sigma, vf = {}, 0.0
+            for j in dirs:
+                sigma[j] = res[(("s", j), F)] - ubar[j] * omega_bar
+                if need_vf:
+                    vf = vf + (res[(("s", j), Fd[j])] - res[(("t", j), D[j])])
+            if "enstrophy_transfer" in want:
+                out["enstrophy_transfer"] = -sum(sigma[j] * res[(("omega",), Fd[j])]
+                                                 for j in dirs)
             if need_vf:
-                vf = vf + (res[(("s", j), Fd[j])] - res[(("t", j), D[j])])
-        if "enstrophy_transfer" in want:
-            out["enstrophy_transfer"] = -sum(sigma[j] * res[(("omega",), Fd[j])] for j in dirs)
-        if need_vf:
-            out["vorticity_forcing"] = vf
-    return fields, out
+                out["vorticity_forcing"] = vf
+        return fields, out
 
 
 def _field(name):

@@ -361,6 +361,7 @@ def _plan(spec: JobSpec, src, sha: str | None) -> dict:
         _compressibility_warning(src, chosen[0], library, levels, spec),
         "notes": list(src.notes),
         **({"gas": _gas(spec, src)} if _compressible(spec) else {}),
+        "slabs": _slab_info(spec, src, cg),
     }
 
 
@@ -629,6 +630,106 @@ def _by_slabs(spec: JobSpec, src) -> bool:
     return bool(getattr(spec, "fine_float32", False)) or needs_out_of_core(
         src.grid, n_fields, getattr(spec, "memory_limit", None),
         target_components(spec.target, src.grid.dims))
+
+
+# ---------------------------------------------------------------------- slab tasks
+def _slab_info(spec: JobSpec, src, cg) -> dict:
+    """What the queue needs to split a snapshot into slab tasks (closure.slabtasks):
+    whether it can (``refused``: why not), whether a snapshot is past the memory limit, and
+    how many rows the first direction has. UserError when spec.slab_tasks asks for a split
+    that cannot be made."""
+    from closure import slabtasks
+    from closure.library import target_components
+    from closure.outofcore import needs_out_of_core
+
+    why = None
+    if hasattr(src, "coarse_graining"):
+        why = "the input is already coarse-grained: nothing to split"
+    elif getattr(src, "levels", None) is not None or spec.input.mask is not None \
+            or _compressible(spec):
+        why = "level stacks, land masks and Favre (compressible) coarse-graining are not split"
+    else:
+        why = slabtasks.refusal(cg)
+    rows = slabtasks.most_tasks(cg)
+    asked = getattr(spec, "slab_tasks", None)
+    if asked is not None and asked > 1:
+        if why:
+            raise UserError(f"slab_tasks {asked}: {why}, so each snapshot runs in one task: "
+                            "leave slab_tasks out (or set it to 1)")
+        if asked > rows:
+            raise OptionError(f"slab_tasks {asked} is more than the {rows} rows of the first "
+                              f"direction ({cg.fine.dims[0]}): give at most {rows}")
+    over = why is None and needs_out_of_core(
+        cg.fine, len(src.velocity) + len(_scalars(spec)), getattr(spec, "memory_limit", None),
+        target_components(spec.target, cg.fine.dims))
+    return {"refused": why, "over_budget": bool(over), "rows": int(rows)}
+
+
+def slab_split(spec: JobSpec, plan: Mapping, workers: int, tasks_per_worker: int = 2) -> int:
+    """Slab tasks per phase for each snapshot of a queued job (1: each snapshot in one map
+    task): ``spec.slab_tasks`` when given; otherwise, when a snapshot is past the memory
+    limit, enough for about ``tasks_per_worker`` tasks per live worker over the whole job."""
+    info = plan.get("slabs") or {}
+    if info.get("refused") is not None or not info:
+        return 1
+    if getattr(spec, "slab_tasks", None) is not None:
+        return int(spec.slab_tasks)
+    if not info.get("over_budget"):
+        return 1
+    wanted = max(1, int(workers)) * int(tasks_per_worker)
+    per_snapshot = -(-wanted // max(1, len(plan["snapshots"])))
+    return max(1, min(per_snapshot, int(info["rows"])))
+
+
+def _slab_setup(spec: JobSpec, plan: Mapping):
+    from closure import slabtasks
+
+    cg = _coarse_graining(spec, Grid.from_dict(plan["grid"]))
+    dtype = np.float32 if spec.fine_float32 else np.float64
+    kwargs = {"scalars": _scalars(spec), "targets": list(plan["components"]),
+              "memory_limit": spec.memory_limit, "dtype": dtype}
+    return slabtasks, cg, kwargs
+
+
+def slab_phases(spec: JobSpec, plan: Mapping) -> list[str]:
+    """The phases of a split snapshot's pass, in order (closure.slabtasks.phases)."""
+    slabtasks, cg, kw = _slab_setup(spec, plan)
+    return slabtasks.phases(cg, kw["scalars"], kw["targets"])
+
+
+@_small_blas
+def run_slab_task(spec: JobSpec, plan: Mapping, index: int, phase: str, task: int,
+                  n_tasks: int, folder, source=None) -> None:
+    """Task ``task`` of ``n_tasks`` of ``phase`` over snapshot ``index``, its pieces under
+    ``folder`` (closure.slabtasks.run_phase); ``source``: the planned input, open."""
+    from closure.outofcore import SourceSlabs
+
+    if int(index) not in set(plan["snapshots"]):
+        raise UserError(f"snapshot {index} is not part of this job's plan")
+    _check_input(plan)
+    slabtasks, cg, kw = _slab_setup(spec, plan)
+    own = source is None
+    src = open_planned(plan) if own else source
+    try:
+        slabtasks.run_phase(SourceSlabs(src, int(index)), cg, folder, phase, task, n_tasks, **kw)
+    finally:
+        if own:
+            src.close()
+
+
+@_small_blas
+def finish_slab_tasks(spec: JobSpec, plan: Mapping, index: int, n_tasks: int, folder):
+    """(statistics, coarse snapshot) of snapshot ``index`` from its slab tasks' pieces under
+    ``folder``: what :func:`_map` gives for it in one task."""
+    slabtasks, cg, kw = _slab_setup(spec, plan)
+    times = plan.get("times")
+    time = None if times is None else float(times[list(plan["snapshots"]).index(int(index))])
+    cs = slabtasks.finish(cg, folder, n_tasks, int(index), time, **kw)
+    library = _library(spec, cg.fine.dims)
+    if library.names != list(plan["terms"]):
+        raise UserError("the library's terms changed since the job was planned: resubmit the "
+                        "job")
+    return _level_stats(spec, plan, cs, cg, library, int(index)), cs
 
 
 @_small_blas

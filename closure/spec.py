@@ -27,6 +27,8 @@ SPEC_VERSION = 1
 #: longest library name or terms-file path, and largest inline library (characters of JSON)
 MAX_LIBRARY_NAME = 1024
 MAX_INLINE_LIBRARY = 65536
+#: the most slab tasks per phase one snapshot may be split into (closure.slabtasks)
+MAX_SLAB_TASKS = 4096
 INLINE_LIBRARY = "inline terms"
 
 FilterKind = Literal["box", "gaussian", "spectral", "block"]
@@ -263,6 +265,11 @@ class JobSpec(_Strict):
     device: Literal["numpy", "cpu", "cuda", "auto"] = Field(
         "numpy", description="array backend of the fine-grid pass of periodic data: numpy, or "
         "torch on cpu, cuda, or auto (cuda when available); results agree to 1e-10")
+    slab_tasks: Annotated[int, Field(ge=1, le=MAX_SLAB_TASKS)] | None = Field(
+        None, description="on the queue, split each snapshot's fine-grid pass into this many "
+        "tasks per phase, each over a range of slabs (periodic box, gaussian or spectral "
+        "filters; 1: one task per snapshot). Default: snapshots past memory_limit are split "
+        "into about two tasks per live worker in all; in process it has no effect")
     gas: GasSpec | None = Field(
         None, description="gas constants of compressible data, overriding the input file's "
         "attributes (compressible libraries only)")
@@ -309,7 +316,7 @@ class JobSpec(_Strict):
         if not d["reference_net"]["enabled"]:
             del d["reference_net"]  # jobs without a network keep their earlier fingerprint
         # where and within what memory the pass runs changes results at round-off only
-        for key in ("memory_limit", "device"):
+        for key in ("memory_limit", "device", "slab_tasks"):
             d.pop(key, None)
         if not d.get("fine_float32"):
             d.pop("fine_float32", None)

@@ -421,3 +421,93 @@ def test_a_starting_worker_sweeps_the_store(env):
     for path in leftovers:
         assert not path.exists(), path
     assert not (store.root / "jobs" / "j-gone").exists()
+
+
+# --------------------------------------------------------------------------- slab tasks
+
+@pytest.fixture
+def three_d_file(tmp_path):
+    """Random 3-D velocity, 3 snapshots of 16^3 on [0, 2 pi)^3."""
+    import xarray as xr
+
+    rng = np.random.default_rng(2)
+    n = 16
+    c = np.arange(n) * (2 * np.pi / n)
+    data = {k: (("time", "z", "y", "x"), rng.standard_normal((3, n, n, n)))
+            for k in ("u", "v", "w")}
+    path = tmp_path / "three_d.nc"
+    xr.Dataset(data, coords={"time": [0.0, 0.5, 1.0], "z": c, "y": c, "x": c}).to_netcdf(path)
+    return path
+
+
+#: the first attempt of the rows task 1 of snapshot 0 dies at once (SIGKILL of its own
+#: work-horse, as the kernel's OOM killer or a lost machine would); its retry runs normally
+KILL_ONE_SLAB_TASK = """
+import os, signal, closure.slabtasks as s
+run = s.run_phase
+def dying(slabs, cg, folder, phase, task, n_tasks, *a, **k):
+    mark = os.path.join(os.environ["CLOSURE_TEST_MARK"], "killed")
+    if phase == "rows" and task == 1 and slabs.index == 0 and not os.path.exists(mark):
+        open(mark, "w").close()
+        os.kill(os.getpid(), signal.SIGKILL)
+    return run(slabs, cg, folder, phase, task, n_tasks, *a, **k)
+s.run_phase = dying
+"""
+
+
+def test_slab_tasks_give_the_in_process_model_and_a_killed_one_is_retried(
+        env, three_d_file, tmp_path, monkeypatch):
+    conn, store = env
+    extra = {"library": "minimal", "memory_limit": 20_000}
+    job_id = submit(conn, store, spec_dict(three_d_file, slab_tasks=3, **extra))
+    monkeypatch.setenv("CLOSURE_TEST_MARK", str(tmp_path))
+    run_burst(conn, store, patch=KILL_ONE_SLAB_TASK)
+    assert (tmp_path / "killed").exists()
+    doc = jobs_status.status(store, conn, job_id)
+    assert doc["state"] == "succeeded", doc
+    assert doc["progress"]["snapshots_done"] == doc["progress"]["snapshots_total"] == 3
+    # no map task: each snapshot went through 2 phases of 3 slab tasks and a finishing task
+    assert q.map_tasks(conn, job_id) == []
+    ids = q.slab_tasks(conn, job_id)
+    assert len(ids) == 3 * (2 * 3 + 1) and q.slab_id(job_id, 0, "rows", 1) in ids
+    killed = q.fetch(conn, q.slab_id(job_id, 0, "rows", 1))
+    assert killed.get_status() == "finished" and killed.retries_left == q.TASK_RETRIES - 1
+    # the in-process model (one pass per snapshot in memory) to round-off
+    direct = pipeline.discover(parse_spec(spec_dict(three_d_file, library="minimal")))
+    stored = store.load_model(doc["model_id"])
+    assert stored.names == direct.names and list(stored.active) == list(direct.active)
+    a, b = np.asarray(stored.coefficients), np.asarray(direct.coefficients)
+    assert np.abs(a - b).max() <= 1e-12 * np.abs(b).max()
+    assert not store.job_dir(job_id).exists()  # pieces, stats and plan are gone
+    raw = conn.hget(f"rq:job:{q.slab_id(job_id, 2, 'columns', 0)}", "data")
+    assert json.loads(zlib.decompress(raw))[2] == [job_id, 2, "columns", 0, 3]  # JSON only
+
+
+def test_a_slab_task_that_keeps_failing_fails_the_job_naming_it(env, three_d_file):
+    conn, store = env
+    patch = ("import closure.slabtasks as s\ndef broken(slabs, cg, folder, phase, task, *a, **k):"
+             "\n    if phase == 'rows' and task == 2:\n        raise RuntimeError('disk on fire')"
+             "\n    return run(slabs, cg, folder, phase, task, *a, **k)\nrun = s.run_phase\n"
+             "s.run_phase = broken\n")
+    job_id = submit(conn, store, spec_dict(three_d_file, library="minimal", slab_tasks=3,
+                                           input={"path": str(three_d_file),
+                                                  "snapshots": [0, 1]}))
+    run_burst(conn, store, patch=patch)
+    doc = jobs_status.status(store, conn, job_id)
+    assert doc["state"] == "failed", doc
+    assert (f"snapshot 0: slab task rows 2 failed after {q.TASK_RETRIES + 1} attempts: "
+            "RuntimeError: disk on fire") in doc["error"]
+    assert not store.job_dir(job_id).exists()
+
+
+def test_cancel_stops_pending_slab_tasks(env, three_d_file):
+    conn, store = env
+    job_id = submit(conn, store, spec_dict(three_d_file, library="minimal", slab_tasks=2))
+    run_burst(conn, store, max_jobs=2)  # the plan and one slab task
+    assert q.cancel(store, conn, job_id)
+    states = [q.fetch(conn, rq_id).get_status() for rq_id in q.slab_tasks(conn, job_id)]
+    assert states.count("finished") == 1 and states.count("canceled") == len(states) - 1
+    assert q.fetch(conn, q.reduce_id(job_id)).get_status() == "canceled"
+    run_burst(conn, store)
+    assert jobs_status.status(store, conn, job_id)["state"] == "canceled"
+    assert store.find_models() == [] and not store.job_dir(job_id).exists()

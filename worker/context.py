@@ -1,7 +1,8 @@
 """What every task kind shares (worker.tasks, worker.products, worker.sweeps,
-worker.selection, worker.aposteriori): where the store is, the task's Redis connection, its
-lease, containment of inputs at open time, failing a job and removing its work. One floor below
-the task modules, so they import it and not each other.
+worker.selection, worker.aposteriori, worker.slabs): where the store is, the task's Redis
+connection, its lease, containment of inputs at open time (opening the planned input), keeping
+a held-out snapshot's coarse fields, failing a job and removing its work. One floor below the
+task modules, so they import it and not each other.
 """
 
 from __future__ import annotations
@@ -9,6 +10,7 @@ from __future__ import annotations
 import functools
 import os
 import shutil
+import uuid
 from pathlib import Path
 
 from rq import get_current_job
@@ -116,6 +118,33 @@ def _discard_if_ended(job_id: str) -> None:
         discard_work(job_id)
 
 
+def _open_planned(plan: dict):
+    """The planned input, opened as the plan read it (closure.pipeline.open_planned)."""
+    from closure.pipeline import open_planned
+
+    inp = plan["input"]
+    for path in inp.get("paths") or [inp["path"]]:
+        check_input_file(path)
+    return open_planned(plan)
+
+
+def _keep_held_out(work: Path, plan: dict, coarse) -> None:
+    """Save a held-out snapshot's coarse fields and targets (closure.pipeline.HeldOut's
+    format) into the job's held_out/ folder, atomically (temp folder + rename)."""
+    from closure.pipeline import HeldOut
+
+    folder = work / "held_out"
+    tmp = folder / f".tmp-{uuid.uuid4().hex}"
+    tmp.mkdir(parents=True)
+    try:
+        HeldOut(tmp, list(plan["components"])).put(coarse)
+        name = f"{int(coarse.index)}.npz"
+        if (tmp / name).exists():
+            os.replace(tmp / name, folder / name)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
 # --------------------------------------------------------------------------- leases
 
 _lease: q.Lease | None = None
@@ -154,7 +183,9 @@ def _missing_message(conn, job_id: str, missing: list[int]) -> str:
         if str(i) in errors:
             parts.append(f"snapshot {i}: {errors[str(i)]}")
         else:
-            job = q.fetch(conn, q.map_id(job_id, task_of.get(i, -1)))
+            # a snapshot split into slab tasks (worker.slabs) ends with its finishing task
+            rq_id = q.map_id(job_id, task_of[i]) if i in task_of else q.finish_id(job_id, i)
+            job = q.fetch(conn, rq_id)
             why = q.last_error(job) if job is not None else "its task was lost"
             parts.append(f"snapshot {i}: failed after {q.TASK_RETRIES + 1} attempts: {why}")
     more = f" (and {len(missing) - 5} more)" if len(missing) > 5 else ""

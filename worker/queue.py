@@ -9,6 +9,12 @@ One user-visible job id (``j-...``) fans out into rq tasks with derived ids::
     <job>-map-<k>        a group of snapshots each: one SufficientStats file per snapshot
     <job>-reduce         waits for every map (allow_failure) and fits the model
 
+A snapshot split into slab tasks (worker.slabs, closure.slabtasks) has instead of a map::
+
+    <job>-slab-<i>-<phase>-<k>   task k of a phase of snapshot i's pass (each phase waits
+                                 for the one before it)
+    <job>-finish-<i>             assembles snapshot i's coarse fields and statistics
+
 The catalog row (closure.store) is the record of the job's state; Redis holds the live
 progress in ``closure:job:<job>`` (a hash), the set of finished snapshots and map errors.
 Everything on the queue is JSON (rq's JSONSerializer), never pickle.
@@ -111,6 +117,29 @@ def map_id(job_id: str, task: int) -> str:
 
 def reduce_id(job_id: str) -> str:
     return f"{job_id}-reduce"
+
+
+def slab_id(job_id: str, index: int, phase: str, task: int) -> str:
+    """rq id of task ``task`` of ``phase`` of snapshot ``index``'s slab tasks."""
+    return f"{job_id}-slab-{int(index)}-{phase}-{int(task)}"
+
+
+def finish_id(job_id: str, index: int) -> str:
+    """rq id of the task that finishes snapshot ``index`` after its slab tasks."""
+    return f"{job_id}-finish-{int(index)}"
+
+
+def slab_tasks(conn: redis.Redis, job_id: str) -> list[str]:
+    """rq ids of every slab and finishing task of a job (empty when none was split)."""
+    raw = conn.hget(progress_key(job_id), "slabs")
+    if not raw:
+        return []
+    info = json.loads(raw)  # {"snapshots": [...], "tasks": K, "phases": [...]}
+    ids = []
+    for i in info["snapshots"]:
+        ids += [slab_id(job_id, i, p, k) for p in info["phases"] for k in range(info["tasks"])]
+        ids.append(finish_id(job_id, i))
+    return ids
 
 
 def progress_key(job_id: str) -> str:
@@ -354,6 +383,7 @@ def stop_tasks(conn: redis.Redis, job_id: str) -> None:
     """Cancel every pending task of a job and stop the running ones."""
     ids = [plan_id(job_id), reduce_id(job_id), f"{job_id}-choose"]
     ids += [map_id(job_id, k) for k in range(len(map_tasks(conn, job_id)))]
+    ids += slab_tasks(conn, job_id)
     total = conn.hget(progress_key(job_id), "phase_total")
     if conn.hget(progress_key(job_id), "phase") == b"coarse runs" and total:
         ids += [f"{job_id}-run-{k}" for k in range(int(total))]  # worker.selection's tasks

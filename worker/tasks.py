@@ -10,9 +10,7 @@ anything else raises, so rq retries the task.
 
 from __future__ import annotations
 
-import os
 import shutil
-import uuid
 from pathlib import Path
 
 from closure.errors import UserError
@@ -29,9 +27,11 @@ from worker.context import (  # noqa: F401 - re-exported: tasks.store(), tasks.c
     _discard_if_ended,
     _fail,
     _failure_callback,
+    _keep_held_out,
     _lease_lost,
     _leased,
     _missing_message,
+    _open_planned,
     check_input_file,
     configure,
     data_roots,
@@ -44,7 +44,8 @@ from worker.context import (  # noqa: F401 - re-exported: tasks.store(), tasks.c
 
 @_leased
 def plan_task(job_id: str) -> dict:
-    """Plan the job, then enqueue one map task per snapshot and the reduce task after them."""
+    """Plan the job, then enqueue the map tasks (groups of snapshots; or each snapshot's
+    slab tasks, worker.slabs) and the reduce task after them."""
     conn = _conn()
     if q.is_canceled(conn, job_id):
         return {"job": job_id, "canceled": True}
@@ -92,9 +93,16 @@ def plan_task(job_id: str) -> dict:
     from rq import Worker
 
     queue = q.get_queue(conn)
-    groups = q.split_snapshots(indices, Worker.count(queue=queue))
+    workers = Worker.count(queue=queue)
+    n_slab_tasks = pipeline.slab_split(spec, plan, workers, q.TASKS_PER_WORKER)
+    # a snapshot split into slab tasks (worker.slabs) has no map task
+    groups = [] if n_slab_tasks > 1 else q.split_snapshots(indices, workers)
     q.set_progress(conn, job_id, phase="map", snapshots_total=len(indices), tasks=groups)
     parts = []
+    if n_slab_tasks > 1:
+        from worker import slabs
+
+        parts = slabs.enqueue(conn, queue, job_id, spec, plan, indices, n_slab_tasks)
     for k, group in enumerate(groups):
         parts.append(queue.enqueue_call(
             "worker.tasks.map_task", args=(job_id, group), job_id=q.map_id(job_id, k),
@@ -112,33 +120,6 @@ def plan_task(job_id: str) -> dict:
     if q.is_canceled(conn, job_id):  # canceled while we were fanning out
         q.stop_tasks(conn, job_id)
     return {"job": job_id, "snapshots": len(indices)}
-
-
-def _open_planned(plan: dict):
-    """The planned input, opened as the plan read it (closure.pipeline.open_planned)."""
-    from closure.pipeline import open_planned
-
-    inp = plan["input"]
-    for path in inp.get("paths") or [inp["path"]]:
-        check_input_file(path)
-    return open_planned(plan)
-
-
-def _keep_held_out(work: Path, plan: dict, coarse) -> None:
-    """Save a held-out snapshot's coarse fields and targets (closure.pipeline.HeldOut's
-    format) into the job's held_out/ folder, atomically (temp folder + rename)."""
-    from closure.pipeline import HeldOut
-
-    folder = work / "held_out"
-    tmp = folder / f".tmp-{uuid.uuid4().hex}"
-    tmp.mkdir(parents=True)
-    try:
-        HeldOut(tmp, list(plan["components"])).put(coarse)
-        name = f"{int(coarse.index)}.npz"
-        if (tmp / name).exists():
-            os.replace(tmp / name, folder / name)
-    finally:
-        shutil.rmtree(tmp, ignore_errors=True)
 
 
 def _held_out(work: Path, plan: dict):
