@@ -598,6 +598,13 @@ def test_cli_submit_carries_the_input_options_and_one_job_per_level(dns, tmp_pat
     code, _, err = run(capsys, "submit", dns[0], "--levels", "all", "--per-level",
                        "--server", "http://127.0.0.1:9")
     assert code == 2 and "list the levels, e.g. --levels 0,5,10" in err
+    # the memory options of a worker's pass travel in the spec
+    sent.clear()
+    code, _, err = run(capsys, "submit", dns[0], "--memory-limit", "2G", "--slab-tasks", "3",
+                       "--server", "http://127.0.0.1:9")
+    assert code == 0, err
+    assert (sent[0]["memory_limit"], sent[0]["slab_tasks"]) == (2 * 1024**3, 3)
+    assert parse_spec(sent[0]).slab_tasks == 3
 
 
 def test_cli_report_takes_several_inputs_and_overrides_the_recorded_options(dns, stack,

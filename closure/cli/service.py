@@ -215,6 +215,13 @@ def submit(
     spacing: str = SPACING,
     snapshots: str = SNAPSHOTS,
     non_periodic: bool = NON_PERIODIC,
+    memory_limit: str = typer.Option(
+        None, "--memory-limit", help="memory one snapshot may use on a worker, e.g. 8G or 0.25 "
+        "(of the worker machine's); larger snapshots go by slabs or slab tasks"),
+    slab_tasks: int = typer.Option(
+        None, "--slab-tasks", help="split each snapshot's fine-grid pass into this many queued "
+        "tasks per phase (periodic data; 1: never split; default: split the snapshots past "
+        "--memory-limit over the live workers)"),
     name: str = typer.Option(None, "--name", help="a label for the job"),
     upload: bool = typer.Option(None, "--upload/--by-path", help="always upload the file, or "
                                 "never (default: by path when under the server's data roots, "
@@ -249,6 +256,12 @@ def submit(
         None, dataset_id=dataset, filter=filter, width=width, width_units=width_units,
         ratio=ratio, target=target, library=library, method=method, scheme=scheme,
         test_fraction=test_fraction, resamples=resamples, seed=seed, base={**base, "input": inp})
+    if memory_limit is not None:
+        from closure.outofcore import parse_memory
+
+        spec["memory_limit"] = parse_memory(memory_limit)
+    if slab_tasks is not None:
+        spec["slab_tasks"] = slab_tasks
     if inputs:
         single = Path(inputs[0])
         if len(inputs) == 1 and single.is_file():
