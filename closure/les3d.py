@@ -232,7 +232,7 @@ class LESEquation3D(NavierStokes3D):
                 push = (self.forcing.amplitude / (2.0 * e)) * uh * self._band
                 extra = push if extra is None else extra + push
         if extra is not None:
-            out = out + project_hat(extra * self._mask, self.grid)
+            out = out + project_hat(extra * self._mask_complex, self.grid)
         if self._steady is not None:
             out = out + self._steady
         return out

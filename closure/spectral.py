@@ -96,6 +96,17 @@ class Fourier:
         return out
 
     @cached_property
+    def k_complex(self) -> tuple[np.ndarray, ...]:
+        """``k`` as complex arrays: a complex array times these gives the bits of the product
+        with ``k`` without numpy's slow mixed-type (buffered casting) loop."""
+        return tuple(k.astype(complex) for k in self.k)
+
+    @cached_property
+    def inverse_k2_complex(self) -> np.ndarray:
+        """``inverse_k2`` as a complex array (see :attr:`k_complex`)."""
+        return self.inverse_k2.astype(complex)
+
+    @cached_property
     def modes(self) -> tuple[np.ndarray, ...]:
         """Integer mode numbers ``m`` per direction (``k = 2 pi m / L``), broadcastable."""
         return tuple(np.rint(k * L / (2 * np.pi)).astype(int)
@@ -206,8 +217,16 @@ def project_hat(velocity_hat: np.ndarray, grid: Grid) -> np.ndarray:
     """Leray projection of a spectral vector field (leading axis: components in ``grid.dims``
     order) onto divergence-free fields: u_hat - k (k . u_hat) / |k|^2."""
     F = fourier(grid)
-    kdotu = sum(k * velocity_hat[i] for i, k in enumerate(F.k))
-    return np.stack([velocity_hat[i] - k * kdotu * F.inverse_k2 for i, k in enumerate(F.k)])
+    # complex multipliers on complex data: the bits of the real ones, several times faster
+    kind = np.iscomplexobj(velocity_hat)
+    ks, inverse_k2 = ((F.k_complex, F.inverse_k2_complex) if kind else (F.k, F.inverse_k2))
+    kdotu = sum(k * velocity_hat[i] for i, k in enumerate(ks))
+    out = np.empty(velocity_hat.shape, np.result_type(velocity_hat, kdotu))
+    for i, k in enumerate(ks):  # no stacked copy
+        t = k * kdotu
+        t *= inverse_k2
+        np.subtract(velocity_hat[i], t, out=out[i])
+    return out
 
 
 def project(velocity: Sequence[np.ndarray], grid: Grid) -> tuple[np.ndarray, ...]:
@@ -306,6 +325,8 @@ def ifrk4_step(q: np.ndarray, dt: float, tendency: Callable[[np.ndarray], np.nda
         k4 = tendency(q + dt * k3)
         return q + (dt / 6.0) * (k1 + 2.0 * (k2 + k3) + k4)
     half = np.exp(0.5 * dt * linear)
+    if np.iscomplexobj(q) and not np.iscomplexobj(half):
+        half = half.astype(q.dtype)  # the same products, without mixed-type loops
     full = half * half
     k1 = tendency(q)
     k2 = tendency(half * (q + 0.5 * dt * k1))

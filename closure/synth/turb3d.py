@@ -51,6 +51,7 @@ class NavierStokes3D:
         self.fourier = fourier(grid)
         self.linear = -viscosity * self.fourier.k2
         self._mask = self.fourier.dealias if dealias else np.ones(self.fourier.spectral_shape)
+        self._mask_complex = self._mask.astype(complex)  # same products, no mixed-type loop
 
     def vorticity_hat(self, uh: np.ndarray) -> np.ndarray:
         """Spectral curl, components in (z, y, x) order."""
@@ -62,12 +63,30 @@ class NavierStokes3D:
 
     def tendency(self, uh: np.ndarray) -> np.ndarray:
         F = self.fourier
-        real = F.backward(np.concatenate([uh, self.vorticity_hat(uh)]))
+        # velocity and vorticity spectra written into one stack (no concatenated copies); the
+        # operations are those of vorticity_hat, so the bits are too
+        both = np.empty((6,) + uh.shape[1:], np.result_type(uh, 1j))
+        both[:3] = uh
+        dz, dy, dx = F.ik
+        w, v, u = uh
+        for out, (a, f, b, g) in zip(both[3:], ((dx, v, dy, u), (dz, u, dx, w), (dy, w, dz, v)),
+                                     strict=True):
+            np.multiply(a, f, out=out)
+            out -= b * g
+        real = F.backward(both)
+        del both
         (w, v, u), (oz, oy, ox) = real[:3], real[3:]
-        cross = np.stack([u * oy - v * ox,    # (u x omega)_z
-                          w * ox - u * oz,    # (u x omega)_y
-                          v * oz - w * oy])   # (u x omega)_x
-        return project_hat(F.forward(cross) * self._mask, self.grid)
+        cross = np.empty((3,) + real.shape[1:])
+        for out, (a, f, b, g) in zip(cross, ((u, oy, v, ox),     # (u x omega)_z
+                                             (w, ox, u, oz),     # (u x omega)_y
+                                             (v, oz, w, oy)),    # (u x omega)_x
+                                     strict=True):
+            np.multiply(a, f, out=out)
+            out -= b * g
+        del real
+        h = F.forward(cross)
+        h *= self._mask_complex
+        return project_hat(h, self.grid)
 
     def step(self, uh: np.ndarray, dt: float) -> np.ndarray:
         return ifrk4_step(uh, dt, self.tendency, self.linear)
