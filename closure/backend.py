@@ -25,9 +25,7 @@ Outputs are float64 numpy arrays whatever the precision.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Sequence
-from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import scipy.fft
@@ -37,9 +35,13 @@ from closure.errors import UserError
 DEVICES = ("numpy", "cpu", "cuda", "auto")
 PRECISIONS = ("float64", "float32")
 TORCH_HINT = "pip install torch==2.13.0"
-#: Elementwise work on numpy arrays of at least this many elements is split over threads
-#: (numpy releases the GIL in its loops); torch threads its own.
+#: Transforms of numpy arrays of at least this many elements use every core; smaller ones
+#: run on one thread, where waking the others costs about as much as the work.
 _THREADED_SIZE = 1 << 18
+
+
+def _workers(a) -> int:
+    return -1 if a.size >= _THREADED_SIZE else 1
 
 
 class NumpyBackend:
@@ -79,21 +81,22 @@ class NumpyBackend:
 
     def rfft(self, a):
         """Real FFT along the last axis."""
-        return scipy.fft.rfft(a, axis=-1, workers=-1)
+        return scipy.fft.rfft(a, axis=-1, workers=_workers(a))
 
     def fft(self, a, axis: int):
-        return scipy.fft.fft(a, axis=axis, workers=-1)
+        return scipy.fft.fft(a, axis=axis, workers=_workers(a))
 
     def rfftn(self, a, ndim: int):
         """Real FFT over the trailing ``ndim`` axes."""
-        return scipy.fft.rfftn(a, axes=tuple(range(a.ndim - ndim, a.ndim)), workers=-1)
+        return scipy.fft.rfftn(a, axes=tuple(range(a.ndim - ndim, a.ndim)),
+                               workers=_workers(a))
 
     def irfftn(self, a, shape: Sequence[int], axes: Sequence[int] | None = None):
         """Inverse real FFT to ``shape`` over ``axes`` (default: the trailing ones; the last
         of them is the half axis)."""
         if axes is None:
             axes = tuple(range(a.ndim - len(shape), a.ndim))
-        return scipy.fft.irfftn(a, s=tuple(shape), axes=tuple(axes), workers=-1)
+        return scipy.fft.irfftn(a, s=tuple(shape), axes=tuple(axes), workers=_workers(a))
 
     def multiply(self, a, b, out):
         return np.multiply(a, b, out=out)
@@ -115,27 +118,8 @@ class NumpyBackend:
     def einsum(self, spec: str, *arrays):
         return np.einsum(spec, *arrays, optimize=True)
 
-    def in_row_blocks(self, work, rows: int, size: int) -> None:
-        """Run ``work(slice)`` over blocks of ``rows`` leading rows, on every core when the
-        arrays (``size`` elements) are large enough to gain from it."""
-        threads = min(os.cpu_count() or 1, rows)
-        if threads < 2 or size < _THREADED_SIZE:
-            work(slice(0, rows))
-            return
-        blocks = [slice(rows * k // threads, rows * (k + 1) // threads) for k in range(threads)]
-        list(_pool(threads).map(work, blocks))
-
     def synchronize(self) -> None:
         """Wait for queued work (GPU); nothing to wait for here."""
-
-
-_POOLS: dict[int, ThreadPoolExecutor] = {}
-
-
-def _pool(threads: int) -> ThreadPoolExecutor:
-    if threads not in _POOLS:
-        _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix="closure-rows")
-    return _POOLS[threads]
 
 
 class TorchBackend(NumpyBackend):
@@ -207,9 +191,6 @@ class TorchBackend(NumpyBackend):
 
     def einsum(self, spec: str, *arrays):
         return self.torch.einsum(spec, *arrays)
-
-    def in_row_blocks(self, work, rows: int, size: int) -> None:
-        work(slice(0, rows))
 
     def synchronize(self) -> None:
         if self.device == "cuda":

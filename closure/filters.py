@@ -317,7 +317,7 @@ class CoarseGraining:
             N = self.fine.shape[-1]
             m = self._direction_multipliers[-1][code] / self.ratio
             self._backend_constants[key] = [
-                (dst, src, flip, backend.asarray(m[src][::-1] if flip else m[src]))
+                (dst, src, flip, backend.asarray(m[src]))
                 for dst, src, flip in _half_axis_pieces(N, self.ratio)]
         return self._backend_constants[key]
 
@@ -499,7 +499,7 @@ def fold_spectrum(spectrum, fine_shape: tuple[int, ...], ratio: int,
             acc += a[(*lead, slice(m * n, (m + 1) * n))]
         a = acc
     m_last = m_last * float(r) ** -d
-    pieces = [(dst, src, flip, be.asarray(m_last[src][::-1] if flip else m_last[src]))
+    pieces = [(dst, src, flip, be.asarray(m_last[src]))
               for dst, src, flip in _half_axis_pieces(N, r)]
     if d == 1:
         return _fold_half_axis(be, a, pieces, h)
@@ -549,34 +549,31 @@ def _half_axis_pieces(N: int, r: int) -> list[tuple[slice, slice, bool]]:
 
 
 def _fold_half_axis(be, a, pieces, h: int, conjugate: bool = True):
-    """``sum(F[src] * m)`` over ``pieces`` (see :func:`_half_axis_pieces`; multipliers ``m``
-    already reversed for mirrored pieces) onto a last axis of ``h`` points, mirrored pieces
-    conjugated unless ``conjugate`` is False. Products go through one scratch array, sums in
-    place, split over row blocks (every core on numpy)."""
+    """``sum(F[src] * m)`` over ``pieces`` (see :func:`_half_axis_pieces`) onto a last axis of
+    ``h`` points; a mirrored piece adds the conjugate (unless ``conjugate`` is False) of its
+    product reversed. The first whole piece is written, the others go through one scratch
+    array and are added in place: no temporary per piece."""
     lead = tuple(a.shape[:-1])
-    rows = a.reshape(-1, a.shape[-1])
-    out = be.empty((rows.shape[0], h), complex=True)
-    whole = [p for p in pieces if not p[2] and p[0] == slice(0, h)]
-    first = whole[0] if whole else None
-
-    def work(block):
-        A, O = rows[block], out[block]
-        scratch = be.empty(O.shape, complex=True)
-        if first is None:
-            O[...] = 0
-        else:
-            be.multiply(A[:, first[1]], first[3], O)
-        for dst, src, flip, m in pieces:
-            if (dst, src, flip) == first[:3] if first else False:
-                continue
-            part = be.flip_last(A[:, src]) if flip else A[:, src]
-            tmp = scratch[:, :dst.stop - dst.start]
-            be.multiply(part, m, tmp)
-            if flip and conjugate:
+    A = a.reshape(-1, a.shape[-1])
+    out = be.empty((A.shape[0], h), complex=True)
+    first = next((p for p in pieces if not p[2] and p[0] == slice(0, h)), None)
+    if first is None:
+        out[...] = 0
+    else:
+        be.multiply(A[:, first[1]], first[3], out)
+    scratch = be.empty((A.shape[0], h), complex=True)
+    for piece in pieces:
+        if piece is first:
+            continue
+        dst, src, flip, m = piece
+        tmp = scratch[:, :dst.stop - dst.start]
+        be.multiply(A[:, src], m, tmp)
+        if flip:
+            if conjugate:
                 be.conjugate_(tmp)
-            O[:, dst] += tmp
-
-    be.in_row_blocks(work, rows.shape[0], rows.shape[0] * rows.shape[1])
+            out[:, dst] += be.flip_last(tmp)
+        else:
+            out[:, dst] += tmp
     return out.reshape(*lead, h)
 
 
