@@ -321,6 +321,19 @@ class CoarseGraining:
                 for dst, src, flip in _half_axis_pieces(N, self.ratio)]
         return self._backend_constants[key]
 
+    def _lead_plan(self, direction: int, code: str, trailing: int, backend) -> list:
+        """The multiplier of ``code`` along a full (complex FFT) ``direction``, divided by
+        the ratio (the fold's 1/r) and cut into the r alias blocks of the coarse length,
+        shaped to broadcast over ``trailing`` later axes; kept per backend."""
+        key = ("lead", direction, code, trailing, backend.key)
+        if key not in self._backend_constants:
+            m = self._direction_multipliers[direction][code] / self.ratio
+            n = self.fine.shape[direction] // self.ratio
+            self._backend_constants[key] = [
+                backend.asarray(m[q * n:(q + 1) * n].reshape((n,) + (1,) * trailing))
+                for q in range(self.ratio)]
+        return self._backend_constants[key]
+
     def separable(self, f, ops: Sequence[Sequence[str]], sample: bool = True,
                   backend=None) -> list:
         """Fields under per-direction spectral operators, each then sampled (periodic grids).
@@ -401,20 +414,17 @@ class CoarseGraining:
                 continue
             if T is None:
                 T = be.fft(X, axis)
-            shape = [1] * X.ndim
-            m = self.backend_constants(be)["directions"][direction][code]
+            trailing = X.ndim - 1 - axis  # the multiplier broadcasts over the later axes
             if sample:  # full axis: the aliases k + q n are contiguous blocks
-                shape[axis] = n
-                Y = T[(*lead, slice(0, n))] * m[:n].reshape(shape)
+                blocks = self._lead_plan(direction, code, trailing, be)
+                Y = T[(*lead, slice(0, n))] * blocks[0]
                 scratch = be.empty(Y.shape, complex=True)
                 for q in range(1, r):
-                    be.multiply(T[(*lead, slice(q * n, (q + 1) * n))],
-                                m[q * n:(q + 1) * n].reshape(shape), scratch)
+                    be.multiply(T[(*lead, slice(q * n, (q + 1) * n))], blocks[q], scratch)
                     Y += scratch
-                Y *= 1.0 / r
             else:
-                shape[axis] = N
-                Y = T * m.reshape(shape)
+                m = self.backend_constants(be)["directions"][direction][code]
+                Y = T * m.reshape((N,) + (1,) * trailing)
             self._lead_directions(Y, direction - 1, members, sample, (direction, *spectral),
                                   out, be)
 
