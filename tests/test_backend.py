@@ -264,3 +264,31 @@ def test_discover_on_the_torch_backend_equals_numpy(tmp_path, monkeypatch):
     assert a.names == b.names
     np.testing.assert_allclose(b.coefficients, a.coefficients, rtol=1e-10, atol=1e-14)
     assert parse_spec({**base, "device": "cpu"}).fingerprint() == parse_spec(base).fingerprint()
+
+
+@pytest.mark.parametrize(("shape", "r"), [((12, 16), 4), ((9, 6, 15), 3), ((30,), 5)])
+def test_fold_on_torch_is_the_sampled_field(shape, r):
+    # closure.filters.fold_spectrum on the torch backend: the coarse rfftn coefficients of
+    # every r-th point (aliasing; common practice), checked against numpy.fft of the samples
+    torch = pytest.importorskip("torch", reason=NEEDS_TORCH)
+    from closure.filters import fold_spectrum
+
+    f = np.random.default_rng(len(shape)).standard_normal((2, *shape))
+    axes = tuple(range(1, 1 + len(shape)))
+    be = get_backend("cpu")
+    got = fold_spectrum(torch.as_tensor(np.fft.rfftn(f, axes=axes)), shape, r, backend=be)
+    expect = np.fft.rfftn(f[(Ellipsis, *[slice(None, None, r)] * len(shape))], axes=axes)
+    np.testing.assert_allclose(got.numpy(), expect, rtol=0, atol=1e-12)
+
+
+def test_separable_on_torch_equals_numpy():
+    pytest.importorskip("torch", reason=NEEDS_TORCH)
+    grid = Grid.regular((12, 8, 20), 2 * np.pi)
+    cg = make_coarse_graining("box", grid, 4, None, "grid")
+    f = np.random.default_rng(8).standard_normal((2, *grid.shape))
+    ops = [("f", "f", "f"), ("f", "fd", "f"), ("d", "", ""), ("", "", "fd")]
+    for sample in (True, False):
+        a = cg.separable(f, ops, sample)
+        b = cg.separable(f, ops, sample, backend=get_backend("cpu"))
+        for x, y in zip(a, b, strict=True):
+            np.testing.assert_allclose(y.numpy(), x, rtol=0, atol=1e-12 * np.abs(x).max())
