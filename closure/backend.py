@@ -198,7 +198,8 @@ class TorchBackend(NumpyBackend):
 
 
 def get_backend(device: str | None = None, precision: str = "float64") -> NumpyBackend:
-    """The backend of a ``--device`` value (see the module docstring)."""
+    """The backend of a ``--device`` value (see the module docstring); a backend is
+    returned as it is."""
     if isinstance(device, NumpyBackend):
         return device
     if device in (None, "numpy"):

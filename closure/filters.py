@@ -291,19 +291,27 @@ class CoarseGraining:
             out.append({"f": G, "d": ik, "fd": G * ik})
         return out
 
-    def backend_constants(self, backend=None) -> dict:
-        """The spectral constants as arrays of ``backend`` (closure.backend; default numpy),
-        converted once per backend and kept: ``"directions"`` (:attr:`_direction_multipliers`),
-        ``"spectral_multiplier"`` and ``"ik"`` (``1j k_d`` per direction on the ``rfftn``
-        wavenumbers, broadcastable, Nyquist mode of even lengths dropped)."""
+    def backend_constant(self, name: str, backend=None):
+        """A spectral constant as arrays of ``backend`` (closure.backend; default numpy),
+        made when first asked for and kept per backend: ``"directions"``
+        (:attr:`_direction_multipliers`), ``"spectral_multiplier"`` (fine-grid sized: only
+        the passes that filter on the fine grid ask for it) or ``"ik"`` (``1j k_d`` per
+        direction on the ``rfftn`` wavenumbers, broadcastable, Nyquist mode of even lengths
+        dropped)."""
         be = backend or _NUMPY
-        if be.key not in self._backend_constants:
-            self._backend_constants[be.key] = {
-                "directions": [{code: be.asarray(m) for code, m in d.items()}
-                               for d in self._direction_multipliers],
-                "spectral_multiplier": be.asarray(self.spectral_multiplier),
-                "ik": {d: be.asarray(v) for d, v in _rfftn_ik(self.fine).items()}}
-        return self._backend_constants[be.key]
+        key = (name, be.key)
+        if key not in self._backend_constants:
+            if name == "directions":
+                value = [{code: be.asarray(m) for code, m in d.items()}
+                         for d in self._direction_multipliers]
+            elif name == "spectral_multiplier":
+                value = be.asarray(self.spectral_multiplier)
+            elif name == "ik":
+                value = {d: be.asarray(v) for d, v in _rfftn_ik(self.fine).items()}
+            else:
+                raise ValueError(f"no spectral constant {name!r}")
+            self._backend_constants[key] = value
+        return self._backend_constants[key]
 
     @cached_property
     def _backend_constants(self) -> dict:
@@ -383,7 +391,7 @@ class CoarseGraining:
                     X = _fold_half_axis(be, rows, self._half_axis_plan(code, be),
                                         g.shape[-1] // r // 2 + 1)
                 else:
-                    X = rows * self.backend_constants(be)["directions"][last][code]
+                    X = rows * self.backend_constant("directions", be)[last][code]
             self._lead_directions(X, last - 1, members, sample, (), out, be)
         return [out[op] for op in ops]
 
@@ -423,7 +431,7 @@ class CoarseGraining:
                     be.multiply(T[(*lead, slice(q * n, (q + 1) * n))], blocks[q], scratch)
                     Y += scratch
             else:
-                m = self.backend_constants(be)["directions"][direction][code]
+                m = self.backend_constant("directions", be)[direction][code]
                 Y = T * m.reshape((N,) + (1,) * trailing)
             self._lead_directions(Y, direction - 1, members, sample, (direction, *spectral),
                                   out, be)

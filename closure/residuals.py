@@ -70,7 +70,7 @@ from closure.backend import get_backend
 from closure.derivatives import SCHEMES, derivative
 from closure.errors import UserError
 from closure.fields import CoarseSnapshot, Snapshot  # re-exported: the types live there
-from closure.filters import _NUMPY, LAND_CONVENTIONS, CoarseGraining, land_as_zero
+from closure.filters import LAND_CONVENTIONS, CoarseGraining, land_as_zero
 from closure.grid import VELOCITY_OF, Grid
 
 #: Direction pairs of the independent stress components, in output order.
@@ -374,7 +374,7 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
     transforms do not depend on which other outputs are computed, so a target has the same
     bits whatever else is asked for.
     """
-    be = backend or _NUMPY
+    be = get_backend(backend)
     fine = cg.fine
     dims = fine.dims
     dirs = directions(dims)
@@ -416,11 +416,11 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
     fine_ubar = omega = fine_omega_bar = None
     if need_force or need_sigma:
         U = be.rfftn(be.stack([vel[d] for d in dirs]), fine.ndim)
-        T = cg.backend_constants(be)["spectral_multiplier"]
+        T = cg.backend_constant("spectral_multiplier", be)
         if need_force or need_vf:
             fine_ubar = be.irfftn(U * T, fine.shape)
         if need_sigma:
-            ik = cg.backend_constants(be)["ik"]
+            ik = cg.backend_constant("ik", be)
             W = ik["x"] * U[a_of["y"]] - ik["y"] * U[a_of["x"]]  # omega = d_x v - d_y u
             omega = be.irfftn(W, fine.shape)
             if need_vf:
