@@ -25,7 +25,9 @@ Outputs are float64 numpy arrays whatever the precision.
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 import scipy.fft
@@ -38,6 +40,8 @@ TORCH_HINT = "pip install torch==2.13.0"
 #: Transforms of numpy arrays of at least this many elements use every core; smaller ones
 #: run on one thread, where waking the others costs about as much as the work.
 _THREADED_SIZE = 1 << 18
+#: Numbers per block of rows in NumpyBackend.by_row_blocks (512 KiB of float64).
+_BLOCK_NUMBERS = 1 << 16
 
 
 def _workers(a) -> int:
@@ -118,8 +122,32 @@ class NumpyBackend:
     def einsum(self, spec: str, *arrays):
         return np.einsum(spec, *arrays, optimize=True)
 
+    def by_row_blocks(self, work, rows: int, width: int) -> None:
+        """Run ``work(block)`` over slices of ``rows`` leading rows of ``width`` numbers each:
+        blocks of about 2^16 numbers (they and their spectra stay in a core's cache), on
+        every core (scipy.fft and numpy release the GIL); one block when the array is
+        small."""
+        step = max(1, _BLOCK_NUMBERS // max(width, 1))
+        blocks = [slice(a, min(a + step, rows)) for a in range(0, rows, step)]
+        threads = min(os.cpu_count() or 1, len(blocks))
+        if threads < 2 or rows * width < _THREADED_SIZE:
+            for block in blocks:
+                work(block)
+            return
+        for _ in _pool(threads).map(work, blocks):  # re-raises a block's error here
+            pass
+
     def synchronize(self) -> None:
         """Wait for queued work (GPU); nothing to wait for here."""
+
+
+_POOLS: dict[int, ThreadPoolExecutor] = {}
+
+
+def _pool(threads: int) -> ThreadPoolExecutor:
+    if threads not in _POOLS:
+        _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix="closure-rows")
+    return _POOLS[threads]
 
 
 class TorchBackend(NumpyBackend):
@@ -191,6 +219,9 @@ class TorchBackend(NumpyBackend):
 
     def einsum(self, spec: str, *arrays):
         return self.torch.einsum(spec, *arrays)
+
+    def by_row_blocks(self, work, rows: int, width: int) -> None:
+        work(slice(0, rows))  # torch threads (or runs on the GPU) each operation itself
 
     def synchronize(self) -> None:
         if self.device == "cuda":

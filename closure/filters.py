@@ -329,6 +329,28 @@ class CoarseGraining:
                 for dst, src, flip in _half_axis_pieces(N, self.ratio)]
         return self._backend_constants[key]
 
+    def _folded_rows(self, f, codes: Sequence[str], be) -> dict:
+        """``{code: the rows' real FFTs under code's last-direction multiplier, folded onto
+        the coarse wavenumbers}`` (last axis ``n // 2 + 1``). The rows go by blocks
+        (:meth:`closure.backend.NumpyBackend.by_row_blocks`): each block's spectrum is folded
+        under every code while it is in the CPU's cache, and numpy's blocks run on every
+        core; the same values, bit for bit, whatever the blocks."""
+        N = self.fine.shape[-1]
+        h = N // self.ratio // 2 + 1
+        lead = tuple(f.shape[:-1])
+        rows = f.reshape(-1, N)
+        out = {c: be.empty((rows.shape[0], h), complex=True) for c in codes}
+        plans = {c: self._half_axis_plan(c, be) for c in codes}
+
+        def work(block):
+            spectrum = be.rfft(rows[block])
+            for c in codes:
+                _fold_half_axis(be, spectrum, plans[c], h, out=out[c][block])
+
+        if codes:
+            be.by_row_blocks(work, rows.shape[0], N)
+        return {c: out[c].reshape(*lead, h) for c in codes}
+
     def _lead_plan(self, direction: int, code: str, trailing: int, backend) -> list:
         """The multiplier of ``code`` along a full (complex FFT) ``direction``, divided by
         the ratio (the fold's 1/r) and cut into the r alias blocks of the coarse length,
@@ -380,18 +402,17 @@ class CoarseGraining:
         groups: dict[str, list] = {}
         for op in sorted(set(ops)):
             groups.setdefault(op[last], []).append(op)
+        folded = self._folded_rows(f, [c for c in groups if c], be) if sample else {}
         rows = None
         for code, members in groups.items():
             if not code:  # sample the real rows first: a shorter transform, nothing to fold
                 X = be.rfft(f[..., ::r] if sample else f)
+            elif sample:
+                X = folded.pop(code)
             else:
                 if rows is None:  # real rows: 1-D Hermitian symmetry
                     rows = be.rfft(f)
-                if sample:
-                    X = _fold_half_axis(be, rows, self._half_axis_plan(code, be),
-                                        g.shape[-1] // r // 2 + 1)
-                else:
-                    X = rows * self.backend_constant("directions", be)[last][code]
+                X = rows * self.backend_constant("directions", be)[last][code]
             self._lead_directions(X, last - 1, members, sample, (), out, be)
         return [out[op] for op in ops]
 
@@ -566,14 +587,16 @@ def _half_axis_pieces(N: int, r: int) -> list[tuple[slice, slice, bool]]:
     return out
 
 
-def _fold_half_axis(be, a, pieces, h: int, conjugate: bool = True):
+def _fold_half_axis(be, a, pieces, h: int, conjugate: bool = True, out=None):
     """``sum(F[src] * m)`` over ``pieces`` (see :func:`_half_axis_pieces`) onto a last axis of
     ``h`` points; a mirrored piece adds the conjugate (unless ``conjugate`` is False) of its
     product reversed. The first whole piece is written, the others go through one scratch
-    array and are added in place: no temporary per piece."""
+    array and are added in place: no temporary per piece. ``out``: where to write (rows of
+    ``h`` points), else a new array."""
     lead = tuple(a.shape[:-1])
     A = a.reshape(-1, a.shape[-1])
-    out = be.empty((A.shape[0], h), complex=True)
+    if out is None:
+        out = be.empty((A.shape[0], h), complex=True)
     first = next((p for p in pieces if not p[2] and p[0] == slice(0, h)), None)
     if first is None:
         out[...] = 0
