@@ -141,13 +141,16 @@ class NumpyBackend:
         """Wait for queued work (GPU); nothing to wait for here."""
 
 
-_POOLS: dict[int, ThreadPoolExecutor] = {}
+_POOLS: dict[tuple[int, int], ThreadPoolExecutor] = {}
 
 
 def _pool(threads: int) -> ThreadPoolExecutor:
-    if threads not in _POOLS:
-        _POOLS[threads] = ThreadPoolExecutor(threads, thread_name_prefix="closure-rows")
-    return _POOLS[threads]
+    """A pool of ``threads`` threads of this process (a forked child, such as a queue
+    worker's task process, gets its own: the parent's threads do not exist there)."""
+    key = (os.getpid(), threads)
+    if key not in _POOLS:
+        _POOLS[key] = ThreadPoolExecutor(threads, thread_name_prefix="closure-rows")
+    return _POOLS[key]
 
 
 class TorchBackend(NumpyBackend):
