@@ -16,6 +16,16 @@ velocity component and one per independent product ``u_i u_j`` (2-D: 5, 3-D: 9),
 pass / floor is the figure (target at most 2); absolute times move with the machine's load.
 The CPU-time ratio (all threads) is printed too: on a busy machine it moves less.
 No assertion: a measurement.
+
+Measured 2026-12-02 on the shared 2-core machine while other jobs ran (load average 6 to 10,
+so the wall figures moved by a factor of two between runs; `nice python3 bench/fft_floor.py`):
+2-D 1024^2 pass / floor 1.77x, 1.78x, 1.85x and 2.10x wall (CPU 1.97x to 2.29x) with the one
+periodic pass (blocked row transforms and folds, single-thread small transforms, Gram sums by
+matrix-vector products); the code before it, alternated with it in the same minutes, 2.01x to
+2.25x wall (CPU 2.02x to 2.66x). In CPU time the pass was coarse-graining 36-41 ms, the design
+(closure.library) 12 ms, the statistics 3.5 ms and threadpoolctl's limit 2 ms, against a floor
+of 30-31.5 ms. 3-D 256^3: 1.29x wall (CPU 1.01x). Re-measure on a quiet machine before
+quoting the 2-D figure as met.
 """
 
 from __future__ import annotations
