@@ -333,8 +333,8 @@ class CoarseGraining:
         """``{code: the rows' real FFTs under code's last-direction multiplier, folded onto
         the coarse wavenumbers}`` (last axis ``n // 2 + 1``). The rows go by blocks
         (:meth:`closure.backend.NumpyBackend.by_row_blocks`): each block's spectrum is folded
-        under every code while it is in the CPU's cache, and numpy's blocks run on every
-        core; the same values, bit for bit, whatever the blocks."""
+        under every code while it is in the CPU's cache; the same values, bit for bit,
+        whatever the blocks."""
         N = self.fine.shape[-1]
         h = N // self.ratio // 2 + 1
         lead = tuple(f.shape[:-1])

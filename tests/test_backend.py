@@ -294,9 +294,9 @@ def test_separable_on_torch_equals_numpy():
             np.testing.assert_allclose(y.numpy(), x, rtol=0, atol=1e-12 * np.abs(x).max())
 
 
-def test_row_blocks_and_threads_do_not_change_a_bit(monkeypatch):
-    # numpy transforms and folds the rows by blocks spread over threads: any blocking gives
-    # the very values of one block (each row's transform and fold is its own arithmetic)
+def test_row_blocks_do_not_change_a_bit(monkeypatch):
+    # numpy transforms and folds the rows by blocks: any blocking gives the very values of
+    # one block (each row's transform and fold is its own arithmetic)
     import closure.backend as backend
 
     grid = Grid.regular((64, 96), 2 * np.pi)
@@ -306,40 +306,6 @@ def test_row_blocks_and_threads_do_not_change_a_bit(monkeypatch):
     monkeypatch.setattr(backend, "_BLOCK_NUMBERS", 1 << 30)
     whole = cg.separable(f, ops)
     monkeypatch.setattr(backend, "_BLOCK_NUMBERS", 500)  # 5 rows a block
-    monkeypatch.setattr(backend, "_THREADED_SIZE", 1)  # on every core
+    monkeypatch.setattr(backend, "_THREADED_SIZE", 1)  # each block's transform threaded
     for a, b in zip(whole, cg.separable(f, ops), strict=True):
         np.testing.assert_array_equal(a, b)
-
-
-@pytest.mark.skipif(not hasattr(__import__("os"), "fork"), reason="needs os.fork")
-def test_the_row_threads_work_in_a_forked_process(monkeypatch):
-    # a queue worker's task runs in a forked child: the parent's thread pool is not there
-    import os
-
-    import closure.backend as backend
-
-    monkeypatch.setattr(backend, "_THREADED_SIZE", 1)
-    grid = Grid.regular((32, 32), 2 * np.pi)
-    cg = make_coarse_graining("box", grid, 2, None, "grid")
-    f = np.random.default_rng(10).standard_normal(grid.shape)
-    (a,) = cg.separable(f, [("f", "f")])
-    pid = os.fork()
-    if pid == 0:  # the child: exit status 0 only if the pass ran and agreed
-        try:
-            (b,) = cg.separable(f, [("f", "f")])
-            os._exit(0 if np.array_equal(a, b) else 3)
-        except BaseException:
-            os._exit(4)
-    import signal
-    import time
-
-    for _ in range(600):  # a stale pool would hang the child: give it 60 s
-        done, status = os.waitpid(pid, os.WNOHANG)
-        if done:
-            break
-        time.sleep(0.1)
-    else:
-        os.kill(pid, signal.SIGKILL)
-        os.waitpid(pid, 0)
-        pytest.fail("the forked pass hung")
-    assert os.waitstatus_to_exitcode(status) == 0
