@@ -17,15 +17,17 @@ pass / floor is the figure (target at most 2); absolute times move with the mach
 The CPU-time ratio (all threads) is printed too: on a busy machine it moves less.
 No assertion: a measurement.
 
-Measured 2026-12-02 on the shared 2-core machine while other jobs ran (load average 6 to 10,
-so the wall figures moved by a factor of two between runs; `nice python3 bench/fft_floor.py`):
-2-D 1024^2 pass / floor 1.77x, 1.78x, 1.85x and 2.10x wall (CPU 1.97x to 2.29x) with the one
-periodic pass (blocked row transforms and folds, single-thread small transforms, Gram sums by
-matrix-vector products); the code before it, alternated with it in the same minutes, 2.01x to
-2.25x wall (CPU 2.02x to 2.66x). In CPU time the pass was coarse-graining 36-41 ms, the design
-(closure.library) 12 ms, the statistics 3.5 ms and threadpoolctl's limit 2 ms, against a floor
-of 30-31.5 ms. 3-D 256^3: 1.29x wall (CPU 1.01x). Re-measure on a quiet machine before
-quoting the 2-D figure as met.
+Measured 2026-12-02 on the shared 2-core machine while other jobs ran (`nice python3
+bench/fft_floor.py`; load average 2 to 10, so wall figures moved by up to a factor of two
+between runs, and CPU time about equalled wall time: the second core was mostly taken).
+2-D 1024^2, the one periodic pass (row transforms and folds by cache-sized blocks, small
+transforms on one thread, Gram sums by matrix-vector products), alternated run by run with
+the code before it at load average 2.3-3.4: pass / floor 1.96x, 1.77x, 2.00x (before: 2.11x,
+2.17x, 2.54x); other runs under heavier load 1.77x-2.50x wall, 1.72x-2.15x CPU. So the 2-D
+target is met only at the edge on this machine; in CPU time the pass was coarse-graining about
+33-41 ms, the design (closure.library, not this pass's code) 12 ms, the statistics 3.5 ms and
+threadpoolctl's limit 2 ms, against a floor of 26-31 ms. 3-D 256^3: 0.76x and 1.06x wall
+(CPU 0.72x, 0.79x); the code before it 1.35x (CPU 1.31x).
 """
 
 from __future__ import annotations
