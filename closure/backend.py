@@ -1,12 +1,13 @@
-"""Array backends for the hot path: numpy (default) or torch on a CPU or a GPU.
+"""The array backend seam: numpy (default) or torch on a CPU or a GPU.
 
-One code path, a small seam: :func:`coarse_grain_periodic` (the fine-grid pass of a periodic
-snapshot: FFTs, filter, spectral derivatives, products, sampling) and
-:func:`gram_statistics` (the Gram accumulation of a design) are written once against the few
-operations of :class:`NumpyBackend`; :class:`TorchBackend` supplies the same operations with
-torch tensors on ``cpu`` or ``cuda``. :func:`get_backend` picks one from a ``--device`` value::
+The periodic fine-grid pass (closure.residuals: FFTs, filters, spectral derivatives, products,
+folding onto the coarse grid, through closure.filters.CoarseGraining.separable) and the Gram
+accumulation (:func:`gram_statistics`, used by closure.stats.SufficientStats.from_design) are
+written once against the few operations of :class:`NumpyBackend`; :class:`TorchBackend`
+supplies the same operations with torch tensors on ``cpu`` or ``cuda``. :func:`get_backend`
+picks one from a ``--device`` value::
 
-    None or "numpy"   numpy + scipy.fft (the default; no torch needed)
+    None or "numpy"   numpy + scipy.fft on every core (the default; no torch needed)
     "cpu"             torch on the CPU
     "cuda"            torch on the GPU (UserError when none is visible)
     "auto"            cuda if available, else torch on the CPU, else numpy
@@ -18,31 +19,36 @@ stress ``bar(u_i u_j) - bar(u_i) bar(u_j)`` loses the ratio of the product's siz
 stress's). Measured, as the largest error over a target divided by its largest value:
 5e-6 on 2-D turbulence (64^2, ratio 4; the force and vorticity forcing, derivatives of the
 stress, are the worst), 1.5e-6 on 3-D turbulence (32^3), 7e-7 on the stress of a random
-256^3 field (tests/test_backend.py, bench/gpu_pass.py).
-
-Only periodic data with a box, Gaussian or sharp spectral filter take this path; the folding
-onto the coarse grid is done on every axis but the last (an inverse transform on the coarse
-points of those axes, then every r-th point of the last one), where closure.residuals folds
-every axis; the values agree to rounding.
+256^3 field (tests/test_backend.py bounds it by 1e-4; bench/gpu_pass.py prints it).
+Outputs are float64 numpy arrays whatever the precision.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 
 import numpy as np
 import scipy.fft
 
 from closure.errors import UserError
-from closure.filters import CoarseGraining
-from closure.grid import VELOCITY_OF, Grid
 
 DEVICES = ("numpy", "cpu", "cuda", "auto")
 PRECISIONS = ("float64", "float32")
+TORCH_HINT = "pip install torch==2.13.0"
+#: Transforms of numpy arrays of at least this many elements use every core; smaller ones
+#: run on one thread, where waking the others costs about as much as the work.
+_THREADED_SIZE = 1 << 18
+#: Numbers per block of rows in NumpyBackend.by_row_blocks (2 MiB of float64; a block's
+#: transform still uses every core).
+_BLOCK_NUMBERS = 1 << 18
+
+
+def _workers(a) -> int:
+    return -1 if a.size >= _THREADED_SIZE else 1
 
 
 class NumpyBackend:
-    """numpy arrays and scipy.fft (all cores)."""
+    """numpy arrays and scipy.fft (every core)."""
 
     name = "numpy"
     device = "cpu"
@@ -57,28 +63,72 @@ class NumpyBackend:
     def __repr__(self) -> str:
         return f"{type(self).__name__}({self.device}, {self.precision})"
 
-    def asarray(self, a) -> np.ndarray:
-        """A real or complex numpy array (or constant) in this backend's precision."""
+    @property
+    def key(self) -> tuple[str, str, str]:
+        """What the arrays of this backend depend on (caches of converted constants)."""
+        return (self.name, self.device, self.precision)
+
+    def asarray(self, a):
+        """A real or complex backend array (or constant) in this backend's precision."""
         a = np.asarray(a)
         return a.astype(self._complex if np.iscomplexobj(a) else self._real, copy=False)
 
     def numpy(self, a) -> np.ndarray:
-        """A float64 numpy copy of a backend array."""
-        return np.ascontiguousarray(a, dtype=np.float64)
+        """A float64 C-ordered numpy array of a backend array (no copy when it already is
+        one)."""
+        a = np.asarray(a, dtype=np.float64)
+        return a if a.flags.c_contiguous else np.ascontiguousarray(a)
+
+    def empty(self, shape, complex: bool = False):
+        return np.empty(shape, dtype=self._complex if complex else self._real)
+
+    def rfft(self, a):
+        """Real FFT along the last axis."""
+        return scipy.fft.rfft(a, axis=-1, workers=_workers(a))
+
+    def fft(self, a, axis: int):
+        return scipy.fft.fft(a, axis=axis, workers=_workers(a))
 
     def rfftn(self, a, ndim: int):
-        return scipy.fft.rfftn(a, axes=tuple(range(a.ndim - ndim, a.ndim)), workers=-1)
+        """Real FFT over the trailing ``ndim`` axes."""
+        return scipy.fft.rfftn(a, axes=tuple(range(a.ndim - ndim, a.ndim)),
+                               workers=_workers(a))
 
-    def irfftn(self, a, shape: Sequence[int]):
-        n = len(shape)
-        return scipy.fft.irfftn(a, s=tuple(shape), axes=tuple(range(a.ndim - n, a.ndim)),
-                                workers=-1)
+    def irfftn(self, a, shape: Sequence[int], axes: Sequence[int] | None = None):
+        """Inverse real FFT to ``shape`` over ``axes`` (default: the trailing ones; the last
+        of them is the half axis)."""
+        if axes is None:
+            axes = tuple(range(a.ndim - len(shape), a.ndim))
+        return scipy.fft.irfftn(a, s=tuple(shape), axes=tuple(axes), workers=_workers(a))
+
+    def multiply(self, a, b, out):
+        return np.multiply(a, b, out=out)
+
+    def conjugate_(self, a):
+        """Conjugate ``a`` in place."""
+        return np.conjugate(a, out=a)
+
+    def flip_last(self, a):
+        """``a`` reversed along its last axis (a view here, a copy on torch)."""
+        return a[..., ::-1]
+
+    def take(self, a, index: np.ndarray, axis: int):
+        return np.take(a, index, axis=axis)
 
     def stack(self, arrays):
         return np.stack(arrays)
 
     def einsum(self, spec: str, *arrays):
         return np.einsum(spec, *arrays, optimize=True)
+
+    def by_row_blocks(self, work, rows: int, width: int) -> None:
+        """Run ``work(block)`` over slices of ``rows`` leading rows of ``width`` numbers each,
+        in turn: blocks of about 2^18 numbers, whose spectra stay in the CPU's cache for the
+        passes after the transform, which runs on every core. (Blocks spread over a pool of
+        threads instead took more CPU time and waited on a busy machine.)"""
+        step = max(1, _BLOCK_NUMBERS // max(width, 1))
+        for start in range(0, rows, step):
+            work(slice(start, min(start + step, rows)))
 
     def synchronize(self) -> None:
         """Wait for queued work (GPU); nothing to wait for here."""
@@ -91,9 +141,11 @@ class TorchBackend(NumpyBackend):
 
     def __init__(self, device: str = "cpu", precision: str = "float64"):
         super().__init__(precision)
-        from closure.neural import require_torch
-
-        torch = require_torch()
+        try:
+            import torch
+        except ImportError:
+            raise UserError(f"--device {device} runs the fine-grid pass on torch, which is not "
+                            f"installed: {TORCH_HINT} (or use --device numpy)") from None
         if device == "cuda" and not torch.cuda.is_available():
             raise UserError("--device cuda: torch sees no GPU here; use --device cpu or auto")
         self.torch = torch
@@ -112,15 +164,39 @@ class TorchBackend(NumpyBackend):
 
     def numpy(self, a) -> np.ndarray:
         if isinstance(a, self.torch.Tensor):
-            return np.ascontiguousarray(a.detach().cpu().numpy(), dtype=np.float64)
-        return np.ascontiguousarray(a, dtype=np.float64)
+            a = a.detach().cpu().numpy()
+        return super().numpy(a)
+
+    def empty(self, shape, complex: bool = False):
+        return self.torch.empty(tuple(shape), dtype=self._complex if complex else self._real,
+                                device=self.device)
+
+    def rfft(self, a):
+        return self.torch.fft.rfft(a, dim=-1)
+
+    def fft(self, a, axis: int):
+        return self.torch.fft.fft(a, dim=axis)
 
     def rfftn(self, a, ndim: int):
         return self.torch.fft.rfftn(a, dim=tuple(range(-ndim, 0)))
 
-    def irfftn(self, a, shape: Sequence[int]):
-        n = len(shape)
-        return self.torch.fft.irfftn(a, s=tuple(shape), dim=tuple(range(-n, 0)))
+    def irfftn(self, a, shape: Sequence[int], axes: Sequence[int] | None = None):
+        if axes is None:
+            axes = tuple(range(a.ndim - len(shape), a.ndim))
+        return self.torch.fft.irfftn(a, s=tuple(shape), dim=tuple(axes))
+
+    def multiply(self, a, b, out):
+        return self.torch.mul(a, b, out=out)
+
+    def conjugate_(self, a):
+        return a.conj_physical_()
+
+    def flip_last(self, a):
+        return self.torch.flip(a, dims=(-1,))
+
+    def take(self, a, index: np.ndarray, axis: int):
+        index = self.torch.as_tensor(np.asarray(index), device=self.device)
+        return self.torch.index_select(a, axis % a.ndim, index)
 
     def stack(self, arrays):
         return self.torch.stack(list(arrays))
@@ -128,13 +204,19 @@ class TorchBackend(NumpyBackend):
     def einsum(self, spec: str, *arrays):
         return self.torch.einsum(spec, *arrays)
 
+    def by_row_blocks(self, work, rows: int, width: int) -> None:
+        work(slice(0, rows))  # torch threads (or runs on the GPU) each operation itself
+
     def synchronize(self) -> None:
         if self.device == "cuda":
             self.torch.cuda.synchronize()
 
 
 def get_backend(device: str | None = None, precision: str = "float64") -> NumpyBackend:
-    """The backend of a ``--device`` value (see the module docstring)."""
+    """The backend of a ``--device`` value (see the module docstring); a backend is
+    returned as it is."""
+    if isinstance(device, NumpyBackend):
+        return device
     if device in (None, "numpy"):
         return NumpyBackend(precision)
     if device not in DEVICES:
@@ -150,173 +232,33 @@ def get_backend(device: str | None = None, precision: str = "float64") -> NumpyB
 
 # ---------------------------------------------------------------------- Gram accumulation
 def gram_statistics(X, y, weights: Sequence[float] | None = None,
+                    point_weights: np.ndarray | None = None,
                     backend: NumpyBackend | None = None) -> dict[str, np.ndarray]:
-    """Weighted Gram statistics of a design ``X`` (C, n, p) and target ``y`` (C, n), as
-    closure.stats.SufficientStats.from_design accumulates them: ``gram`` (C, p, p) = w_c
-    X_c^T X_c, ``xy`` (C, p), ``yy`` (C,), ``x_sum`` (C, p), ``y_sum`` (C,); float64 numpy."""
+    """Weighted Gram statistics of a design ``X`` (C, n, p) and target ``y`` (C, n), the
+    arrays of closure.stats.SufficientStats (which calls this): ``gram`` (C, p, p) =
+    w_c X_c^T P X_c, ``xy`` (C, p) = w_c X_c^T P y_c, ``yy`` (C,), ``x_sum`` (C, p) =
+    w_c 1^T P X_c, ``y_sum`` (C,), with ``w`` the component ``weights`` (default 1) and ``P``
+    the diagonal of ``point_weights`` (n,) (default 1). One matrix product per statistic and
+    component on ``backend``; float64 numpy results, accumulated in float64 whatever the
+    backend's precision (these are the sums that add up across snapshots)."""
     be = backend or NumpyBackend()
-    X, y = be.asarray(X), be.asarray(y)
-    C = X.shape[0]
-    w = be.asarray(np.ones(C) if weights is None else np.asarray(weights, dtype=float))
-    out = {
-        "gram": be.einsum("c,cnp,cnq->cpq", w, X, X),
-        "xy": be.einsum("c,cn,cnp->cp", w, y, X),
-        "yy": be.einsum("c,cn,cn->c", w, y, y),
-        "x_sum": be.einsum("c,cnp->cp", w, X),
-        "y_sum": be.einsum("c,cn->c", w, y),
-    }
-    return {k: be.numpy(v) for k, v in out.items()}
-
-
-# ---------------------------------------------------------------------- the fine-grid pass
-def _directions(dims: Sequence[str]) -> tuple[str, ...]:
-    return tuple(d for d in ("x", "y", "z") if d in dims)
-
-
-def _pairs(dims: Sequence[str]) -> list[tuple[str, str]]:
-    order = (("x", "x"), ("x", "y"), ("y", "y"), ("x", "z"), ("y", "z"), ("z", "z"))
-    return [(i, j) for i, j in order if i in dims and j in dims]
-
-
-def _ik(grid: Grid) -> dict[str, np.ndarray]:
-    """``1j k_d`` on the rfftn wavenumbers, broadcastable, with the Nyquist mode of even
-    lengths set to zero (the odd-derivative convention of closure.derivatives)."""
-    out = {}
-    for a, d in enumerate(grid.dims):
-        real = a == grid.ndim - 1
-        k = grid.wavenumbers(d, real=real)
-        if grid.shape[a] % 2 == 0:
-            k[-1 if real else grid.shape[a] // 2] = 0.0
-        shape = [1] * grid.ndim
-        shape[a] = k.size
-        out[d] = (1j * k).reshape(shape)
+    if be.precision != "float64":
+        be = type(be)(*(() if be.name == "numpy" else (be.device,)), "float64")
+    C, n, p = X.shape
+    w = np.ones(C) if weights is None else np.asarray(weights, dtype=np.float64)
+    out = {"gram": np.empty((C, p, p)), "xy": np.empty((C, p)), "yy": np.empty(C),
+           "x_sum": np.empty((C, p)), "y_sum": np.empty(C)}
+    pw = None if point_weights is None else be.asarray(point_weights)
+    ones = be.asarray(np.ones(n)) if pw is None else pw
+    for c in range(C):
+        Xc, yc = be.asarray(X[c]), be.asarray(y[c])
+        Xw, yw = (Xc, yc) if pw is None else (Xc * pw[:, None], yc * pw)
+        parts = {"gram": Xw.T @ Xc,  # X^T X: one symmetric rank-k update (syrk)
+                 "xy": yc @ Xw, "yy": yw @ yc, "x_sum": ones @ Xc, "y_sum": ones @ yc}
+        for name, value in parts.items():
+            out[name][c] = w[c] * be.numpy(value)
     return out
 
 
-def periodic_target_names(dims: Sequence[str], scalars: Sequence[str] = ()) -> list[str]:
-    """Targets :func:`coarse_grain_periodic` computes (closure.residuals.target_names order)."""
-    dirs = _directions(dims)
-    out = [f"tau_{i}{j}" for i, j in _pairs(dims)] + [f"force_{i}" for i in dirs]
-    out += [f"flux_{c}_{j}" for c in scalars for j in dirs] + ["pi"]
-    if tuple(dims) == ("y", "x"):
-        out += ["vorticity_forcing", "enstrophy_transfer"]
-    return out
-
-
-def coarse_grain_periodic(fields: Mapping[str, np.ndarray], cg: CoarseGraining,
-                          scalars: Sequence[str] = (), targets: Sequence[str] | None = None,
-                          backend: NumpyBackend | None = None
-                          ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
-    """The fine-grid pass of one periodic snapshot on ``backend``: filtered fields and exact
-    subgrid terms on the coarse grid (the definitions of closure.residuals), as float64 numpy
-    arrays ``(fields, targets)``.
-
-    ``fields``: fine-grid ``u, v[, w]`` and the ``scalars``; ``targets``: names from
-    :func:`periodic_target_names` (None: all). As in closure.residuals, one forward transform
-    per field or product; a filtered (differentiated) field sampled on the coarse grid is its
-    spectrum folded onto the coarse wavenumbers of every axis but the last, then an inverse
-    transform of r^(d-1) times fewer points and every r-th point of the last axis; the stress
-    and fluxes are differences of sampled fields; the force and the vorticity forcing are
-    fine-grid derivatives of the filtered terms, which need the filtered velocity (and
-    vorticity) on the fine grid. Memory on the backend's device: the velocity, its spectra
-    and a few fine-grid work arrays.
-    """
-    fine = cg.fine
-    if not fine.periodic or cg.kind == "block":
-        raise UserError("the array-backend pass handles periodic data with a box, gaussian or "
-                        "spectral filter; other data take the numpy path")
-    every = periodic_target_names(fine.dims, scalars)
-    want = set(every if targets is None else targets)
-    unknown = sorted(want - set(every))
-    if unknown:
-        raise UserError(f"unknown target variable(s) {', '.join(unknown)}: choose from "
-                        f"{', '.join(every)}")
-    be = backend or NumpyBackend()
-    nd, shape, r = fine.ndim, fine.shape, cg.ratio
-    dirs, pairs = _directions(fine.dims), _pairs(fine.dims)
-    two_d = tuple(fine.dims) == ("y", "x")
-    T = be.asarray(cg.spectral_multiplier)
-    ik = {d: be.asarray(v) for d, v in _ik(fine).items()}
-    foldable = all(n % r == 0 for n in shape[:-1])
-    coarse_shape = tuple(n // r for n in shape[:-1]) + (shape[-1],)
-
-    def spectrum(a):
-        return be.rfftn(a, nd)
-
-    def back(h):
-        return be.irfftn(h, shape)
-
-    def coarse(h):
-        """The field of spectrum ``h`` at every r-th fine point, float64 numpy."""
-        if not foldable:
-            return be.numpy(back(h)[(Ellipsis,) + (slice(None, None, r),) * nd])
-        for a in range(nd - 1):  # alias the full-FFT axes onto the coarse wavenumbers
-            n, ax = shape[a], h.ndim - nd + a
-            h = h.reshape(*h.shape[:ax], r, n // r, *h.shape[ax + 1:]).sum(ax)
-        g = be.irfftn(h, coarse_shape) / float(r ** (nd - 1))
-        return be.numpy(g[..., ::r])
-
-    vel = {i: be.asarray(fields[VELOCITY_OF[i]]) for i in dirs}
-    U = {i: spectrum(vel[i]) for i in dirs}
-    ubar = {i: coarse(T * U[i]) for i in dirs}
-    out_fields = {VELOCITY_OF[i]: ubar[i] for i in dirs}
-    cbar = {}
-    for c in scalars:
-        cbar[c] = out_fields[c] = coarse(T * spectrum(be.asarray(fields[c])))
-    grad = {}
-    if "pi" in want or two_d:
-        grad = {(i, j): coarse(ik[j] * T * U[i]) for i in dirs for j in dirs
-                if "pi" in want or i != j}
-    if two_d:
-        out_fields["vorticity"] = grad["y", "x"] - grad["x", "y"]
-
-    out = {}
-    need_force = any(t.startswith("force_") for t in want)
-    need_vf = two_d and "vorticity_forcing" in want
-    fine_ubar = ({i: back(T * U[i]) for i in dirs} if need_force or need_vf else {})
-    if want & {*(f"tau_{i}{j}" for i, j in pairs), "pi"} or need_force:
-        force = {}
-        for i, j in pairs:
-            bar_p = T * spectrum(vel[i] * vel[j])
-            out[f"tau_{i}{j}"] = coarse(bar_p) - ubar[i] * ubar[j]
-            if need_force:
-                th = bar_p - spectrum(fine_ubar[i] * fine_ubar[j])  # tau_ij on the fine grid
-                force[i] = force.get(i, 0) + ik[j] * th
-                if i != j:
-                    force[j] = force.get(j, 0) + ik[i] * th
-                del th
-            del bar_p
-        for i in dirs if need_force else ():
-            out[f"force_{i}"] = coarse(force.pop(i))
-        if "pi" in want:
-            total = 0.0
-            for i, j in pairs:
-                strain = 0.5 * (grad[i, j] + grad[j, i])
-                total = total + (1.0 if i == j else 2.0) * out[f"tau_{i}{j}"] * strain
-            out["pi"] = -total
-    for c in scalars:
-        if not want & {f"flux_{c}_{j}" for j in dirs}:
-            continue
-        field = be.asarray(fields[c])
-        for j in dirs:
-            out[f"flux_{c}_{j}"] = coarse(T * spectrum(vel[j] * field)) - ubar[j] * cbar[c]
-    if two_d and want & {"vorticity_forcing", "enstrophy_transfer"}:
-        W = ik["x"] * U["y"] - ik["y"] * U["x"]  # omega = d_x v - d_y u
-        omega = back(W)
-        omega_bar = coarse(T * W)
-        fine_omega_bar = back(T * W) if need_vf else None
-        sigma, vf = {}, 0
-        for j in dirs:
-            bar_s = T * spectrum(vel[j] * omega)
-            sigma[j] = coarse(bar_s) - ubar[j] * omega_bar
-            if need_vf:
-                vf = vf + ik[j] * (bar_s - spectrum(fine_ubar[j] * fine_omega_bar))
-        if need_vf:
-            out["vorticity_forcing"] = coarse(vf)
-        if "enstrophy_transfer" in want:
-            out["enstrophy_transfer"] = -sum(sigma[j] * coarse(ik[j] * T * W) for j in dirs)
-    return out_fields, {k: out[k] for k in every if k in want}
-
-
-__all__ = ["DEVICES", "NumpyBackend", "TorchBackend", "coarse_grain_periodic", "get_backend",
-           "gram_statistics", "periodic_target_names"]
+__all__ = ["DEVICES", "PRECISIONS", "NumpyBackend", "TorchBackend", "get_backend",
+           "gram_statistics"]

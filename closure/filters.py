@@ -50,6 +50,7 @@ import numpy as np
 import scipy.fft
 import scipy.ndimage
 
+from closure.backend import NumpyBackend
 from closure.errors import UserError
 from closure.grid import Grid
 
@@ -62,6 +63,7 @@ LAND_CONVENTIONS = ("zero", "fluid")
 #: erfc(6 / sqrt(2)) = 2e-9: below the accuracy of float32 input data, and a footprint of
 #: about 1.7 D each side.
 GAUSSIAN_TRUNCATE = 6.0
+_NUMPY = NumpyBackend()
 
 
 def transfer_function(kind: str, k: np.ndarray, width: float) -> np.ndarray:
@@ -289,54 +291,132 @@ class CoarseGraining:
             out.append({"f": G, "d": ik, "fd": G * ik})
         return out
 
-    def separable(self, f: np.ndarray, ops: Sequence[Sequence[str]],
-                  sample: bool = True) -> list[np.ndarray]:
+    def backend_constant(self, name: str, backend=None):
+        """A spectral constant as arrays of ``backend`` (closure.backend; default numpy),
+        made when first asked for and kept per backend: ``"directions"``
+        (:attr:`_direction_multipliers`), ``"spectral_multiplier"`` (fine-grid sized: only
+        the passes that filter on the fine grid ask for it) or ``"ik"`` (``1j k_d`` per
+        direction on the ``rfftn`` wavenumbers, broadcastable, Nyquist mode of even lengths
+        dropped)."""
+        be = backend or _NUMPY
+        key = (name, be.key)
+        if key not in self._backend_constants:
+            if name == "directions":
+                value = [{code: be.asarray(m) for code, m in d.items()}
+                         for d in self._direction_multipliers]
+            elif name == "spectral_multiplier":
+                value = be.asarray(self.spectral_multiplier)
+            elif name == "ik":
+                value = {d: be.asarray(v) for d, v in _rfftn_ik(self.fine).items()}
+            else:
+                raise ValueError(f"no spectral constant {name!r}")
+            self._backend_constants[key] = value
+        return self._backend_constants[key]
+
+    @cached_property
+    def _backend_constants(self) -> dict:
+        return {}
+
+    def _half_axis_plan(self, code: str, backend) -> list:
+        """The alias pieces of the last direction's fold under ``code`` (see
+        :func:`_half_axis_pieces`), multipliers as ``backend`` arrays, kept per backend."""
+        key = ("half", code, backend.key)
+        if key not in self._backend_constants:
+            N = self.fine.shape[-1]
+            m = self._direction_multipliers[-1][code] / self.ratio
+            self._backend_constants[key] = [
+                (dst, src, flip, backend.asarray(m[src]))
+                for dst, src, flip in _half_axis_pieces(N, self.ratio)]
+        return self._backend_constants[key]
+
+    def _folded_rows(self, f, codes: Sequence[str], be) -> dict:
+        """``{code: the rows' real FFTs under code's last-direction multiplier, folded onto
+        the coarse wavenumbers}`` (last axis ``n // 2 + 1``). The rows go by blocks
+        (:meth:`closure.backend.NumpyBackend.by_row_blocks`): each block's spectrum is folded
+        under every code while it is in the CPU's cache; the same values, bit for bit,
+        whatever the blocks."""
+        N = self.fine.shape[-1]
+        h = N // self.ratio // 2 + 1
+        lead = tuple(f.shape[:-1])
+        rows = f.reshape(-1, N)
+        out = {c: be.empty((rows.shape[0], h), complex=True) for c in codes}
+        plans = {c: self._half_axis_plan(c, be) for c in codes}
+
+        def work(block):
+            spectrum = be.rfft(rows[block])
+            for c in codes:
+                _fold_half_axis(be, spectrum, plans[c], h, out=out[c][block])
+
+        if codes:
+            be.by_row_blocks(work, rows.shape[0], N)
+        return {c: out[c].reshape(*lead, h) for c in codes}
+
+    def _lead_plan(self, direction: int, code: str, trailing: int, backend) -> list:
+        """The multiplier of ``code`` along a full (complex FFT) ``direction``, divided by
+        the ratio (the fold's 1/r) and cut into the r alias blocks of the coarse length,
+        shaped to broadcast over ``trailing`` later axes; kept per backend."""
+        key = ("lead", direction, code, trailing, backend.key)
+        if key not in self._backend_constants:
+            m = self._direction_multipliers[direction][code] / self.ratio
+            n = self.fine.shape[direction] // self.ratio
+            self._backend_constants[key] = [
+                backend.asarray(m[q * n:(q + 1) * n].reshape((n,) + (1,) * trailing))
+                for q in range(self.ratio)]
+        return self._backend_constants[key]
+
+    def separable(self, f, ops: Sequence[Sequence[str]], sample: bool = True,
+                  backend=None) -> list:
         """Fields under per-direction spectral operators, each then sampled (periodic grids).
 
         ``f``: a field or stack (trailing axes ``fine.shape``). Each op gives, per direction of
         ``fine.dims``, one code: ``""`` nothing, ``"f"`` the filter, ``"d"`` the first
         derivative, ``"fd"`` both. ``("f",) * ndim`` is the filtered field; ``("f", "fd")`` on
         a (y, x) grid its x derivative. With ``sample`` every ``ratio``-th point is kept
-        (coarse grid), else the result stays on the fine grid. Returns one array per op.
+        (coarse grid), else the result stays on the fine grid. Returns one array per op, as
+        arrays of ``backend`` (a closure.backend backend; default numpy float64).
 
         The filters are tensor products, so the directions are transformed one at a time, the
         last (x) first with a real FFT of each row, and each spectrum is folded onto the coarse
-        wavenumbers (:func:`fold_spectrum`) before the next direction is transformed: the
-        complex FFTs along y (and z) act on arrays already coarse in x. A direction without a
-        code is sampled by slicing. One coarse inverse FFT per op at the end. Ops sharing codes
-        share the transforms. Exact: the values of filtering and differentiating on the fine
-        grid, then sampling, to round-off.
+        wavenumbers (:func:`fold_spectrum`'s aliasing, Hermitian half included) before the next
+        direction is transformed: the complex FFTs along y (and z) act on arrays already coarse
+        in x. A direction without a code is sampled by slicing. One coarse inverse FFT per op
+        at the end. Ops sharing codes share the transforms. Exact: the values of filtering and
+        differentiating on the fine grid, then sampling, to round-off. Each op's arithmetic
+        does not depend on the other ops asked for (the same bits).
         """
         g = self.fine
+        be = backend or _NUMPY
         if not g.periodic or self.kind == "block":
             raise ValueError("separable needs a periodic grid and a filter")
-        f = np.asarray(f, dtype=float)
-        if f.shape[f.ndim - g.ndim:] != g.shape:
-            raise ValueError(f"array of shape {f.shape} does not end with the grid shape "
-                             f"{g.shape}")
+        if tuple(f.shape[len(f.shape) - g.ndim:]) != g.shape:
+            raise ValueError(f"array of shape {tuple(f.shape)} does not end with the grid "
+                             f"shape {g.shape}")
+        f = be.asarray(f)
         ops = [tuple(op) for op in ops]
         for op in ops:
             if len(op) != g.ndim or not set(op) <= {"", "f", "d", "fd"}:
                 raise ValueError(f"op {op!r}: give one of '', 'f', 'd', 'fd' per direction of "
                                  f"{g.dims}")
-        out: dict[tuple[str, ...], np.ndarray] = {}
-        last, N, r = g.ndim - 1, g.shape[-1], self.ratio
+        out: dict[tuple[str, ...], object] = {}
+        last, r = g.ndim - 1, self.ratio
         groups: dict[str, list] = {}
         for op in sorted(set(ops)):
             groups.setdefault(op[last], []).append(op)
+        folded = self._folded_rows(f, [c for c in groups if c], be) if sample else {}
         rows = None
         for code, members in groups.items():
             if not code:  # sample the real rows first: a shorter transform, nothing to fold
-                X = scipy.fft.rfft(f[..., ::r] if sample else f, axis=-1, workers=-1)
+                X = be.rfft(f[..., ::r] if sample else f)
+            elif sample:
+                X = folded.pop(code)
             else:
                 if rows is None:  # real rows: 1-D Hermitian symmetry
-                    rows = scipy.fft.rfft(f, axis=-1, workers=-1)
-                m = self._direction_multipliers[last][code]
-                X = fold_spectrum(rows, (N,), r, m) if sample else rows * m
-            self._lead_directions(X, last - 1, members, sample, (), out)
+                    rows = be.rfft(f)
+                X = rows * self.backend_constant("directions", be)[last][code]
+            self._lead_directions(X, last - 1, members, sample, (), out, be)
         return [out[op] for op in ops]
 
-    def _lead_directions(self, X, direction, ops, sample, spectral, out) -> None:
+    def _lead_directions(self, X, direction, ops, sample, spectral, out, be) -> None:
         """Directions before the last, from the last but one to the first; ``X`` is real
         along the directions still to do, spectral along ``spectral`` and the last one."""
         g, r = self.fine, self.ratio
@@ -344,7 +424,7 @@ class CoarseGraining:
             shape = tuple(g.shape[b] // r if sample else g.shape[b]
                           for b in (*spectral, g.ndim - 1))
             axes = tuple(X.ndim - g.ndim + b for b in (*spectral, g.ndim - 1))
-            result = scipy.fft.irfftn(X, s=shape, axes=axes, workers=-1)
+            result = be.irfftn(X, shape, axes)
             for op in ops:
                 out[op] = result
             return
@@ -355,27 +435,27 @@ class CoarseGraining:
         for op in ops:
             groups.setdefault(op[direction], []).append(op)
         T = None
+        lead = (slice(None),) * axis
         for code, members in groups.items():
             if not code:  # real along this direction: sampling is slicing
-                Y = X[(slice(None),) * axis + (slice(None, None, r),)] if sample else X
-                self._lead_directions(Y, direction - 1, members, sample, spectral, out)
+                Y = X[(*lead, slice(None, None, r))] if sample else X
+                self._lead_directions(Y, direction - 1, members, sample, spectral, out, be)
                 continue
             if T is None:
-                T = scipy.fft.fft(X, axis=axis, workers=-1)
-            shape = [1] * X.ndim
-            m = self._direction_multipliers[direction][code]
+                T = be.fft(X, axis)
+            trailing = X.ndim - 1 - axis  # the multiplier broadcasts over the later axes
             if sample:  # full axis: the aliases k + q n are contiguous blocks
-                shape[axis] = n
-                Y = T[(slice(None),) * axis + (slice(0, n),)] * m[:n].reshape(shape)
+                blocks = self._lead_plan(direction, code, trailing, be)
+                Y = T[(*lead, slice(0, n))] * blocks[0]
+                scratch = be.empty(Y.shape, complex=True)
                 for q in range(1, r):
-                    Y += (T[(slice(None),) * axis + (slice(q * n, (q + 1) * n),)]
-                          * m[q * n:(q + 1) * n].reshape(shape))
-                Y *= 1.0 / r
+                    be.multiply(T[(*lead, slice(q * n, (q + 1) * n))], blocks[q], scratch)
+                    Y += scratch
             else:
-                shape[axis] = N
-                Y = T * m.reshape(shape)
+                m = self.backend_constant("directions", be)[direction][code]
+                Y = T * m.reshape((N,) + (1,) * trailing)
             self._lead_directions(Y, direction - 1, members, sample, (direction, *spectral),
-                                  out)
+                                  out, be)
 
     def __call__(self, f: np.ndarray) -> np.ndarray:
         """Coarse-grain: filter then sample, or block-average; returns a coarse-grid array."""
@@ -414,8 +494,8 @@ class CoarseGraining:
         return out
 
 
-def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int,
-                  multiplier: np.ndarray | None = None) -> np.ndarray:
+def fold_spectrum(spectrum, fine_shape: tuple[int, ...], ratio: int,
+                  multiplier=None, backend=None):
     """Coarse ``rfftn`` coefficients of every ``ratio``-th point of a real periodic field.
 
     ``spectrum`` is ``scipy.fft.rfftn`` of the fine field(s) over the trailing
@@ -427,67 +507,115 @@ def fold_spectrum(spectrum: np.ndarray, fine_shape: tuple[int, ...], ratio: int,
     spectrum, the transform of a real operator such as a filter or a derivative) multiplies
     the coefficients first, in 1-D without forming the whole product. Returns the coarse half
     spectrum, last axis ``n // 2 + 1`` long, ready for ``irfftn(..., s=coarse shape)``. Every
-    ``N`` must be a multiple of ``ratio``.
+    ``N`` must be a multiple of ``ratio``. Arrays of ``backend`` (closure.backend; default
+    numpy).
     """
+    be = backend or _NUMPY
     fine_shape = tuple(int(n) for n in fine_shape)
     d, r = len(fine_shape), int(ratio)
     if any(n % r for n in fine_shape):
         raise ValueError(f"fine shape {fine_shape} is not a multiple of the ratio {r}")
-    if spectrum.shape[spectrum.ndim - d:] != (*fine_shape[:-1], fine_shape[-1] // 2 + 1):
-        raise ValueError(f"spectrum of shape {spectrum.shape} is not the rfftn of a field of "
-                         f"shape {fine_shape}")
+    nd_ = len(spectrum.shape)
+    if tuple(spectrum.shape[nd_ - d:]) != (*fine_shape[:-1], fine_shape[-1] // 2 + 1):
+        raise ValueError(f"spectrum of shape {tuple(spectrum.shape)} is not the rfftn of a "
+                         f"field of shape {fine_shape}")
+    spectrum = be.asarray(spectrum)
     coarse = tuple(n // r for n in fine_shape)
-    a, m_last = spectrum, None
+    N, h = fine_shape[-1], coarse[-1] // 2 + 1
+    m_last = np.ones(N // 2 + 1)
+    a = spectrum
     if multiplier is not None:
-        multiplier = np.asarray(multiplier)
-        if d == 1 and multiplier.ndim <= 1:  # fused into the fold below
-            m_last = np.broadcast_to(multiplier, spectrum.shape[-1:])
+        if d == 1 and np.ndim(multiplier) <= 1:  # fused into the fold below
+            m_last = np.broadcast_to(np.asarray(multiplier), (N // 2 + 1,))
         else:
-            a = spectrum * multiplier
+            a = spectrum * be.asarray(multiplier)
     # full axes: sum the r aliases k + m n (a fixed order of additions)
     for i in range(d - 1):
-        lead, n = (slice(None),) * (a.ndim - d + i), coarse[i]
-        acc = a[(*lead, slice(0, n))].copy()
-        for m in range(1, r):
+        lead, n = (slice(None),) * (len(a.shape) - d + i), coarse[i]
+        acc = a[(*lead, slice(0, n))] + a[(*lead, slice(n, 2 * n))] if r > 1 else \
+            a[(*lead, slice(0, n))] * 1.0
+        for m in range(2, r):
             acc += a[(*lead, slice(m * n, (m + 1) * n))]
         a = acc
-    # half axis: aliases k + m n stored directly up to N // 2, mirrored above
-    N, n = fine_shape[-1], coarse[-1]
+    m_last = m_last * float(r) ** -d
+    pieces = [(dst, src, flip, be.asarray(m_last[src]))
+              for dst, src, flip in _half_axis_pieces(N, r)]
+    if d == 1:
+        return _fold_half_axis(be, a, pieces, h)
+    # the mirrored aliases are conj(F(-k_lead, N - k)): the flip k_lead -> -k_lead commutes
+    # with the fold, so it is applied on the coarse grid
+    direct = _fold_half_axis(be, a, [p for p in pieces if not p[2]], h)
+    mirrored = _fold_half_axis(be, a, [p for p in pieces if p[2]], h, conjugate=False)
+    for i in range(d - 1):
+        axis = len(mirrored.shape) - d + i
+        mirrored = be.take(mirrored, (-np.arange(coarse[i])) % coarse[i], axis)
+    be.conjugate_(mirrored)
+    direct += mirrored
+    return direct
+
+
+def _rfftn_ik(grid: Grid) -> dict[str, np.ndarray]:
+    """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even lengths
+    dropped (as closure.derivatives does for odd derivatives)."""
+    out = {}
+    for a, d in enumerate(grid.dims):
+        real = a == grid.ndim - 1
+        k = grid.wavenumbers(d, real=real)
+        if grid.shape[a] % 2 == 0:
+            k[-1 if real else grid.shape[a] // 2] = 0.0
+        shape = [1] * grid.ndim
+        shape[a] = k.size
+        out[d] = (1j * k).reshape(shape)
+    return out
+
+
+def _half_axis_pieces(N: int, r: int) -> list[tuple[slice, slice, bool]]:
+    """The aliases of a 1-D fold on the half (rfft) axis of length ``N // 2 + 1``, coarse
+    ``n = N / r``: ``(coarse slice, fine slice, mirrored)``. Direct pieces add
+    ``F[fine slice]``; mirrored ones (aliases above ``N / 2``) add the conjugate of
+    ``F[fine slice]`` reversed, by Hermitian symmetry."""
+    n = N // r
     h, top = n // 2 + 1, N // 2
-    dtype = np.result_type(a.dtype, np.complex128)
-    direct = np.zeros((*a.shape[:-1], h), dtype=dtype)
-    mirrored = np.zeros((*a.shape[:-1], h), dtype=dtype)
-    # products go through one scratch array, sums in place: the same additions in the same
-    # order as ``direct += part * m``, without a temporary per alias (the fold cost as much
-    # as the row transform)
-    scratch = np.empty_like(direct) if m_last is not None else None
-
-    def add(into, part, mult):
-        if mult is None:
-            np.add(into, part, out=into)
-        else:
-            tmp = scratch[..., :into.shape[-1]]
-            np.multiply(part, mult, out=tmp)
-            np.add(into, tmp, out=into)
-
+    out = []
     for m in range(r):
         lo = m * n
         nd = min(max(top - lo + 1, 0), h)  # aliases lo .. lo + nd - 1 are stored
         if nd:
-            add(direct[..., :nd], a[..., lo:lo + nd],
-                None if m_last is None else m_last[lo:lo + nd])
-        if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(-k_lead, N - k))
-            index = slice(N - lo - nd, N - lo - h, -1)
-            # a real operator's multiplier at -k is the conjugate of that at k
-            add(mirrored[..., nd:], a[..., index], None if m_last is None else m_last[index])
-    # the leading-axis flip k -> -k commutes with the fold: apply it on the coarse grid
-    for i in range(d - 1):
-        axis = mirrored.ndim - d + i
-        mirrored = np.take(mirrored, (-np.arange(coarse[i])) % coarse[i], axis=axis)
-    np.conjugate(mirrored, out=mirrored)
-    direct += mirrored
-    direct *= float(r) ** -d
-    return direct
+            out.append((slice(0, nd), slice(lo, lo + nd), False))
+        if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(N - k))
+            out.append((slice(nd, h), slice(N - lo - h + 1, N - lo - nd + 1), True))
+    return out
+
+
+def _fold_half_axis(be, a, pieces, h: int, conjugate: bool = True, out=None):
+    """``sum(F[src] * m)`` over ``pieces`` (see :func:`_half_axis_pieces`) onto a last axis of
+    ``h`` points; a mirrored piece adds the conjugate (unless ``conjugate`` is False) of its
+    product reversed. The first whole piece is written, the others go through one scratch
+    array and are added in place: no temporary per piece. ``out``: where to write (rows of
+    ``h`` points), else a new array."""
+    lead = tuple(a.shape[:-1])
+    A = a.reshape(-1, a.shape[-1])
+    if out is None:
+        out = be.empty((A.shape[0], h), complex=True)
+    first = next((p for p in pieces if not p[2] and p[0] == slice(0, h)), None)
+    if first is None:
+        out[...] = 0
+    else:
+        be.multiply(A[:, first[1]], first[3], out)
+    scratch = be.empty((A.shape[0], h), complex=True)
+    for piece in pieces:
+        if piece is first:
+            continue
+        dst, src, flip, m = piece
+        tmp = scratch[:, :dst.stop - dst.start]
+        be.multiply(A[:, src], m, tmp)
+        if flip:
+            if conjugate:
+                be.conjugate_(tmp)
+            out[:, dst] += be.flip_last(tmp)
+        else:
+            out[:, dst] += tmp
+    return out.reshape(*lead, h)
 
 
 def _divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:

@@ -517,8 +517,6 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
                     snap, cg, targets=plan["components"],
                     gas_constant=(plan.get("gas") or {}).get("gas_constant"),
                     scheme=spec.scheme, derivative_passes=derivative_passes(library)))
-            elif _on_backend(spec, snap, cg):
-                out.append(_backend_coarse(spec, plan, snap, cg))
             elif _by_slabs(spec, src):
                 from closure.outofcore import SourceSlabs, coarse_grain_out_of_core
 
@@ -530,7 +528,7 @@ def _coarse(spec: JobSpec, plan: Mapping, index: int, source=None):
                 out.append(coarse_grain_snapshot(
                     snap, cg, _scalars(spec), targets=plan["components"],
                     land=spec.filter.land, scheme=spec.scheme,
-                    derivative_passes=derivative_passes(library)))
+                    derivative_passes=derivative_passes(library), backend=_backend(spec)))
             del snap
     finally:
         if own:
@@ -598,23 +596,12 @@ def _check_valid_points(spec: JobSpec, cs, cg, n_terms: int) -> None:
             "--land does not change which points are left out")
 
 
-def _on_backend(spec: JobSpec, snap, cg) -> bool:
-    """Whether the fine-grid pass runs on the array backend of ``spec.device`` (torch):
-    periodic data without land, a box, Gaussian or sharp filter (closure.backend)."""
-    return (getattr(spec, "device", "numpy") != "numpy" and snap is not None
-            and snap.mask is None and cg.fine.periodic and cg.kind != "block")
+def _backend(spec: JobSpec):
+    """The array backend of ``spec.device`` (closure.backend; numpy by default): the
+    periodic pass without land and the Gram statistics run on it."""
+    from closure.backend import get_backend
 
-
-def _backend_coarse(spec: JobSpec, plan: Mapping, snap, cg):
-    """The coarse snapshot from the array backend's pass (closure.backend), which equals
-    closure.residuals.coarse_grain_snapshot's to 1e-10 in float64."""
-    from closure.backend import coarse_grain_periodic, get_backend
-    from closure.residuals import CoarseSnapshot
-
-    fields, targets = coarse_grain_periodic(snap.fields, cg, _scalars(spec),
-                                            list(plan["components"]),
-                                            get_backend(spec.device))
-    return CoarseSnapshot(fields, targets, cg.coarse, cg, snap.index, snap.time)
+    return get_backend(getattr(spec, "device", "numpy"))
 
 
 def _by_slabs(spec: JobSpec, src) -> bool:
@@ -780,9 +767,10 @@ def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | Non
             T = columns[name].reshape(p, -1).T
             extra[name] = SufficientStats.from_design(
                 T[None], exact[name].reshape(1, -1), None, library.names, (name,),
-                point_weights=None if tv is None else tv.reshape(-1))
+                point_weights=None if tv is None else tv.reshape(-1), backend=_backend(spec))
     return SufficientStats.from_design(X, y, plan["weights"], library.names, comps,
-                                       snapshot=index, extra=extra, point_weights=points)
+                                       snapshot=index, extra=extra, point_weights=points,
+                                       backend=_backend(spec))
 
 
 class HeldOut:

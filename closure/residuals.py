@@ -30,7 +30,10 @@ CoarseGraining.separable), and sampling commutes with pointwise products, so one
 transform per field or product and coarse inverse transforms give the stress, fluxes, ``pi``
 and the enstrophy transfer. Only ``force_i`` and the vorticity forcing, fine-grid
 derivatives of products of filtered fields, need the filtered velocity on the fine grid.
-``targets`` restricts the work to the target variables asked for.
+``targets`` restricts the work to the target variables asked for. This periodic pass is
+written once against the array backend seam (closure.backend): numpy and scipy.fft by
+default, torch on a CPU or GPU with ``backend=`` / ``--device`` (the same values to 1e-10 in
+float64).
 
 Block averaging has no fine-grid filtered field: the block means of the fields and products
 are formed on the coarse grid, and the derivatives in force, strain rate, vorticity and
@@ -62,8 +65,8 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 
 import numpy as np
-import scipy.fft
 
+from closure.backend import get_backend
 from closure.derivatives import SCHEMES, derivative
 from closure.errors import UserError
 from closure.fields import CoarseSnapshot, Snapshot  # re-exported: the types live there
@@ -206,7 +209,7 @@ def _wanted(targets, dims, scalars) -> list[str]:
 def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Sequence[str] = (),
                           targets: Sequence[str] | None = None, land: str = "zero",
                           scheme: str | None = None,
-                          derivative_passes: int = 1) -> CoarseSnapshot:
+                          derivative_passes: int = 1, backend=None) -> CoarseSnapshot:
     """Filter and coarsen one snapshot and compute its exact subgrid terms (coarse grid).
 
     ``scalars`` names the snapshot's scalar fields to carry (filtered) and whose fluxes may be
@@ -218,6 +221,11 @@ def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Seque
     and ``valid`` excludes the coarse points whose footprint meets land and, when ``scheme``
     (the coarse solver's: fd2 or fd4) is given, those whose coarse derivative stencils, applied
     ``derivative_passes`` times, reach an excluded point (see :func:`land_validity`).
+
+    ``backend``: a closure.backend backend or a ``--device`` value (None: numpy) for the
+    periodic pass without land (box, Gaussian, sharp filters), the one path of every device;
+    the other passes (land, block averaging, bounded grids) run on numpy. Results are float64
+    numpy arrays whatever the backend.
     """
     if isinstance(scalars, str):
         scalars = (scalars,)
@@ -231,7 +239,7 @@ def coarse_grain_snapshot(snapshot: Snapshot, cg: CoarseGraining, scalars: Seque
     if mask is not None:
         fields, out = _grid_terms(snapshot, cg, scalars, set(want), mask, land)
     elif cg.kind != "block" and cg.fine.periodic:
-        fields, out = _spectral_terms(snapshot, cg, scalars, set(want))
+        fields, out = _spectral_terms(snapshot, cg, scalars, set(want), get_backend(backend))
     else:
         fields, out = _grid_terms(snapshot, cg, scalars, set(want))
     valid = fluid = None
@@ -353,9 +361,11 @@ def land_validity(mask: np.ndarray, cg: CoarseGraining, targets: Sequence[str],
 
 
 # ---------------------------------------------------------------------- periodic: spectral
-def _spectral_terms(snapshot, cg, scalars, want):
+def _spectral_terms(snapshot, cg, scalars, want, backend=None):
     """Periodic filters: every output as per-direction spectral operators sampled onto the
-    coarse grid (CoarseGraining.separable: filter, derivative, fold, coarse inverse).
+    coarse grid (CoarseGraining.separable: filter, derivative, fold, coarse inverse), on the
+    array ``backend`` (closure.backend: numpy by default, torch with --device); float64 numpy
+    results.
 
     Sampling commutes with pointwise products, so the stress, fluxes, ``pi`` and the enstrophy
     transfer are products of sampled fields. Only the terms with a fine-grid derivative of a
@@ -364,6 +374,7 @@ def _spectral_terms(snapshot, cg, scalars, want):
     transforms do not depend on which other outputs are computed, so a target has the same
     bits whatever else is asked for.
     """
+    be = get_backend(backend)
     fine = cg.fine
     dims = fine.dims
     dirs = directions(dims)
@@ -374,21 +385,24 @@ def _spectral_terms(snapshot, cg, scalars, want):
     def op(code, j):  # ``code`` along direction j, the filter (or nothing) along the others
         return tuple(code if d == j else ("f" if "f" in code else "") for d in dims)
 
+    def sampled(f, ops):
+        return cg.separable(f, ops, backend=be)
+
     Fd = {j: op("fd", j) for j in dirs}  # d_j of the filtered field
     D = {j: op("d", j) for j in dirs}  # d_j alone
 
-    vel = {d: np.asarray(snapshot.fields[VELOCITY_OF[d]], dtype=float) for d in dirs}
+    vel = {d: be.asarray(snapshot.fields[VELOCITY_OF[d]]) for d in dirs}
     a_of = {d: a for a, d in enumerate(dirs)}
     # per component: the filtered field and the derivatives d_j bar(u_i) that are used
     ubar, grad = {}, {}
     for i in dirs:
         js = [j for j in dirs if "pi" in want or (two_d and j != i)]
-        ubar[i], *dj = cg.separable(vel[i], [F, *(Fd[j] for j in js)])
+        ubar[i], *dj = sampled(vel[i], [F, *(Fd[j] for j in js)])
         grad.update({(i, j): a for j, a in zip(js, dj, strict=True)})
     fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
     cbar = {}
     for c in scalars:  # one transform per scalar: its bits do not depend on the others
-        (cbar[c],) = cg.separable(np.asarray(snapshot.fields[c], dtype=float), [F])
+        (cbar[c],) = sampled(be.asarray(snapshot.fields[c]), [F])
         fields[c] = cbar[c]
     if two_d:
         fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
@@ -401,86 +415,62 @@ def _spectral_terms(snapshot, cg, scalars, want):
     # vorticity forcing) and the vorticity and its filter (vorticity terms)
     fine_ubar = omega = fine_omega_bar = None
     if need_force or need_sigma:
-        U = scipy.fft.rfftn(np.stack([vel[d] for d in dirs]), axes=tuple(range(1, 1 + fine.ndim)),
-                            workers=-1)
+        U = be.rfftn(be.stack([vel[d] for d in dirs]), fine.ndim)
+        T = cg.backend_constant("spectral_multiplier", be)
         if need_force or need_vf:
-            fine_ubar = _irfftn(U * cg.spectral_multiplier, fine)
+            fine_ubar = be.irfftn(U * T, fine.shape)
         if need_sigma:
-            ik = _ik(fine)
+            ik = cg.backend_constant("ik", be)
             W = ik["x"] * U[a_of["y"]] - ik["y"] * U[a_of["x"]]  # omega = d_x v - d_y u
-            omega = _irfftn(W, fine)
+            omega = be.irfftn(W, fine.shape)
             if need_vf:
-                fine_omega_bar = _irfftn(W * cg.spectral_multiplier, fine)
+                fine_omega_bar = be.irfftn(W * T, fine.shape)
             del W
         del U
 
     if want & {*stress_names(dims), "pi"} or need_force:
+        product = None
         for i, j in pairs:
-            product = vel[i] * vel[j]
+            # one work array for the products u_i u_j, in turn
+            product = (vel[i] * vel[j] if product is None
+                       else be.multiply(vel[i], vel[j], product))
             # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)) on the fine grid, sampled
             js = sorted({i, j}) if need_force else []
-            bar_p, *d_bar_p = cg.separable(product, [F, *(Fd[d] for d in js)])
+            bar_p, *d_bar_p = sampled(product, [F, *(Fd[d] for d in js)])
             out[f"tau_{i}{j}"] = bar_p - ubar[i] * ubar[j]
             if need_force:
-                d_p = cg.separable(fine_ubar[a_of[i]] * fine_ubar[a_of[j]], [D[d] for d in js])
+                d_p = sampled(fine_ubar[a_of[i]] * fine_ubar[a_of[j]], [D[d] for d in js])
                 for d, a, b in zip(js, d_bar_p, d_p, strict=True):
                     # d_j tau_ij adds to force_i; d_i tau_ij (= d_i tau_ji) to force_j
                     key = f"force_{j if d == i else i}"
                     out[key] = out[key] + (a - b) if key in out else a - b
-            del product
+        del product
     if "pi" in want:
         strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in pairs}
         out["pi"] = energy_transfer(out, strain, dims)
     for c in scalars:
         if not want & {f"flux_{c}_{j}" for j in dirs}:
             continue
-        field = np.asarray(snapshot.fields[c], dtype=float)
-        (bar_q,) = cg.separable(np.stack([vel[j] * field for j in dirs]), [F])
+        field = be.asarray(snapshot.fields[c])
+        (bar_q,) = sampled(be.stack([vel[j] * field for j in dirs]), [F])
         for a, j in enumerate(dirs):
             out[f"flux_{c}_{j}"] = bar_q[a] - ubar[j] * cbar[c]
     if need_sigma:
-        omega_bar, *d_omega_bar = cg.separable(omega, [F, *(Fd[j] for j in dirs)])
+        omega_bar, *d_omega_bar = sampled(omega, [F, *(Fd[j] for j in dirs)])
         sigma, vf = {}, 0.0
         for j in dirs:
-            bar_s, *d_bar_s = cg.separable(vel[j] * omega, [F, *([Fd[j]] if need_vf else [])])
+            bar_s, *d_bar_s = sampled(vel[j] * omega, [F, *([Fd[j]] if need_vf else [])])
             sigma[j] = bar_s - ubar[j] * omega_bar
             if need_vf:
-                (d_s,) = cg.separable(fine_ubar[a_of[j]] * fine_omega_bar, [D[j]])
+                (d_s,) = sampled(fine_ubar[a_of[j]] * fine_omega_bar, [D[j]])
                 vf = vf + (d_bar_s[0] - d_s)
         if "enstrophy_transfer" in want:
             out["enstrophy_transfer"] = -sum(sigma[j] * d_omega_bar[a]
                                              for a, j in enumerate(dirs))
         if need_vf:
             out["vorticity_forcing"] = vf
-    return fields, out
-
-
-def _irfftn(spectrum: np.ndarray, grid: Grid) -> np.ndarray:
-    axes = tuple(range(spectrum.ndim - grid.ndim, spectrum.ndim))
-    return scipy.fft.irfftn(spectrum, s=grid.shape, axes=axes, workers=-1)
-
-
-def _ik(grid: Grid) -> dict[str, np.ndarray]:
-    """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even lengths
-    dropped (as closure.derivatives does for odd derivatives)."""
-    out = {}
-    for a, d in enumerate(grid.dims):
-        real = a == grid.ndim - 1
-        k = grid.wavenumbers(d, real=real)
-        if grid.shape[a] % 2 == 0:
-            k[-1 if real else grid.shape[a] // 2] = 0.0
-        shape = [1] * grid.ndim
-        shape[a] = k.size
-        out[d] = (1j * k).reshape(shape)
-    return out
-
-
-def _products(stack: np.ndarray, pairs: Sequence[tuple[int, int]]) -> np.ndarray:
-    """``stack[a] * stack[b]`` for each pair, written into one new stack."""
-    out = np.empty((len(pairs), *stack.shape[1:]))
-    for k, (a, b) in enumerate(pairs):
-        np.multiply(stack[a], stack[b], out=out[k])
-    return out
+    return ({k: be.numpy(v) for k, v in fields.items()},
+            {k: be.numpy(v) for k, v in out.items()})
 
 
 # ---------------------------------------------------------------------- block or non-periodic

@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from closure.atomic import write_bytes
+from closure.backend import gram_statistics
 from closure.errors import InputFileError, UserError
 
 FORMAT = "closure.stats"
@@ -88,14 +89,16 @@ class SufficientStats:
                     components: Sequence[str] | None = None,
                     snapshot: int | None = None,
                     extra: Mapping[str, SufficientStats] | None = None,
-                    point_weights: np.ndarray | None = None) -> SufficientStats:
+                    point_weights: np.ndarray | None = None,
+                    backend=None) -> SufficientStats:
         """Statistics of a design ``X`` (C, n, p) and target ``y`` (C, n).
 
         ``weights`` (C,) are the component weights (default 1). ``point_weights`` (n,) are
         nonnegative weights of the points (default 1; booleans allowed: False drops a point);
         points of weight 0 are left out before anything is computed, so their values may be
-        anything. One BLAS call (``X_c.T @ X_c``) per component, in float64. Non-finite values
-        raise a UserError naming the terms.
+        anything. The sums are closure.backend.gram_statistics on ``backend`` (a
+        closure.backend backend; default numpy): one matrix product per statistic and
+        component, in float64. Non-finite values raise a UserError naming the terms.
         """
         X = np.asarray(X)
         y = np.asarray(y)
@@ -127,32 +130,8 @@ class SufficientStats:
                 n = int(keep.sum())
             if (pw == 1.0).all():
                 pw = None
-        gram = np.empty((C, p, p))
-        xy = np.empty((C, p))
-        yy = np.empty(C)
-        x_sum = np.empty((C, p))
-        y_sum = np.empty(C)
-        for c in range(C):
-            Xc = np.ascontiguousarray(X[c], dtype=np.float64)
-            yc = np.ascontiguousarray(y[c], dtype=np.float64)
-            if pw is None:
-                gram[c] = Xc.T @ Xc  # symmetric rank-k update (syrk) in one BLAS call
-                xy[c] = yc @ Xc
-                yy[c] = yc @ yc
-                x_sum[c] = Xc.sum(axis=0)
-                y_sum[c] = yc.sum()
-            else:
-                Xw = Xc * pw[:, None]
-                gram[c] = Xw.T @ Xc
-                xy[c] = yc @ Xw
-                yy[c] = (yc * pw) @ yc
-                x_sum[c] = Xw.sum(axis=0)
-                y_sum[c] = yc @ pw
-            gram[c] *= w[c]
-            xy[c] *= w[c]
-            yy[c] *= w[c]
-            x_sum[c] *= w[c]
-            y_sum[c] *= w[c]
+        sums = gram_statistics(X, y, w, pw, backend)
+        gram, xy, yy, x_sum, y_sum = (sums[k] for k in ("gram", "xy", "yy", "x_sum", "y_sum"))
         total = float(n) if pw is None else float(pw.sum())
         out = cls(terms, components, gram, xy, yy, x_sum, y_sum, w * total,
                   np.full(C, n, dtype=np.int64),
