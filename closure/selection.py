@@ -187,7 +187,8 @@ def run_candidate(base, candidate: Candidate, initial, reference=None, *,
                   **simulate_options) -> dict:
     """One candidate's coarse run (:func:`closure.les.simulate` with ``long_duration``, no
     baselines) and its record: label, n_terms, terms, transfer_weight, parameter, apriori,
-    long_run figures and score (plain JSON)."""
+    long_run figures, score, the run's physics (:func:`run_physics`) and wall seconds (plain
+    JSON)."""
     from closure.les import simulate
 
     model = candidate_model(base, candidate)
@@ -199,7 +200,20 @@ def run_candidate(base, candidate: Candidate, initial, reference=None, *,
                    "terms": candidate.active_terms,
                    "transfer_weight": candidate.transfer_weight,
                    "parameter": candidate.parameter, "apriori": dict(candidate.apriori),
-                   "long_run": figures, "score": score(figures)})
+                   "long_run": figures, "score": score(figures),
+                   "physics": run_physics(c.settings),
+                   "wall_seconds": c.runs[candidate.label].wall_seconds})
+
+
+#: the settings of a coarse run that state its physics
+PHYSICS_KEYS = ("viscosity", "drag", "hyperviscosity_order", "hypoviscosity",
+                "hypoviscosity_order", "forcing", "dealias", "assumed_physics")
+
+
+def run_physics(settings: Mapping) -> dict:
+    """The physics a coarse run used (viscosity, drag, forcing, ...) from its
+    ``Comparison.settings``, so that runs can be checked to share it."""
+    return {k: settings.get(k) for k in PHYSICS_KEYS}
 
 
 def conclude(base, candidates: Sequence[Candidate], records: Sequence[Mapping], *,

@@ -87,6 +87,11 @@ def test_selection_skips_a_candidate_that_blows_up(tmp_path):
     assert by["anti"]["long_run"]["blowup_time"] is not None
     assert by["stable"]["long_run"]["stable"] is True
     assert selection.chosen == "stable"
+    # every candidate ran the fine run's own physics, read from the file turb2d wrote
+    for r in selection.candidates:
+        assert r["physics"]["viscosity"] == 2e-3 and r["physics"]["drag"] == 0.1
+        assert r["physics"]["forcing"]["forcing_wavenumber"] == 3.0
+        assert r["physics"]["assumed_physics"] == [] and r["wall_seconds"] > 0
     assert model.coefficients_scaled.tolist() == list(candidates[1].coefficients)
     recorded = model.settings["aposteriori_selection"]
     assert recorded["chosen"] == "stable" and len(recorded["candidates"]) == 2
