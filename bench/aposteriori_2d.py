@@ -169,6 +169,32 @@ def add_selected(table, selection, chosen, dns: Path, *, duration: float, spinup
     return run_physics(c.settings)
 
 
+def second_start(chosen, dns: Path, index: int, *, duration: float, spinup: float) -> dict:
+    """The selected model and every baseline run again from snapshot ``index`` (a different
+    trajectory of the same flow, same length and reference): how much the long-run figures
+    move between two starts is the sampling noise of the comparison."""
+    c = simulate(chosen, dns, model_label=SELECTED, baselines=BASELINES, initial_index=index,
+                 long_duration=duration, spinup=spinup)
+    return {name: {m: f.get(m) for m in FIGURES} for name, f in c.long_runs.items()}
+
+
+def noise_lines(first: dict, second: dict, index: int) -> list[str]:
+    """Each run's figures from both starts and their relative change."""
+    lines = [f"second start (snapshot {index}): spectrum err and PDF dist from the first start "
+             "-> the second (relative change)"]
+    for name, g in second.items():
+        f = first[name]
+        parts = []
+        for key, label in (("spectrum_error", "spectrum err"),
+                           ("vorticity_pdf_distance", "PDF dist")):
+            a, b = f.get(key), g.get(key)
+            change = "" if a is None or b is None else f" ({100 * (b - a) / a:+.0f}%)"
+            parts.append(f"{label} {_f(a)} -> {_f(b)}{change}")
+        state = "" if g["stable"] else " (blew up)"
+        lines.append(f"  {name}{state}: {'; '.join(parts)}")
+    return lines
+
+
 def _lower(a: dict, b: dict, key: str) -> bool:
     if a.get(key) is None or not a["stable"]:
         return False
@@ -297,7 +323,12 @@ def main(argv=None) -> int:
     p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
     p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
     p.add_argument("--tolerance", type=float, default=0.1)
+    p.add_argument("--second-start", type=int, default=None,
+                   help="also run the selected model and the baselines from this snapshot "
+                        "(default: the middle one; -1: not)")
     p.add_argument("--keep", type=Path, default=None, help="keep the files in this folder")
+    p.add_argument("--reuse", action="store_true",
+                   help="reuse the fine run already in --keep (its cost from its attributes)")
     p.add_argument("--out", type=Path, default=None, help="results file stem (.json, .md)")
     a = p.parse_args(argv)
     n = a.n or (128 if a.quick else 256)
@@ -311,7 +342,10 @@ def main(argv=None) -> int:
     folder = a.keep or Path(tempfile.mkdtemp(prefix="aposteriori-bench-"))
     folder.mkdir(parents=True, exist_ok=True)
     dns = folder / "dns.nc"
-    write(turb2d(n=n, snapshots=snapshots, interval=a.interval, spinup=a.dns_spinup), dns)
+    if a.reuse and dns.is_file():
+        print(f"reusing {dns}")
+    else:
+        write(turb2d(n=n, snapshots=snapshots, interval=a.interval, spinup=a.dns_spinup), dns)
     fine = fine_cost(dns)
     print(f"fine run {n}^2: {fine['simulated_time']:g} s simulated in "
           f"{fine['wall_seconds']:.1f} s wall", flush=True)
@@ -367,6 +401,15 @@ def finish(a, dns: Path, folder: Path, out: Path, fine: dict | None, *, dims: in
     texts = [verdict_text(v) for v in verdicts]
     if chosen is None:
         texts.insert(0, "no candidate was stable for the whole run: nothing was selected")
+    index = a.second_start if a.second_start is not None else snapshots // 2
+    second, noise = None, []
+    if chosen is not None and 0 < index < snapshots:
+        second = second_start(chosen, dns, index, duration=duration, spinup=spinup)
+        noise = noise_lines(figures, second, index)
+        v2 = verdict(second, SELECTED, [b for b in BASELINES if b in second])
+        noise.append(f"  from the second start the selected model beats {len(v2['beats'])} of "
+                     f"{len(v2['against'])} baselines ({', '.join(v2['beats']) or 'none'})")
+        texts += ["", *noise]
     print()
     for text in texts:
         print(text)
@@ -389,7 +432,9 @@ def finish(a, dns: Path, folder: Path, out: Path, fine: dict | None, *, dims: in
                                                 "vorticity_quantiles", "spectrum_band_error")}
                       for k, f in figures.items()},
         "physics_same": same, "physics": physics, "cost": cost_record,
-        "verdicts": verdicts, "total_wall_seconds": time.perf_counter() - t0,
+        "verdicts": verdicts,
+        "second_start": None if second is None else {"snapshot": index, "long_runs": second},
+        "total_wall_seconds": time.perf_counter() - t0,
         "note": NOTE,
     }
     write_results(out, record, table_text, selection.table(), texts, extra)

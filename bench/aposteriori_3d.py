@@ -40,14 +40,14 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
+from aposteriori_2d import fine_cost, finish  # noqa: E402  (bench/, on the path above)
+
 from closure.grid import Grid  # noqa: E402
 from closure.les3d import Forcing3D, LESEquation3D  # noqa: E402
 from closure.spectral import fourier  # noqa: E402
 from closure.synth import write  # noqa: E402
 from closure.synth._common import make_dataset, run_cost  # noqa: E402
 from closure.synth.turb3d import initial_velocity_hat  # noqa: E402
-
-from aposteriori_2d import fine_cost, finish  # noqa: E402  (bench/, on the path above)
 
 
 def forced_dns(path: Path, n: int, snapshots: int, interval: float, spinup: float,
@@ -98,6 +98,9 @@ def main(argv=None) -> int:
     p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
     p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
     p.add_argument("--tolerance", type=float, default=0.1)
+    p.add_argument("--second-start", type=int, default=None,
+                   help="also run the selected model and the baselines from this snapshot "
+                        "(default: the middle one; -1: not)")
     p.add_argument("--keep", type=Path, default=None)
     p.add_argument("--reuse", action="store_true",
                    help="reuse the fine run already in --keep (its cost from its attributes)")
