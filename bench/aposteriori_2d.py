@@ -16,14 +16,18 @@ Steps, all in this process:
    library): the plain a priori model, the a priori model with the energy transfer in the fit
    (transfer weight 1), and the model selected by coarse runs
    (:func:`closure.selection.discover_and_select`, what ``closure discover --select
-   aposteriori`` runs): the sparsest candidates of the sparse paths at ``--weights`` each run
-   for the bench's duration and spin-up (``--selection-turnovers`` shortens them);
+   aposteriori`` runs): the sparsest candidates of the sparse paths at ``--weights`` and
+   their dynamic mixed companions each run for the bench's duration and spin-up
+   (``--selection-turnovers`` shortens them);
 4. long coarse runs (``closure.les.simulate`` with ``long_duration``) of the a priori models
    and every baseline from the first snapshot: ``--spinup-turnovers`` of spin-up, then
    ``--turnovers`` turnover times of statistics compared with every snapshot of the filtered
    DNS. The selected model's row is its run in the selection (same start, physics, duration,
    spin-up and sampling as the table's runs) unless the selection ran shorter, then it is
-   rerun at full length.
+   rerun at full length;
+5. the selected model and every baseline again from a second snapshot (``--second-start``,
+   default the middle one): how far the figures move between two starts is the sampling
+   noise against which the verdict has to be read.
 
 Prints the selection's candidates, the table of every run's long-run figures, the coarse-to-fine
 cost ratio and the verdict against the goal (stable for the whole run, lower long-run spectrum

@@ -1,6 +1,7 @@
 """Benchmark: long a posteriori runs of 3-D closures, the model chosen by coarse runs among them.
 
-    python bench/aposteriori_3d.py            # 128^3 -> 32^3, 20 turnovers (hours on 2 cores)
+    python bench/aposteriori_3d.py            # 128^3 -> 32^3, 20 turnovers (hours on 2 cores:
+                                              # the 128^3 fine run alone takes ~3 s of CPU a step)
     python bench/aposteriori_3d.py --quick    # 64^3 -> 16^3, 10 turnovers (minutes)
 
 Steps, all in this process:
@@ -15,10 +16,10 @@ Steps, all in this process:
 3. discovery (Gaussian filter, width 8 fine spacings, ratio 4, the default 3-D stress
    library): plain, with the energy transfer (weight 1), and selected by coarse runs
    (``closure.selection.discover_and_select``) among the sparsest candidates of the paths at
-   ``--weights``;
+   ``--weights`` and their dynamic mixed companions;
 4. long coarse runs (``closure.les.simulate``) of the models and every baseline:
    ``--spinup-turnovers`` of spin-up then ``--turnovers`` of statistics, compared with every
-   filtered snapshot.
+   filtered snapshot; then the selected model and the baselines from a second snapshot.
 
 Prints and writes (bench/results/aposteriori_3d[-quick].{json,md}) what the 2-D bench does
 (bench/aposteriori_2d.py holds the shared steps). No assertion: a measurement. A priori skill
