@@ -933,7 +933,39 @@ class Comparison:
         text = [*_aligned([head, *lines]), legend]
         if self.long_runs:
             text += ["", self.long_run_table()]
+        cost = self.cost_text()
+        if cost:
+            text += ["", cost]
         return "\n".join(text)
+
+    def cost_ratios(self) -> dict[str, float]:
+        """Per run: the fine run's wall seconds per simulated second over the coarse run's,
+        when the initial file states the fine run's cost (``wall_seconds`` and
+        ``simulated_time``, as closure.synth writes them); {} otherwise."""
+        fine = self.settings.get("fine_cost") or {}
+        if not (fine.get("wall_seconds") and fine.get("simulated_time")):
+            return {}
+        fine_rate = float(fine["wall_seconds"]) / float(fine["simulated_time"])
+        out = {}
+        for name, t in self.runs.items():
+            simulated = float(t.times[-1] - t.times[0]) if len(t.times) > 1 else 0.0
+            if name in self.long_runs:
+                simulated = float(self.long_runs[name].get("reached") or simulated)
+            if t.wall_seconds and simulated > 0:
+                out[name] = fine_rate / (t.wall_seconds / simulated)
+        return out
+
+    def cost_text(self) -> str:
+        """One line on the coarse runs' cost against the fine run's ("" when not known)."""
+        ratios = self.cost_ratios()
+        if not ratios:
+            return ""
+        fine = self.settings["fine_cost"]
+        parts = ", ".join(f"{name} {r:.3g}" for name, r in ratios.items())
+        return (f"cost: fine run {fine['wall_seconds']:.4g} s wall for "
+                f"{fine['simulated_time']:.4g} s simulated (as its file states); wall time per "
+                f"simulated second, fine over coarse: {parts} (times measured on different "
+                "runs and perhaps machines)")
 
     def long_run_table(self) -> str:
         """The long-run figures, one row per run (and the reference's quantiles)."""

@@ -408,15 +408,17 @@ def companions_for(spec, plan: Mapping, stats: Mapping, base, candidates: Sequen
     """:func:`eddy_companions` of a job's candidates, the Germano constant taken over the
     training snapshots of the file ``initial`` (coarse-grained as the model was), each with
     its held-out a priori scores."""
-    from closure.les import coarse_data, model_filter
+    from closure.les import _open_input, coarse_data, model_filter
 
     f = model_filter(base) or {"kind": "gaussian", "ratio": 4, "width": None}
+    src, _ = _open_input(initial, options)
+    with src:
+        count = len(src)
+    # the training snapshots that lie in this file (all of it when none does)
+    train = [i for i in sorted(int(i) for i in plan["train"]) if i < count]
     data = coarse_data(initial, f["kind"], f["ratio"], f["width"], "grid",
-                       input_options=options)
-    train = {int(i) for i in plan["train"]}
-    fields = [x for i, x in zip(data.indices, data.fields, strict=True) if int(i) in train]
-    companions = eddy_companions(base, candidates, fields or data.fields, data.grid,
-                                 data.delta)
+                       train or None, options)
+    companions = eddy_companions(base, candidates, data.fields, data.grid, data.delta)
     return with_test_scores(companions, plan, stats) if companions else []
 
 

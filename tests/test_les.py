@@ -456,6 +456,18 @@ def test_simulate_with_baselines_and_write(small_dns, tmp_path):
     assert "a priori" in d["note"].lower()
     table = c.table()
     assert "gradient-clipped" in table and "E[1-2]" in table
+    # turb2d states the fine run's cost: each run's ratio is (fine wall s per simulated s) /
+    # (coarse wall s per simulated s), computed here from the file and the runs' times
+    fine = ds.attrs["wall_seconds"] / ds.attrs["simulated_time"]
+    ratios = c.cost_ratios()
+    assert set(ratios) == set(c.runs)
+    for name, t in c.runs.items():
+        coarse = t.wall_seconds / (t.times[-1] - t.times[0])
+        assert ratios[name] == pytest.approx(fine / coarse, rel=1e-12)
+    assert "cost: fine run" in table and "as its file states" in table
+    # a file that does not state it: no ratio and no cost line
+    c.settings["fine_cost"] = {"steps": 3}
+    assert c.cost_ratios() == {} and c.cost_text() == "" and "cost:" not in c.table()
 
 
 def test_cli_runs_and_writes_json(small_dns, tmp_path, capsys):
