@@ -1,6 +1,7 @@
-"""Benchmark: long a posteriori runs of a discovered 3-D closure against the classic baselines.
+"""Benchmark: long a posteriori runs of 3-D closures, the model chosen by coarse runs among them.
 
-    python bench/aposteriori_3d.py            # 128^3 -> 32^3 (hours on two cores)
+    python bench/aposteriori_3d.py            # 128^3 -> 32^3, 20 turnovers (hours on 2 cores:
+                                              # the 128^3 fine run alone takes ~3 s of CPU a step)
     python bench/aposteriori_3d.py --quick    # 64^3 -> 16^3, 10 turnovers (minutes)
 
 Steps, all in this process:
@@ -9,18 +10,21 @@ Steps, all in this process:
    (``closure.les3d.LESEquation3D`` on the fine grid: the turb3d operators plus
    constant-power forcing of the shells 1..2), from the turb3d initial spectrum,
    ``--snapshots`` snapshots every ``--interval`` s after ``--dns-spinup`` s, written with
-   its physics in the attributes;
-2. discovery (``closure discover``): Gaussian filter, width 8 fine spacings, ratio 4, the
-   default 3-D stress library;
-3. the large-eddy turnover time ``l / u'`` of the filtered snapshots (``l = int E/k dk /
+   its physics and its cost (wall seconds, simulated time) in the attributes;
+2. the large-eddy turnover time ``l / u'`` of the filtered snapshots (``l = int E/k dk /
    int E dk``, ``u' = sqrt(2 E / 3)``);
-4. long coarse runs (``closure.les.simulate``) of the model and every baseline:
+3. discovery (Gaussian filter, width 8 fine spacings, ratio 4, the default 3-D stress
+   library): plain, with the energy transfer (weight 1), and selected by coarse runs
+   (``closure.selection.discover_and_select``) among the sparsest candidates of the paths at
+   ``--weights`` and their dynamic mixed companions;
+4. long coarse runs (``closure.les.simulate``) of the models and every baseline:
    ``--spinup-turnovers`` of spin-up then ``--turnovers`` of statistics, compared with every
-   filtered snapshot.
+   filtered snapshot; then the selected model and the baselines from a second snapshot.
 
-Prints the table of the long-run figures and the coarse-to-fine cost ratio. No assertion: a
-measurement. A priori skill does not guarantee a stable or accurate coarse simulation, and
-long-run statistics on one flow are evidence, not a guarantee.
+Prints and writes (bench/results/aposteriori_3d[-quick].{json,md}) what the 2-D bench does
+(bench/aposteriori_2d.py holds the shared steps). No assertion: a measurement. A priori skill
+does not guarantee a stable or accurate coarse simulation, and long-run statistics on one
+flow are evidence, not a guarantee.
 """
 
 from __future__ import annotations
@@ -35,19 +39,16 @@ import numpy as np
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "bench"))
 
-from closure.cli import main as cli  # noqa: E402
+from aposteriori_2d import fine_cost, finish  # noqa: E402  (bench/, on the path above)
+
 from closure.grid import Grid  # noqa: E402
-from closure.les import coarse_data, simulate  # noqa: E402
 from closure.les3d import Forcing3D, LESEquation3D  # noqa: E402
-from closure.model import ClosureModel  # noqa: E402
-from closure.spectral import energy_spectrum, fourier  # noqa: E402
+from closure.spectral import fourier  # noqa: E402
 from closure.synth import write  # noqa: E402
-from closure.synth._common import make_dataset  # noqa: E402
+from closure.synth._common import make_dataset, run_cost  # noqa: E402
 from closure.synth.turb3d import initial_velocity_hat  # noqa: E402
-
-RATIO, WIDTH = 4, 8.0
-BASELINES = ["none", "smagorinsky", "dynamic", "gradient", "gradient-clipped"]
 
 
 def forced_dns(path: Path, n: int, snapshots: int, interval: float, spinup: float,
@@ -75,21 +76,10 @@ def forced_dns(path: Path, n: int, snapshots: int, interval: float, spinup: floa
     wall = time.perf_counter() - t
     attrs = {"title": "forced 3-D turbulence (closure bench data)", "solver": "les3d-dns",
              "viscosity": viscosity, "drag": 0.0, "hyperviscosity_order": 1,
-             "hypoviscosity": 0.0, **forcing.to_attrs(), "dealias": True}
+             "hypoviscosity": 0.0, **forcing.to_attrs(), "dealias": True,
+             **run_cost(wall, times[-1])}
     write(make_dataset(grid, times, frames, attrs), path)
     return wall
-
-
-def turnover_time(path: Path) -> float:
-    data = coarse_data(path, "gaussian", RATIO, WIDTH)
-    out = []
-    for f in data.fields:
-        k, E = energy_spectrum((f["u"], f["v"], f["w"]), data.grid)
-        k, E = k[1:], E[1:]
-        dk = k[1] - k[0]
-        energy = float(np.sum(E)) * dk
-        out.append(float(np.sum(E / k)) * dk / energy / np.sqrt(2 * energy / 3))
-    return float(np.mean(out))
 
 
 def main(argv=None) -> int:
@@ -103,51 +93,39 @@ def main(argv=None) -> int:
     p.add_argument("--power", type=float, default=0.1, help="injected power (m2 s-3)")
     p.add_argument("--turnovers", type=float, default=None)
     p.add_argument("--spinup-turnovers", type=float, default=2.0)
+    p.add_argument("--selection-turnovers", type=float, default=None,
+                   help="statistics length of the selection's candidate runs (default: the "
+                        "table's)")
+    p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
+    p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
+    p.add_argument("--tolerance", type=float, default=0.1)
+    p.add_argument("--second-start", type=int, default=None,
+                   help="also run the selected model and the baselines from this snapshot "
+                        "(default: the middle one; -1: not)")
     p.add_argument("--keep", type=Path, default=None)
     p.add_argument("--reuse", action="store_true",
-                   help="reuse the fine run and model already in --keep (cost not measured)")
+                   help="reuse the fine run already in --keep (its cost from its attributes)")
+    p.add_argument("--out", type=Path, default=None, help="results file stem (.json, .md)")
     a = p.parse_args(argv)
     n = a.n or (64 if a.quick else 128)
     nu = a.viscosity or (0.008 if n <= 64 else 0.003)
-    turnovers = a.turnovers or (10.0 if a.quick else 100.0)
+    turnovers = a.turnovers or (10.0 if a.quick else 20.0)
+    weights = [float(w) for w in a.weights.split(",")]
+    out = a.out or ROOT / "bench" / "results" / ("aposteriori_3d" + ("-quick" if a.quick
+                                                                     else ""))
     folder = a.keep or Path(tempfile.mkdtemp(prefix="aposteriori3d-bench-"))
     folder.mkdir(parents=True, exist_ok=True)
     dns = folder / "dns3.nc"
-    model_path = folder / "model3.json"
-    fine_span = a.dns_spinup + (a.snapshots - 1) * a.interval
-    fine_wall = None
-    if a.reuse and dns.is_file() and model_path.is_file():
-        print(f"reusing {dns} and {model_path}")
+    if a.reuse and dns.is_file():
+        print(f"reusing {dns}")
     else:
-        fine_wall = forced_dns(dns, n, a.snapshots, a.interval, a.dns_spinup, nu, a.power)
-        print(f"fine run {n}^3 (nu {nu:g}, power {a.power:g}): {fine_span:g} s simulated in "
-              f"{fine_wall:.1f} s wall ({fine_wall / fine_span:.3g} s per simulated s)")
-        if cli(["discover", str(dns), "-o", str(model_path), "--filter", "gaussian", "--width",
-                str(WIDTH), "--ratio", str(RATIO), "-q"]) != 0:
-            print("discover failed")
-            return 1
-    model = ClosureModel.load(model_path)
-    print(f"model: {', '.join(t.name for t in model.active_terms)}")
-    T = turnover_time(dns)
-    spinup = a.spinup_turnovers * T
-    duration = spinup + turnovers * T
-    print(f"large-eddy turnover time {T:.3g} s; long runs of {duration:.4g} s")
-    t = time.perf_counter()
-    c = simulate(model, dns, baselines=BASELINES, long_duration=duration, spinup=spinup)
-    coarse_rate = (time.perf_counter() - t) / len(c.long_runs) / duration
-    print()
-    print(c.long_run_table())
-    print()
-    if fine_wall is None:
-        print(f"cost: {coarse_rate:.3g} s wall per simulated s per coarse run (fine run not "
-              "measured: reused)")
-    else:
-        print(f"cost: {coarse_rate:.3g} s wall per simulated s per coarse run against "
-              f"{fine_wall / fine_span:.3g} for the fine run (ratio "
-              f"{(fine_wall / fine_span) / coarse_rate:.3g})")
-    print("A priori skill does not guarantee a stable or accurate coarse simulation; these "
-          "long-run statistics are evidence on this flow, not a guarantee.")
-    return 0
+        forced_dns(dns, n, a.snapshots, a.interval, a.dns_spinup, nu, a.power)
+    fine = fine_cost(dns)
+    print(f"fine run {n}^3 (nu {nu:g}, power {a.power:g}): {fine['simulated_time']:g} s "
+          f"simulated in {fine['wall_seconds']:.1f} s wall", flush=True)
+    return finish(a, dns, folder, out, fine, dims=3, n=n, snapshots=a.snapshots,
+                  turnovers=turnovers, spin_turnovers=a.spinup_turnovers, weights=weights,
+                  components=("u", "v", "w"))
 
 
 if __name__ == "__main__":

@@ -207,6 +207,51 @@ class DynamicSmagorinsky:
         return _tau(s, -2 * nu_t)
 
 
+def dynamic_mixed_constant(model, snapshots: Sequence[Mapping[str, np.ndarray]], grid: Grid,
+                           delta: float, test_ratio: float = 2.0) -> float:
+    """The eddy-viscosity constant C of the mixed closure ``model - 2 C D^2 |S| S_ij`` from the
+    Germano identity on resolved fields (the dynamic mixed model of Zang, Street & Koseff 1993;
+    Vreman, Geurts & Kuerten 1994), Lilly's least squares over every point of ``snapshots``:
+
+        C = <(L_ij - H_ij) M_ij> / <M_ij M_ij>,
+        H_ij = tau^model_ij(hat u; a D) - hat(tau^model_ij(u; D))
+
+    with L, M and the test filter (Gaussian, ratio ``a``) of :class:`DynamicSmagorinsky`.
+    ``model`` is a stress closure with ``with_delta`` (closure.model.ClosureModel) or None
+    (then C is the dynamic Smagorinsky constant). Unclipped; 0 when M vanishes."""
+    dyn = DynamicSmagorinsky(delta, test_ratio)
+    test_model = None if model is None else model.with_delta(test_ratio * model.delta)
+    names, dirs, keys = velocity_names(grid), _directions(grid), _stress_keys(grid)
+    num = den = 0.0
+    for fields in snapshots:
+        f = {n: np.asarray(fields[n], dtype=float) for n in names}
+        _check_fields(f, grid)
+        vel = dict(zip(dirs, (f[n] for n in names), strict=True))
+        s = strain_rate(velocity_gradient(f, grid), grid)
+        mag = strain_magnitude(s, grid)
+        stack = ([vel[d] for d in dirs] + [vel[k[0]] * vel[k[1]] for k in keys]
+                 + [mag * s[k] for k in keys])
+        if model is not None:
+            tau = model.evaluate(f, grid)
+            stack += [tau[f"tau_{k}"] for k in keys]
+        hat = dyn.test_filter(np.stack(stack), grid)
+        nd, nk = len(dirs), len(keys)
+        vh = dict(zip(dirs, hat[:nd], strict=True))
+        fh = dict(zip(names, hat[:nd], strict=True))
+        hs = strain_rate(velocity_gradient(fh, grid), grid)
+        hmag = strain_magnitude(hs, grid)
+        a2, d2 = test_ratio**2, delta**2
+        resid = {k: hat[nd + a] - vh[k[0]] * vh[k[1]] for a, k in enumerate(keys)}
+        if model is not None:
+            tau_test = test_model.evaluate(fh, grid)
+            resid = {k: resid[k] - (tau_test[f"tau_{k}"] - hat[nd + 2 * nk + a])
+                     for a, k in enumerate(keys)}
+        M = {k: 2 * d2 * (hat[nd + nk + a] - a2 * hmag * hs[k]) for a, k in enumerate(keys)}
+        num += float(np.mean(contract(resid, M, grid)))
+        den += float(np.mean(contract(M, M, grid)))
+    return num / den if den > 0 else 0.0
+
+
 class GradientModel:
     """tau_ij = (D^2 / 12) d_k u_i d_k u_j; with ``clip`` backscatter (-tau_ij S_ij < 0) is
     set to zero point by point."""
@@ -888,7 +933,39 @@ class Comparison:
         text = [*_aligned([head, *lines]), legend]
         if self.long_runs:
             text += ["", self.long_run_table()]
+        cost = self.cost_text()
+        if cost:
+            text += ["", cost]
         return "\n".join(text)
+
+    def cost_ratios(self) -> dict[str, float]:
+        """Per run: the fine run's wall seconds per simulated second over the coarse run's,
+        when the initial file states the fine run's cost (``wall_seconds`` and
+        ``simulated_time``, as closure.synth writes them); {} otherwise."""
+        fine = self.settings.get("fine_cost") or {}
+        if not (fine.get("wall_seconds") and fine.get("simulated_time")):
+            return {}
+        fine_rate = float(fine["wall_seconds"]) / float(fine["simulated_time"])
+        out = {}
+        for name, t in self.runs.items():
+            simulated = float(t.times[-1] - t.times[0]) if len(t.times) > 1 else 0.0
+            if name in self.long_runs:
+                simulated = float(self.long_runs[name].get("reached") or simulated)
+            if t.wall_seconds and simulated > 0:
+                out[name] = fine_rate / (t.wall_seconds / simulated)
+        return out
+
+    def cost_text(self) -> str:
+        """One line on the coarse runs' cost against the fine run's ("" when not known)."""
+        ratios = self.cost_ratios()
+        if not ratios:
+            return ""
+        fine = self.settings["fine_cost"]
+        parts = ", ".join(f"{name} {r:.3g}" for name, r in ratios.items())
+        return (f"cost: fine run {fine['wall_seconds']:.4g} s wall for "
+                f"{fine['simulated_time']:.4g} s simulated (as its file states); wall time per "
+                f"simulated second, fine over coarse: {parts} (times measured on different "
+                "runs and perhaps machines)")
 
     def long_run_table(self) -> str:
         """The long-run figures, one row per run (and the reference's quantiles)."""

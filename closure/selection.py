@@ -18,6 +18,12 @@ candidates' records, and return a :class:`Selection` that records every candidat
 a priori and a posteriori figures. The candidates start from the first snapshot of the job's
 first input and are compared with the statistics of every snapshot of that input. Long-run
 statistics on one flow are evidence, not a guarantee.
+
+Candidates fitted a priori match the filter's subgrid stress; a long coarse run also needs the
+transfer across its own truncation, which no a priori target holds. So each candidate without
+the eddy-viscosity term also runs with it, its coefficient from the Germano identity on the
+resolved training snapshots (the dynamic mixed model; :func:`eddy_companions`), fixed before
+any run; the rule above decides between them like any other candidates.
 """
 
 from __future__ import annotations
@@ -187,7 +193,8 @@ def run_candidate(base, candidate: Candidate, initial, reference=None, *,
                   **simulate_options) -> dict:
     """One candidate's coarse run (:func:`closure.les.simulate` with ``long_duration``, no
     baselines) and its record: label, n_terms, terms, transfer_weight, parameter, apriori,
-    long_run figures and score (plain JSON)."""
+    long_run figures, score, the run's physics (:func:`run_physics`) and wall seconds (plain
+    JSON)."""
     from closure.les import simulate
 
     model = candidate_model(base, candidate)
@@ -199,7 +206,20 @@ def run_candidate(base, candidate: Candidate, initial, reference=None, *,
                    "terms": candidate.active_terms,
                    "transfer_weight": candidate.transfer_weight,
                    "parameter": candidate.parameter, "apriori": dict(candidate.apriori),
-                   "long_run": figures, "score": score(figures)})
+                   "long_run": figures, "score": score(figures),
+                   "physics": run_physics(c.settings),
+                   "wall_seconds": c.runs[candidate.label].wall_seconds})
+
+
+#: the settings of a coarse run that state its physics
+PHYSICS_KEYS = ("viscosity", "drag", "hyperviscosity_order", "hypoviscosity",
+                "hypoviscosity_order", "forcing", "dealias", "assumed_physics")
+
+
+def run_physics(settings: Mapping) -> dict:
+    """The physics a coarse run used (viscosity, drag, forcing, ...) from its
+    ``Comparison.settings``, so that runs can be checked to share it."""
+    return {k: settings.get(k) for k in PHYSICS_KEYS}
 
 
 def conclude(base, candidates: Sequence[Candidate], records: Sequence[Mapping], *,
@@ -311,33 +331,102 @@ def plan_from_stats(spec, plan: Mapping, stats: Mapping, *,
     ``transfer_weights`` fitted on the plan's training snapshots (closure.regression.
     fit_closure, as the reduce fits), one candidate per support (:func:`plan_candidates`),
     each with its held-out a priori scores under ``apriori["test"]``."""
-    from closure.pipeline import _flat_scores
     from closure.regression import fit_closure
-    from closure.scores import prediction_scores
-    from closure.stats import SufficientStats
 
     if not transfer_weights or any(not (w >= 0) for w in transfer_weights):
         raise OptionError(f"transfer weights must be >= 0, got {list(transfer_weights)}")
     train = [int(i) for i in plan["train"]]
     stats = {int(k): v for k, v in stats.items()}
-    test_stats = SufficientStats.merge([stats[int(i)] for i in sorted(plan["test"])])
     fits = {float(w): fit_closure(stats, train, spec.fit.method, transfer_weight=float(w),
                                   n_folds=spec.fit.folds, resamples=0, seed=spec.fit.seed,
                                   rule=spec.fit.selection)
             for w in dict.fromkeys(float(w) for w in transfer_weights)}
+    return with_test_scores(plan_candidates(fits, max_per_path), plan, stats)
+
+
+def with_test_scores(candidates: Sequence[Candidate], plan: Mapping, stats: Mapping
+                     ) -> list[Candidate]:
+    """The candidates with their held-out a priori scores (the plan's test snapshots'
+    statistics) under ``apriori["test"]``."""
+    from closure.pipeline import _flat_scores
+    from closure.scores import prediction_scores
+    from closure.stats import SufficientStats
+
+    stats = {int(k): v for k, v in stats.items()}
+    test_stats = SufficientStats.merge([stats[int(i)] for i in sorted(plan["test"])])
     out = []
-    for c in plan_candidates(fits, max_per_path):
+    for c in candidates:
         scores = _flat_scores(prediction_scores(test_stats, np.asarray(c.coefficients)))
         out.append(Candidate(c.label, c.transfer_weight, c.parameter, c.coefficients,
                              c.terms, _plain({**c.apriori, "test": scores})))
     return out
 
 
+#: the library term of an eddy-viscosity companion: tau_ij = coefficient D^2 |S| S_ij
+EDDY_TERM = "smagorinsky"
+#: the label suffix of an eddy-viscosity companion
+EDDY_SUFFIX = "+eddy"
+
+
+def eddy_companions(base, candidates: Sequence[Candidate], snapshots, grid, delta: float,
+                    test_ratio: float = 2.0) -> list[Candidate]:
+    """Dynamic mixed companions of the candidates (pure given the coarse ``snapshots``).
+
+    A stress candidate fitted a priori matches the filter's subgrid stress, not the transfer
+    the coarse solver's truncation also needs, and can pile energy up at the grid scale in a
+    long run. For each candidate without the library's eddy-viscosity term (``EDDY_TERM``),
+    the companion adds it with the coefficient ``-2 C`` of the dynamic mixed model (Zang,
+    Street & Koseff 1993), ``C`` from the Germano identity on the resolved ``snapshots``
+    (:func:`closure.les.dynamic_mixed_constant`, one constant for all of them); none when
+    ``C <= 0`` (the data ask for no extra dissipation) or the library lacks the term. The
+    companion is fixed before any coarse run: the runs decide whether it is kept.
+    """
+    from closure.les import dynamic_mixed_constant
+
+    names = tuple(base.library.names)
+    if EDDY_TERM not in names or getattr(base, "target", "stress") != "stress":
+        return []
+    k = names.index(EDDY_TERM)
+    out = []
+    for c in candidates:
+        if c.coefficients[k] != 0.0:
+            continue
+        constant = dynamic_mixed_constant(candidate_model(base, c), snapshots, grid, delta,
+                                          test_ratio)
+        if not constant > 0:
+            continue
+        coefs = list(c.coefficients)
+        coefs[k] = -2.0 * constant
+        out.append(Candidate(c.label + EDDY_SUFFIX, c.transfer_weight, c.parameter,
+                             tuple(coefs), c.terms,
+                             {"companion_of": c.label, "germano_constant": constant}))
+    return out
+
+
+def companions_for(spec, plan: Mapping, stats: Mapping, base, candidates: Sequence[Candidate],
+                   initial, options: Mapping | None = None) -> list[Candidate]:
+    """:func:`eddy_companions` of a job's candidates, the Germano constant taken over the
+    training snapshots of the file ``initial`` (coarse-grained as the model was), each with
+    its held-out a priori scores."""
+    from closure.les import _open_input, coarse_data, model_filter
+
+    f = model_filter(base) or {"kind": "gaussian", "ratio": 4, "width": None}
+    src, _ = _open_input(initial, options)
+    with src:
+        count = len(src)
+    # the training snapshots that lie in this file (all of it when none does)
+    train = [i for i in sorted(int(i) for i in plan["train"]) if i < count]
+    data = coarse_data(initial, f["kind"], f["ratio"], f["width"], "grid",
+                       train or None, options)
+    companions = eddy_companions(base, candidates, data.fields, data.grid, data.delta)
+    return with_test_scores(companions, plan, stats) if companions else []
+
+
 def discover_and_select(spec, *, long_duration: float | None = None,
                         spinup: float | None = None,
                         transfer_weights: Sequence[float] | None = None,
                         max_per_path: int | None = None, tolerance: float | None = None,
-                        initial=None, reference=None,
+                        initial=None, reference=None, companions: bool = True,
                         progress: Callable[[str, int, int], None] | None = None,
                         **simulate_options):
     """Discovery with selection by coarse runs, in process (``discover --select aposteriori``).
@@ -345,7 +434,8 @@ def discover_and_select(spec, *, long_duration: float | None = None,
     Plans and maps the job ``spec`` (closure.pipeline), fits the a priori model (reduce), then
     the candidates (:func:`plan_from_stats`) and runs them long from ``initial`` (default:
     the job's input file), against ``reference`` (default: the same), with
-    :func:`select_by_coarse_runs`. Options left None come from ``spec.fit`` (duration,
+    :func:`select_by_coarse_runs`; with ``companions`` the candidates' dynamic mixed
+    companions (:func:`companions_for`) run too. Options left None come from ``spec.fit`` (duration,
     spinup, transfer_weights, max_candidates, tolerance). Returns (a priori model, Selection,
     chosen model or None).
     """
@@ -381,6 +471,9 @@ def discover_and_select(spec, *, long_duration: float | None = None,
     if "input_options" not in simulate_options:
         simulate_options["input_options"] = input_options(spec)
     source = initial if initial is not None else initial_path(spec, p)
+    if companions:
+        candidates += companions_for(spec, p, stats, apriori_model, candidates, source,
+                                     simulate_options["input_options"])
     selection, chosen = select_by_coarse_runs(
         apriori_model, candidates, source, reference, long_duration=long_duration,
         spinup=spinup, tolerance=tolerance, progress=progress, **simulate_options)

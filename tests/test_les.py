@@ -292,6 +292,79 @@ def test_dynamic_constant_is_lillys_least_squares_fit():
     assert dyn.constant({"u": 3 * u, "v": 3 * v}, g) == pytest.approx(expected, rel=1e-10)
 
 
+def _model_on(g, **values):
+    """A ClosureModel of the default 2-D stress library on the coarse grid ``g`` (32^2, a
+    Gaussian of width 2 coarse spacings), coefficients by term name."""
+    from closure.filters import make_coarse_graining
+    from closure.library import make_library
+    from closure.model import ClosureModel
+
+    fine = Grid.regular((2 * g.shape[0],) * 2, TWO_PI, dims=("y", "x"))
+    cg = make_coarse_graining("gaussian", fine, 2, 4.0)
+    lib = make_library("default", "stress", ("y", "x"))
+    coefs = [float(values.get(n, 0.0)) for n in lib.names]
+    return ClosureModel(lib, coefs, filter=cg, grid=cg.coarse, scheme="spectral",
+                        delta=cg.delta)
+
+
+def test_dynamic_mixed_constant_is_the_germano_fit_of_the_residual():
+    # Dynamic mixed model (Zang, Street & Koseff 1993; with the gradient model as in Vreman,
+    # Geurts & Kuerten 1994): L_ij - H_ij = C M_ij, H_ij = tau^m(hat u; 2D) - hat(tau^m(u; D)),
+    # fitted by least squares over the domain (Lilly 1992). Checked against numpy's lstsq on
+    # L, H and M built here from closure.filters and closure.derivatives, for the gradient
+    # model tau^m = (D^2/12) d_k u_i d_k u_j (Clark et al. 1979).
+    from closure.derivatives import derivative
+    from closure.filters import CoarseGraining
+    from closure.les import dynamic_mixed_constant
+
+    g = grid2()
+    f = random_initial(g, seed=5)
+    D = 2 * g.spacing[0]
+    model = _model_on(g, gradient_model=1.0)
+    assert model.delta == pytest.approx(D, rel=1e-12)
+    test = CoarseGraining("gaussian", 1, (math.sqrt(3) * D,) * 2, g)
+
+    def grads(u, v):
+        return {(a, d): derivative(w, g, d) for a, w in (("x", u), ("y", v))
+                for d in ("x", "y")}
+
+    def strain(gr):
+        sxx, syy, sxy = gr["x", "x"], gr["y", "y"], 0.5 * (gr["x", "y"] + gr["y", "x"])
+        return sxx, sxy, syy, np.sqrt(2 * (sxx**2 + 2 * sxy**2 + syy**2))
+
+    def gradient_model(gr, width):
+        return [width**2 / 12 * sum(gr[i, d] * gr[j, d] for d in ("x", "y"))
+                for i, j in (("x", "x"), ("x", "y"), ("y", "y"))]
+
+    u, v = f["u"], f["v"]
+    gr = grads(u, v)
+    sxx, sxy, syy, mag = strain(gr)
+    uh, vh = test.filter(u), test.filter(v)
+    ghat = grads(uh, vh)
+    hxx, hxy, hyy, hmag = strain(ghat)
+    L = [test.filter(u * u) - uh * uh, test.filter(u * v) - uh * vh,
+         test.filter(v * v) - vh * vh]
+    H = [a - test.filter(b) for a, b in zip(gradient_model(ghat, 2 * D),
+                                            gradient_model(gr, D), strict=True)]
+    M = [2 * D**2 * (test.filter(mag * s) - 4 * hmag * h)
+         for s, h in ((sxx, hxx), (sxy, hxy), (syy, hyy))]
+    R = [a - b for a, b in zip(L, H, strict=True)]
+    A = np.concatenate([M[0].ravel(), M[1].ravel(), M[1].ravel(), M[2].ravel()])[:, None]
+    b = np.concatenate([R[0].ravel(), R[1].ravel(), R[1].ravel(), R[2].ravel()])
+    expected = np.linalg.lstsq(A, b, rcond=None)[0][0]
+    assert dynamic_mixed_constant(model, [f], g, D) == pytest.approx(expected, rel=1e-9)
+    # without a model part it is the dynamic Smagorinsky constant
+    dyn = DynamicSmagorinsky(D)
+    assert dynamic_mixed_constant(None, [f], g, D) == pytest.approx(dyn.constant(f, g),
+                                                                      rel=1e-12)
+    # a model part -2 k D^2 |S| S_ij gives H = k M exactly: the constant drops by k
+    k = 0.01
+    smag = _model_on(g, smagorinsky=-2 * k)
+    g2 = random_initial(g, seed=6)
+    both = dynamic_mixed_constant(None, [f, g2], g, D)
+    assert dynamic_mixed_constant(smag, [f, g2], g, D) == pytest.approx(both - k, rel=1e-9)
+
+
 @pytest.mark.slow
 def test_dynamic_constant_on_the_2d_demo():
     # In 3-D inertial-range turbulence the Germano-Lilly procedure gives C_s of roughly
@@ -383,6 +456,18 @@ def test_simulate_with_baselines_and_write(small_dns, tmp_path):
     assert "a priori" in d["note"].lower()
     table = c.table()
     assert "gradient-clipped" in table and "E[1-2]" in table
+    # turb2d states the fine run's cost: each run's ratio is (fine wall s per simulated s) /
+    # (coarse wall s per simulated s), computed here from the file and the runs' times
+    fine = ds.attrs["wall_seconds"] / ds.attrs["simulated_time"]
+    ratios = c.cost_ratios()
+    assert set(ratios) == set(c.runs)
+    for name, t in c.runs.items():
+        coarse = t.wall_seconds / (t.times[-1] - t.times[0])
+        assert ratios[name] == pytest.approx(fine / coarse, rel=1e-12)
+    assert "cost: fine run" in table and "as its file states" in table
+    # a file that does not state it: no ratio and no cost line
+    c.settings["fine_cost"] = {"steps": 3}
+    assert c.cost_ratios() == {} and c.cost_text() == "" and "cost:" not in c.table()
 
 
 def test_cli_runs_and_writes_json(small_dns, tmp_path, capsys):

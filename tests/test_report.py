@@ -559,7 +559,8 @@ def test_report_with_long_runs_and_a_model_chosen_by_coarse_runs(fitted, tmp_pat
     page = (out / "index.html").read_text()
     assert "Selection by coarse runs" in page and "Chosen: <code>fitted</code>" in page
     assert "does not guarantee a stable or accurate coarse simulation" in page
-    assert "wall-clock time (s)" in page and "does not state the fine run" in page
+    # turb2d states the fine run's cost: the page gives the coarse/fine ratio
+    assert "wall-clock time (s)" in page and "The fine run took" in page
     numbers = json.loads((out / "report.json").read_text())
     assert numbers["selection"]["chosen"] == "fitted"
     assert numbers["aposteriori"]["long_runs"]["model"]["duration"] == 1.0
@@ -577,3 +578,27 @@ def test_report_with_long_runs_and_a_model_chosen_by_coarse_runs(fitted, tmp_pat
     keep = (band[0] > 0) & (band[0] < data.grid.shape[0] / 3 - 1)
     np.testing.assert_allclose(band[2][keep], direct.max(axis=0)[keep], rtol=1e-8)
     np.testing.assert_allclose(band[1][keep], direct.min(axis=0)[keep], rtol=1e-8)
+
+
+def test_cost_rows_ratio_when_the_file_states_the_fine_run(fitted):
+    """The coarse/fine cost is (coarse wall s per simulated s) / (fine wall s per simulated
+    s), the fine figures being the ones turb2d wrote in the file (closure.synth run_cost)."""
+    import xarray as xr
+
+    from closure.les import simulate
+    from closure.report.page import cost_rows
+
+    comparison = simulate(fitted["model"], fitted["data"], long_duration=0.5, spinup=0.1)
+    raw = comparison.to_dict()
+    with xr.open_dataset(fitted["data"]) as ds:
+        fine_rate = ds.attrs["wall_seconds"] / ds.attrs["simulated_time"]
+    rows, text = cost_rows(raw)
+    run = raw["runs"]["model"]
+    expected = run["wall_seconds"] / run["long_run"]["reached"] / fine_rate
+    assert [r[0] for r in rows] == ["model"]
+    assert rows[0][4] == pytest.approx(expected, rel=1e-12)
+    assert "The fine run took" in text and "as its file states" in text
+    # a file that does not state it: no ratio, and the text says why
+    raw["settings"]["fine_cost"] = {"steps": 10}
+    rows, text = cost_rows(raw)
+    assert rows[0][4] is None and "does not state the fine run's wall-clock" in text

@@ -87,6 +87,11 @@ def test_selection_skips_a_candidate_that_blows_up(tmp_path):
     assert by["anti"]["long_run"]["blowup_time"] is not None
     assert by["stable"]["long_run"]["stable"] is True
     assert selection.chosen == "stable"
+    # every candidate ran the fine run's own physics, read from the file turb2d wrote
+    for r in selection.candidates:
+        assert r["physics"]["viscosity"] == 2e-3 and r["physics"]["drag"] == 0.1
+        assert r["physics"]["forcing"]["forcing_wavenumber"] == 3.0
+        assert r["physics"]["assumed_physics"] == [] and r["wall_seconds"] > 0
     assert model.coefficients_scaled.tolist() == list(candidates[1].coefficients)
     recorded = model.settings["aposteriori_selection"]
     assert recorded["chosen"] == "stable" and len(recorded["candidates"]) == 2
@@ -193,6 +198,14 @@ def test_selection_by_coarse_runs_runs_3d_candidates(tmp_path):
     _, selection, chosen = discover_and_select(spec)
     assert {r["transfer_weight"] for r in selection.candidates} == {0.0, 1.0}
     assert all(r["long_run"]["duration"] == 0.5 for r in selection.candidates)
+    # eddy-viscosity companions run beside their candidates, scored a priori like them
+    by = {r["label"]: r for r in selection.candidates}
+    for label, r in by.items():
+        if label.endswith("+eddy"):
+            parent = by[label[:-len("+eddy")]]
+            assert r["apriori"]["germano_constant"] > 0 and "test" in r["apriori"]
+            assert r["n_terms"] == parent["n_terms"] + 1
+            assert set(r["terms"]) == set(parent["terms"]) | {"smagorinsky"}
     assert selection.chosen == choose(selection.candidates, 0.1)
     assert chosen is not None and chosen.grid.ndim == 3
 
@@ -221,3 +234,46 @@ def test_when_no_candidate_is_stable_the_a_priori_model_says_so(tmp_path):
     # the file keeps the record and the note
     again = ClosureModel.load(model.save(tmp_path / "m.json"))
     assert again.settings["aposteriori_selection"]["candidates"][0]["label"] == "only"
+
+
+def test_eddy_companions_add_the_dynamic_mixed_eddy_viscosity(tmp_path):
+    # the companion of a candidate without the Smagorinsky term adds it with coefficient
+    # -2 C, C the dynamic mixed constant (Zang, Street & Koseff 1993) of that candidate on the
+    # resolved snapshots; C is linear in the model part, so of the candidates +50 and -50 x
+    # the gradient model one asks for an eddy viscosity (C > 0) and the other for none
+    from closure.filters import make_coarse_graining
+    from closure.les import coarse_data, dynamic_mixed_constant
+    from closure.library import make_library
+    from closure.model import ClosureModel
+    from closure.selection import EDDY_SUFFIX, eddy_companions
+
+    path = write(turb2d(n=48, snapshots=3, interval=0.3, spinup=0.6, viscosity=2e-3,
+                        forcing_wavenumber=3, seed=2), tmp_path / "dns.nc")
+    fine = Grid.regular((48, 48), TWO_PI, dims=("y", "x"))
+    cg = make_coarse_graining("gaussian", fine, 2, 4.0)
+    lib = make_library("default", "stress", ("y", "x"))
+    names = tuple(lib.names)
+
+    def coef(**values):
+        return tuple(float(values.get(n, 0.0)) for n in names)
+
+    base = ClosureModel(lib, coef(gradient_model=1.0), filter=cg, grid=cg.coarse,
+                        scheme="spectral", delta=cg.delta)
+    data = coarse_data(path, "gaussian", 2, 4.0)
+    cands = [Candidate("up", 0.0, 0.1, coef(gradient_model=50.0), names),
+             Candidate("down", 0.0, 0.2, coef(gradient_model=-50.0), names),
+             Candidate("has", 0.0, 0.3, coef(smagorinsky=-0.05, gradient_model=1.0), names)]
+    constants = {c.label: dynamic_mixed_constant(candidate_model(base, c), data.fields,
+                                                 data.grid, data.delta) for c in cands[:2]}
+    assert (constants["up"] > 0) != (constants["down"] > 0)
+    out = eddy_companions(base, cands, data.fields, data.grid, data.delta)
+    assert len(out) == 1
+    parent = next(c for c in cands if constants.get(c.label, 0) > 0)
+    comp = out[0]
+    assert comp.label == parent.label + EDDY_SUFFIX and comp.n_terms == parent.n_terms + 1
+    k = names.index("smagorinsky")
+    assert comp.coefficients[k] == pytest.approx(-2 * constants[parent.label], rel=1e-12)
+    assert comp.apriori["germano_constant"] == pytest.approx(constants[parent.label])
+    assert [c for i, c in enumerate(comp.coefficients) if i != k] == \
+        [c for i, c in enumerate(parent.coefficients) if i != k]
+    assert (comp.transfer_weight, comp.parameter) == (parent.transfer_weight, parent.parameter)

@@ -59,6 +59,22 @@ def test_burgers_rejects_unresolved_modes():
 SMALL = dict(n=32, snapshots=3, interval=0.2, spinup=0.4, viscosity=5e-3, forcing_wavenumber=3)
 
 
+def test_generators_state_their_cost():
+    """turb2d and turb3d write their wall-clock time and simulated time (spin-up plus the
+    snapshot span), what closure.les reads as the fine run's cost; a run's wall time is
+    also bounded by the time this test took to make it."""
+    import time
+
+    for make, kwargs, simulated in ((turb2d, SMALL, 0.4 + 2 * 0.2),
+                                    (turb3d, dict(n=16, snapshots=2, interval=0.1,
+                                                  spinup=0.05, viscosity=0.05), 0.15)):
+        t = time.perf_counter()
+        ds = make(**kwargs)
+        took = time.perf_counter() - t
+        assert 0 < ds.attrs["wall_seconds"] <= took
+        assert ds.attrs["simulated_time"] == pytest.approx(simulated, rel=1e-12)
+
+
 def test_turb2d_dataset_layout_and_consistency():
     ds = turb2d(**SMALL, seed=1)
     assert ds["u"].dims == ("time", "y", "x")

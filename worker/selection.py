@@ -2,8 +2,9 @@
 
 After the discovery reduce has fitted the a priori model, :func:`start` (called by
 worker.tasks.reduce_task instead of storing it) plans the candidates along the sparse paths
-(closure.selection.plan_from_stats on the job's statistics), writes them to the job's
-``selection/`` folder and fans out::
+(closure.selection.plan_from_stats on the job's statistics) and their eddy-viscosity
+companions (closure.selection.companions_for), writes them to the job's ``selection/`` folder
+and fans out::
 
     <job>-run-<k>     one candidate's long coarse run (closure.selection.run_candidate);
                       its record (plain JSON) written atomically to selection/run-<k>.json
@@ -60,7 +61,13 @@ def _folder(job_id: str):
 def start(conn, job_id: str, spec, plan: dict, stats: dict, model) -> dict:
     """Plan the candidates of a reduced job and queue one run task each and the choose task
     after them; the a priori ``model`` is kept in the job folder as the candidates' base."""
-    from closure.selection import candidate_to_dict, initial_path, input_options, plan_from_stats
+    from closure.selection import (
+        candidate_to_dict,
+        companions_for,
+        initial_path,
+        input_options,
+        plan_from_stats,
+    )
 
     folder = _folder(job_id)
     try:
@@ -72,6 +79,7 @@ def start(conn, job_id: str, spec, plan: dict, stats: dict, model) -> dict:
                                      max_per_path=spec.fit.max_candidates)
         if not candidates:
             raise UserError("no candidate models to run: the sparse path is empty")
+        candidates += companions_for(spec, plan, stats, model, candidates, initial, options)
     except UserError as exc:
         return _fail(conn, job_id, str(exc))
     if _lease_lost():

@@ -72,5 +72,12 @@ def _attr(value):
     return value
 
 
+def run_cost(wall_seconds: float, simulated_time: float) -> dict:
+    """The global attributes that state a run's cost: its wall-clock time (s, on the machine
+    that ran it) and the simulated time it covered (s), so a coarse run of the same flow can
+    report its cost against the fine run's (closure.les settings["fine_cost"])."""
+    return {"wall_seconds": float(wall_seconds), "simulated_time": float(simulated_time)}
+
+
 def no_progress(phase: str, done: int, total: int) -> None:
     """A progress callback that does nothing."""

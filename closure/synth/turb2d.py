@@ -11,6 +11,7 @@ deterministic given its parameters and seed.
 from __future__ import annotations
 
 import math
+import time
 
 import numpy as np
 import xarray as xr
@@ -30,6 +31,7 @@ from closure.synth._common import (
     check_positive,
     make_dataset,
     no_progress,
+    run_cost,
 )
 
 SOLVER = "turb2d"
@@ -108,6 +110,7 @@ def turb2d(
                                 initial_energy)
 
     chunks = _spinup_chunks(spinup, interval)
+    start = time.perf_counter()
     total = len(chunks) + snapshots - 1
     steps = 0
     for i, chunk in enumerate(chunks):
@@ -126,6 +129,7 @@ def turb2d(
         times.append(t)
         for name in frames:
             frames[name].append(fields[name])
+    wall = time.perf_counter() - start
     attrs = {
         "title": "forced 2-D turbulence (closure demo data)",
         "solver": SOLVER,
@@ -142,6 +146,7 @@ def turb2d(
         "dealias": bool(dealias),
         "initial_energy": float(initial_energy),
         "steps": int(steps),
+        **run_cost(wall, spinup + (snapshots - 1) * interval),
         "scalar": bool(scalar),
     }
     if scalar:

@@ -11,6 +11,7 @@ goes into the integrating factor, so the spectral velocity stays solenoidal to r
 from __future__ import annotations
 
 import math
+import time
 
 import numpy as np
 import xarray as xr
@@ -32,6 +33,7 @@ from closure.synth._common import (
     check_positive,
     make_dataset,
     no_progress,
+    run_cost,
 )
 
 SOLVER = "turb3d"
@@ -142,6 +144,7 @@ def turb3d(
     uh = initial_velocity_hat(grid, np.random.default_rng(seed),
                               peak_wavenumber * 2 * np.pi / length, initial_energy)
     steps = 0
+    start = time.perf_counter()
     if spinup > 0:
         uh, steps = eq.advance(uh, spinup, cfl)
     frames = {"u": [], "v": [], "w": []}
@@ -157,6 +160,7 @@ def turb3d(
             frames[name].append(f)
         times.append(spinup + j * interval)
         progress("snapshots", j + 1, snapshots)
+    wall = time.perf_counter() - start
     attrs = {
         "title": "decaying 3-D turbulence (closure demo data)",
         "solver": SOLVER,
@@ -173,6 +177,7 @@ def turb3d(
         "cfl": float(cfl),
         "dealias": bool(dealias),
         "steps": int(steps),
+        **run_cost(wall, spinup + (snapshots - 1) * interval),
         "max_relative_divergence": float(divergence),
     }
     return make_dataset(grid, times, frames, attrs)
