@@ -263,8 +263,9 @@ class JobSpec(_Strict):
         False, description="run the fine-grid pass in float32 by slabs (half the memory; "
         "relative error about 1e-6 against float64)")
     device: Literal["numpy", "cpu", "cuda", "auto"] = Field(
-        "numpy", description="array backend of the fine-grid pass of periodic data: numpy, or "
-        "torch on cpu, cuda, or auto (cuda when available); results agree to 1e-10")
+        "numpy", description="array backend of the fine-grid pass of periodic data without "
+        "land and of the Gram statistics: numpy, or torch on cpu, cuda, or auto (cuda when "
+        "available); results agree to 1e-10")
     slab_tasks: Annotated[int, Field(ge=1, le=MAX_SLAB_TASKS)] | None = Field(
         None, description="on the queue, split each snapshot's fine-grid pass into this many "
         "tasks per phase, each over a range of slabs (periodic box, gaussian or spectral "

@@ -234,8 +234,9 @@ def discover(
     float32: bool = typer.Option(False, "--float32",
                                  help="fine-grid pass in float32 (relative error ~1e-6)"),
     device: str = typer.Option(
-        "numpy", "--device", help="array backend of the fine-grid pass of periodic data: "
-        "numpy, or torch on cpu, cuda or auto (needs torch==2.13.0; agrees to 1e-10)"),
+        "numpy", "--device", help="array backend of the fine-grid pass of periodic data and "
+        "of the Gram statistics: numpy, or torch on cpu, cuda or auto (needs torch==2.13.0; "
+        "agrees to 1e-10)"),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
     land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
     gamma: float | None = GAMMA,
