@@ -28,6 +28,15 @@ target is met only at the edge on this machine; in CPU time the pass was coarse-
 33-41 ms, the design (closure.library, not this pass's code) 12 ms, the statistics 3.5 ms and
 threadpoolctl's limit 2 ms, against a floor of 26-31 ms. 3-D 256^3: 0.76x and 1.06x wall
 (CPU 0.72x, 0.79x); the code before it 1.35x (CPU 1.31x).
+
+On a quiet machine the 2-D figure is worse, because the floor's transforms use both cores and
+most of the rest of the pass runs on one: with every other process paused (`python3
+bench/fft_floor.py --repeat 7`), 2-D 1024^2 pass 63.2 ms against a floor of 18.2 ms, 3.47x
+wall, 2.13x CPU; 3-D 256^3 1.32x wall, 0.87x CPU. Per 2-D pass (cProfile): forward transforms
+21 ms, coarse inverse transforms 13 ms, filter multipliers and folds 16 ms, the design's
+interleaving copy and term evaluation about 17 ms, the Gram statistics 4 ms. The 2-D target
+is not met there: the single-threaded parts (multipliers, folds, the design) would have to
+run on both cores or shrink by half.
 """
 
 from __future__ import annotations
