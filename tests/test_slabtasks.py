@@ -11,36 +11,17 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import xarray as xr
+from test_outofcore import _snapshot, _worst  # the same random snapshot and measure
 
 from closure import slabtasks
 from closure.errors import OptionError, UserError
 from closure.filters import make_coarse_graining
 from closure.grid import Grid
-from closure.io import Snapshot
 from closure.outofcore import ArraySlabs
 from closure.residuals import coarse_grain_snapshot
 from closure.slabtasks import MissingPieces, coarse_grain_by_tasks, run_phase
 
 TINY = 20_000  # bytes: slabs of one or a few rows, column chunks of a few columns
-
-
-def _snapshot(shape, scalars=("c",), seed=0):
-    rng = np.random.default_rng(seed)
-    grid = Grid.regular(shape, 2 * np.pi)
-    names = ("u", "v", "w")[:len(shape)]
-    return Snapshot({c: rng.standard_normal(shape) for c in (*names, *scalars)}, grid, 3, 1.5)
-
-
-def _worst(a, b) -> float:
-    """Largest difference over every field and target, relative to each one's largest value."""
-    assert set(a.fields) == set(b.fields) and set(a.targets) == set(b.targets)
-    worst = 0.0
-    for k in (*a.fields, *a.targets):
-        x = a.fields.get(k, a.targets.get(k))
-        y = b.fields.get(k, b.targets.get(k))
-        assert x.shape == y.shape and y.dtype == np.float64
-        worst = max(worst, float(np.abs(x - y).max() / np.abs(x).max()))
-    return worst
 
 
 CASES = [  # (shape, kind, ratio, targets, tasks): None = every target (force: fine phases too)
