@@ -342,7 +342,8 @@ def train_reference_net(snapshots: Iterable[tuple], grid: Grid,
                 # weighted mean square over components, mean over the valid points of the
                 # batch (every point without land)
                 sq = (W * err.pow(2) * M[idx]).sum(dim=1)
-                loss = sq.sum() / M[idx].sum() if masked else sq.mean()
+                # (a batch whose snapshots have no valid point contributes nothing)
+                loss = sq.sum() / M[idx].sum().clamp_min(1.0) if masked else sq.mean()
                 loss.backward()
                 optimiser.step()
                 total += float(loss.detach()) * len(idx)
