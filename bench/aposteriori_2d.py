@@ -311,6 +311,19 @@ NOTE = ("A priori skill does not guarantee a stable or accurate coarse simulatio
         "statistics the table reports (no held-out flow).")
 
 
+def add_selection_options(p) -> None:
+    """The options of the selection by coarse runs and the second start (both benches)."""
+    p.add_argument("--selection-turnovers", type=float, default=None,
+                   help="statistics length of the selection's candidate runs (default: the "
+                        "table's)")
+    p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
+    p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
+    p.add_argument("--tolerance", type=float, default=0.1)
+    p.add_argument("--second-start", type=int, default=None,
+                   help="also run the selected model and the baselines from this snapshot "
+                        "(default: the middle one; -1: not)")
+
+
 def main(argv=None) -> int:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--quick", action="store_true", help="128^2 -> 32^2, 10 turnovers")
@@ -321,15 +334,7 @@ def main(argv=None) -> int:
     p.add_argument("--turnovers", type=float, default=None,
                    help="long-run length after the spin-up, in turnover times")
     p.add_argument("--spinup-turnovers", type=float, default=None)
-    p.add_argument("--selection-turnovers", type=float, default=None,
-                   help="statistics length of the selection's candidate runs (default: the "
-                        "table's)")
-    p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
-    p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
-    p.add_argument("--tolerance", type=float, default=0.1)
-    p.add_argument("--second-start", type=int, default=None,
-                   help="also run the selected model and the baselines from this snapshot "
-                        "(default: the middle one; -1: not)")
+    add_selection_options(p)
     p.add_argument("--keep", type=Path, default=None, help="keep the files in this folder")
     p.add_argument("--reuse", action="store_true",
                    help="reuse the fine run already in --keep (its cost from its attributes)")

@@ -41,7 +41,7 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(ROOT / "bench"))
 
-from aposteriori_2d import fine_cost, finish  # noqa: E402  (bench/, on the path above)
+from aposteriori_2d import add_selection_options, fine_cost, finish  # noqa: E402  (bench/, on the path above)
 
 from closure.grid import Grid  # noqa: E402
 from closure.les3d import Forcing3D, LESEquation3D  # noqa: E402
@@ -93,15 +93,7 @@ def main(argv=None) -> int:
     p.add_argument("--power", type=float, default=0.1, help="injected power (m2 s-3)")
     p.add_argument("--turnovers", type=float, default=None)
     p.add_argument("--spinup-turnovers", type=float, default=2.0)
-    p.add_argument("--selection-turnovers", type=float, default=None,
-                   help="statistics length of the selection's candidate runs (default: the "
-                        "table's)")
-    p.add_argument("--weights", default="0,1,4", help="transfer weights of the candidate paths")
-    p.add_argument("--max-candidates", type=int, default=4, help="sparsest per path")
-    p.add_argument("--tolerance", type=float, default=0.1)
-    p.add_argument("--second-start", type=int, default=None,
-                   help="also run the selected model and the baselines from this snapshot "
-                        "(default: the middle one; -1: not)")
+    add_selection_options(p)
     p.add_argument("--keep", type=Path, default=None)
     p.add_argument("--reuse", action="store_true",
                    help="reuse the fine run already in --keep (its cost from its attributes)")

@@ -54,3 +54,16 @@ def make_netcdf(tmp_path):
         return path
 
     return make
+
+
+@pytest.fixture
+def three_d_file(tmp_path):
+    """Random 3-D velocity, 3 snapshots of 16^3 on [0, 2 pi)^3 (slab-task tests)."""
+    rng = np.random.default_rng(1)
+    n = 16
+    c = np.arange(n) * (2 * np.pi / n)
+    data = {k: (("time", "z", "y", "x"), rng.standard_normal((3, n, n, n)))
+            for k in ("u", "v", "w")}
+    path = tmp_path / "three_d.nc"
+    xr.Dataset(data, coords={"time": [0.0, 0.5, 1.0], "z": c, "y": c, "x": c}).to_netcdf(path)
+    return path

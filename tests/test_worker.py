@@ -425,21 +425,6 @@ def test_a_starting_worker_sweeps_the_store(env):
 
 # --------------------------------------------------------------------------- slab tasks
 
-@pytest.fixture
-def three_d_file(tmp_path):
-    """Random 3-D velocity, 3 snapshots of 16^3 on [0, 2 pi)^3."""
-    import xarray as xr
-
-    rng = np.random.default_rng(2)
-    n = 16
-    c = np.arange(n) * (2 * np.pi / n)
-    data = {k: (("time", "z", "y", "x"), rng.standard_normal((3, n, n, n)))
-            for k in ("u", "v", "w")}
-    path = tmp_path / "three_d.nc"
-    xr.Dataset(data, coords={"time": [0.0, 0.5, 1.0], "z": c, "y": c, "x": c}).to_netcdf(path)
-    return path
-
-
 #: the first attempt of the rows task 1 of snapshot 0 dies at once (SIGKILL of its own
 #: work-horse, as the kernel's OOM killer or a lost machine would); its retry runs normally
 KILL_ONE_SLAB_TASK = """
