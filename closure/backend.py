@@ -31,20 +31,17 @@ import numpy as np
 import scipy.fft
 
 from closure.errors import UserError
+from closure.threads import fft_workers, run_blocks
 
 DEVICES = ("numpy", "cpu", "cuda", "auto")
 PRECISIONS = ("float64", "float32")
 TORCH_HINT = "pip install torch==2.13.0"
-#: Transforms of numpy arrays of at least this many elements use every core; smaller ones
-#: run on one thread, where waking the others costs about as much as the work.
-_THREADED_SIZE = 1 << 18
-#: Numbers per block of rows in NumpyBackend.by_row_blocks (2 MiB of float64; a block's
-#: transform still uses every core).
+#: Numbers per block of rows in NumpyBackend.by_row_blocks (2 MiB of float64).
 _BLOCK_NUMBERS = 1 << 18
 
 
 def _workers(a) -> int:
-    return -1 if a.size >= _THREADED_SIZE else 1
+    return fft_workers(a.size)
 
 
 class NumpyBackend:
@@ -104,6 +101,10 @@ class NumpyBackend:
     def multiply(self, a, b, out):
         return np.multiply(a, b, out=out)
 
+    def phase_sum(self, P, H, out):
+        """``out[i, k] = sum_b P[i, b, k] H[b, k]`` (one pass, no temporaries)."""
+        return np.einsum("ibk,bk->ik", P, H, out=out)
+
     def conjugate_(self, a):
         """Conjugate ``a`` in place."""
         return np.conjugate(a, out=a)
@@ -122,13 +123,15 @@ class NumpyBackend:
         return np.einsum(spec, *arrays, optimize=True)
 
     def by_row_blocks(self, work, rows: int, width: int) -> None:
-        """Run ``work(block)`` over slices of ``rows`` leading rows of ``width`` numbers each,
-        in turn: blocks of about 2^18 numbers, whose spectra stay in the CPU's cache for the
-        passes after the transform, which runs on every core. (Blocks spread over a pool of
-        threads instead took more CPU time and waited on a busy machine.)"""
+        """Run ``work(block)`` over slices of ``rows`` leading rows of ``width`` numbers each:
+        blocks of about 2^18 numbers, whose spectra stay in the CPU's cache for the passes
+        after the transform (the folds, single-threaded numpy). The blocks run side by side,
+        one thread per core (closure.threads.run_blocks), so the folds use every core too;
+        ``work`` must write only its own block's rows. Each block's arithmetic is its own:
+        the same bits whatever the blocks and threads."""
         step = max(1, _BLOCK_NUMBERS // max(width, 1))
-        for start in range(0, rows, step):
-            work(slice(start, min(start + step, rows)))
+        run_blocks(work, [slice(start, min(start + step, rows))
+                          for start in range(0, rows, step)])
 
     def synchronize(self) -> None:
         """Wait for queued work (GPU); nothing to wait for here."""
@@ -188,6 +191,9 @@ class TorchBackend(NumpyBackend):
     def multiply(self, a, b, out):
         return self.torch.mul(a, b, out=out)
 
+    def phase_sum(self, P, H, out):
+        return out.copy_(self.torch.einsum("ibk,bk->ik", P, H))
+
     def conjugate_(self, a):
         return a.conj_physical_()
 
@@ -238,8 +244,8 @@ def gram_statistics(X, y, weights: Sequence[float] | None = None,
     arrays of closure.stats.SufficientStats (which calls this): ``gram`` (C, p, p) =
     w_c X_c^T P X_c, ``xy`` (C, p) = w_c X_c^T P y_c, ``yy`` (C,), ``x_sum`` (C, p) =
     w_c 1^T P X_c, ``y_sum`` (C,), with ``w`` the component ``weights`` (default 1) and ``P``
-    the diagonal of ``point_weights`` (n,) (default 1). One matrix product per statistic and
-    component on ``backend``; float64 numpy results, accumulated in float64 whatever the
+    the diagonal of ``point_weights`` (n,) (default 1). Matrix products (the Gram matrix and
+    ``xy``) and sums per component on ``backend``; float64 numpy results, accumulated in float64 whatever the
     backend's precision (these are the sums that add up across snapshots)."""
     be = backend or NumpyBackend()
     if be.precision != "float64":
@@ -249,12 +255,13 @@ def gram_statistics(X, y, weights: Sequence[float] | None = None,
     out = {"gram": np.empty((C, p, p)), "xy": np.empty((C, p)), "yy": np.empty(C),
            "x_sum": np.empty((C, p)), "y_sum": np.empty(C)}
     pw = None if point_weights is None else be.asarray(point_weights)
-    ones = be.asarray(np.ones(n)) if pw is None else pw
     for c in range(C):
         Xc, yc = be.asarray(X[c]), be.asarray(y[c])
         Xw, yw = (Xc, yc) if pw is None else (Xc * pw[:, None], yc * pw)
-        parts = {"gram": Xw.T @ Xc,  # X^T X: one symmetric rank-k update (syrk)
-                 "xy": yc @ Xw, "yy": yw @ yc, "x_sum": ones @ Xc, "y_sum": ones @ yc}
+        # the sums are plain reductions, not products with a vector of ones: the BLAS
+        # library serialises calls from threads mapping snapshots side by side
+        parts = {"gram": Xw.T @ Xc, "xy": yc @ Xw, "yy": yw @ yc,
+                 "x_sum": Xw.sum(0), "y_sum": yw.sum()}
         for name, value in parts.items():
             out[name][c] = w[c] * be.numpy(value)
     return out

@@ -14,6 +14,7 @@ import scipy.fft
 
 from closure.errors import UserError
 from closure.grid import Grid
+from closure.threads import fft_workers
 
 SCHEMES = ("spectral", "fd2", "fd4")
 
@@ -110,13 +111,14 @@ def derivatives(f: np.ndarray, grid: Grid, dim: str, orders, scheme: str = "spec
     k = grid.wavenumbers(dim, real=True)
     shape = [1] * f.ndim
     shape[axis] = k.size
-    fh = scipy.fft.rfft(f, axis=axis, workers=-1)
+    workers = fft_workers(f.size)
+    fh = scipy.fft.rfft(f, axis=axis, workers=workers)
     out = []
     for order in orders:  # the multiplier of _spectral
         mult = (1j * k) ** order
         if order % 2 == 1 and n % 2 == 0:
             mult[-1] = 0.0
-        out.append(scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=-1))
+        out.append(scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=workers))
     return out
 
 
@@ -129,8 +131,9 @@ def _spectral(f, grid, dim, order):
         mult[-1] = 0.0
     shape = [1] * f.ndim
     shape[axis] = k.size
-    fh = scipy.fft.rfft(f, axis=axis, workers=-1)
-    return scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=-1)
+    workers = fft_workers(f.size)
+    fh = scipy.fft.rfft(f, axis=axis, workers=workers)
+    return scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=workers)
 
 
 def _stencil(f, axis, h, scheme, order, periodic):

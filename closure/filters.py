@@ -317,35 +317,50 @@ class CoarseGraining:
     def _backend_constants(self) -> dict:
         return {}
 
-    def _half_axis_plan(self, code: str, backend) -> list:
-        """The alias pieces of the last direction's fold under ``code`` (see
-        :func:`_half_axis_pieces`), multipliers as ``backend`` arrays, kept per backend."""
-        key = ("half", code, backend.key)
+    def _polyphase_plan(self, code: str, backend):
+        """The last direction's fold under ``code`` as weights of the polyphase transforms:
+        ``H`` (r, h) with ``H[b, k] = (1/r) sum_q m(k + q n) exp(-2 pi i b (k + q n) / N)``
+        (``m`` the multiplier over all N fine wavenumbers, ``m(-k) = conj(m(k))`` for a real
+        operator), a ``backend`` array kept per backend; see :meth:`_folded_rows`."""
+        key = ("poly", code, backend.key)
         if key not in self._backend_constants:
-            N = self.fine.shape[-1]
-            m = self._direction_multipliers[-1][code] / self.ratio
-            self._backend_constants[key] = [
-                (dst, src, flip, backend.asarray(m[src]))
-                for dst, src, flip in _half_axis_pieces(N, self.ratio)]
+            N, r = self.fine.shape[-1], self.ratio
+            n = N // r
+            half = self._direction_multipliers[-1][code]  # wavenumbers 0 .. N // 2
+            j = np.arange(N)
+            m = np.where(j <= N // 2, half[np.minimum(j, N - j)],
+                         np.conj(half[np.minimum(j, N - j)]))
+            k = np.arange(n // 2 + 1)[None, :] + n * np.arange(r)[:, None]  # (q, k)
+            b = np.arange(r)[:, None, None]
+            H = (m[k][None] * np.exp(-2j * np.pi * b * k[None] / N)).sum(axis=1) / r
+            self._backend_constants[key] = backend.asarray(H)
         return self._backend_constants[key]
 
     def _folded_rows(self, f, codes: Sequence[str], be) -> dict:
-        """``{code: the rows' real FFTs under code's last-direction multiplier, folded onto
-        the coarse wavenumbers}`` (last axis ``n // 2 + 1``). The rows go by blocks
-        (:meth:`closure.backend.NumpyBackend.by_row_blocks`): each block's spectrum is folded
-        under every code while it is in the CPU's cache; the same values, bit for bit,
-        whatever the blocks."""
-        N = self.fine.shape[-1]
-        h = N // self.ratio // 2 + 1
+        """``{code: the rows' spectra under code's last-direction multiplier, folded onto the
+        coarse wavenumbers}`` (last axis ``n // 2 + 1``).
+
+        By polyphase: with ``j = r a + b``, the fine spectrum is ``F(k + q n) = sum_b
+        exp(-2 pi i b (k + q n) / N) P_b(k)``, where ``P_b`` is the length-``n`` real FFT of
+        every r-th point from ``b``; so the folded spectrum ``(1/r) sum_q m(k + q n) F(k + q
+        n)`` is ``sum_b H[b, k] P_b(k)`` (:meth:`_polyphase_plan`): r short transforms per row
+        (cheaper than one of length N) and r products per coarse wavenumber in one pass, with
+        no Hermitian mirror to fold. The rows go by blocks (:meth:`closure.backend.NumpyBackend.
+        by_row_blocks`), each block's transforms folded under every code while they are in the
+        CPU's cache; the same values, bit for bit, whatever the blocks."""
+        N, r = self.fine.shape[-1], self.ratio
+        n = N // r
+        h = n // 2 + 1
         lead = tuple(f.shape[:-1])
         rows = f.reshape(-1, N)
         out = {c: be.empty((rows.shape[0], h), complex=True) for c in codes}
-        plans = {c: self._half_axis_plan(c, be) for c in codes}
+        plans = {c: self._polyphase_plan(c, be) for c in codes}
 
         def work(block):
-            spectrum = be.rfft(rows[block])
+            x = rows[block]
+            P = be.rfft(x.reshape(x.shape[0], n, r).swapaxes(-1, -2))  # (rows, r, h)
             for c in codes:
-                _fold_half_axis(be, spectrum, plans[c], h, out=out[c][block])
+                be.phase_sum(P, plans[c], out[c][block])
 
         if codes:
             be.by_row_blocks(work, rows.shape[0], N)

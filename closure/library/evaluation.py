@@ -111,15 +111,18 @@ def design(library: Library, fields: Mapping[str, np.ndarray], grid: Grid,
 
     ``fields`` maps ``u, v[, w]`` and scalars to coarse-grid arrays of ``grid.shape``;
     points are the grid in C order; column ``k`` is term ``k`` with Delta = ``delta``
-    (coordinate units), so its fitted coefficient is the Delta-scaled one.
+    (coordinate units), so its fitted coefficient is the Delta-scaled one. Each column is
+    contiguous (the tensor is a transposed view of a C-ordered (n_components, n_terms,
+    n_points) array): one plain copy per term evaluated, no interleaving, and the Gram
+    products read whole columns.
     """
     cols = evaluate_terms(library, fields, grid, scheme, delta)
     nc, npts, nt = len(library.keys), int(np.prod(grid.shape)), len(library.terms)
-    out = np.empty((nc, npts, nt))
-    for c in range(nc if nt else 0):  # one interleaving copy per component (faster than
-        # writing column by column)
-        np.stack([comps[c].reshape(-1) for comps in cols], axis=1, out=out[c])
-    return out
+    out = np.empty((nc, nt, npts))
+    for t, comps in enumerate(cols):
+        for c in range(nc):
+            out[c, t] = comps[c].reshape(-1)
+    return out.transpose(0, 2, 1)
 
 
 def predict(library: Library, coefficients: Sequence[float], fields: Mapping[str, np.ndarray],
