@@ -43,6 +43,7 @@ from closure.scores import (
 )
 from closure.spec import JobSpec
 from closure.stats import SufficientStats
+from closure.threads import cores, map_in_threads
 
 PLAN_VERSION = 1
 Progress = Callable[[str, int, int], None]
@@ -75,13 +76,27 @@ def _small_blas(function):
 
     @functools.wraps(function)
     def run(*args, **kwargs):
-        from threadpoolctl import threadpool_limits  # (scikit-learn's dependency)
-
-        # looked up at each call (under a millisecond), so BLAS libraries loaded later count
-        with threadpool_limits(limits=1, user_api="blas"):
+        with _blas_controller().limit(limits=1, user_api="blas"):
             return function(*args, **kwargs)
 
     return run
+
+
+_controller: list = [None, -1]  # (threadpoolctl controller, len(sys.modules) when made)
+
+
+def _blas_controller():
+    """A threadpoolctl controller of the loaded BLAS libraries (scikit-learn's dependency),
+    kept while no module is imported: making one scans every loaded library (1-2 ms), a cost
+    each queued snapshot would pay; a new import may load a new BLAS library, so it is made
+    again then."""
+    import sys
+
+    from threadpoolctl import ThreadpoolController
+
+    if _controller[0] is None or _controller[1] != len(sys.modules):
+        _controller[:] = [ThreadpoolController(), len(sys.modules)]
+    return _controller[0]
 
 
 # ---------------------------------------------------------------------- shared pieces
@@ -1099,8 +1114,9 @@ def _provenance(spec: JobSpec, plan: Mapping) -> dict:
 def discover(spec: JobSpec, progress: Progress | None = None):
     """Plan, map every snapshot and reduce, in this process (one file handle throughout).
 
-    The input's SHA-256 (provenance) is computed in a thread while the snapshots are mapped:
-    hashing is I/O and C code outside the GIL, on a core the map leaves idle between its FFTs.
+    Snapshots are mapped side by side, each on one core (:func:`map_jobs`; the statistics do
+    not depend on it, bit for bit). The input's SHA-256 (provenance) is computed in a thread
+    meanwhile: hashing is I/O and C code outside the GIL.
     """
     from closure.io import input_sha256
 
@@ -1121,19 +1137,66 @@ def discover(spec: JobSpec, progress: Progress | None = None):
             indices = sorted(p["snapshots"])
             test = set(p["test"])
             held_out = HeldOut(tmp, p["components"])
-            for done, i in enumerate(indices):
-                progress("map", done, len(indices))
-                stats[i], cs = _map(spec, p, i, source=src)
+            jobs = map_jobs(spec, src, len(indices))
+            reader = src if jobs == 1 else _OneReader(src)
+            progress("map", 0, len(indices))
+            for done, (i, (st, cs)) in enumerate(map_in_threads(
+                    lambda i: _map(spec, p, i, source=reader), indices, jobs), start=1):
+                stats[i] = st
                 if i in test or spec.reference_net.enabled:  # the network trains on them
                     held_out.put(cs)
                 del cs
-            progress("map", len(indices), len(indices))
+                progress("map", done, len(indices))
             p["sha256"] = p["input"]["sha256"] = digest.result()
         except BaseException:
             stop.set()  # do not wait for the hash of a file whose job failed
             raise
         _check_input(p)  # the file hashed is the file read
         return reduce(spec, p, stats, progress, source=src, held_out=held_out)
+
+
+def map_jobs(spec: JobSpec, src, n_snapshots: int) -> int:
+    """Snapshots an in-process run maps side by side: ``spec.jobs`` when given, else one per
+    core, no more than there are snapshots, and as many as half the machine's memory holds
+    (closure.outofcore.in_memory_bytes each); 1 when snapshots go by slabs (each already
+    uses its memory limit) or through torch (which threads each operation itself)."""
+    from closure.library import target_components
+    from closure.outofcore import default_memory_limit, in_memory_bytes
+
+    if spec.jobs is not None:
+        return max(1, min(int(spec.jobs), n_snapshots))
+    if _by_slabs(spec, src) or getattr(spec, "device", "numpy") != "numpy":
+        return 1
+    if hasattr(src, "coarse_graining"):  # coarse inputs: reading is the work
+        return 1
+    grid = src.grid
+    each = in_memory_bytes(grid, len(src.velocity) + len(_scalars(spec)),
+                           target_components(spec.target, grid.dims))
+    each *= len(getattr(src, "levels", None) or [None])
+    fits = max(1, default_memory_limit() // max(each, 1))
+    return max(1, min(cores(), n_snapshots, fits))
+
+
+class _OneReader:
+    """An open input whose attributes and calls are taken one thread at a time (netCDF and
+    HDF5 handles are not safe across threads): what snapshots mapped side by side read."""
+
+    def __init__(self, source):
+        self._source = source
+        self._lock = threading.RLock()
+
+    def __getattr__(self, name):
+        with self._lock:
+            value = getattr(self._source, name)
+        if not callable(value):
+            return value
+
+        @functools.wraps(value)
+        def call(*args, **kwargs):
+            with self._lock:
+                return value(*args, **kwargs)
+
+        return call
 
 
 def discover_levels(spec: JobSpec, progress: Progress | None = None) -> list[tuple[int, object]]:

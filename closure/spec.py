@@ -29,6 +29,8 @@ MAX_LIBRARY_NAME = 1024
 MAX_INLINE_LIBRARY = 65536
 #: the most slab tasks per phase one snapshot may be split into (closure.slabtasks)
 MAX_SLAB_TASKS = 4096
+#: the most snapshots an in-process run maps side by side
+MAX_JOBS = 256
 INLINE_LIBRARY = "inline terms"
 
 FilterKind = Literal["box", "gaussian", "spectral", "block"]
@@ -271,6 +273,11 @@ class JobSpec(_Strict):
         "tasks per phase, each over a range of slabs (periodic box, gaussian or spectral "
         "filters; 1: one task per snapshot). Default: snapshots past memory_limit are split "
         "into about two tasks per live worker in all; in process it has no effect")
+    jobs: Annotated[int, Field(ge=1, le=MAX_JOBS)] | None = Field(
+        None, description="in-process runs: snapshots mapped side by side, each on one core "
+        "(default: as many as there are cores and snapshots, within half the machine's "
+        "memory; 1 for snapshots processed by slabs or on torch). The queue spreads "
+        "snapshots over its workers instead; results do not depend on it")
     gas: GasSpec | None = Field(
         None, description="gas constants of compressible data, overriding the input file's "
         "attributes (compressible libraries only)")
@@ -317,7 +324,7 @@ class JobSpec(_Strict):
         if not d["reference_net"]["enabled"]:
             del d["reference_net"]  # jobs without a network keep their earlier fingerprint
         # where and within what memory the pass runs changes results at round-off only
-        for key in ("memory_limit", "device", "slab_tasks"):
+        for key in ("memory_limit", "device", "slab_tasks", "jobs"):
             d.pop(key, None)
         if not d.get("fine_float32"):
             d.pop("fine_float32", None)

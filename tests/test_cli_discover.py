@@ -37,13 +37,14 @@ def test_options_become_the_job_spec(small_file):
     spec = build_spec(small_file, filter="box", width=3.0, width_units="grid", ratio=2,
                       target="flux:c", library="classic", method="ard", scheme="fd4",
                       test_fraction=0.5, var=["u=U", "v=V"], scalar=["c"], non_periodic=True,
-                      transfer_weight=0.5, seed=7, resamples=0, snapshots="0-2,4")
+                      transfer_weight=0.5, seed=7, resamples=0, snapshots="0-2,4", jobs=3)
     assert spec.filter.kind == "box" and spec.filter.width == 3.0 and spec.filter.ratio == 2
     assert spec.input.variables == {"u": "U", "v": "V"} and spec.input.periodic is False
     assert spec.input.snapshots == [0, 1, 2, 4]
     assert (spec.fit.method, spec.fit.test_fraction, spec.fit.transfer_weight, spec.fit.seed) \
         == ("ard", 0.5, 0.5, 7)
     assert spec.target == "flux:c" and spec.scheme == "fd4"
+    assert spec.jobs == 3 and "jobs" not in spec.fingerprint()  # results do not depend on it
 
 
 def test_bad_options_exit_2_with_a_message(small_file, tmp_path, capsys):
@@ -57,6 +58,8 @@ def test_bad_options_exit_2_with_a_message(small_file, tmp_path, capsys):
     assert rc == 2 and "--snapshots expects" in capsys.readouterr().err
     rc = main(["discover", str(small_file), "--snapshots", "0", "-o", str(tmp_path / "m")])
     assert rc == 2 and "at least 2" in capsys.readouterr().err
+    rc = main(["discover", str(small_file), "--jobs", "0", "-o", str(tmp_path / "m")])
+    assert rc == 2 and "jobs: must be at least 1 (got 0)" in capsys.readouterr().err
     with pytest.raises(OptionError, match="--var expects"):
         build_spec(small_file, filter="box", width=None, width_units="grid", ratio=2,
                    target="stress", library="default", method="threshold", scheme="spectral",

@@ -1,5 +1,7 @@
 import json
 import os
+import threading
+import time
 
 import numpy as np
 import pytest
@@ -17,6 +19,7 @@ from closure.model import ClosureModel
 from closure.residuals import coarse_grain_snapshot
 from closure.spec import parse_spec
 from closure.stats import SufficientStats
+from closure.threads import map_in_threads
 
 
 def smooth_fields(path, n=128, snapshots=6, kmax=2, seed=0, times=None):
@@ -361,3 +364,66 @@ def test_divergence_check_discounts_the_schemes_own_error_on_bounded_grids(n):
     assert divergence_ratio({"u": u, "v": v}, grid, ["u", "v"]) <= DIVERGENCE_TOLERANCE
     divergent = u + 0.05 * gradient * np.sin(X)   # adds d_x u = 0.05 |grad u| cos(x)
     assert divergence_ratio({"u": divergent, "v": v}, grid, ["u", "v"]) > 0.02
+
+
+def test_snapshots_mapped_side_by_side_give_the_same_bits(smooth_file, monkeypatch):
+    # each snapshot's statistics are their own arithmetic and the reduce adds them in index
+    # order, so mapping them side by side changes nothing, bit for bit
+    ran_on = set()
+    real = pipeline._map
+
+    def spy(*args, **kwargs):
+        ran_on.add(threading.current_thread().name)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "_map", spy)
+    one = pipeline.discover(_spec(smooth_file, resamples=3, jobs=1))
+    assert len(ran_on) == 1
+    ran_on.clear()
+    for jobs in (2, 3):
+        many = pipeline.discover(_spec(smooth_file, resamples=3, jobs=jobs))
+        np.testing.assert_array_equal(many.coefficients_scaled, one.coefficients_scaled)
+        assert many.scores == one.scores
+    assert len(ran_on) >= 2  # the maps ran on threads of their own
+
+
+def test_map_jobs_follows_cores_snapshots_and_memory(smooth_file, monkeypatch):
+    import closure.outofcore
+
+    monkeypatch.setattr(pipeline, "cores", lambda: 4)
+    with open_fields(smooth_file) as src:
+        spec = _spec(smooth_file)
+        assert pipeline.map_jobs(spec, src, 6) == 4
+        assert pipeline.map_jobs(spec, src, 3) == 3
+        assert pipeline.map_jobs(_spec(smooth_file, jobs=8), src, 6) == 6
+        assert pipeline.map_jobs(_spec(smooth_file, jobs=2), src, 6) == 2
+        assert pipeline.map_jobs(_spec(smooth_file, device="cpu"), src, 6) == 1
+        # each snapshot's pass takes closure.outofcore.in_memory_bytes; half the machine
+        # holds two of them here
+        each = closure.outofcore.in_memory_bytes(src.grid, 2, ["tau_xx", "tau_xy", "tau_yy"])
+        monkeypatch.setattr(closure.outofcore, "default_memory_limit", lambda: 2 * each + 1)
+        assert pipeline.map_jobs(spec, src, 6) == 2
+        monkeypatch.setattr(closure.outofcore, "default_memory_limit", lambda: each // 2)
+        assert pipeline.map_jobs(spec, src, 6) == 1
+
+
+def test_one_reader_takes_the_input_one_thread_at_a_time():
+    class Source:
+        grid = "the grid"
+
+        def __init__(self):
+            self.inside, self.most = 0, 0
+
+        def snapshot(self, i):
+            self.inside += 1
+            self.most = max(self.most, self.inside)
+            time.sleep(0.01)
+            self.inside -= 1
+            return i
+
+    src = Source()
+    reader = pipeline._OneReader(src)
+    assert reader.grid == "the grid" and not hasattr(reader, "coarse_graining")
+    out = list(map_in_threads(reader.snapshot, range(8), 4))
+    assert [r for _, r in out] == list(range(8))
+    assert src.most == 1

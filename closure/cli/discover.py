@@ -87,7 +87,7 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
                per_level: bool = False, spacing: str | None = None, land: str = "zero",
                reference_net: bool = False, net_epochs: int | None = None,
                net_seconds: float | None = None, memory_limit: str | None = None,
-               fine_float32: bool = False, device: str = "numpy",
+               fine_float32: bool = False, device: str = "numpy", jobs: int | None = None,
                gas: dict | None = None, select: str = "apriori",
                duration: float | None = None, spinup: float | None = None,
                tolerance: float | None = None, transfer_weights: str | None = None):
@@ -142,6 +142,7 @@ def build_spec(input, *, filter: str, width: float | None, width_units: str, rat
         "memory_limit": parse_memory(memory_limit),
         "fine_float32": bool(fine_float32),
         "device": device,
+        "jobs": jobs,
         **({"gas": gas} if gas else {}),
     })
 
@@ -237,6 +238,10 @@ def discover(
         "numpy", "--device", help="array backend of the fine-grid pass of periodic data and "
         "of the Gram statistics: numpy, or torch on cpu, cuda or auto (needs torch==2.13.0; "
         "agrees to 1e-10)"),
+    jobs: int | None = typer.Option(
+        None, "--jobs", "-j", help="snapshots mapped side by side, each on one core (default: "
+        "one per core, within half the machine's memory; the same results whatever it is)",
+        show_default=False),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="print only the output path"),
     land: str = typer.Option(LAND_OPTION_DEFAULT, "--land", help=LAND_OPTION_HELP),
     gamma: float | None = GAMMA,
@@ -274,7 +279,7 @@ def discover(
                       levels=levels, per_level=per_level, spacing=spacing, land=land,
                       reference_net=reference_net, net_epochs=net_epochs,
                       net_seconds=net_seconds, memory_limit=memory_limit, fine_float32=float32,
-                      device=device,
+                      device=device, jobs=jobs,
                       gas=gas_options(gamma, gas_constant, prandtl, library),
                       select=select, duration=duration, spinup=spinup,
                       tolerance=selection_tolerance, transfer_weights=selection_weights)
