@@ -2,47 +2,47 @@
 
     python bench/fft_floor.py                       # 2-D 1024^2 and 3-D 256^3
     python bench/fft_floor.py --n2 256 --n3 64 --repeat 5
+    python bench/fft_floor.py --jobs 1              # per snapshot without side-by-side maps
     python bench/fft_floor.py --profile             # where the pass spends its time
 
 The pass is what ``closure.pipeline._map`` does with one snapshot once it is read: coarse-grain
 (Gaussian filter, ratio 4, default width, only the stress target), the default stress
-library's design on the coarse grid, and the sufficient statistics. The fields are random
-band-limited velocity (as bench/discover_2d.py), in memory, so reading the file is not timed.
+library's design on the coarse grid, and the sufficient statistics, with BLAS single-threaded
+as ``discover`` sets it once for a whole run. The fields are random band-limited velocity (as
+bench/discover_2d.py), in memory, so reading the file is not timed.
 
 The floor is the forward real FFTs of the fine grid that no exact method can avoid: one per
 velocity component and one per independent product ``u_i u_j`` (2-D: 5, 3-D: 9), with
-``scipy.fft.rfftn`` and the same workers as closure. The pass and the floor run alternately
-``--repeat`` times each; the fastest of each is compared (the machine may be shared). The ratio
-pass / floor is the figure (target at most 2); absolute times move with the machine's load.
-The CPU-time ratio (all threads) is printed too: on a busy machine it moves less.
-No assertion: a measurement.
+``scipy.fft.rfftn`` on every core (``workers=-1``). Two figures against it:
 
-Measured 2026-12-02 on the shared 2-core machine while other jobs ran (`nice python3
-bench/fft_floor.py`; load average 2 to 10, so wall figures moved by up to a factor of two
-between runs, and CPU time about equalled wall time: the second core was mostly taken).
-2-D 1024^2, the one periodic pass (row transforms and folds by cache-sized blocks, small
-transforms on one thread, Gram sums by matrix-vector products), alternated run by run with
-the code before it at load average 2.3-3.4: pass / floor 1.96x, 1.77x, 2.00x (before: 2.11x,
-2.17x, 2.54x); other runs under heavier load 1.77x-2.50x wall, 1.72x-2.15x CPU. So the 2-D
-target is met only at the edge on this machine; in CPU time the pass was coarse-graining about
-33-41 ms, the design (closure.library, not this pass's code) 12 ms, the statistics 3.5 ms and
-threadpoolctl's limit 2 ms, against a floor of 26-31 ms. 3-D 256^3: 0.76x and 1.06x wall
-(CPU 0.72x, 0.79x); the code before it 1.35x (CPU 1.31x).
+  one pass alone          one snapshot's pass, using every core itself (FFT workers, row
+                          blocks side by side): a job with a single snapshot
+  per snapshot, --jobs J  the wall time per snapshot when ``discover`` maps J snapshots side
+                          by side, each on one thread (closure.threads.map_in_threads; J
+                          defaults to the cores, as discover's default): a job with many
 
-On a quiet machine the 2-D figure is worse, because the floor's transforms use both cores and
-most of the rest of the pass runs on one: with every other process paused (`python3
-bench/fft_floor.py --repeat 7`), 2-D 1024^2 pass 63.2 ms against a floor of 18.2 ms, 3.47x
-wall, 2.13x CPU; 3-D 256^3 1.32x wall, 0.87x CPU. Per 2-D pass (cProfile): forward transforms
-21 ms, coarse inverse transforms 13 ms, filter multipliers and folds 16 ms, the design's
-interleaving copy and term evaluation about 17 ms, the Gram statistics 4 ms. The 2-D target
-is not met there: the single-threaded parts (multipliers, folds, the design) would have to
-run on both cores or shrink by half.
+The pass, the side-by-side maps and the floor run alternately ``--repeat`` times each; the
+fastest of each is compared (the machine may be shared). The ratios to the floor are the
+figures (target at most 2); absolute times move with the machine's load. CPU-time ratios (all
+threads) are printed too: on a busy machine they move less. No assertion: a measurement.
+
+Measured 2026-12-02 on the 2-core machine with every other process paused (`python3
+bench/fft_floor.py --repeat 9 --n3 0`, three runs; `--repeat 3 --n2 0` for 3-D):
+2-D 1024^2, floor 18.3-22.2 ms: per snapshot with --jobs 2 1.44x-1.54x (CPU time
+1.57x-1.62x), one pass alone 2.12x-2.39x (CPU 1.62x-1.71x); 3-D 256^3, floor 1.0 s: per
+snapshot 0.71x, one pass alone 0.89x (CPU 0.75x, 0.83x). Before this session's changes
+(polyphase folds, blocks and snapshots side by side, chunked design): 2-D one pass 3.38x
+(CPU 2.27x), 3-D 1.58x. Single-threaded, the 2-D pass takes 42-45 ms of CPU: FFTs about 22
+(forward row transforms 11.5, coarse inverses and the design's derivatives 7, columns 3.4),
+polyphase folds 8, term evaluation, copies and Gram statistics about 8, the rest Python.
+So the 2-D target is met per snapshot of a run with several snapshots; one snapshot alone
+uses the second core only in its row transforms and folds, at 2.1x-2.4x.
 """
 
 from __future__ import annotations
 
 import argparse
-import os
+import dataclasses
 import sys
 import time
 from pathlib import Path
@@ -51,6 +51,8 @@ import numpy as np
 import scipy.fft
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from closure.threads import cores  # noqa: E402
 
 RATIO = 4
 
@@ -87,15 +89,8 @@ def setup(n: int, ndim: int):
 
 
 def one_pass(snap, cg, library):
-    """The per-snapshot pass as pipeline._map does it (stress target, no transfers; BLAS
-    single-threaded, as the pipeline runs it)."""
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(limits=1, user_api="blas"):
-        return _pass(snap, cg, library)
-
-
-def _pass(snap, cg, library):
+    """The per-snapshot pass as pipeline._map does it (stress target, no transfers); run it
+    under :func:`small_blas`, as ``discover`` runs all its maps."""
     from closure.library import component_weights, design
     from closure.residuals import coarse_grain_snapshot
     from closure.stats import SufficientStats
@@ -106,6 +101,22 @@ def _pass(snap, cg, library):
     y = np.stack([cs.targets[c].reshape(-1) for c in comps])
     return SufficientStats.from_design(X, y, component_weights("stress", cs.grid.dims),
                                        library.names, comps, snapshot=0)
+
+
+def small_blas():
+    """BLAS single-threaded, as closure.pipeline sets it once around a whole run."""
+    from closure.pipeline import _blas_controller
+
+    return _blas_controller().limit(limits=1, user_api="blas")
+
+
+def side_by_side(snaps, cg, library, jobs: int) -> None:
+    """``one_pass`` of every snapshot of ``snaps``, ``jobs`` side by side, as ``discover
+    --jobs`` maps them (closure.threads.map_in_threads)."""
+    from closure.threads import map_in_threads
+
+    for _ in map_in_threads(lambda s: one_pass(s, cg, library), snaps, jobs):
+        pass
 
 
 def floor(snap):
@@ -129,18 +140,29 @@ def _best(fn, *args, repeat: int) -> list[tuple[float, float]]:
     return times
 
 
-def measure(n: int, ndim: int, repeat: int) -> dict:
+def measure(n: int, ndim: int, repeat: int, jobs: int) -> dict:
     snap, cg, library = setup(n, ndim)
-    one_pass(snap, cg, library)  # first-call costs (compiled terms, FFT plans) not counted
-    floor(snap)
-    ours, base = [], []
-    for _ in range(repeat):  # alternate, so a busy spell of the machine hits both
-        ours += _best(one_pass, snap, cg, library, repeat=1)
-        base += _best(floor, snap, repeat=1)
-    wall = (min(t for t, _ in ours), min(t for t, _ in base))
-    cpu = (min(c for _, c in ours), min(c for _, c in base))
-    return {"pass": wall[0], "floor": wall[1], "ratio": wall[0] / wall[1],
-            "cpu_ratio": cpu[0] / cpu[1]}
+    # ``jobs`` snapshots of their own (copies), each mapped twice per timed run
+    snaps = [snap] + [dataclasses.replace(snap, fields={k: v.copy() for k, v in
+                                                        snap.fields.items()})
+                      for _ in range(jobs - 1)]
+    snaps = snaps * 2
+    with small_blas():
+        one_pass(snap, cg, library)  # first-call costs (compiled terms, FFT plans) not counted
+        side_by_side(snaps, cg, library, jobs)
+        floor(snap)
+        ours, many, base = [], [], []
+        for _ in range(repeat):  # alternate, so a busy spell of the machine hits all three
+            ours += _best(one_pass, snap, cg, library, repeat=1)
+            many += [(t / len(snaps), c / len(snaps))
+                     for t, c in _best(side_by_side, snaps, cg, library, jobs, repeat=1)]
+            base += _best(floor, snap, repeat=1)
+    out = {"floor": min(t for t, _ in base)}
+    for name, runs in (("pass", ours), ("jobs", many)):
+        out[name] = min(t for t, _ in runs)
+        out[f"{name}_ratio"] = out[name] / out["floor"]
+        out[f"{name}_cpu_ratio"] = min(c for _, c in runs) / min(c for _, c in base)
+    return out
 
 
 def profile(n: int, ndim: int) -> None:
@@ -148,12 +170,13 @@ def profile(n: int, ndim: int) -> None:
     import pstats
 
     snap, cg, library = setup(n, ndim)
-    one_pass(snap, cg, library)
-    prof = cProfile.Profile()
-    prof.enable()
-    for _ in range(3):
+    with small_blas():
         one_pass(snap, cg, library)
-    prof.disable()
+        prof = cProfile.Profile()
+        prof.enable()
+        for _ in range(3):
+            one_pass(snap, cg, library)
+        prof.disable()
     pstats.Stats(prof).sort_stats("tottime").print_stats(18)
 
 
@@ -168,23 +191,29 @@ def main(argv=None) -> int:
                     help="shrink both: 2-D --n2 = N, 3-D --n3 = N / 4 (at least 32)")
     ap.add_argument("--repeat", type=int, default=5,
                     help="runs of the pass and of the floor, alternately; fastest compared")
+    ap.add_argument("--jobs", type=int, default=None,
+                    help="snapshots side by side for the per-snapshot figure (default: the "
+                         "cores, as discover's default)")
     ap.add_argument("--profile", action="store_true", help="cProfile the pass instead")
     args = ap.parse_args(argv)
     if args.n:
         args.n2, args.n3 = args.n, max(32, args.n // 4)
     cases = [(n, d) for n, d in ((args.n2, 2), (args.n3, 3)) if n]
+    jobs = args.jobs or cores()
     print(f"per-snapshot pass vs FFT floor: ratio {RATIO}, Gaussian filter, stress target, "
-          f"default library; {os.cpu_count()} cores, scipy.fft workers=-1")
+          f"default library; {cores()} cores, scipy.fft workers=-1; target <= 2x")
     for n, d in cases:
         if args.profile:
             print(f"--- profile {n}^{d}")
             profile(n, d)
             continue
-        r = measure(n, d, args.repeat)
+        r = measure(n, d, args.repeat, jobs)
         ffts = d + d * (d + 1) // 2
-        print(f"  {d}-D {n}^{d}: pass {1e3 * r['pass']:8.1f} ms, floor ({ffts} forward rfftn) "
-              f"{1e3 * r['floor']:8.1f} ms: pass / floor {r['ratio']:.2f}x (target <= 2x); "
-              f"CPU time pass / floor {r['cpu_ratio']:.2f}x")
+        print(f"  {d}-D {n}^{d}: floor ({ffts} forward rfftn) {1e3 * r['floor']:8.1f} ms\n"
+              f"    one pass alone         {1e3 * r['pass']:8.1f} ms: {r['pass_ratio']:.2f}x "
+              f"(CPU time {r['pass_cpu_ratio']:.2f}x)\n"
+              f"    per snapshot, --jobs {jobs} {1e3 * r['jobs']:8.1f} ms: {r['jobs_ratio']:.2f}x "
+              f"(CPU time {r['jobs_cpu_ratio']:.2f}x)")
     return 0
 
 

@@ -101,9 +101,10 @@ class NumpyBackend:
     def multiply(self, a, b, out):
         return np.multiply(a, b, out=out)
 
-    def phase_sum(self, P, H, out):
-        """``out[i, k] = sum_b P[i, b, k] H[b, k]`` (one pass, no temporaries)."""
-        return np.einsum("ibk,bk->ik", P, H, out=out)
+    def phase_sum(self, P, H, out=None, subscripts: str = "ibk,bk->ik"):
+        """``out[i, k] = sum_b P[i, b, k] H[b, k]``, or another einsum of P and H (one pass,
+        no temporaries); a new array when ``out`` is None."""
+        return np.einsum(subscripts, P, H, out=out)
 
     def conjugate_(self, a):
         """Conjugate ``a`` in place."""
@@ -191,8 +192,9 @@ class TorchBackend(NumpyBackend):
     def multiply(self, a, b, out):
         return self.torch.mul(a, b, out=out)
 
-    def phase_sum(self, P, H, out):
-        return out.copy_(self.torch.einsum("ibk,bk->ik", P, H))
+    def phase_sum(self, P, H, out=None, subscripts: str = "ibk,bk->ik"):
+        result = self.torch.einsum(subscripts, P, H)
+        return result if out is None else out.copy_(result)
 
     def conjugate_(self, a):
         return a.conj_physical_()
@@ -245,8 +247,9 @@ def gram_statistics(X, y, weights: Sequence[float] | None = None,
     w_c X_c^T P X_c, ``xy`` (C, p) = w_c X_c^T P y_c, ``yy`` (C,), ``x_sum`` (C, p) =
     w_c 1^T P X_c, ``y_sum`` (C,), with ``w`` the component ``weights`` (default 1) and ``P``
     the diagonal of ``point_weights`` (n,) (default 1). Matrix products (the Gram matrix and
-    ``xy``) and sums per component on ``backend``; float64 numpy results, accumulated in float64 whatever the
-    backend's precision (these are the sums that add up across snapshots)."""
+    ``xy``) and sums per component on ``backend``; float64 numpy results, accumulated in
+    float64 whatever the backend's precision (these are the sums that add up across
+    snapshots)."""
     be = backend or NumpyBackend()
     if be.precision != "float64":
         be = type(be)(*(() if be.name == "numpy" else (be.device,)), "float64")

@@ -317,26 +317,33 @@ class CoarseGraining:
     def _backend_constants(self) -> dict:
         return {}
 
-    def _polyphase_plan(self, code: str, backend):
-        """The last direction's fold under ``code`` as weights of the polyphase transforms:
-        ``H`` (r, h) with ``H[b, k] = (1/r) sum_q m(k + q n) exp(-2 pi i b (k + q n) / N)``
-        (``m`` the multiplier over all N fine wavenumbers, ``m(-k) = conj(m(k))`` for a real
-        operator), a ``backend`` array kept per backend; see :meth:`_folded_rows`."""
-        key = ("poly", code, backend.key)
+    def _polyphase_plan(self, code: str, backend, direction: int = -1):
+        """The fold of ``direction`` (default the last) under ``code`` as weights of the
+        polyphase transforms: ``H`` (r, h) with ``H[b, k] = (1/r) sum_q m(k + q n)
+        exp(-2 pi i b (k + q n) / N)`` (``m`` the multiplier over all N fine wavenumbers,
+        ``m(-k) = conj(m(k))`` for a real operator), for the ``h = n // 2 + 1`` coarse
+        wavenumbers of the last (half) axis or all ``n`` of another; a ``backend`` array kept
+        per backend. See :meth:`_folded_rows`."""
+        direction %= self.fine.ndim
+        key = ("poly", direction, code, backend.key)
         if key not in self._backend_constants:
-            N, r = self.fine.shape[-1], self.ratio
+            N, r = self.fine.shape[direction], self.ratio
             n = N // r
-            half = self._direction_multipliers[-1][code]  # wavenumbers 0 .. N // 2
-            j = np.arange(N)
-            m = np.where(j <= N // 2, half[np.minimum(j, N - j)],
-                         np.conj(half[np.minimum(j, N - j)]))
-            k = np.arange(n // 2 + 1)[None, :] + n * np.arange(r)[:, None]  # (q, k)
+            given = self._direction_multipliers[direction][code]
+            if direction == self.fine.ndim - 1:  # wavenumbers 0 .. N // 2 only
+                j = np.arange(N)
+                m = np.where(j <= N // 2, given[np.minimum(j, N - j)],
+                             np.conj(given[np.minimum(j, N - j)]))
+                h = n // 2 + 1
+            else:  # every wavenumber, in FFT order
+                m, h = given, n
+            k = np.arange(h)[None, :] + n * np.arange(r)[:, None]  # (q, k)
             b = np.arange(r)[:, None, None]
             H = (m[k][None] * np.exp(-2j * np.pi * b * k[None] / N)).sum(axis=1) / r
             self._backend_constants[key] = backend.asarray(H)
         return self._backend_constants[key]
 
-    def _folded_rows(self, f, codes: Sequence[str], be) -> dict:
+    def _folded_rows(self, f, codes: Sequence[str], be, times=None) -> dict:
         """``{code: the rows' spectra under code's last-direction multiplier, folded onto the
         coarse wavenumbers}`` (last axis ``n // 2 + 1``).
 
@@ -347,17 +354,19 @@ class CoarseGraining:
         (cheaper than one of length N) and r products per coarse wavenumber in one pass, with
         no Hermitian mirror to fold. The rows go by blocks (:meth:`closure.backend.NumpyBackend.
         by_row_blocks`), each block's transforms folded under every code while they are in the
-        CPU's cache; the same values, bit for bit, whatever the blocks."""
+        CPU's cache; the same values, bit for bit, whatever the blocks. With ``times``, the
+        rows are those of ``f * times``, formed block by block."""
         N, r = self.fine.shape[-1], self.ratio
         n = N // r
         h = n // 2 + 1
         lead = tuple(f.shape[:-1])
         rows = f.reshape(-1, N)
+        other = None if times is None else times.reshape(-1, N)
         out = {c: be.empty((rows.shape[0], h), complex=True) for c in codes}
         plans = {c: self._polyphase_plan(c, be) for c in codes}
 
         def work(block):
-            x = rows[block]
+            x = rows[block] if other is None else rows[block] * other[block]
             P = be.rfft(x.reshape(x.shape[0], n, r).swapaxes(-1, -2))  # (rows, r, h)
             for c in codes:
                 be.phase_sum(P, plans[c], out[c][block])
@@ -366,21 +375,8 @@ class CoarseGraining:
             be.by_row_blocks(work, rows.shape[0], N)
         return {c: out[c].reshape(*lead, h) for c in codes}
 
-    def _lead_plan(self, direction: int, code: str, trailing: int, backend) -> list:
-        """The multiplier of ``code`` along a full (complex FFT) ``direction``, divided by
-        the ratio (the fold's 1/r) and cut into the r alias blocks of the coarse length,
-        shaped to broadcast over ``trailing`` later axes; kept per backend."""
-        key = ("lead", direction, code, trailing, backend.key)
-        if key not in self._backend_constants:
-            m = self._direction_multipliers[direction][code] / self.ratio
-            n = self.fine.shape[direction] // self.ratio
-            self._backend_constants[key] = [
-                backend.asarray(m[q * n:(q + 1) * n].reshape((n,) + (1,) * trailing))
-                for q in range(self.ratio)]
-        return self._backend_constants[key]
-
     def separable(self, f, ops: Sequence[Sequence[str]], sample: bool = True,
-                  backend=None) -> list:
+                  backend=None, times=None) -> list:
         """Fields under per-direction spectral operators, each then sampled (periodic grids).
 
         ``f``: a field or stack (trailing axes ``fine.shape``). Each op gives, per direction of
@@ -388,7 +384,9 @@ class CoarseGraining:
         derivative, ``"fd"`` both. ``("f",) * ndim`` is the filtered field; ``("f", "fd")`` on
         a (y, x) grid its x derivative. With ``sample`` every ``ratio``-th point is kept
         (coarse grid), else the result stays on the fine grid. Returns one array per op, as
-        arrays of ``backend`` (a closure.backend backend; default numpy float64).
+        arrays of ``backend`` (a closure.backend backend; default numpy float64). With
+        ``times`` (an array of ``f``'s shape), the field is the product ``f * times``, formed
+        by blocks of rows as they are transformed, never whole on the fine grid.
 
         The filters are tensor products, so the directions are transformed one at a time, the
         last (x) first with a real FFT of each row, and each spectrum is folded onto the coarse
@@ -407,6 +405,11 @@ class CoarseGraining:
             raise ValueError(f"array of shape {tuple(f.shape)} does not end with the grid "
                              f"shape {g.shape}")
         f = be.asarray(f)
+        if times is not None:
+            times = be.asarray(times)
+            if tuple(times.shape) != tuple(f.shape):
+                raise ValueError(f"times of shape {tuple(times.shape)} is not f's shape "
+                                 f"{tuple(f.shape)}")
         ops = [tuple(op) for op in ops]
         for op in ops:
             if len(op) != g.ndim or not set(op) <= {"", "f", "d", "fd"}:
@@ -417,16 +420,17 @@ class CoarseGraining:
         groups: dict[str, list] = {}
         for op in sorted(set(ops)):
             groups.setdefault(op[last], []).append(op)
-        folded = self._folded_rows(f, [c for c in groups if c], be) if sample else {}
+        folded = self._folded_rows(f, [c for c in groups if c], be, times) if sample else {}
         rows = None
         for code, members in groups.items():
             if not code:  # sample the real rows first: a shorter transform, nothing to fold
-                X = be.rfft(f[..., ::r] if sample else f)
+                x = f[..., ::r] if sample else f
+                X = be.rfft(x if times is None else x * (times[..., ::r] if sample else times))
             elif sample:
                 X = folded.pop(code)
             else:
                 if rows is None:  # real rows: 1-D Hermitian symmetry
-                    rows = be.rfft(f)
+                    rows = be.rfft(f if times is None else f * times)
                 X = rows * self.backend_constant("directions", be)[last][code]
             self._lead_directions(X, last - 1, members, sample, (), out, be)
         return [out[op] for op in ops]
@@ -451,24 +455,23 @@ class CoarseGraining:
             groups.setdefault(op[direction], []).append(op)
         T = None
         lead = (slice(None),) * axis
+        before = int(np.prod(X.shape[:axis]))
+        after = int(np.prod(X.shape[axis + 1:]))
         for code, members in groups.items():
             if not code:  # real along this direction: sampling is slicing
                 Y = X[(*lead, slice(None, None, r))] if sample else X
                 self._lead_directions(Y, direction - 1, members, sample, spectral, out, be)
                 continue
-            if T is None:
-                T = be.fft(X, axis)
-            trailing = X.ndim - 1 - axis  # the multiplier broadcasts over the later axes
-            if sample:  # full axis: the aliases k + q n are contiguous blocks
-                blocks = self._lead_plan(direction, code, trailing, be)
-                Y = T[(*lead, slice(0, n))] * blocks[0]
-                scratch = be.empty(Y.shape, complex=True)
-                for q in range(1, r):
-                    be.multiply(T[(*lead, slice(q * n, (q + 1) * n))], blocks[q], scratch)
-                    Y += scratch
+            if sample:  # by polyphase, as the rows (_folded_rows): r transforms of length n
+                if T is None:
+                    T = be.fft(X.reshape(before, n, r, after), 1)
+                Y = be.phase_sum(T, self._polyphase_plan(code, be, direction), None,
+                                 "akbc,bk->akc").reshape(*X.shape[:axis], n, *X.shape[axis + 1:])
             else:
+                if T is None:
+                    T = be.fft(X, axis)
                 m = self.backend_constant("directions", be)[direction][code]
-                Y = T * m.reshape((N,) + (1,) * trailing)
+                Y = T * m.reshape((N,) + (1,) * (X.ndim - 1 - axis))
             self._lead_directions(Y, direction - 1, members, sample, (direction, *spectral),
                                   out, be)
 

@@ -385,8 +385,8 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
     def op(code, j):  # ``code`` along direction j, the filter (or nothing) along the others
         return tuple(code if d == j else ("f" if "f" in code else "") for d in dims)
 
-    def sampled(f, ops):
-        return cg.separable(f, ops, backend=be)
+    def sampled(f, ops, times=None):
+        return cg.separable(f, ops, backend=be, times=times)
 
     Fd = {j: op("fd", j) for j in dirs}  # d_j of the filtered field
     D = {j: op("d", j) for j in dirs}  # d_j alone
@@ -429,22 +429,19 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
         del U
 
     if want & {*stress_names(dims), "pi"} or need_force:
-        product = None
         for i, j in pairs:
-            # one work array for the products u_i u_j, in turn
-            product = (vel[i] * vel[j] if product is None
-                       else be.multiply(vel[i], vel[j], product))
+            # the products u_i u_j are formed by blocks of rows as they are transformed
             # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)) on the fine grid, sampled
             js = sorted({i, j}) if need_force else []
-            bar_p, *d_bar_p = sampled(product, [F, *(Fd[d] for d in js)])
+            bar_p, *d_bar_p = sampled(vel[i], [F, *(Fd[d] for d in js)], times=vel[j])
             out[f"tau_{i}{j}"] = bar_p - ubar[i] * ubar[j]
             if need_force:
-                d_p = sampled(fine_ubar[a_of[i]] * fine_ubar[a_of[j]], [D[d] for d in js])
+                d_p = sampled(fine_ubar[a_of[i]], [D[d] for d in js],
+                              times=fine_ubar[a_of[j]])
                 for d, a, b in zip(js, d_bar_p, d_p, strict=True):
                     # d_j tau_ij adds to force_i; d_i tau_ij (= d_i tau_ji) to force_j
                     key = f"force_{j if d == i else i}"
                     out[key] = out[key] + (a - b) if key in out else a - b
-        del product
     if "pi" in want:
         strain = {i + j: 0.5 * (grad[(i, j)] + grad[(j, i)]) for i, j in pairs}
         out["pi"] = energy_transfer(out, strain, dims)

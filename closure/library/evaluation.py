@@ -105,23 +105,36 @@ def evaluate_terms(library: Library, fields: Mapping[str, np.ndarray], grid: Gri
     return out
 
 
+#: Points per chunk of the design's term evaluation: the expressions' temporaries of one
+#: chunk stay in the CPU's cache (whole-grid temporaries made the evaluation memory-bound).
+DESIGN_CHUNK = 8192
+
+
 def design(library: Library, fields: Mapping[str, np.ndarray], grid: Grid,
            scheme: str = "spectral", delta: float = 1.0) -> np.ndarray:
     """The design tensor: float64 of shape (n_components, n_points, n_terms).
 
     ``fields`` maps ``u, v[, w]`` and scalars to coarse-grid arrays of ``grid.shape``;
     points are the grid in C order; column ``k`` is term ``k`` with Delta = ``delta``
-    (coordinate units), so its fitted coefficient is the Delta-scaled one. Each column is
-    contiguous (the tensor is a transposed view of a C-ordered (n_components, n_terms,
-    n_points) array): one plain copy per term evaluated, no interleaving, and the Gram
+    (coordinate units), so its fitted coefficient is the Delta-scaled one. The derivative
+    fields are computed whole, the terms by chunks of :data:`DESIGN_CHUNK` points (pointwise
+    expressions: the same values as whole arrays). Each column is contiguous (the tensor is a
+    transposed view of a C-ordered (n_components, n_terms, n_points) array), so the Gram
     products read whole columns.
     """
-    cols = evaluate_terms(library, fields, grid, scheme, delta)
+    _check_library_grid(library, grid, delta)
+    syms, fn = library._compiled()
+    deriv = derivative_fields(syms, fields, grid, scheme)
+    args = [deriv[s.name].reshape(-1) for s in syms]
     nc, npts, nt = len(library.keys), int(np.prod(grid.shape)), len(library.terms)
     out = np.empty((nc, nt, npts))
-    for t, comps in enumerate(cols):
-        for c in range(nc):
-            out[c, t] = comps[c].reshape(-1)
+    with np.errstate(all="ignore"):
+        for a in range(0, npts if nt else 0, DESIGN_CHUNK):
+            part = slice(a, min(a + DESIGN_CHUNK, npts))
+            flat = fn(float(delta), *(x[part] for x in args))
+            for t in range(nt):
+                for c in range(nc):
+                    out[c, t, part] = flat[t * nc + c]
     return out.transpose(0, 2, 1)
 
 
