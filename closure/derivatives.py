@@ -9,12 +9,14 @@ solver that will run the closure, so a fitted coefficient means the same thing t
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import scipy.fft
 
 from closure.errors import UserError
 from closure.grid import Grid
-from closure.threads import fft_workers
+from closure.threads import fft_workers, side_by_side
 
 SCHEMES = ("spectral", "fd2", "fd4")
 
@@ -113,13 +115,16 @@ def derivatives(f: np.ndarray, grid: Grid, dim: str, orders, scheme: str = "spec
     shape[axis] = k.size
     workers = fft_workers(f.size)
     fh = scipy.fft.rfft(f, axis=axis, workers=workers)
-    out = []
-    for order in orders:  # the multiplier of _spectral
+
+    def inverse(order):  # the multiplier of _spectral
         mult = (1j * k) ** order
         if order % 2 == 1 and n % 2 == 0:
             mult[-1] = 0.0
-        out.append(scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis, workers=workers))
-    return out
+        return scipy.fft.irfft(fh * mult.reshape(shape), n=n, axis=axis,
+                               workers=fft_workers(f.size))
+
+    # the orders' inverse transforms are independent: side by side
+    return side_by_side([functools.partial(inverse, order) for order in orders])
 
 
 def _spectral(f, grid, dim, order):

@@ -62,6 +62,7 @@ A mask with every point fluid is no mask: the result is bit for bit the unmasked
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Mapping, Sequence
 
 import numpy as np
@@ -72,6 +73,7 @@ from closure.errors import UserError
 from closure.fields import CoarseSnapshot, Snapshot  # re-exported: the types live there
 from closure.filters import LAND_CONVENTIONS, CoarseGraining, land_as_zero
 from closure.grid import VELOCITY_OF, Grid
+from closure.threads import side_by_side
 
 #: Direction pairs of the independent stress components, in output order.
 _PAIRS = (("x", "x"), ("x", "y"), ("y", "y"), ("x", "z"), ("y", "z"), ("z", "z"))
@@ -391,22 +393,11 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
     Fd = {j: op("fd", j) for j in dirs}  # d_j of the filtered field
     D = {j: op("d", j) for j in dirs}  # d_j alone
 
+    def together(calls):  # independent transforms side by side on numpy's threads
+        return side_by_side(calls) if be.name == "numpy" else [c() for c in calls]
+
     vel = {d: be.asarray(snapshot.fields[VELOCITY_OF[d]]) for d in dirs}
     a_of = {d: a for a, d in enumerate(dirs)}
-    # per component: the filtered field and the derivatives d_j bar(u_i) that are used
-    ubar, grad = {}, {}
-    for i in dirs:
-        js = [j for j in dirs if "pi" in want or (two_d and j != i)]
-        ubar[i], *dj = sampled(vel[i], [F, *(Fd[j] for j in js)])
-        grad.update({(i, j): a for j, a in zip(js, dj, strict=True)})
-    fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
-    cbar = {}
-    for c in scalars:  # one transform per scalar: its bits do not depend on the others
-        (cbar[c],) = sampled(be.asarray(snapshot.fields[c]), [F])
-        fields[c] = cbar[c]
-    if two_d:
-        fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
-
     out = {}
     need_force = any(t.startswith("force_") for t in want)
     need_vf = two_d and "vorticity_forcing" in want
@@ -428,16 +419,39 @@ def _spectral_terms(snapshot, cg, scalars, want, backend=None):
             del W
         del U
 
-    if want & {*stress_names(dims), "pi"} or need_force:
-        for i, j in pairs:
-            # the products u_i u_j are formed by blocks of rows as they are transformed
-            # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)) on the fine grid, sampled
-            js = sorted({i, j}) if need_force else []
-            bar_p, *d_bar_p = sampled(vel[i], [F, *(Fd[d] for d in js)], times=vel[j])
+    # the filtered velocity, its derivatives d_j bar(u_i) that are used, the filtered scalars
+    # and the products' terms: independent transforms, side by side
+    vjs = {i: [j for j in dirs if "pi" in want or (two_d and j != i)] for i in dirs}
+    calls = [functools.partial(sampled, vel[i], [F, *(Fd[j] for j in vjs[i])]) for i in dirs]
+    calls += [functools.partial(sampled, be.asarray(snapshot.fields[c]), [F]) for c in scalars]
+    products = list(pairs) if want & {*stress_names(dims), "pi"} or need_force else []
+
+    def product_terms(i, j):
+        # d_j tau_ij = d_j bar(u_i u_j) - d_j (bar(u_i) bar(u_j)) on the fine grid, sampled;
+        # the products u_i u_j are formed by blocks of rows as they are transformed
+        js = sorted({i, j}) if need_force else []
+        bar_p, *d_bar_p = sampled(vel[i], [F, *(Fd[d] for d in js)], times=vel[j])
+        d_p = (sampled(fine_ubar[a_of[i]], [D[d] for d in js], times=fine_ubar[a_of[j]])
+               if need_force else [])
+        return js, bar_p, d_bar_p, d_p
+
+    calls += [functools.partial(product_terms, i, j) for i, j in products]
+    results = together(calls)
+    ubar, grad, cbar = {}, {}, {}
+    for i, (ubar[i], *dj) in zip(dirs, results, strict=False):
+        grad.update({(i, j): a for j, a in zip(vjs[i], dj, strict=True)})
+    for c, (bar_c,) in zip(scalars, results[len(dirs):], strict=False):
+        cbar[c] = bar_c
+    fields = {VELOCITY_OF[d]: ubar[d] for d in dirs}
+    fields.update(cbar)
+    if two_d:
+        fields["vorticity"] = grad[("y", "x")] - grad[("x", "y")]
+
+    if products:
+        for (i, j), (js, bar_p, d_bar_p, d_p) in zip(
+                products, results[len(dirs) + len(scalars):], strict=True):
             out[f"tau_{i}{j}"] = bar_p - ubar[i] * ubar[j]
             if need_force:
-                d_p = sampled(fine_ubar[a_of[i]], [D[d] for d in js],
-                              times=fine_ubar[a_of[j]])
                 for d, a, b in zip(js, d_bar_p, d_p, strict=True):
                     # d_j tau_ij adds to force_i; d_i tau_ij (= d_i tau_ji) to force_j
                     key = f"force_{j if d == i else i}"

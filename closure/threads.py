@@ -97,6 +97,19 @@ def run_blocks(work: Callable, blocks: list) -> None:
             raise error
 
 
+def side_by_side(calls: list[Callable[[], object]]) -> list:
+    """The results of zero-argument ``calls``, in order, run side by side on
+    :func:`block_pool` (each on one thread), or in turn where there is no pool (one core, or
+    a thread that runs single). The first error (in call order) is raised after all ran."""
+    results: list = [None] * len(calls)
+
+    def work(k):
+        results[k] = calls[k]()
+
+    run_blocks(work, list(range(len(calls))))
+    return results
+
+
 def map_in_threads(fn: Callable, items: Iterable, jobs: int) -> Iterator[tuple[object, object]]:
     """``(item, fn(item))`` in the order of ``items``, with up to ``jobs`` calls running side by
     side, each on one thread (:func:`one_thread`); at most ``jobs`` results wait unread, so
@@ -129,4 +142,4 @@ def map_in_threads(fn: Callable, items: Iterable, jobs: int) -> Iterator[tuple[o
 
 
 __all__ = ["block_pool", "cores", "fft_workers", "map_in_threads", "one_thread", "run_blocks",
-           "single"]
+           "side_by_side", "single"]

@@ -105,3 +105,36 @@ def test_the_pass_has_the_same_bits_on_one_thread_and_on_every_core(monkeypatch)
         alone = cg.separable(f, ops)
     for a, b in zip(pooled, alone, strict=True):
         np.testing.assert_array_equal(a, b)
+
+
+def test_side_by_side_gives_the_results_in_order_and_the_first_error():
+    assert threads.side_by_side([lambda k=k: k * 10 for k in range(5)]) == [0, 10, 20, 30, 40]
+
+    def bad():
+        raise KeyError("second")
+
+    with pytest.raises(KeyError, match="second"):
+        threads.side_by_side([lambda: 1, bad, lambda: 3])
+
+
+@pytest.mark.parametrize("shape", [(32, 48), (16, 12, 20)])
+def test_coarse_graining_has_the_same_bits_with_its_transforms_side_by_side(shape, monkeypatch):
+    # the velocity, scalar and product transforms of one snapshot run side by side on the
+    # block pool; alone on one thread they give the very same targets and fields
+    from closure.fields import Snapshot
+    from closure.residuals import coarse_grain_snapshot
+
+    monkeypatch.setattr(threads, "cores", lambda: 2)
+    grid = Grid.regular(shape, 2 * np.pi)
+    rng = np.random.default_rng(len(shape))
+    names = ("u", "v", "w")[:len(shape)]
+    fields = {c: rng.standard_normal(shape) for c in (*names, "c")}
+    cg = make_coarse_graining("gaussian", grid, 4, None, "grid")
+    pooled = coarse_grain_snapshot(Snapshot(fields, grid, 0, 0.0), cg, ("c",))
+    with threads.one_thread():
+        alone = coarse_grain_snapshot(Snapshot(fields, grid, 0, 0.0), cg, ("c",))
+    assert set(pooled.targets) == set(alone.targets) and "force_x" in pooled.targets
+    for k in pooled.targets:
+        np.testing.assert_array_equal(pooled.targets[k], alone.targets[k], err_msg=k)
+    for k in pooled.fields:
+        np.testing.assert_array_equal(pooled.fields[k], alone.fields[k], err_msg=k)

@@ -5,6 +5,7 @@ the prediction of fitted coefficients.
 
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Iterable, Mapping, Sequence
 
@@ -16,6 +17,7 @@ from closure.errors import UserError
 from closure.grid import Grid
 from closure.library.kinematics import _INFO, AXES, directions
 from closure.library.terms import Library
+from closure.threads import side_by_side
 
 # ---------------------------------------------------------------------------------------------
 # evaluation
@@ -66,15 +68,21 @@ def derivative_fields(symbols: Iterable[sympy.Symbol], fields: Mapping[str, np.n
             todo = tuple(f for f in fs if (f, child) not in cache)
             if todo:
                 by_parent.setdefault(parent, {}).setdefault(todo, []).append(n)
-        for parent, groups in by_parent.items():
-            for todo, orders in groups.items():
-                stack = np.stack([cache[(f, parent)] for f in todo])
-                outs = ([derivative(stack, grid, d, orders[0], scheme)] if len(orders) == 1
-                        else derivatives(stack, grid, d, orders, scheme))
-                for n, out in zip(orders, outs, strict=True):
-                    child = parent[:axis] + (n,) + (0,) * (2 - axis)
-                    for f, a in zip(todo, out, strict=True):
-                        cache[(f, child)] = a
+        # the groups of an axis are independent: their transforms run side by side
+        work = [(parent, todo, orders) for parent, groups in by_parent.items()
+                for todo, orders in groups.items()]
+
+        def take(parent, todo, orders, d=d):
+            stack = np.stack([cache[(f, parent)] for f in todo])
+            return ([derivative(stack, grid, d, orders[0], scheme)] if len(orders) == 1
+                    else derivatives(stack, grid, d, orders, scheme))
+
+        results = side_by_side([functools.partial(take, *w) for w in work])
+        for (parent, todo, orders), outs in zip(work, results, strict=True):
+            for n, out in zip(orders, outs, strict=True):
+                child = parent[:axis] + (n,) + (0,) * (2 - axis)
+                for f, a in zip(todo, out, strict=True):
+                    cache[(f, child)] = a
     return {name: cache[(f, counts)] for name, (f, counts) in wanted.items()}
 
 
