@@ -21,22 +21,30 @@ velocity component and one per independent product ``u_i u_j`` (2-D: 5, 3-D: 9),
                           by side, each on one thread (closure.threads.map_in_threads; J
                           defaults to the cores, as discover's default): a job with many
 
-The pass, the side-by-side maps and the floor run alternately ``--repeat`` times each; the
-fastest of each is compared (the machine may be shared). The ratios to the floor are the
-figures (target at most 2); absolute times move with the machine's load. CPU-time ratios (all
-threads) are printed too: on a busy machine they move less. No assertion: a measurement.
+The pass, the side-by-side maps and the floor run alternately ``--repeat`` times each, twice
+in a row each time (so each has runs with its data and FFT plans warm; the floor, whose input
+then stays in the cache, gains most from it); the fastest run of each is compared (the machine
+may be shared). The ratios to the floor are the figures (target at most 2); absolute times
+move with the machine's load. CPU-time ratios (all threads) are printed too: on a busy
+machine they move less. No assertion: a measurement.
 
 Measured 2026-12-02 on the 2-core machine with every other process paused (`python3
-bench/fft_floor.py --repeat 9 --n3 0`, three runs; `--repeat 3 --n2 0` for 3-D):
-2-D 1024^2, floor 18.3-22.2 ms: per snapshot with --jobs 2 1.44x-1.54x (CPU time
-1.57x-1.62x), one pass alone 2.12x-2.39x (CPU 1.62x-1.71x); 3-D 256^3, floor 1.0 s: per
-snapshot 0.71x, one pass alone 0.89x (CPU 0.75x, 0.83x). Before this session's changes
-(polyphase folds, blocks and snapshots side by side, chunked design): 2-D one pass 3.38x
-(CPU 2.27x), 3-D 1.58x. Single-threaded, the 2-D pass takes 42-45 ms of CPU: FFTs about 22
-(forward row transforms 11.5, coarse inverses and the design's derivatives 7, columns 3.4),
-polyphase folds 8, term evaluation, copies and Gram statistics about 8, the rest Python.
-So the 2-D target is met per snapshot of a run with several snapshots; one snapshot alone
-uses the second core only in its row transforms and folds, at 2.1x-2.4x.
+bench/fft_floor.py --repeat 7 --n3 0`, three runs; `--repeat 3 --n2 0` for 3-D):
+2-D 1024^2, floor 14.3-14.7 ms: one pass alone 2.01x-2.06x (CPU time 1.79x-1.86x), per
+snapshot with --jobs 2 1.99x-2.06x (CPU 2.01x-2.14x); 3-D 256^3, floor 0.93 s: one pass
+alone 0.79x, per snapshot 0.74x (CPU 0.77x, 0.82x). Timed once per round instead (the floor
+then starts with its input out of the cache, as the pass does in a run), the same code gave
+1.86x-1.88x alone and 1.50x-1.69x per snapshot. Before this session's changes (polyphase
+folds, transforms and snapshots side by side, chunked design): 2-D one pass 3.38x (CPU
+2.27x), 3-D 1.58x, timed once per round.
+
+Where the 2-D pass goes (single-threaded, 42-45 ms of CPU against the floor's 21-24): the
+forward row transforms of the five fields 11.5 ms (the floor's own row transforms), the
+polyphase folds 7.5 (four complex products and sums per coarse wavenumber and code, numpy's
+einsum), column transforms 3.5, coarse inverse transforms and the design's derivatives 7,
+term evaluation and copies 4, Gram statistics 3 (BLAS, single-threaded), forming the products
+2.7, the rest Python. The 2-D target is met at best at its edge: the folds and the design's
+small-array work run at numpy's speed, and both halves of the machine share one memory bus.
 """
 
 from __future__ import annotations
@@ -152,11 +160,14 @@ def measure(n: int, ndim: int, repeat: int, jobs: int) -> dict:
         side_by_side(snaps, cg, library, jobs)
         floor(snap)
         ours, many, base = [], [], []
-        for _ in range(repeat):  # alternate, so a busy spell of the machine hits all three
-            ours += _best(one_pass, snap, cg, library, repeat=1)
+        # alternate, so a busy spell of the machine hits all three; twice in a row each, so
+        # each has a run with its data and plans warm (the floor's input stays in the cache
+        # between its runs, which favours it: the ratios are on the safe side)
+        for _ in range(repeat):
+            ours += _best(one_pass, snap, cg, library, repeat=2)
             many += [(t / len(snaps), c / len(snaps))
-                     for t, c in _best(side_by_side, snaps, cg, library, jobs, repeat=1)]
-            base += _best(floor, snap, repeat=1)
+                     for t, c in _best(side_by_side, snaps, cg, library, jobs, repeat=2)]
+            base += _best(floor, snap, repeat=2)
     out = {"floor": min(t for t, _ in base)}
     for name, runs in (("pass", ours), ("jobs", many)):
         out[name] = min(t for t, _ in runs)
