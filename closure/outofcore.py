@@ -35,6 +35,7 @@ import numpy as np
 import scipy.fft
 import scipy.ndimage
 
+from closure.backend import NumpyBackend
 from closure.errors import OptionError, UserError
 from closure.filters import CoarseGraining, box_weights, fold_spectrum
 from closure.grid import VELOCITY_OF, Grid
@@ -224,6 +225,7 @@ class _Engine:
         self.budget, self.stores = budget, stores
         self.real = np.dtype(dtype)
         self.complex = np.result_type(self.real, np.complex64)
+        self.backend = NumpyBackend("float32" if self.real == np.float32 else "float64")
         if cg.kind == "block":
             mults = []
             for a, d in enumerate(self.g.dims):
@@ -294,10 +296,16 @@ class _Engine:
         N = g.shape[-1]
         results: dict = {}
         rows = None
-        for code in sorted({op[last] for op in ops}):
+        codes = sorted({op[last] for op in ops})
+        # filters: the in-memory pass's polyphase folds, by blocks of rows on every core
+        folded = (self.cg._folded_rows(f, [c for c in codes if c], self.backend)
+                  if self.cg.kind != "block" else {})
+        for code in codes:
             members = [op for op in ops if op[last] == code]
             if not code:
                 X = scipy.fft.rfft(f[..., ::r], axis=-1, workers=-1)
+            elif code in folded:
+                X = folded.pop(code)
             else:
                 if rows is None:
                     rows = scipy.fft.rfft(f, axis=-1, workers=-1)
