@@ -34,18 +34,20 @@ from closure.library.terms import Library
 from closure.outofcore import _steps, _Stores, _subgrid, default_memory_limit
 from closure.stats import SufficientStats
 
-#: bytes a coarse point costs per array the slab pass holds at once besides the design's own
-#: (the library's intermediate expressions, the target and the field rows): a margin
-_SLAB_EXTRA_ARRAYS = 4
+#: arrays of the grid's (or a slab's) size held besides the derivative fields, term arrays,
+#: design and target: the library's shared subexpressions, a margin
+_EXTRA_ARRAYS = 4
 
 
 def design_bytes(library: Library, grid: Grid) -> int:
-    """Estimated peak bytes of the in-memory design of ``library`` on ``grid``
-    (closure.library.design, float64): its derivative fields, the term arrays and the
-    (components, points, terms) design, all held at once at worst."""
+    """Estimated peak bytes of the in-memory statistics of ``library`` on ``grid``
+    (closure.library.design and the stacked target, float64): its derivative fields, the term
+    arrays, the (components, points, terms) design, the target and a margin, all held at once
+    at worst. The default 3-D stress library: 160 arrays of the grid (measured 161 at 128^3,
+    bench/coarse_stats.py)."""
     n = int(np.prod(grid.shape))
     p, c = len(library.terms), len(library.keys)
-    return 8 * n * (len(library.symbols) + 2 * p * c)
+    return 8 * n * (len(library.symbols) + 2 * p * c + c + _EXTRA_ARRAYS)
 
 
 def design_fits(library: Library, grid: Grid, memory_limit: int | None) -> bool:
@@ -173,7 +175,7 @@ def statistics_by_slabs(library: Library, fields: Mapping[str, np.ndarray], grid
     # per row besides the derivative fields: the term arrays, the design, the target, a margin
     for s0, s1, shape, flat in _slab_terms(library, fields, grid, scheme, delta,
                                            _budget(memory_limit),
-                                           2 * p * C + C + _SLAB_EXTRA_ARRAYS, rows, workdir):
+                                           2 * p * C + C + _EXTRA_ARRAYS, rows, workdir):
         X = np.empty((C, int(np.prod(shape)), p))
         for c in range(C if p else 0):  # arranged as closure.library.design arranges them
             np.stack([np.broadcast_to(np.asarray(flat[t * C + c], dtype=float), shape)
@@ -212,7 +214,7 @@ def predict_by_slabs(library: Library, coefficients: Sequence[float],
     C = len(names)
     for s0, s1, shape, flat in _slab_terms(sub, fields, grid, scheme, delta,
                                            _budget(memory_limit),
-                                           len(active) * C + _SLAB_EXTRA_ARRAYS, rows, workdir):
+                                           len(active) * C + _EXTRA_ARRAYS, rows, workdir):
         for t, c_k in enumerate(coef):  # in predict's order of additions
             for c, n in enumerate(names):
                 out[n][s0:s1] += c_k * np.broadcast_to(np.asarray(flat[t * C + c], dtype=float),

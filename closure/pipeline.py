@@ -724,7 +724,8 @@ def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> Suffi
     """Sufficient statistics of one snapshot: coarse-grain, build the design and target.
 
     ``source`` may be an open closure.io FieldSource of the planned file (saves reopening it).
-    Memory: the fine snapshot, its coarse fields and the (C, n_coarse, p) design, then O(p^2).
+    Memory: the fine snapshot (by slabs past ``spec.memory_limit``), its coarse fields and the
+    (C, n_coarse, p) design (by slabs of the coarse grid past the limit), then O(p^2).
     """
     return _map(spec, plan, index, source)[0]
 
