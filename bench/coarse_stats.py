@@ -4,6 +4,7 @@
     python bench/coarse_stats.py --n 64 128 --repeat 2
     python bench/coarse_stats.py --n 256 --memory-up-to 256   # 256^3 in memory too (~22 GB)
     python bench/coarse_stats.py --n 128 --predict            # also the held-out prediction
+    python bench/coarse_stats.py --n 128 --transfers          # with the energy transfer block
 
 Data: random coarse fields u, v, w and the six stress targets on an n^3 periodic grid (the
 values do not matter to the cost), made in each contender's own subprocess after a warm-up on
@@ -18,8 +19,10 @@ a process that already holds the coarse snapshot.
   slabs    closure.coarsestats.statistics_by_slabs with a budget of ``--memory-limit``
            (first-direction derivatives beyond half of it go to files in the temporary folder)
 
-With ``--predict``, also closure.library.predict against closure.coarsestats.predict_by_slabs
-(every coefficient nonzero: the held-out scoring's worst case). Prints each peak rise in MB
+With ``--transfers`` both statistics add the energy transfer's block, as a transfer-weighted
+fit gathers it (the slab path holds the resolved strain whole). With ``--predict``, also
+closure.library.predict against closure.coarsestats.predict_by_slabs (every coefficient
+nonzero: the held-out scoring's worst case). Prints each peak rise in MB
 and against one coarse field's size, the estimate closure.coarsestats.design_bytes, the time
 ratio slabs / in memory, and the largest difference of the statistics (relative to each
 array's largest value). ``--repeat N`` keeps the fastest of N alternate runs (the machine may
@@ -58,7 +61,7 @@ def _start_memory() -> float:
     return _status_mb("VmRSS")
 
 
-def run(kind: str, n: int, budget: int, tmp: str) -> dict:
+def run(kind: str, n: int, budget: int, tmp: str, transfers: bool = False) -> dict:
     from closure.coarsestats import predict_by_slabs, statistics_by_slabs
     from closure.grid import Grid
     from closure.library import component_weights, design, make_library, predict
@@ -74,13 +77,28 @@ def run(kind: str, n: int, budget: int, tmp: str) -> dict:
     coef = np.linspace(0.5, 1.5, len(lib.terms))
     before = _start_memory()
     t0 = time.perf_counter()
+    blocks = ("energy_transfer",) if transfers else ()
     if kind == "memory":
         y = np.stack([targets[c].reshape(-1) for c in lib.components])
-        out = SufficientStats.from_design(design(lib, fields, grid, "spectral", delta), y, w,
-                                          lib.names, lib.components)
+        X = design(lib, fields, grid, "spectral", delta)
+        extra = {}
+        if blocks:  # as closure.pipeline._level_stats gathers them
+            from closure.scores import TransferContext
+
+            p, comps = len(lib.terms), lib.components
+            ctx = TransferContext("stress", fields, grid, "spectral")
+            cols = ctx.transfers({c: X[k].T.reshape(p, *grid.shape)
+                                  for k, c in enumerate(comps)}, blocks)["energy_transfer"]
+            exact = ctx.transfers(targets, blocks)["energy_transfer"]
+            extra["energy_transfer"] = SufficientStats.from_design(
+                cols.reshape(p, -1).T[None], exact.reshape(1, -1), None, lib.names,
+                ("energy_transfer",))
+            del ctx, cols
+        out = SufficientStats.from_design(X, y, w, lib.names, lib.components, extra=extra)
     elif kind == "slabs":
         out = statistics_by_slabs(lib, fields, grid, "spectral", delta, targets, w,
-                                  memory_limit=budget, workdir=tmp)
+                                  transfers=blocks, target="stress", memory_limit=budget,
+                                  workdir=tmp)
     elif kind == "predict-memory":
         out = predict(lib, coef, fields, grid, "spectral", delta)
     else:
@@ -90,6 +108,7 @@ def run(kind: str, n: int, budget: int, tmp: str) -> dict:
     peak = _status_mb("VmHWM")
     if isinstance(out, SufficientStats):
         check = {k: getattr(out, k).tolist() for k in ("gram", "xy", "x_sum")}
+        check.update({f"{name}:gram": b.gram.tolist() for name, b in out.extra.items()})
     else:
         check = {"prediction": [float(np.abs(a).sum()) for a in out.values()]}
     return {"seconds": seconds, "rise_mb": peak - before, "check": check}
@@ -97,13 +116,13 @@ def run(kind: str, n: int, budget: int, tmp: str) -> dict:
 
 def _worker(args) -> None:
     with tempfile.TemporaryDirectory() as tmp:
-        run(args.worker, 16, 1 << 20, tmp)  # warm-up: not the work
-        print(json.dumps(run(args.worker, args.n[0], args.budget_bytes, tmp)))
+        run(args.worker, 16, 1 << 20, tmp, args.transfers)  # warm-up: not the work
+        print(json.dumps(run(args.worker, args.n[0], args.budget_bytes, tmp, args.transfers)))
 
 
-def _spawn(kind: str, n: int, budget: int) -> dict:
+def _spawn(kind: str, n: int, budget: int, transfers: bool) -> dict:
     cmd = ["nice", "-n", "10", sys.executable, __file__, "--worker", kind, "--n", str(n),
-           "--budget-bytes", str(budget)]
+           "--budget-bytes", str(budget)] + (["--transfers"] if transfers else [])
     proc = subprocess.run(cmd, capture_output=True, text=True)
     if proc.returncode != 0:
         raise SystemExit(f"{kind} failed:\n{proc.stderr}")
@@ -122,6 +141,8 @@ def main(argv=None) -> int:
     ap.add_argument("--memory-up-to", type=int, default=128,
                     help="run the in-memory contenders only up to this n (256^3 needs ~22 GB)")
     ap.add_argument("--predict", action="store_true", help="also the held-out prediction")
+    ap.add_argument("--transfers", action="store_true",
+                    help="the statistics with the energy transfer block (transfer-weighted fits)")
     ap.add_argument("--repeat", type=int, default=1)
     ap.add_argument("--worker", help=argparse.SUPPRESS)
     ap.add_argument("--budget-bytes", type=int, default=0, help=argparse.SUPPRESS)
@@ -150,7 +171,7 @@ def main(argv=None) -> int:
             best: dict = {}
             for _ in range(max(1, args.repeat)):
                 for kind in kinds:
-                    r = _spawn(kind, n, budget)
+                    r = _spawn(kind, n, budget, args.transfers)
                     old = best.get(kind)
                     if old is None or r["seconds"] < old["seconds"]:
                         best[kind] = dict(r, rise_mb=max(r["rise_mb"], (old or r)["rise_mb"]))

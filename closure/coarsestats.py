@@ -149,6 +149,8 @@ def statistics_by_slabs(library: Library, fields: Mapping[str, np.ndarray], grid
                         scheme: str, delta: float, targets: Mapping[str, np.ndarray],
                         weights: Sequence[float] | None = None, *,
                         snapshot: int | None = None, point_weights: np.ndarray | None = None,
+                        transfers: Sequence[str] = (), target: str | None = None,
+                        transfer_points: np.ndarray | None = None,
                         memory_limit: int | None = None, rows: int | None = None,
                         workdir: str | None = None, backend=None) -> SufficientStats:
     """``SufficientStats.from_design(design(library, fields, grid, scheme, delta), y, weights,
@@ -157,10 +159,18 @@ def statistics_by_slabs(library: Library, fields: Mapping[str, np.ndarray], grid
     order), computed by slabs of the first direction within ``memory_limit`` bytes (None: half
     the machine's memory) of derivatives and design.
 
+    ``transfers`` (names of closure.scores.transfer_names for ``target``, each pointwise:
+    closure.scores.transfers_pointwise) add the extra blocks closure.pipeline gathers for
+    transfer-weighted fits: the transfers of every term's design column against those of the
+    targets, over ``transfer_points`` (boolean of ``grid.shape``; None: every point). Their
+    context (e.g. the resolved strain, 9 coarse fields in 3-D) is held whole.
+
     ``rows``: rows per slab (default: as many as the budget allows). Derivatives along the
     first direction that do not fit half the budget go to files in ``workdir`` (None: the
     system's temporary folder), deleted afterwards.
     """
+    from closure.scores import TransferContext, transfers_pointwise
+
     comps = list(targets)
     if len(comps) != len(library.keys):
         raise ValueError(f"{len(comps)} targets for a library of {len(library.keys)} components")
@@ -168,25 +178,48 @@ def statistics_by_slabs(library: Library, fields: Mapping[str, np.ndarray], grid
         if np.shape(targets[c]) != grid.shape:
             raise ValueError(f"target {c!r} has shape {np.shape(targets[c])}, the grid "
                              f"{grid.shape}")
+    transfers = tuple(transfers)
+    ctx = None
+    if transfers:
+        if target is None or not transfers_pointwise(target, transfers):
+            raise ValueError(f"transfers {transfers} of target {target!r} are not pointwise: "
+                             "gather them from the whole design")
+        ctx = TransferContext(target, fields, grid, scheme)
     names, C, p = library.names, len(comps), len(library.terms)
     pw = None if point_weights is None else np.asarray(point_weights, dtype=float).reshape(
         grid.shape)
+    tv = None if transfer_points is None else np.asarray(transfer_points).reshape(grid.shape)
     total = SufficientStats.zeros(names, comps)
-    # per row besides the derivative fields: the term arrays, the design, the target, a margin
+    extra = {name: SufficientStats.zeros(names, (name,)) for name in transfers}
+    # per row besides the derivative fields: the term arrays, the design, the target, the
+    # transfers' columns and products (with transfers), a margin
+    held = 2 * p * C + C + _EXTRA_ARRAYS + ((p * C + 3 * p) if transfers else 0)
     for s0, s1, shape, flat in _slab_terms(library, fields, grid, scheme, delta,
-                                           _budget(memory_limit),
-                                           2 * p * C + C + _EXTRA_ARRAYS, rows, workdir):
+                                           _budget(memory_limit), held, rows, workdir):
         X = np.empty((C, int(np.prod(shape)), p))
         for c in range(C if p else 0):  # arranged as closure.library.design arranges them
             np.stack([np.broadcast_to(np.asarray(flat[t * C + c], dtype=float), shape)
                       .reshape(-1) for t in range(p)], axis=1, out=X[c])
         del flat
         y = np.stack([np.asarray(targets[c][s0:s1], dtype=float).reshape(-1) for c in comps])
+        if ctx is not None:  # as closure.pipeline gathers them from the whole design
+            rows_ctx = ctx.rows(s0, s1)
+            columns = rows_ctx.transfers({c: X[k].T.reshape(p, *shape)
+                                          for k, c in enumerate(comps)}, transfers)
+            exact = rows_ctx.transfers({c: y[k].reshape(shape) for k, c in enumerate(comps)},
+                                       transfers)
+            for name in transfers:
+                extra[name] = extra[name] + SufficientStats.from_design(
+                    columns[name].reshape(p, -1).T[None], exact[name].reshape(1, -1), None,
+                    names, (name,), point_weights=None if tv is None else tv[s0:s1].reshape(-1),
+                    backend=backend)
+            del rows_ctx, columns, exact
         total = total + SufficientStats.from_design(
             X, y, weights, names, comps,
             point_weights=None if pw is None else pw[s0:s1].reshape(-1), backend=backend)
         del X, y
-    return total if snapshot is None else dataclasses.replace(total, snapshots=(int(snapshot),))
+    return dataclasses.replace(total, extra=extra,
+                               snapshots=() if snapshot is None else (int(snapshot),))
 
 
 def predict_by_slabs(library: Library, coefficients: Sequence[float],

@@ -746,10 +746,11 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
 
 def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | None):
     """Statistics of one coarse snapshot (one level). A design past ``spec.memory_limit`` is
-    built by slabs (closure.coarsestats), unless transfer statistics are gathered (they are
-    built from the whole design)."""
+    built by slabs (closure.coarsestats), unless its transfer statistics differentiate the
+    target (the 2-D enstrophy transfer of the stress or force: from the whole design)."""
     from closure.coarsestats import design_fits, statistics_by_slabs
     from closure.library import design
+    from closure.scores import transfers_pointwise
 
     if cs.valid is not None:
         _check_valid_points(spec, cs, cg, len(library.names))
@@ -757,11 +758,14 @@ def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | Non
     # land: excluded coarse points weigh 0 (and are never read by the statistics)
     points = None if cs.valid is None else cs.valid.reshape(-1)
     blocks = tuple(plan.get("transfers") or ())
-    if not blocks and not design_fits(library, cs.grid, spec.memory_limit):
-        return statistics_by_slabs(library, cs.fields, cs.grid, spec.scheme, cg.delta,
-                                   {c: cs.targets[c] for c in comps}, plan["weights"],
-                                   snapshot=index, point_weights=points,
-                                   memory_limit=spec.memory_limit, backend=_backend(spec))
+    if transfers_pointwise(spec.target, blocks) and \
+            not design_fits(library, cs.grid, spec.memory_limit):
+        return statistics_by_slabs(
+            library, cs.fields, cs.grid, spec.scheme, cg.delta,
+            {c: cs.targets[c] for c in comps}, plan["weights"], snapshot=index,
+            point_weights=points, transfers=blocks, target=spec.target,
+            transfer_points=transfer_valid(cs.valid, cs.grid, spec.scheme) if blocks else None,
+            memory_limit=spec.memory_limit, backend=_backend(spec))
     X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
     y = np.stack([cs.targets[c].reshape(-1) for c in comps])
     extra = {}

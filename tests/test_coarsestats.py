@@ -107,6 +107,55 @@ def test_point_weights_leave_out_the_same_points():
     assert got.count.tolist() == [int(points.sum())] * 3
 
 
+def _in_memory_transfers(lib, fields, grid, scheme, delta, targets, target, blocks, points):
+    """The transfer blocks as closure.pipeline gathers them from the whole design."""
+    from closure.scores import TransferContext
+
+    X = design(lib, fields, grid, scheme, delta)
+    p, comps = X.shape[2], lib.components
+    ctx = TransferContext(target, fields, grid, scheme)
+    columns = ctx.transfers({c: X[k].T.reshape(p, *grid.shape) for k, c in enumerate(comps)},
+                            blocks)
+    exact = ctx.transfers({c: targets[c] for c in comps}, blocks)
+    return {name: SufficientStats.from_design(
+        columns[name].reshape(p, -1).T[None], exact[name].reshape(1, -1), None, lib.names,
+        (name,), point_weights=None if points is None else points.reshape(-1))
+        for name in blocks}
+
+
+@pytest.mark.parametrize(("shape", "target", "blocks", "land"), [
+    ((10, 8, 12), "stress", ("energy_transfer",), True),
+    ((10, 8, 12), "force", ("energy_transfer",), False),
+    ((12, 10), "flux:c", ("scalar_variance_transfer",), True),
+    ((12, 10), "vorticity", ("enstrophy_transfer",), False)])
+def test_transfer_blocks_by_slabs_equal_the_whole_design_ones(shape, target, blocks, land):
+    grid, lib, fields, targets = _case(shape, target, seed=6)
+    points = (np.random.default_rng(2).random(grid.shape) > 0.2) if land else None
+    w = component_weights(target, grid.dims)
+    ref = _in_memory(lib, fields, grid, "spectral", 0.5, targets, w)
+    ref_extra = _in_memory_transfers(lib, fields, grid, "spectral", 0.5, targets, target,
+                                     blocks, points)
+    got = statistics_by_slabs(lib, fields, grid, "spectral", 0.5, targets, w, snapshot=7,
+                              transfers=blocks, target=target, transfer_points=points,
+                              memory_limit=TINY, rows=3)
+    assert _worst(ref, got) < 1e-12 and set(got.extra) == set(blocks)
+    for name in blocks:
+        b = got.extra[name]
+        assert b.components == (name,) and b.terms == tuple(lib.names)
+        assert max(float(np.abs(getattr(ref_extra[name], k) - getattr(b, k)).max()
+                         / np.abs(getattr(ref_extra[name], k)).max()) for k in _ARRAYS) < 1e-12
+        if land:
+            assert b.count.tolist() == [int(points.sum())]
+
+
+def test_a_transfer_that_differentiates_the_target_is_refused():
+    grid, lib, fields, targets = _case((8, 8))
+    with pytest.raises(ValueError, match="not pointwise"):
+        statistics_by_slabs(lib, fields, grid, "spectral", 1.0, targets,
+                            transfers=("energy_transfer", "enstrophy_transfer"),
+                            target="stress", memory_limit=TINY)
+
+
 def test_taylor_green_gram_matches_its_closed_form():
     # Taylor-Green vortex (Taylor & Green 1937): u = sin x cos y, v = -cos x sin y gives
     # S_xx = -S_yy = cos x cos y, S_xy = 0, |S| = 2 |cos x cos y|, so the Smagorinsky-form
@@ -242,3 +291,20 @@ def test_discover_past_the_memory_limit_gives_the_same_model(three_d_file, slab_
     assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
     for key in ("r2", "correlation", "energy_transfer_correlation"):
         assert got.scores["test"][key] == pytest.approx(ref.scores["test"][key], abs=1e-10)
+
+
+def test_a_transfer_weighted_fit_past_the_memory_limit_gives_the_same_model(three_d_file,
+                                                                          slab_calls):
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    def spec(**extra):
+        return parse_spec({"input": {"path": str(three_d_file)}, "target": "stress",
+                           "filter": {"kind": "gaussian", "ratio": 2}, "library": "classic",
+                           "fit": {"resamples": 0, "transfer_weight": 0.5}, **extra})
+
+    ref = pipeline.discover(spec())
+    got = pipeline.discover(spec(memory_limit=TINY))
+    assert slab_calls["statistics"] == 3
+    a, b = np.asarray(ref.coefficients), np.asarray(got.coefficients)
+    assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
