@@ -32,6 +32,7 @@ from closure.library import evaluation
 from closure.library.kinematics import AXES, field_symbol, symbol_info
 from closure.library.terms import Library
 from closure.outofcore import _steps, _Stores, _subgrid, default_memory_limit
+from closure.scores import TransferContext, transfers_pointwise
 from closure.stats import SufficientStats
 
 #: arrays of the grid's (or a slab's) size held besides the derivative fields, term arrays,
@@ -169,8 +170,6 @@ def statistics_by_slabs(library: Library, fields: Mapping[str, np.ndarray], grid
     first direction that do not fit half the budget go to files in ``workdir`` (None: the
     system's temporary folder), deleted afterwards.
     """
-    from closure.scores import TransferContext, transfers_pointwise
-
     comps = list(targets)
     if len(comps) != len(library.keys):
         raise ValueError(f"{len(comps)} targets for a library of {len(library.keys)} components")

@@ -180,29 +180,39 @@ def test_taylor_green_gram_matches_its_closed_form():
     assert got.yy == pytest.approx([quartic, 0.0, quartic], rel=1e-12)
 
 
-def test_the_slab_path_holds_no_more_than_its_budget(monkeypatch):
+def test_the_slab_path_holds_no_more_than_its_budget(monkeypatch, file_stores):
     grid, lib, fields, targets = _case((24, 24, 24))
-    budget = 3_000_000
+    budget = 1_500_000  # half of it holds 6 of the 9 first-direction derivatives
     assert design_bytes(lib, grid) > 5 * budget  # the in-memory design would not fit
-    seen = {"design": 0, "derivatives": 0, "slabs": 0}
+    slab = {"derivatives": 0}
+    seen = {"slab": 0, "kept": 0, "slabs": 0}
     real_derivatives = coarsestats.evaluation.derivative_fields
     real_from_design = SufficientStats.from_design.__func__
+    real_empty = outofcore._Stores.empty
 
     def derivatives_spy(symbols, f, g, scheme):
         out = real_derivatives(symbols, f, g, scheme)
-        seen["derivatives"] = max(seen["derivatives"], sum(a.nbytes for a in out.values()))
+        slab["derivatives"] += sum(a.nbytes for a in out.values())
         return out
 
-    def from_design_spy(cls, X, *a, **k):
-        seen["design"] = max(seen["design"], X.nbytes)
+    def from_design_spy(cls, X, *a, **k):  # a slab's derivative fields and its design
+        seen["slab"] = max(seen["slab"], slab["derivatives"] + X.nbytes)
         seen["slabs"] += 1
+        slab["derivatives"] = 0
         return real_from_design(cls, X, *a, **k)
+
+    def empty_spy(self, shape, dtype):  # first-direction derivatives kept in memory
+        out = real_empty(self, shape, dtype)
+        if isinstance(out, np.ndarray):
+            seen["kept"] += out.nbytes
+        return out
 
     monkeypatch.setattr(coarsestats.evaluation, "derivative_fields", derivatives_spy)
     monkeypatch.setattr(SufficientStats, "from_design", classmethod(from_design_spy))
+    monkeypatch.setattr(outofcore._Stores, "empty", empty_spy)
     statistics_by_slabs(lib, fields, grid, "spectral", 1.0, targets, memory_limit=budget)
-    assert 0 < seen["design"] <= budget // 2 and 0 < seen["derivatives"] <= budget // 2
-    assert seen["slabs"] > 1
+    assert 0 < seen["slab"] <= budget // 2 and 0 < seen["kept"] <= budget // 2
+    assert seen["slabs"] > 1 and len(file_stores) == 3  # the rest went to files
 
 
 def test_predict_by_slabs_equals_predict():
