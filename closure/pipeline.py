@@ -739,7 +739,8 @@ def map_snapshot(spec: JobSpec, plan: Mapping, index: int, source=None) -> Suffi
     """Sufficient statistics of one snapshot: coarse-grain, build the design and target.
 
     ``source`` may be an open closure.io FieldSource of the planned file (saves reopening it).
-    Memory: the fine snapshot, its coarse fields and the (C, n_coarse, p) design, then O(p^2).
+    Memory: the fine snapshot (by slabs past ``spec.memory_limit``), its coarse fields and the
+    (C, n_coarse, p) design (by slabs of the coarse grid past the limit), then O(p^2).
     """
     return _map(spec, plan, index, source)[0]
 
@@ -759,18 +760,30 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
 
 
 def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | None):
-    """Statistics of one coarse snapshot (one level)."""
+    """Statistics of one coarse snapshot (one level). A design past ``spec.memory_limit`` is
+    built by slabs (closure.coarsestats), unless its transfer statistics differentiate the
+    target (the 2-D enstrophy transfer of the stress or force: from the whole design)."""
+    from closure.coarsestats import design_fits, statistics_by_slabs
     from closure.library import design
+    from closure.scores import transfers_pointwise
 
     if cs.valid is not None:
         _check_valid_points(spec, cs, cg, len(library.names))
-    X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
     comps = list(plan["components"])
-    y = np.stack([cs.targets[c].reshape(-1) for c in comps])
     # land: excluded coarse points weigh 0 (and are never read by the statistics)
     points = None if cs.valid is None else cs.valid.reshape(-1)
-    extra = {}
     blocks = tuple(plan.get("transfers") or ())
+    if transfers_pointwise(spec.target, blocks) and \
+            not design_fits(library, cs.grid, spec.memory_limit):
+        return statistics_by_slabs(
+            library, cs.fields, cs.grid, spec.scheme, cg.delta,
+            {c: cs.targets[c] for c in comps}, plan["weights"], snapshot=index,
+            point_weights=points, transfers=blocks, target=spec.target,
+            transfer_points=transfer_valid(cs.valid, cs.grid, spec.scheme) if blocks else None,
+            memory_limit=spec.memory_limit, backend=_backend(spec))
+    X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
+    y = np.stack([cs.targets[c].reshape(-1) for c in comps])
+    extra = {}
     if blocks:
         ctx = TransferContext(spec.target, cs.fields, cs.grid, spec.scheme)
         p, shape = X.shape[2], cs.grid.shape
@@ -890,7 +903,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
     net_stats, net_sums = [], {}
 
     # second pass over the held-out snapshots: pointwise transfers of model and baseline
-    from closure.library import predict
+    # (predictions past spec.memory_limit by slabs)
+    from closure.coarsestats import predict_within
 
     sums: dict[str, TransferSums] = {}
     base_sums: dict[str, TransferSums] = {}
@@ -914,7 +928,8 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
             te = ctx.transfers(exact)
             for coef, acc in ((fit.coefficients, sums),) + \
                     (((base[1], base_sums),) if base else ()):
-                model = predict(library, coef, fields, coarse, spec.scheme, float(plan["delta"]))
+                model = predict_within(library, coef, fields, coarse, spec.scheme,
+                                       float(plan["delta"]), spec.memory_limit)
                 tm = ctx.transfers({c: model[c] for c in comps})
                 for k in te:
                     acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)

@@ -35,6 +35,7 @@ On periodic grids ``<omega * curl(div tau)>`` equals the mean of the enstrophy t
 
 from __future__ import annotations
 
+import copy
 from collections.abc import Mapping
 from dataclasses import dataclass, fields
 
@@ -129,6 +130,21 @@ class TransferContext:
     def _d(self, f, dim):
         return derivative(f, self.grid, dim, 1, self.scheme)
 
+    def rows(self, start: int, stop: int) -> TransferContext:
+        """This context over rows ``start:stop`` of the first direction: the transfers of
+        those rows of the values, for transfers that :func:`transfers_pointwise` says need
+        no derivative of them."""
+        out = copy.copy(self)
+        g = self.grid
+        out.grid = Grid(g.dims, (stop - start, *g.shape[1:]), g.spacing, g.origin, g.periodic,
+                        g.units)
+        for name in ("strain", "velocity", "scalar_gradient"):
+            if hasattr(self, name):
+                setattr(out, name, {k: v[start:stop] for k, v in getattr(self, name).items()})
+        if hasattr(self, "vorticity"):
+            out.vorticity = self.vorticity[start:stop]
+        return out
+
     def transfers(self, values: Mapping[str, np.ndarray],
                   which: tuple[str, ...] | None = None) -> dict[str, np.ndarray]:
         """Transfer fields (grid shape) of target components ``values`` (name -> field).
@@ -170,6 +186,13 @@ class TransferContext:
 
     def _curl(self, vec):
         return self._d(vec["y"], "x") - self._d(vec["x"], "y")
+
+
+def transfers_pointwise(target: str, which) -> bool:
+    """Whether the transfers ``which`` of ``target`` need no derivative of the target's values
+    (all but the enstrophy transfer of the stress and the force), so that rows of them come
+    from the same rows of the values (:meth:`TransferContext.rows`)."""
+    return not ("enstrophy_transfer" in which and target.split(":")[0] in ("stress", "force"))
 
 
 def transfer_names(target: str, dims: tuple[str, ...]) -> tuple[str, ...]:

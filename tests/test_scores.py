@@ -12,6 +12,7 @@ from closure.scores import (
     prediction_scores,
     transfer_names,
     transfer_sums,
+    transfers_pointwise,
 )
 from closure.stats import SufficientStats
 
@@ -134,6 +135,32 @@ def test_scalar_variance_transfer_and_names():
     assert transfer_names("stress", ("z", "y", "x")) == ("energy_transfer",)
     assert transfer_names("flux:c", ("x",)) == ("scalar_variance_transfer",)
     assert ctx.names == transfer_names("flux:c", g.dims)
+
+
+@pytest.mark.parametrize(("target", "names", "values"), [
+    ("stress", ("energy_transfer",), ("tau_xx", "tau_xy", "tau_yy")),
+    ("force", ("energy_transfer",), ("force_x", "force_y")),
+    ("vorticity", ("enstrophy_transfer",), ("vorticity_forcing",)),
+    ("flux:c", ("scalar_variance_transfer",), ("flux_c_x", "flux_c_y"))])
+def test_rows_of_pointwise_transfers_are_the_rows_of_the_whole(target, names, values):
+    g, f, x, y = _shear_flow()
+    f = {**f, "c": np.sin(x) * np.cos(2 * y)}
+    rng = np.random.default_rng(3)
+    vals = {k: rng.normal(size=g.shape) for k in values}
+    ctx = TransferContext(target, f, g, "spectral")
+    whole = ctx.transfers(vals, names)
+    assert transfers_pointwise(target, names)
+    rows = ctx.rows(5, 12)
+    assert rows.grid.shape == (7, *g.shape[1:]) and ctx.grid.shape == g.shape
+    part = rows.transfers({k: v[5:12] for k, v in vals.items()}, names)
+    for k in names:
+        np.testing.assert_array_equal(part[k], whole[k][5:12])
+
+
+def test_the_enstrophy_transfer_of_stress_and_force_differentiates_the_target():
+    assert not transfers_pointwise("stress", ("energy_transfer", "enstrophy_transfer"))
+    assert not transfers_pointwise("force", ("enstrophy_transfer",))
+    assert transfers_pointwise("stress", ("energy_transfer",)) and transfers_pointwise("stress", ())
 
 
 def test_a_perfect_model_scores_one():
