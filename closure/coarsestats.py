@@ -42,13 +42,13 @@ _EXTRA_ARRAYS = 4
 
 def design_bytes(library: Library, grid: Grid) -> int:
     """Estimated peak bytes of the in-memory statistics of ``library`` on ``grid``
-    (closure.library.design and the stacked target, float64): its derivative fields, the term
-    arrays, the (components, points, terms) design, the target and a margin, all held at once
-    at worst. The default 3-D stress library: 160 arrays of the grid (measured 161 at 128^3,
-    bench/coarse_stats.py)."""
+    (closure.library.design and the stacked target, float64): its derivative fields, the
+    (components, points, terms) design, the target and a margin (the design evaluates its
+    terms by chunks of points, so their arrays are never whole). The default 3-D stress
+    library: 112 arrays of the grid (measured 108.5 at 128^3, bench/coarse_stats.py)."""
     n = int(np.prod(grid.shape))
     p, c = len(library.terms), len(library.keys)
-    return 8 * n * (len(library.symbols) + 2 * p * c + c + _EXTRA_ARRAYS)
+    return 8 * n * (len(library.symbols) + p * c + c + _EXTRA_ARRAYS)
 
 
 def design_fits(library: Library, grid: Grid, memory_limit: int | None) -> bool:
