@@ -71,7 +71,9 @@ def _band_limited(rng, n: int):
 
 
 def write_snapshot(path: Path, n: int, seed: int = 0, dtype: str = "f8",
-                   band_limited: bool = False) -> Path:
+                   band_limited: bool = False, snapshots: int = 1) -> Path:
+    """A netCDF file of ``snapshots`` random 3-D velocity fields (each its own random draw),
+    chunked in z-slabs of 8 points."""
     import netCDF4
 
     rng = np.random.default_rng(seed)
@@ -85,16 +87,37 @@ def write_snapshot(path: Path, n: int, seed: int = 0, dtype: str = "f8",
             v[:] = x
             v.units = "m"
         t = ds.createVariable("time", "f8", ("time",))
-        t[0] = 0.0
+        t.units = "s"
+        t[:] = np.arange(snapshots, dtype=float)
         for c in ("u", "v", "w"):
             var = ds.createVariable(c, dtype, ("time", "z", "y", "x"),
                                     chunksizes=(1, slab, n, n))
             var.units = "m s-1"
-            make = _band_limited(rng, n) if band_limited else \
-                (lambda z0, z1: rng.standard_normal((z1 - z0, n, n)))
-            for z0 in range(0, n, slab):
-                var[0, z0:z0 + slab] = make(z0, min(n, z0 + slab)).astype(dtype)
+            for i in range(snapshots):
+                make = _band_limited(rng, n) if band_limited else \
+                    (lambda z0, z1: rng.standard_normal((z1 - z0, n, n)))
+                for z0 in range(0, n, slab):
+                    var[i, z0:z0 + slab] = make(z0, min(n, z0 + slab)).astype(dtype)
     return path
+
+
+def discover_run(path: Path, memory_limit: str | None, folder: Path) -> dict:
+    """``closure discover`` on ``path`` in a process of its own (ratio 4, default width and
+    library, ``--memory-limit``): wall time and the child's peak resident set."""
+    import resource
+
+    out = folder / "model.json"
+    cmd = [sys.executable, "-c", "import sys; from closure.cli import main; sys.exit(main())",
+           "discover", str(path), "--ratio", str(RATIO), "--resamples", "2", "-q",
+           "-o", str(out), *(["--memory-limit", memory_limit] if memory_limit else [])]
+    env = dict(os.environ, TMPDIR=str(folder))
+    t0 = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    seconds = time.perf_counter() - t0
+    if proc.returncode != 0:
+        raise SystemExit(f"discover failed:\n{proc.stderr}")
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024.0  # KiB -> MiB
+    return {"seconds": seconds, "peak_mb": peak, "model": json.loads(out.read_text())}
 
 
 def _status_mb(key: str) -> float:
@@ -214,6 +237,9 @@ def main(argv=None) -> int:
     ap.add_argument("--skip-memory-run", action="store_true",
                     help="only the slab run (when the in-memory one does not fit)")
     ap.add_argument("--folder", type=Path, default=None, help="where the data file goes")
+    ap.add_argument("--discover", type=int, default=0, metavar="S",
+                    help="instead: a file of S snapshots (at least 2) and the whole "
+                         "`closure discover` on it, with --memory-limit (peak and time)")
     ap.add_argument("--worker", help=argparse.SUPPRESS)
     ap.add_argument("--file", help=argparse.SUPPRESS)
     ap.add_argument("--budget-bytes", type=int, default=0, help=argparse.SUPPRESS)
@@ -232,6 +258,22 @@ def main(argv=None) -> int:
           + f"; {os.cpu_count()} cores; data in {folder} ({args.file_dtype}"
           + (", band-limited)" if args.band_limited else ", white noise)"), flush=True)
     try:
+        if args.discover:
+            for n in args.n:
+                t0 = time.perf_counter()
+                path = write_snapshot(folder / f"snaps_{n}.nc", n, dtype=args.file_dtype,
+                                      band_limited=args.band_limited, snapshots=args.discover)
+                print(f"  {n}^3 x {args.discover}: file of {path.stat().st_size / 2**30:.2f} "
+                      f"GiB written in {time.perf_counter() - t0:.0f} s", flush=True)
+                r = discover_run(path, args.memory_limit, folder)
+                snap_mb = 3 * 8 * n**3 / 2**20
+                terms = [t["name"] for t in r["model"]["terms"] if t.get("active")]
+                print(f"  {n}^3 x {args.discover}: closure discover {r['seconds']:.0f} s, peak "
+                      f"resident {r['peak_mb']:.0f} MiB = {r['peak_mb'] / snap_mb:.2f}x one "
+                      f"snapshot in float64 ({snap_mb:.0f} MiB); active terms: "
+                      f"{', '.join(terms) or 'none'}", flush=True)
+                path.unlink()
+            return 0
         for n in args.n:
             size_mb = 3 * 8 * n**3 / 2**20
             need = 3 * n**3 * (item + 8)  # the file, and spill files (~5 N^3 at ratio 4)
