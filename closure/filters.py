@@ -389,10 +389,10 @@ class CoarseGraining:
         by blocks of rows as they are transformed, never whole on the fine grid.
 
         The filters are tensor products, so the directions are transformed one at a time, the
-        last (x) first with a real FFT of each row, and each spectrum is folded onto the coarse
-        wavenumbers (:func:`fold_spectrum`'s aliasing, Hermitian half included) before the next
-        direction is transformed: the complex FFTs along y (and z) act on arrays already coarse
-        in x. A direction without a code is sampled by slicing. One coarse inverse FFT per op
+        last (x) first, and each is folded onto the coarse wavenumbers (the aliasing of
+        :func:`fold_spectrum`, computed by polyphase: r transforms of length n and one weighted
+        sum, :meth:`_folded_rows`) before the next direction is transformed: the transforms
+        along y (and z) act on arrays already coarse in x. A direction without a code is sampled by slicing. One coarse inverse FFT per op
         at the end. Ops sharing codes share the transforms. Exact: the values of filtering and
         differentiating on the fine grid, then sampling, to round-off. Each op's arithmetic
         does not depend on the other ops asked for (the same bits).
