@@ -393,9 +393,10 @@ class CoarseGraining:
         :func:`fold_spectrum`, computed by polyphase: r transforms of length n and one weighted
         sum, :meth:`_folded_rows`) before the next direction is transformed: the transforms
         along y (and z) act on arrays already coarse in x. A direction without a code is
-        sampled by slicing. One coarse inverse FFT per op at the end. Ops sharing codes share the transforms. Exact: the values of filtering and
-        differentiating on the fine grid, then sampling, to round-off. Each op's arithmetic
-        does not depend on the other ops asked for (the same bits).
+        sampled by slicing. One coarse inverse FFT per op at the end. Ops sharing codes share
+        the transforms. Exact: the values of filtering and differentiating on the fine grid,
+        then sampling, to round-off. Each op's arithmetic does not depend on the other ops
+        asked for (the same bits).
         """
         g = self.fine
         be = backend or _NUMPY
