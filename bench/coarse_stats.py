@@ -43,22 +43,7 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-
-def _status_mb(key: str) -> float:
-    with open("/proc/self/status") as fh:
-        for line in fh:
-            if line.startswith(key + ":"):
-                return float(line.split()[1]) / 1024.0
-    return float("nan")
-
-
-def _start_memory() -> float:
-    try:
-        with open("/proc/self/clear_refs", "w") as fh:
-            fh.write("5")  # resets the peak resident set (Linux >= 4.0)
-    except OSError:
-        pass
-    return _status_mb("VmRSS")
+from peakmem import peak_mb, start_memory  # noqa: E402  (bench/ is the script's folder)
 
 
 def run(kind: str, n: int, budget: int, tmp: str, transfers: bool = False) -> dict:
@@ -75,7 +60,7 @@ def run(kind: str, n: int, budget: int, tmp: str, transfers: bool = False) -> di
     w = component_weights("stress", grid.dims)
     delta = 2 * grid.spacing[0]
     coef = np.linspace(0.5, 1.5, len(lib.terms))
-    before = _start_memory()
+    before = start_memory()
     t0 = time.perf_counter()
     blocks = ("energy_transfer",) if transfers else ()
     if kind == "memory":
@@ -105,7 +90,7 @@ def run(kind: str, n: int, budget: int, tmp: str, transfers: bool = False) -> di
         out = predict_by_slabs(lib, coef, fields, grid, "spectral", delta,
                                memory_limit=budget, workdir=tmp)
     seconds = time.perf_counter() - t0
-    peak = _status_mb("VmHWM")
+    peak = peak_mb()
     if isinstance(out, SufficientStats):
         check = {k: getattr(out, k).tolist() for k in ("gram", "xy", "x_sum")}
         check.update({f"{name}:gram": b.gram.tolist() for name, b in out.extra.items()})

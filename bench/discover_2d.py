@@ -43,7 +43,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -51,6 +50,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from peakmem import peak_mb, start_memory  # (bench/ is the script's folder)
 
 RATIO = 4
 
@@ -99,33 +99,10 @@ def write_fields(path: Path, n: int, snapshots: int, seed: int = 0) -> Path:
 
 
 # ---------------------------------------------------------------------- contenders
-def _status_mb(key: str) -> float | None:
-    try:
-        with open("/proc/self/status") as fh:
-            for line in fh:
-                if line.startswith(key + ":"):
-                    return float(line.split()[1]) / 1024.0  # kB
-    except OSError:
-        pass
-    return None
 
 
-def _start_memory() -> float:
-    """Reset the peak resident set where the kernel allows it; the resident set now (MiB)."""
-    try:
-        with open("/proc/self/clear_refs", "w") as fh:
-            fh.write("5")  # resets the peak resident set (Linux >= 4.0)
-    except OSError:
-        pass
-    now = _status_mb("VmRSS")
-    return now if now is not None else _peak_mb()
 
 
-def _peak_mb() -> float:
-    peak = _status_mb("VmHWM")
-    if peak is not None:
-        return peak
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0  # Linux: KiB
 
 
 #: where discover's time goes: (label, module, attribute path); each is wrapped with a timer
@@ -174,11 +151,11 @@ def run_discover(path: str, snapshots: int | None) -> dict:
                        "filter": {"kind": "gaussian", "ratio": RATIO},
                        "fit": {"method": "threshold"}})
     spent, undo = _wrap_parts()  # timers, to show where the time goes
-    before = _start_memory()
+    before = start_memory()
     t0 = time.perf_counter()
     model = pipeline.discover(spec)
     seconds = time.perf_counter() - t0
-    peak = _peak_mb()
+    peak = peak_mb()
     for owner, name, raw in undo:
         setattr(owner, name, raw)
     return {"seconds": seconds, "peak_rise_mb": peak - before, "peak_mb": peak,
@@ -224,7 +201,7 @@ def run_baseline(path: str, snapshots: int | None) -> dict:
     import scipy.ndimage
     from sklearn.linear_model import LassoCV
 
-    before = _start_memory()
+    before = start_memory()
     t0 = time.perf_counter()
     with netCDF4.Dataset(path) as ds:
         n_all = ds.dimensions["time"].size
@@ -258,7 +235,7 @@ def run_baseline(path: str, snapshots: int | None) -> dict:
     pred = (Xte / scale) @ fit.coef_
     r2 = 1 - np.sum((yte - pred) ** 2) / np.sum((yte - yte.mean()) ** 2)
     seconds = time.perf_counter() - t0
-    peak = _peak_mb()
+    peak = peak_mb()
     return {"seconds": seconds, "peak_rise_mb": peak - before, "peak_mb": peak,
             "test_r2": float(r2), "terms": int(np.count_nonzero(fit.coef_))}
 

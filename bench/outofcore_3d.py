@@ -48,6 +48,8 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
+from peakmem import peak_mb, start_memory  # noqa: E402  (bench/ is the script's folder)
+
 RATIO = 4
 
 
@@ -120,21 +122,8 @@ def discover_run(path: Path, memory_limit: str | None, folder: Path) -> dict:
     return {"seconds": seconds, "peak_mb": peak, "model": json.loads(out.read_text())}
 
 
-def _status_mb(key: str) -> float:
-    with open("/proc/self/status") as fh:
-        for line in fh:
-            if line.startswith(key + ":"):
-                return float(line.split()[1]) / 1024.0
-    return float("nan")
 
 
-def _start_memory() -> float:
-    try:
-        with open("/proc/self/clear_refs", "w") as fh:
-            fh.write("5")  # resets the peak resident set (Linux >= 4.0)
-    except OSError:
-        pass
-    return _status_mb("VmRSS")
 
 
 def run(kind: str, path: str, budget_bytes: int, targets: list[str], tmp: str) -> dict:
@@ -147,7 +136,7 @@ def run(kind: str, path: str, budget_bytes: int, targets: list[str], tmp: str) -
     spill = _SpillWatch(tmp)
     with open_fields(path) as src:
         cg = make_coarse_graining("gaussian", src.grid, RATIO)
-        before = _start_memory()
+        before = start_memory()
         t0 = time.perf_counter()
         if kind == "memory":
             cs = coarse_grain_snapshot(src.snapshot(0), cg, targets=targets)
@@ -160,7 +149,7 @@ def run(kind: str, path: str, budget_bytes: int, targets: list[str], tmp: str) -
             cs = coarse_grain_by_tasks(SourceSlabs(src, 0), cg, int(kind.split(":")[1]),
                                        targets=targets, memory_limit=budget_bytes, folder=tmp)
         seconds = time.perf_counter() - t0
-        peak = _status_mb("VmHWM")
+        peak = peak_mb()
     check = float(sum(np.abs(a).sum() for a in cs.targets.values()))
     return {"seconds": seconds, "rise_mb": peak - before, "peak_mb": peak, "check": check,
             "spill_gb": spill.stop() / 2**30}

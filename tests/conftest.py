@@ -67,3 +67,20 @@ def three_d_file(tmp_path):
     path = tmp_path / "three_d.nc"
     xr.Dataset(data, coords={"time": [0.0, 0.5, 1.0], "z": c, "y": c, "x": c}).to_netcdf(path)
     return path
+
+
+@pytest.fixture
+def file_stores(monkeypatch):
+    """The paths of the arrays closure.outofcore put in files (its _FileArray), in order: what
+    a run spilled past its memory budget."""
+    from closure import outofcore
+
+    made = []
+    init = outofcore._FileArray.__init__
+
+    def spy(self, *a, **k):
+        made.append(a[0])
+        init(self, *a, **k)
+
+    monkeypatch.setattr(outofcore._FileArray, "__init__", spy)
+    return made

@@ -46,19 +46,6 @@ def _worst(a: SufficientStats, b: SufficientStats) -> float:
                      / np.abs(getattr(a, k)).max()) for k in _ARRAYS)
 
 
-@pytest.fixture
-def file_stores(monkeypatch):
-    """Counts the first-direction derivatives that went to files."""
-    made = []
-    init = outofcore._FileArray.__init__
-
-    def spy(self, *a, **k):
-        made.append(a[0])
-        init(self, *a, **k)
-
-    monkeypatch.setattr(outofcore._FileArray, "__init__", spy)
-    return made
-
 
 @pytest.mark.parametrize("shape", [(12, 16), (10, 8, 12)])
 @pytest.mark.parametrize("rows", [1, 3, None])  # 3 rows divide 12, not 10

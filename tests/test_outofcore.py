@@ -43,19 +43,6 @@ def _worst(a, b) -> float:
     return worst
 
 
-@pytest.fixture
-def file_stores(monkeypatch):
-    """Counts the intermediates that went to files."""
-    made = []
-    init = outofcore._FileArray.__init__
-
-    def spy(self, *a, **k):
-        made.append(a[0])
-        init(self, *a, **k)
-
-    monkeypatch.setattr(outofcore._FileArray, "__init__", spy)
-    return made
-
 
 CASES = [  # (shape, kind, periodic, ratio)
     ((16, 24), "gaussian", True, 2), ((16, 24), "box", True, 4), ((16, 24), "spectral", True, 2),
