@@ -759,10 +759,26 @@ def _map(spec: JobSpec, plan: Mapping, index: int, source=None):
     return dataclasses.replace(total, snapshots=(int(index),)), _LevelStack(parts)
 
 
+def _nbytes(*groups) -> int:
+    """Bytes of the arrays in ``groups`` (mappings of arrays)."""
+    return sum(int(getattr(a, "nbytes", 0)) for g in groups for a in g.values())
+
+
+def remaining_budget(memory_limit: int | None, held: int) -> int:
+    """The part of ``memory_limit`` (None: closure.outofcore.default_memory_limit) left to a
+    pass's own work beside ``held`` bytes the run holds meanwhile (the coarse snapshot, ...);
+    at least a quarter of the limit, so a pass can always make progress."""
+    from closure.outofcore import default_memory_limit
+
+    limit = default_memory_limit() if memory_limit is None else int(memory_limit)
+    return max(limit - int(held), limit // 4)
+
+
 def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | None):
-    """Statistics of one coarse snapshot (one level). A design past ``spec.memory_limit`` is
-    built by slabs (closure.coarsestats), unless its transfer statistics differentiate the
-    target (the 2-D enstrophy transfer of the stress or force: from the whole design)."""
+    """Statistics of one coarse snapshot (one level). A design past what ``spec.memory_limit``
+    leaves beside the coarse snapshot is built by slabs (closure.coarsestats), unless its
+    transfer statistics differentiate the target (the 2-D enstrophy transfer of the stress or
+    force: from the whole design)."""
     from closure.coarsestats import design_fits, statistics_by_slabs
     from closure.library import design
     from closure.scores import transfers_pointwise
@@ -773,14 +789,14 @@ def _level_stats(spec: JobSpec, plan: Mapping, cs, cg, library, index: int | Non
     # land: excluded coarse points weigh 0 (and are never read by the statistics)
     points = None if cs.valid is None else cs.valid.reshape(-1)
     blocks = tuple(plan.get("transfers") or ())
-    if transfers_pointwise(spec.target, blocks) and \
-            not design_fits(library, cs.grid, spec.memory_limit):
+    budget = remaining_budget(spec.memory_limit, _nbytes(cs.fields, cs.targets))
+    if transfers_pointwise(spec.target, blocks) and not design_fits(library, cs.grid, budget):
         return statistics_by_slabs(
             library, cs.fields, cs.grid, spec.scheme, cg.delta,
             {c: cs.targets[c] for c in comps}, plan["weights"], snapshot=index,
             point_weights=points, transfers=blocks, target=spec.target,
             transfer_points=transfer_valid(cs.valid, cs.grid, spec.scheme) if blocks else None,
-            memory_limit=spec.memory_limit, backend=_backend(spec))
+            memory_limit=budget, backend=_backend(spec))
     X = design(library, cs.fields, cs.grid, spec.scheme, cg.delta)
     y = np.stack([cs.targets[c].reshape(-1) for c in comps])
     extra = {}
@@ -926,10 +942,15 @@ def reduce(spec: JobSpec, plan: Mapping, stats: Mapping[int, SufficientStats],
             ctx = TransferContext(spec.target, fields, coarse, spec.scheme)
             exact = {c: targets[c] for c in comps}
             te = ctx.transfers(exact)
+            # the prediction's own work gets what the limit leaves beside the snapshot, the
+            # transfer context and the prediction itself
+            prediction = len(comps) * 8 * int(np.prod(coarse.shape))
+            budget = remaining_budget(spec.memory_limit, _nbytes(fields, targets, te)
+                                      + ctx.nbytes() + prediction)
             for coef, acc in ((fit.coefficients, sums),) + \
                     (((base[1], base_sums),) if base else ()):
                 model = predict_within(library, coef, fields, coarse, spec.scheme,
-                                       float(plan["delta"]), spec.memory_limit)
+                                       float(plan["delta"]), budget)
                 tm = ctx.transfers({c: model[c] for c in comps})
                 for k in te:
                     acc[k] = acc.get(k, 0) + TransferSums.from_fields(tm[k], te[k], tv)

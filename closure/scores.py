@@ -130,6 +130,13 @@ class TransferContext:
     def _d(self, f, dim):
         return derivative(f, self.grid, dim, 1, self.scheme)
 
+    def nbytes(self) -> int:
+        """Bytes of the arrays this context holds."""
+        total = 0
+        for name in ("strain", "velocity", "scalar_gradient"):
+            total += sum(int(a.nbytes) for a in getattr(self, name, {}).values())
+        return total + int(getattr(getattr(self, "vorticity", None), "nbytes", 0))
+
     def rows(self, start: int, stop: int) -> TransferContext:
         """This context over rows ``start:stop`` of the first direction: the transfers of
         those rows of the values, for transfers that :func:`transfers_pointwise` says need

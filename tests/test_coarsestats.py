@@ -305,3 +305,36 @@ def test_a_transfer_weighted_fit_past_the_memory_limit_gives_the_same_model(thre
     assert slab_calls["statistics"] == 3
     a, b = np.asarray(ref.coefficients), np.asarray(got.coefficients)
     assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
+
+
+def test_the_statistics_get_what_the_limit_leaves_beside_the_coarse_snapshot(three_d_file,
+                                                                            slab_calls):
+    # a limit the whole design fits, but not beside the coarse snapshot (3 fields and 6
+    # targets) the run holds meanwhile: the statistics go by slabs, the model is the same
+    from closure import pipeline
+    from closure.spec import parse_spec
+
+    def spec(**extra):
+        return parse_spec({"input": {"path": str(three_d_file)}, "target": "stress",
+                           "filter": {"kind": "gaussian", "ratio": 2}, "library": "default",
+                           "fit": {"resamples": 0}, **extra})
+
+    coarse = Grid.regular((8, 8, 8), 2 * np.pi)
+    lib = make_library("default", "stress", coarse.dims)
+    held = 9 * 8 * 8**3
+    limit = design_bytes(lib, coarse) + held // 2
+    assert design_fits(lib, coarse, limit) and not design_fits(lib, coarse, limit - held)
+    ref = pipeline.discover(spec())
+    got = pipeline.discover(spec(memory_limit=limit))
+    assert slab_calls["statistics"] == 3
+    a, b = np.asarray(ref.coefficients), np.asarray(got.coefficients)
+    assert np.abs(a - b).max() <= 1e-10 * np.abs(a).max()
+
+
+def test_remaining_budget_leaves_at_least_a_quarter():
+    from closure.outofcore import default_memory_limit
+    from closure.pipeline import remaining_budget
+
+    assert remaining_budget(1000, 300) == 700
+    assert remaining_budget(1000, 900) == 250  # a pass can always make progress
+    assert remaining_budget(None, 0) == default_memory_limit()

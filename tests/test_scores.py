@@ -173,3 +173,14 @@ def test_a_perfect_model_scores_one():
         assert sc["correlation"] == pytest.approx(1.0)
         assert sc["mean_ratio"] == pytest.approx(1.0)
         assert sc["backscatter_fraction_model"] == sc["backscatter_fraction_exact"]
+
+
+def test_transfer_context_counts_the_arrays_it_holds():
+    # 3-D stress: the resolved strain S_ij for every (i, j); 2-D stress adds the vorticity
+    rng = np.random.default_rng(4)
+    g3 = Grid.regular((8, 8, 8), 2 * np.pi)
+    f3 = {k: rng.standard_normal(g3.shape) for k in ("u", "v", "w")}
+    assert TransferContext("stress", f3, g3, "spectral").nbytes() == 9 * 8 * 8**3
+    g2 = Grid.regular((8, 8), 2 * np.pi)
+    f2 = {k: rng.standard_normal(g2.shape) for k in ("u", "v")}
+    assert TransferContext("stress", f2, g2, "spectral").nbytes() == 5 * 8 * 8**2
