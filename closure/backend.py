@@ -98,30 +98,13 @@ class NumpyBackend:
             axes = tuple(range(a.ndim - len(shape), a.ndim))
         return scipy.fft.irfftn(a, s=tuple(shape), axes=tuple(axes), workers=_workers(a))
 
-    def multiply(self, a, b, out):
-        return np.multiply(a, b, out=out)
-
     def phase_sum(self, P, H, out=None, subscripts: str = "ibk,bk->ik"):
         """``out[i, k] = sum_b P[i, b, k] H[b, k]``, or another einsum of P and H (one pass,
         no temporaries); a new array when ``out`` is None."""
         return np.einsum(subscripts, P, H, out=out)
 
-    def conjugate_(self, a):
-        """Conjugate ``a`` in place."""
-        return np.conjugate(a, out=a)
-
-    def flip_last(self, a):
-        """``a`` reversed along its last axis (a view here, a copy on torch)."""
-        return a[..., ::-1]
-
-    def take(self, a, index: np.ndarray, axis: int):
-        return np.take(a, index, axis=axis)
-
     def stack(self, arrays):
         return np.stack(arrays)
-
-    def einsum(self, spec: str, *arrays):
-        return np.einsum(spec, *arrays, optimize=True)
 
     def by_row_blocks(self, work, rows: int, width: int) -> None:
         """Run ``work(block)`` over slices of ``rows`` leading rows of ``width`` numbers each:
@@ -189,28 +172,12 @@ class TorchBackend(NumpyBackend):
             axes = tuple(range(a.ndim - len(shape), a.ndim))
         return self.torch.fft.irfftn(a, s=tuple(shape), dim=tuple(axes))
 
-    def multiply(self, a, b, out):
-        return self.torch.mul(a, b, out=out)
-
     def phase_sum(self, P, H, out=None, subscripts: str = "ibk,bk->ik"):
         result = self.torch.einsum(subscripts, P, H)
         return result if out is None else out.copy_(result)
 
-    def conjugate_(self, a):
-        return a.conj_physical_()
-
-    def flip_last(self, a):
-        return self.torch.flip(a, dims=(-1,))
-
-    def take(self, a, index: np.ndarray, axis: int):
-        index = self.torch.as_tensor(np.asarray(index), device=self.device)
-        return self.torch.index_select(a, axis % a.ndim, index)
-
     def stack(self, arrays):
         return self.torch.stack(list(arrays))
-
-    def einsum(self, spec: str, *arrays):
-        return self.torch.einsum(spec, *arrays)
 
     def by_row_blocks(self, work, rows: int, width: int) -> None:
         work(slice(0, rows))  # torch threads (or runs on the GPU) each operation itself

@@ -16,10 +16,11 @@ averaging instead takes the mean of r^d fine cells, with coordinates at the bloc
 On periodic grids filtering and coarsening are one spectral step: sampling every r-th point of a
 field is, in Fourier space, folding its spectrum onto the coarse wavenumbers (the coefficient of
 coarse wavenumber k is the sum of the fine ones at k + m N_coarse, m = 0..r-1, divided by r per
-direction), followed by an inverse FFT of coarse size (:func:`fold_spectrum`). This is exact,
-not an approximation, and needs no fine-grid inverse transform. The filters being tensor
-products, :meth:`CoarseGraining.separable` does it one direction at a time with 1-D FFTs, so
-later directions are transformed on arrays already coarse in the earlier ones.
+direction), followed by an inverse FFT of coarse size (computed by polyphase:
+:meth:`CoarseGraining._folded_rows`). This is exact, not an approximation, and needs no
+fine-grid inverse transform. The filters being tensor products, :meth:`CoarseGraining.separable`
+does it one direction at a time with 1-D FFTs, so later directions are transformed on arrays already
+coarse in the earlier ones.
 
 All operations act on the trailing ``grid.ndim`` axes, so a stack of fields (leading axes)
 is filtered in one FFT pass.
@@ -389,9 +390,9 @@ class CoarseGraining:
         by blocks of rows as they are transformed, never whole on the fine grid.
 
         The filters are tensor products, so the directions are transformed one at a time, the
-        last (x) first, and each is folded onto the coarse wavenumbers (the aliasing of
-        :func:`fold_spectrum`, computed by polyphase: r transforms of length n and one weighted
-        sum, :meth:`_folded_rows`) before the next direction is transformed: the transforms
+        last (x) first, and each is folded onto the coarse wavenumbers (the aliasing described
+        in the module docstring, computed by polyphase: r transforms of length n and one
+        weighted sum, :meth:`_folded_rows`) before the next direction is transformed: the transforms
         along y (and z) act on arrays already coarse in x. A direction without a code is
         sampled by slicing. One coarse inverse FFT per op at the end. Ops sharing codes share
         the transforms. Exact: the values of filtering and differentiating on the fine grid,
@@ -513,66 +514,6 @@ class CoarseGraining:
         return out
 
 
-def fold_spectrum(spectrum, fine_shape: tuple[int, ...], ratio: int,
-                  multiplier=None, backend=None):
-    """Coarse ``rfftn`` coefficients of every ``ratio``-th point of a real periodic field.
-
-    ``spectrum`` is ``scipy.fft.rfftn`` of the fine field(s) over the trailing
-    ``len(fine_shape)`` axes (the last one the half axis, ``N // 2 + 1`` long; leading axes are
-    a stack). With ``f_c[j] = f[r j]`` and ``n = N / r`` per direction, the coarse coefficients
-    are ``F_c(k) = r^-d sum_m F(k + m n)`` over the full fine spectrum (aliasing). On the half
-    axis the aliases above ``N / 2`` are not stored: they are ``conj(F(-k_lead, N - k))`` by the
-    Hermitian symmetry of a real field's transform. ``multiplier`` (broadcastable to the
-    spectrum, the transform of a real operator such as a filter or a derivative) multiplies
-    the coefficients first, in 1-D without forming the whole product. Returns the coarse half
-    spectrum, last axis ``n // 2 + 1`` long, ready for ``irfftn(..., s=coarse shape)``. Every
-    ``N`` must be a multiple of ``ratio``. Arrays of ``backend`` (closure.backend; default
-    numpy).
-    """
-    be = backend or _NUMPY
-    fine_shape = tuple(int(n) for n in fine_shape)
-    d, r = len(fine_shape), int(ratio)
-    if any(n % r for n in fine_shape):
-        raise ValueError(f"fine shape {fine_shape} is not a multiple of the ratio {r}")
-    nd_ = len(spectrum.shape)
-    if tuple(spectrum.shape[nd_ - d:]) != (*fine_shape[:-1], fine_shape[-1] // 2 + 1):
-        raise ValueError(f"spectrum of shape {tuple(spectrum.shape)} is not the rfftn of a "
-                         f"field of shape {fine_shape}")
-    spectrum = be.asarray(spectrum)
-    coarse = tuple(n // r for n in fine_shape)
-    N, h = fine_shape[-1], coarse[-1] // 2 + 1
-    m_last = np.ones(N // 2 + 1)
-    a = spectrum
-    if multiplier is not None:
-        if d == 1 and np.ndim(multiplier) <= 1:  # fused into the fold below
-            m_last = np.broadcast_to(np.asarray(multiplier), (N // 2 + 1,))
-        else:
-            a = spectrum * be.asarray(multiplier)
-    # full axes: sum the r aliases k + m n (a fixed order of additions)
-    for i in range(d - 1):
-        lead, n = (slice(None),) * (len(a.shape) - d + i), coarse[i]
-        acc = a[(*lead, slice(0, n))] + a[(*lead, slice(n, 2 * n))] if r > 1 else \
-            a[(*lead, slice(0, n))] * 1.0
-        for m in range(2, r):
-            acc += a[(*lead, slice(m * n, (m + 1) * n))]
-        a = acc
-    m_last = m_last * float(r) ** -d
-    pieces = [(dst, src, flip, be.asarray(m_last[src]))
-              for dst, src, flip in _half_axis_pieces(N, r)]
-    if d == 1:
-        return _fold_half_axis(be, a, pieces, h)
-    # the mirrored aliases are conj(F(-k_lead, N - k)): the flip k_lead -> -k_lead commutes
-    # with the fold, so it is applied on the coarse grid
-    direct = _fold_half_axis(be, a, [p for p in pieces if not p[2]], h)
-    mirrored = _fold_half_axis(be, a, [p for p in pieces if p[2]], h, conjugate=False)
-    for i in range(d - 1):
-        axis = len(mirrored.shape) - d + i
-        mirrored = be.take(mirrored, (-np.arange(coarse[i])) % coarse[i], axis)
-    be.conjugate_(mirrored)
-    direct += mirrored
-    return direct
-
-
 def _rfftn_ik(grid: Grid) -> dict[str, np.ndarray]:
     """``1j * k_d`` on the rfftn wavenumbers, broadcastable, Nyquist mode of even lengths
     dropped (as closure.derivatives does for odd derivatives)."""
@@ -586,55 +527,6 @@ def _rfftn_ik(grid: Grid) -> dict[str, np.ndarray]:
         shape[a] = k.size
         out[d] = (1j * k).reshape(shape)
     return out
-
-
-def _half_axis_pieces(N: int, r: int) -> list[tuple[slice, slice, bool]]:
-    """The aliases of a 1-D fold on the half (rfft) axis of length ``N // 2 + 1``, coarse
-    ``n = N / r``: ``(coarse slice, fine slice, mirrored)``. Direct pieces add
-    ``F[fine slice]``; mirrored ones (aliases above ``N / 2``) add the conjugate of
-    ``F[fine slice]`` reversed, by Hermitian symmetry."""
-    n = N // r
-    h, top = n // 2 + 1, N // 2
-    out = []
-    for m in range(r):
-        lo = m * n
-        nd = min(max(top - lo + 1, 0), h)  # aliases lo .. lo + nd - 1 are stored
-        if nd:
-            out.append((slice(0, nd), slice(lo, lo + nd), False))
-        if nd < h:  # aliases k = lo + nd .. lo + h - 1 are conj(F(N - k))
-            out.append((slice(nd, h), slice(N - lo - h + 1, N - lo - nd + 1), True))
-    return out
-
-
-def _fold_half_axis(be, a, pieces, h: int, conjugate: bool = True, out=None):
-    """``sum(F[src] * m)`` over ``pieces`` (see :func:`_half_axis_pieces`) onto a last axis of
-    ``h`` points; a mirrored piece adds the conjugate (unless ``conjugate`` is False) of its
-    product reversed. The first whole piece is written, the others go through one scratch
-    array and are added in place: no temporary per piece. ``out``: where to write (rows of
-    ``h`` points), else a new array."""
-    lead = tuple(a.shape[:-1])
-    A = a.reshape(-1, a.shape[-1])
-    if out is None:
-        out = be.empty((A.shape[0], h), complex=True)
-    first = next((p for p in pieces if not p[2] and p[0] == slice(0, h)), None)
-    if first is None:
-        out[...] = 0
-    else:
-        be.multiply(A[:, first[1]], first[3], out)
-    scratch = be.empty((A.shape[0], h), complex=True)
-    for piece in pieces:
-        if piece is first:
-            continue
-        dst, src, flip, m = piece
-        tmp = scratch[:, :dst.stop - dst.start]
-        be.multiply(A[:, src], m, tmp)
-        if flip:
-            if conjugate:
-                be.conjugate_(tmp)
-            out[:, dst] += be.flip_last(tmp)
-        else:
-            out[:, dst] += tmp
-    return out.reshape(*lead, h)
 
 
 def _divide(num: np.ndarray, den: np.ndarray) -> np.ndarray:

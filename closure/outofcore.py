@@ -8,7 +8,7 @@ temporary folder (deleted afterwards); only the coarse result is kept in memory.
 
 Periodic filters (box, Gaussian, sharp spectral): the operators are tensor products, so each
 slab is transformed along its complete directions (x, and y in 3-D) and folded onto the coarse
-wavenumbers there (:func:`closure.filters.fold_spectrum`), which shrinks it by the ratio per
+wavenumbers there (closure.filters.CoarseGraining._folded_rows), which shrinks it by the ratio per
 direction; the first direction is then transformed column chunk by column chunk of that smaller
 store. Fine-grid fields that the force and vorticity terms need (the filtered velocity, the
 vorticity) are built the same way without folding and kept in files.
@@ -37,7 +37,7 @@ import scipy.ndimage
 
 from closure.backend import NumpyBackend
 from closure.errors import OptionError, UserError
-from closure.filters import CoarseGraining, box_weights, fold_spectrum
+from closure.filters import CoarseGraining, box_weights
 from closure.grid import VELOCITY_OF, Grid
 
 #: the default budget: this fraction of the machine's memory
@@ -292,25 +292,14 @@ class _Engine:
 
     def _slab_forward(self, f, ops, last) -> dict:
         """Directions other than the first over one slab: {codes of dirs 1..: (X, spectral)}."""
-        g, r = self.g, self.r
-        N = g.shape[-1]
+        r = self.r
         results: dict = {}
-        rows = None
         codes = sorted({op[last] for op in ops})
-        # filters: the in-memory pass's polyphase folds, by blocks of rows on every core
-        folded = (self.cg._folded_rows(f, [c for c in codes if c], self.backend)
-                  if self.cg.kind != "block" else {})
+        # the in-memory pass's polyphase folds, by blocks of rows on every core
+        folded = self.cg._folded_rows(f, [c for c in codes if c], self.backend)
         for code in codes:
             members = [op for op in ops if op[last] == code]
-            if not code:
-                X = scipy.fft.rfft(f[..., ::r], axis=-1, workers=-1)
-            elif code in folded:
-                X = folded.pop(code)
-            else:
-                if rows is None:
-                    rows = scipy.fft.rfft(f, axis=-1, workers=-1)
-                X = fold_spectrum(rows, (N,), r, self.m[last][code]).astype(self.complex,
-                                                                             copy=False)
+            X = scipy.fft.rfft(f[..., ::r], axis=-1, workers=-1) if not code else folded[code]
             self._middle(X, last - 1, members, (), results)
         return results
 

@@ -24,12 +24,12 @@ onto resolved wavenumbers and truncate it. On the fine grid ``d_j`` commutes wit
 periodic) filter, so ``force_i`` is exactly ``bar(d_j(u_i u_j)) - d_j(bar(u_i) bar(u_j))``.
 
 On periodic grids these sampled fine-grid values are computed in one spectral step: a sampled
-filtered (and differentiated) field is the fold of its fine spectrum onto the coarse
-wavenumbers (closure.filters.fold_spectrum, exact; done one direction at a time by
-CoarseGraining.separable), and sampling commutes with pointwise products, so one forward
-transform per field or product and coarse inverse transforms give the stress, fluxes, ``pi``
-and the enstrophy transfer. Only ``force_i`` and the vorticity forcing, fine-grid
-derivatives of products of filtered fields, need the filtered velocity on the fine grid.
+filtered (and differentiated) field is the fold of its fine spectrum onto the coarse wavenumbers
+(exact; done one direction at a time by CoarseGraining.separable), and sampling commutes with
+pointwise products, so one forward transform per field or product and coarse inverse transforms
+give the stress, fluxes, ``pi`` and the enstrophy transfer. Only ``force_i`` and the vorticity
+forcing, fine-grid derivatives of products of filtered fields, need the filtered velocity on the
+fine grid.
 ``targets`` restricts the work to the target variables asked for. This periodic pass is
 written once against the array backend seam (closure.backend): numpy and scipy.fft by
 default, torch on a CPU or GPU with ``backend=`` / ``--device`` (the same values to 1e-10 in

@@ -244,7 +244,7 @@ def test_discover_on_the_torch_backend_equals_numpy(tmp_path, monkeypatch):
     base = {"input": {"path": str(path)}, "filter": {"kind": "gaussian", "ratio": 4},
             "fit": {"resamples": 0}}
     calls = []
-    for name in ("rfft", "einsum"):
+    for name in ("rfft", "phase_sum"):
         real = getattr(backend.TorchBackend, name)
         monkeypatch.setattr(backend.TorchBackend, name,
                             lambda self, *a, _real=real, _name=name, **k:
@@ -260,7 +260,7 @@ def test_discover_on_the_torch_backend_equals_numpy(tmp_path, monkeypatch):
     assert calls == [] and grams and set(grams) == {"NumpyBackend"}
     grams.clear()
     b = pipeline.discover(parse_spec({**base, "device": "cpu"}))
-    assert "rfft" in calls and set(grams) == {"TorchBackend"}
+    assert {"rfft", "phase_sum"} <= set(calls) and set(grams) == {"TorchBackend"}
     assert a.names == b.names
     np.testing.assert_allclose(b.coefficients, a.coefficients, rtol=1e-10, atol=1e-14)
     assert parse_spec({**base, "device": "cpu"}).fingerprint() == parse_spec(base).fingerprint()
@@ -268,16 +268,21 @@ def test_discover_on_the_torch_backend_equals_numpy(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize(("shape", "r"), [((12, 16), 4), ((9, 6, 15), 3), ((30,), 5)])
 def test_fold_on_torch_is_the_sampled_field(shape, r):
-    # closure.filters.fold_spectrum on the torch backend: the coarse rfftn coefficients of
-    # every r-th point (aliasing; common practice), checked against numpy.fft of the samples
+    # the polyphase fold on the torch backend: the coarse rfft coefficients along x of every
+    # r-th point of the x-derivative (aliasing; common practice; Nyquist dropped), checked
+    # against numpy.fft of the samples
     torch = pytest.importorskip("torch", reason=NEEDS_TORCH)
-    from closure.filters import fold_spectrum
 
+    grid = Grid.regular(shape, 2 * np.pi)
+    cg = make_coarse_graining("gaussian", grid, r, None, "grid")
     f = np.random.default_rng(len(shape)).standard_normal((2, *shape))
-    axes = tuple(range(1, 1 + len(shape)))
-    be = get_backend("cpu")
-    got = fold_spectrum(torch.as_tensor(np.fft.rfftn(f, axes=axes)), shape, r, backend=be)
-    expect = np.fft.rfftn(f[(Ellipsis, *[slice(None, None, r)] * len(shape))], axes=axes)
+    N = shape[-1]
+    ik = 1j * np.fft.rfftfreq(N, 1.0 / N)
+    if N % 2 == 0:
+        ik[-1] = 0
+    got = cg._folded_rows(torch.as_tensor(f), ["d"], get_backend("cpu"))["d"]
+    deriv = np.fft.irfft(np.fft.rfft(f, axis=-1) * ik, n=N, axis=-1)
+    expect = np.fft.rfft(deriv[..., ::r], axis=-1)
     np.testing.assert_allclose(got.numpy(), expect, rtol=0, atol=1e-12)
 
 

@@ -8,7 +8,6 @@ from closure.errors import UserError
 from closure.filters import (
     CoarseGraining,
     box_weights,
-    fold_spectrum,
     make_coarse_graining,
     transfer_function,
 )
@@ -227,27 +226,29 @@ FOLD_CASES = [((12,), 4), ((15,), 3), ((18,), 3), ((21,), 7), ((12, 15), 3), ((1
 
 
 @pytest.mark.parametrize("shape,r", FOLD_CASES)
-def test_fold_gives_the_spectrum_of_every_rth_point(shape, r):
-    # sampling f[r j] aliases the DFT: F_c(k) = r^-d sum_m F(k + m n) over the full spectrum
-    # (common practice: the DFT of a downsampled sequence). Reference: numpy.fft.rfftn of the
-    # samples themselves, every coefficient including the Nyquist bins.
+def test_polyphase_fold_gives_the_spectrum_of_every_rth_point(shape, r):
+    # sampling f[r j] aliases the DFT: F_c(k) = (1/r) sum_m F(k + m n) along the folded axis
+    # (common practice: the DFT of a downsampled sequence), here with the multiplier of a real
+    # operator first: d/dx (Nyquist dropped), and the Gaussian filter G(k) = exp(-k^2 D^2 / 24)
+    # times d/dx (Pope 2000, Table 13.2). Reference: numpy.fft.rfft along x of every r-th point
+    # of the operated field, every coefficient including the Nyquist bins.
+    from closure.backend import NumpyBackend
+
+    g = Grid.regular(shape, 2 * np.pi)
+    cg = make_coarse_graining("gaussian", g, r, 2.0 * r)
     f = np.random.default_rng(len(shape) + r).standard_normal((2, *shape))
-    axes = tuple(range(1, 1 + len(shape)))
-    got = fold_spectrum(np.fft.rfftn(f, axes=axes), shape, r)
-    samples = f[(Ellipsis,) + (slice(None, None, r),) * len(shape)]
-    ref = np.fft.rfftn(samples, axes=axes)
-    assert got.shape == ref.shape
-    np.testing.assert_allclose(got, ref, atol=1e-12 * np.abs(ref).max())
-    # with the multiplier of a real operator (here d/dx along the last axis, Nyquist dropped):
-    # the coefficients of every r-th point of the differentiated field (numpy reference)
     N = shape[-1]
-    ik = 2j * np.pi * np.fft.rfftfreq(N)
+    k = np.fft.rfftfreq(N, 1.0 / N)
+    ik = 1j * k
     if N % 2 == 0:
         ik[-1] = 0
-    deriv = np.fft.irfftn(np.fft.rfftn(f, axes=axes) * ik, s=shape, axes=axes)
-    ref = np.fft.rfftn(deriv[(Ellipsis,) + (slice(None, None, r),) * len(shape)], axes=axes)
-    got = fold_spectrum(np.fft.rfftn(f, axes=axes), shape, r, ik)
-    np.testing.assert_allclose(got, ref, atol=1e-12 * np.abs(ref).max())
+    G = np.exp(-(k**2) * cg.widths[-1] ** 2 / 24)
+    got = cg._folded_rows(f, ["d", "fd"], NumpyBackend())
+    for code, m in (("d", ik), ("fd", G * ik)):
+        operated = np.fft.irfft(np.fft.rfft(f, axis=-1) * m, n=N, axis=-1)
+        ref = np.fft.rfft(operated[..., ::r], axis=-1)
+        assert got[code].shape == ref.shape
+        np.testing.assert_allclose(got[code], ref, atol=1e-12 * np.abs(ref).max(), err_msg=code)
 
 
 @pytest.mark.parametrize("kind", ["box", "gaussian", "spectral"])
@@ -274,13 +275,6 @@ def test_one_step_coarse_graining_equals_filter_then_sample(shape, r, kind):
         got = cg.separable(f, [("f",) * g.ndim, *ops], sample=sample)
         for out, r_ in zip(got, [cg.filter(f), *refs], strict=True):
             np.testing.assert_allclose(out, cg.sample(r_) if sample else r_, atol=1e-12)
-
-
-def test_fold_checks_its_input():
-    with pytest.raises(ValueError, match="not a multiple of the ratio"):
-        fold_spectrum(np.zeros(6, complex), (10,), 3)
-    with pytest.raises(ValueError, match="not the rfftn"):
-        fold_spectrum(np.zeros(5, complex), (12,), 3)
 
 
 def test_non_periodic_coarse_graining_filters_in_real_space_then_samples():
