@@ -57,16 +57,28 @@ def make_netcdf(tmp_path):
 
 
 @pytest.fixture
-def three_d_file(tmp_path):
+def random_3d_file(tmp_path):
+    """Factory: ``random_3d_file(snapshots, names, interval)`` writes random fields ``names``
+    (standard normal, seed 1), ``snapshots`` of 16^3 on [0, 2 pi)^3 ``interval`` s apart."""
+
+    def make(snapshots: int, names=("u", "v", "w"), interval: float = 1.0) -> Path:
+        rng = np.random.default_rng(1)
+        n = 16
+        c = np.arange(n) * (2 * np.pi / n)
+        data = {k: (("time", "z", "y", "x"), rng.standard_normal((snapshots, n, n, n)))
+                for k in names}
+        path = tmp_path / "three_d.nc"
+        xr.Dataset(data, coords={"time": np.arange(snapshots) * interval, "z": c, "y": c,
+                                 "x": c}).to_netcdf(path)
+        return path
+
+    return make
+
+
+@pytest.fixture
+def three_d_file(random_3d_file):
     """Random 3-D velocity, 3 snapshots of 16^3 on [0, 2 pi)^3 (slab-task tests)."""
-    rng = np.random.default_rng(1)
-    n = 16
-    c = np.arange(n) * (2 * np.pi / n)
-    data = {k: (("time", "z", "y", "x"), rng.standard_normal((3, n, n, n)))
-            for k in ("u", "v", "w")}
-    path = tmp_path / "three_d.nc"
-    xr.Dataset(data, coords={"time": [0.0, 0.5, 1.0], "z": c, "y": c, "x": c}).to_netcdf(path)
-    return path
+    return random_3d_file(3, interval=0.5)
 
 
 @pytest.fixture

@@ -201,16 +201,9 @@ def test_user_errors_name_the_fix():
 
 # ---------------------------------------------------------------------- through the pipeline
 @pytest.fixture
-def three_d_file(tmp_path):
+def three_d_file(random_3d_file):
     """Random 3-D velocity and a scalar, 5 snapshots of 16^3 on [0, 2 pi)^3."""
-    rng = np.random.default_rng(1)
-    n = 16
-    c = np.arange(n) * (2 * np.pi / n)
-    data = {k: (("time", "z", "y", "x"), rng.standard_normal((5, n, n, n)))
-            for k in ("u", "v", "w", "c")}
-    path = tmp_path / "three_d.nc"
-    xr.Dataset(data, coords={"time": np.arange(5.0), "z": c, "y": c, "x": c}).to_netcdf(path)
-    return path
+    return random_3d_file(5, ("u", "v", "w", "c"))
 
 
 @pytest.mark.parametrize("target", ["stress", "force", "flux:c"])
