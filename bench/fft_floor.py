@@ -3,6 +3,7 @@
     python bench/fft_floor.py                       # 2-D 1024^2 and 3-D 256^3
     python bench/fft_floor.py --n2 256 --n3 64 --repeat 5
     python bench/fft_floor.py --jobs 1              # per snapshot without side-by-side maps
+    python bench/fft_floor.py --in-a-row 1          # each timed once per round
     python bench/fft_floor.py --profile             # where the pass spends its time
 
 The pass is what ``closure.pipeline._map`` does with one snapshot once it is read: coarse-grain
@@ -29,14 +30,15 @@ move with the machine's load. CPU-time ratios (all threads) are printed too: on 
 machine they move less. No assertion: a measurement.
 
 Measured 2026-12-02 on the 2-core machine with every other process paused (`python3
-bench/fft_floor.py --repeat 7 --n3 0`, three runs; `--repeat 3 --n2 0` for 3-D):
-2-D 1024^2, floor 14.3-14.7 ms: one pass alone 2.01x-2.06x (CPU time 1.79x-1.86x), per
-snapshot with --jobs 2 1.99x-2.06x (CPU 2.01x-2.14x); 3-D 256^3, floor 0.93 s: one pass
-alone 0.79x, per snapshot 0.74x (CPU 0.77x, 0.82x). Timed once per round instead (the floor
-then starts with its input out of the cache, as the pass does in a run), the same code gave
-1.86x-1.88x alone and 1.50x-1.69x per snapshot. Before this session's changes (polyphase
-folds, transforms and snapshots side by side, chunked design): 2-D one pass 3.38x (CPU
-2.27x), 3-D 1.58x, timed once per round.
+bench/fft_floor.py --repeat 7 --n3 0`, three runs; `--repeat 3 --n2 0` for 3-D): 2-D 1024^2,
+floor 14.3-14.7 ms: one pass alone 2.01x-2.06x (CPU time 1.79x-1.86x), per snapshot with --jobs
+2 1.99x-2.06x (CPU 2.01x-2.14x); a fourth run, later, with a floor of 17.9 ms: 1.90x and 1.83x;
+3-D 256^3, floor 0.93 s: one pass alone 0.79x, per snapshot 0.74x (CPU 0.77x, 0.82x). Timed
+once per round instead (``--in-a-row 1``: the floor then starts with its input out of the
+cache, as the pass does in a run), three runs: 1.89x-1.92x alone (CPU 1.65x-1.72x), 1.64x-1.68x
+per snapshot (CPU 1.71x-1.79x). Before this session's changes (polyphase folds, transforms and
+snapshots side by side, chunked design): 2-D one pass 3.38x (CPU 2.27x), 3-D 1.58x, timed once
+per round.
 
 Where the 2-D pass goes (single-threaded, 42-45 ms of CPU against the floor's 21-24): the
 forward row transforms of the five fields 11.5 ms (the floor's own row transforms), the
@@ -148,7 +150,7 @@ def _best(fn, *args, repeat: int) -> list[tuple[float, float]]:
     return times
 
 
-def measure(n: int, ndim: int, repeat: int, jobs: int) -> dict:
+def measure(n: int, ndim: int, repeat: int, jobs: int, in_a_row: int = 2) -> dict:
     snap, cg, library = setup(n, ndim)
     # ``jobs`` snapshots of their own (copies), each mapped twice per timed run
     snaps = [snap] + [dataclasses.replace(snap, fields={k: v.copy() for k, v in
@@ -160,14 +162,16 @@ def measure(n: int, ndim: int, repeat: int, jobs: int) -> dict:
         side_by_side(snaps, cg, library, jobs)
         floor(snap)
         ours, many, base = [], [], []
-        # alternate, so a busy spell of the machine hits all three; twice in a row each, so
-        # each has a run with its data and plans warm (the floor's input stays in the cache
-        # between its runs, which favours it: the ratios are on the safe side)
+        # alternate, so a busy spell of the machine hits all three; ``in_a_row`` times each,
+        # so that (from 2) each has a run with its data and plans warm (the floor's input
+        # stays in the cache between its runs, which favours it: the ratios are on the safe
+        # side)
         for _ in range(repeat):
-            ours += _best(one_pass, snap, cg, library, repeat=2)
+            ours += _best(one_pass, snap, cg, library, repeat=in_a_row)
             many += [(t / len(snaps), c / len(snaps))
-                     for t, c in _best(side_by_side, snaps, cg, library, jobs, repeat=2)]
-            base += _best(floor, snap, repeat=2)
+                     for t, c in _best(side_by_side, snaps, cg, library, jobs,
+                                       repeat=in_a_row)]
+            base += _best(floor, snap, repeat=in_a_row)
     out = {"floor": min(t for t, _ in base)}
     for name, runs in (("pass", ours), ("jobs", many)):
         out[name] = min(t for t, _ in runs)
@@ -205,6 +209,9 @@ def main(argv=None) -> int:
     ap.add_argument("--jobs", type=int, default=None,
                     help="snapshots side by side for the per-snapshot figure (default: the "
                          "cores, as discover's default)")
+    ap.add_argument("--in-a-row", type=int, default=2,
+                    help="runs of each contender in a row per round (1: the floor's input "
+                         "starts out of the cache, as the pass's does in a run)")
     ap.add_argument("--profile", action="store_true", help="cProfile the pass instead")
     args = ap.parse_args(argv)
     if args.n:
@@ -218,7 +225,7 @@ def main(argv=None) -> int:
             print(f"--- profile {n}^{d}")
             profile(n, d)
             continue
-        r = measure(n, d, args.repeat, jobs)
+        r = measure(n, d, args.repeat, jobs, args.in_a_row)
         ffts = d + d * (d + 1) // 2
         print(f"  {d}-D {n}^{d}: floor ({ffts} forward rfftn) {1e3 * r['floor']:8.1f} ms\n"
               f"    one pass alone         {1e3 * r['pass']:8.1f} ms: {r['pass_ratio']:.2f}x "
